@@ -1,0 +1,655 @@
+//! Configuration: TOML file → shape-checked raw structs (`raw`) → validated [`Config`], then
+//! `POSTERIORD_*` environment overrides for deployment.
+//!
+//! Every error names the key and, for file values, the line, so that `check-config` can point
+//! an operator at the exact spot.
+
+mod raw;
+
+use std::collections::BTreeMap;
+use std::fmt;
+use std::net::SocketAddr;
+use std::ops::Range;
+use std::path::{Path, PathBuf};
+
+use toml::Spanned;
+
+use crate::decode::DEFAULT_MAX_EVENT_BYTES;
+use crate::experiment::{
+    ExperimentDef, ExposureBasis, MetricDef, MetricKind, Prior, VariantDef, MAX_CONVERSION_METRICS,
+    MAX_METRICS, MAX_VARIANTS,
+};
+use raw::{PropertyValue, RawConfig, RawExperiment, RawExposure, RawKind, RawMetric, RawPrior};
+
+/// Prefix of every environment override.
+pub const ENV_PREFIX: &str = "POSTERIORD_";
+
+/// Default HTTP listen address: loopback only, so a first start exposes nothing.
+pub const DEFAULT_HTTP_ADDR: &str = "127.0.0.1:8080";
+
+/// Default bound on an HTTP request body.
+pub const DEFAULT_MAX_BODY_BYTES: usize = 16 * 1024 * 1024;
+
+/// Default consumer group.
+pub const DEFAULT_KAFKA_GROUP: &str = "posteriord";
+
+/// Default state directory.
+pub const DEFAULT_STORE_DIR: &str = "./posteriord-data";
+
+/// The validated configuration.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Config {
+    /// HTTP API settings.
+    pub http: HttpConfig,
+    /// Kafka source, if configured.
+    pub kafka: Option<KafkaConfig>,
+    /// Where state is kept.
+    pub store: StoreConfig,
+    /// The experiments to watch.
+    pub experiments: Vec<ExperimentDef>,
+}
+
+/// `[http]`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct HttpConfig {
+    /// Listen address (port 0 picks a free port; the bound address is logged and printed).
+    pub addr: SocketAddr,
+    /// Largest accepted request body.
+    pub max_body_bytes: usize,
+}
+
+/// `[kafka]`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct KafkaConfig {
+    /// `bootstrap.servers`.
+    pub brokers: String,
+    /// Topics to consume.
+    pub topics: Vec<String>,
+    /// Consumer group id.
+    pub group: String,
+    /// Largest accepted message; larger ones are rejected as `too_large`.
+    pub max_event_bytes: usize,
+    /// librdkafka properties passed through unchanged.
+    pub properties: BTreeMap<String, String>,
+}
+
+/// `[store]`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StoreConfig {
+    /// State directory.
+    pub dir: PathBuf,
+}
+
+/// A configuration error: where, which key, what is wrong.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ConfigError {
+    /// File name (or `<env>` for environment overrides).
+    pub origin: String,
+    /// One-based line of the offending value, when it came from the file.
+    pub line: Option<usize>,
+    /// Dotted key, such as `experiment[0].variants[1].weight`.
+    pub key: String,
+    /// What is wrong and what is expected.
+    pub message: String,
+}
+
+impl fmt::Display for ConfigError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self.line {
+            Some(line) => write!(f, "{}:{line}: ", self.origin)?,
+            None => write!(f, "{}: ", self.origin)?,
+        }
+        if self.key.is_empty() {
+            write!(f, "{}", self.message)
+        } else {
+            write!(f, "`{}`: {}", self.key, self.message)
+        }
+    }
+}
+
+impl std::error::Error for ConfigError {}
+
+/// Reads environment variables; a function so tests need not touch the process environment.
+pub type EnvLookup<'a> = &'a dyn Fn(&str) -> Option<String>;
+
+/// Every variable of the process environment that starts with [`ENV_PREFIX`].
+pub fn process_env() -> Vec<(String, String)> {
+    std::env::vars()
+        .filter(|(k, _)| k.starts_with(ENV_PREFIX))
+        .collect()
+}
+
+impl Config {
+    /// Read, parse and validate the file at `path`, then apply `env` overrides.
+    pub fn load(path: &Path, env: &[(String, String)]) -> Result<Config, ConfigError> {
+        let origin = path.display().to_string();
+        let text = std::fs::read_to_string(path).map_err(|e| ConfigError {
+            origin: origin.clone(),
+            line: None,
+            key: String::new(),
+            message: format!("cannot read the config file: {e}"),
+        })?;
+        Config::parse(&text, &origin, env)
+    }
+
+    /// Parse and validate `text`, then apply `env` overrides.
+    pub fn parse(
+        text: &str,
+        origin: &str,
+        env: &[(String, String)],
+    ) -> Result<Config, ConfigError> {
+        let ctx = Ctx { text, origin };
+        let raw: RawConfig = toml::from_str(text).map_err(|e| ConfigError {
+            origin: origin.to_string(),
+            line: e.span().map(|s| ctx.line_of(s.start)),
+            key: String::new(),
+            message: e.message().trim().to_string(),
+        })?;
+        let mut config = ctx.validate(raw)?;
+        apply_env(&mut config, env)?;
+        Ok(config)
+    }
+}
+
+struct Ctx<'a> {
+    text: &'a str,
+    origin: &'a str,
+}
+
+impl Ctx<'_> {
+    fn line_of(&self, offset: usize) -> usize {
+        let end = offset.min(self.text.len());
+        self.text.as_bytes()[..end]
+            .iter()
+            .filter(|&&b| b == b'\n')
+            .count()
+            + 1
+    }
+
+    fn err(
+        &self,
+        span: Range<usize>,
+        key: impl Into<String>,
+        message: impl Into<String>,
+    ) -> ConfigError {
+        ConfigError {
+            origin: self.origin.to_string(),
+            line: Some(self.line_of(span.start)),
+            key: key.into(),
+            message: message.into(),
+        }
+    }
+
+    fn validate(&self, raw: RawConfig) -> Result<Config, ConfigError> {
+        let addr = match raw.http.addr {
+            None => DEFAULT_HTTP_ADDR.parse().expect("default address parses"),
+            Some(a) => a.get_ref().parse().map_err(|_| {
+                self.err(
+                    a.span(),
+                    "http.addr",
+                    format!(
+                        "expected IP:PORT such as 127.0.0.1:8080, got {:?}",
+                        a.get_ref()
+                    ),
+                )
+            })?,
+        };
+        let max_body_bytes = match raw.http.max_body_bytes {
+            None => DEFAULT_MAX_BODY_BYTES,
+            Some(v) => self.positive_size(&v, "http.max_body_bytes")?,
+        };
+        let kafka = raw.kafka.map(|k| self.kafka(k)).transpose()?;
+        let store = StoreConfig {
+            dir: match raw.store.dir {
+                None => PathBuf::from(DEFAULT_STORE_DIR),
+                Some(d) if d.get_ref().trim().is_empty() => {
+                    return Err(self.err(d.span(), "store.dir", "must not be empty"))
+                }
+                Some(d) => PathBuf::from(d.into_inner()),
+            },
+        };
+        let mut experiments: Vec<ExperimentDef> = Vec::new();
+        for (i, e) in raw.experiment.into_iter().enumerate() {
+            let span = e.span();
+            let def = self.experiment(i, e.into_inner())?;
+            if experiments.iter().any(|x| x.id == def.id) {
+                return Err(self.err(
+                    span,
+                    format!("experiment[{i}].id"),
+                    format!("experiment id `{}` is used twice", def.id),
+                ));
+            }
+            experiments.push(def);
+        }
+        Ok(Config {
+            http: HttpConfig {
+                addr,
+                max_body_bytes,
+            },
+            kafka,
+            store,
+            experiments,
+        })
+    }
+
+    fn positive_size(&self, v: &Spanned<i64>, key: &str) -> Result<usize, ConfigError> {
+        match usize::try_from(*v.get_ref()) {
+            Ok(n) if n > 0 => Ok(n),
+            _ => Err(self.err(v.span(), key, "must be a positive number of bytes")),
+        }
+    }
+
+    fn kafka(&self, k: Spanned<raw::RawKafka>) -> Result<KafkaConfig, ConfigError> {
+        let span = k.span();
+        let k = k.into_inner();
+        let brokers = match k.brokers {
+            Some(b) if !b.get_ref().trim().is_empty() => b.into_inner(),
+            Some(b) => return Err(self.err(b.span(), "kafka.brokers", "must not be empty")),
+            None => {
+                return Err(self.err(
+                    span,
+                    "kafka.brokers",
+                    "is required in [kafka], e.g. brokers = \"127.0.0.1:9092\"",
+                ))
+            }
+        };
+        let topics = match k.topics {
+            None => {
+                return Err(self.err(
+                    span,
+                    "kafka.topics",
+                    "is required in [kafka], e.g. topics = [\"exp-events\"]",
+                ))
+            }
+            Some(t) => {
+                let tspan = t.span();
+                let list: Vec<String> =
+                    t.into_inner().into_iter().map(|s| s.into_inner()).collect();
+                if list.is_empty() || list.iter().any(|s| s.trim().is_empty()) {
+                    return Err(self.err(
+                        tspan,
+                        "kafka.topics",
+                        "must list at least one non-empty topic",
+                    ));
+                }
+                list
+            }
+        };
+        let group = match k.group {
+            None => DEFAULT_KAFKA_GROUP.to_string(),
+            Some(g) if g.get_ref().trim().is_empty() => {
+                return Err(self.err(g.span(), "kafka.group", "must not be empty"))
+            }
+            Some(g) => g.into_inner(),
+        };
+        let max_event_bytes = match k.max_event_bytes {
+            None => DEFAULT_MAX_EVENT_BYTES,
+            Some(v) => self.positive_size(&v, "kafka.max_event_bytes")?,
+        };
+        let mut properties = BTreeMap::new();
+        for (name, value) in k.properties {
+            let text = match value.into_inner() {
+                PropertyValue::Text(s) => s,
+                PropertyValue::Integer(i) => i.to_string(),
+                PropertyValue::Bool(b) => b.to_string(),
+                PropertyValue::Float(f) => f.to_string(),
+            };
+            properties.insert(name, text);
+        }
+        Ok(KafkaConfig {
+            brokers,
+            topics,
+            group,
+            max_event_bytes,
+            properties,
+        })
+    }
+
+    fn name(&self, s: &Spanned<String>, key: &str) -> Result<String, ConfigError> {
+        check_name(s.get_ref()).map_err(|m| self.err(s.span(), key, m))?;
+        Ok(s.get_ref().clone())
+    }
+
+    fn experiment(&self, i: usize, e: RawExperiment) -> Result<ExperimentDef, ConfigError> {
+        let key = format!("experiment[{i}]");
+        let id = self.name(&e.id, &format!("{key}.id"))?;
+        let vspan = e.variants.span();
+        let raw_variants = e.variants.into_inner();
+        if raw_variants.len() < 2 || raw_variants.len() > MAX_VARIANTS {
+            return Err(self.err(
+                vspan,
+                format!("{key}.variants"),
+                format!(
+                    "needs 2 to {MAX_VARIANTS} variants, got {}",
+                    raw_variants.len()
+                ),
+            ));
+        }
+        let n = raw_variants.len();
+        let mut variants: Vec<VariantDef> = Vec::with_capacity(n);
+        let mut any_weight = false;
+        for (j, v) in raw_variants.iter().enumerate() {
+            let v = v.get_ref();
+            let name = self.name(&v.name, &format!("{key}.variants[{j}].name"))?;
+            if variants.iter().any(|x| x.name == name) {
+                return Err(self.err(
+                    v.name.span(),
+                    format!("{key}.variants[{j}].name"),
+                    format!("variant `{name}` is listed twice"),
+                ));
+            }
+            let weight = match &v.weight {
+                None => f64::NAN,
+                Some(w) => {
+                    any_weight = true;
+                    let x = *w.get_ref();
+                    if !(x.is_finite() && x > 0.0) {
+                        return Err(self.err(
+                            w.span(),
+                            format!("{key}.variants[{j}].weight"),
+                            format!("must be a positive number, got {x}"),
+                        ));
+                    }
+                    x
+                }
+            };
+            variants.push(VariantDef { name, weight });
+        }
+        if any_weight {
+            if let Some(j) = variants.iter().position(|v| v.weight.is_nan()) {
+                return Err(self.err(
+                    raw_variants[j].span(),
+                    format!("{key}.variants[{j}].weight"),
+                    "give every variant a weight, or none (equal split)",
+                ));
+            }
+            let sum: f64 = variants.iter().map(|v| v.weight).sum();
+            if (sum - 1.0).abs() > 1e-3 {
+                return Err(self.err(
+                    vspan,
+                    format!("{key}.variants"),
+                    format!("weights must sum to 1, they sum to {sum}"),
+                ));
+            }
+            for v in &mut variants {
+                v.weight /= sum;
+            }
+        } else {
+            for v in &mut variants {
+                v.weight = 1.0 / n as f64;
+            }
+        }
+        let control = match &e.control {
+            None => 0,
+            Some(c) => variants
+                .iter()
+                .position(|v| &v.name == c.get_ref())
+                .ok_or_else(|| {
+                    self.err(
+                        c.span(),
+                        format!("{key}.control"),
+                        format!(
+                            "`{}` is not one of the variants ({})",
+                            c.get_ref(),
+                            variants
+                                .iter()
+                                .map(|v| v.name.as_str())
+                                .collect::<Vec<_>>()
+                                .join(", ")
+                        ),
+                    )
+                })?,
+        };
+        if e.metric.is_empty() {
+            return Err(self.err(
+                e.id.span(),
+                format!("{key}.metric"),
+                "an experiment needs at least one [[experiment.metric]]",
+            ));
+        }
+        if e.metric.len() > MAX_METRICS {
+            return Err(self.err(
+                e.metric[MAX_METRICS].span(),
+                format!("{key}.metric"),
+                format!("at most {MAX_METRICS} metrics per experiment"),
+            ));
+        }
+        let mut metrics: Vec<MetricDef> = Vec::new();
+        for (j, m) in e.metric.iter().enumerate() {
+            let def = self.metric(&format!("{key}.metric[{j}]"), m.get_ref(), &variants)?;
+            if metrics.iter().any(|x| x.name == def.name) {
+                return Err(self.err(
+                    m.get_ref().name.span(),
+                    format!("{key}.metric[{j}].name"),
+                    format!("metric `{}` is listed twice", def.name),
+                ));
+            }
+            metrics.push(def);
+        }
+        let n_conversion = metrics
+            .iter()
+            .filter(|m| m.kind == MetricKind::Conversion)
+            .count();
+        if n_conversion > MAX_CONVERSION_METRICS {
+            return Err(self.err(
+                e.id.span(),
+                format!("{key}.metric"),
+                format!("at most {MAX_CONVERSION_METRICS} conversion metrics per experiment, got {n_conversion}"),
+            ));
+        }
+        Ok(ExperimentDef {
+            id,
+            control,
+            variants,
+            metrics,
+        })
+    }
+
+    fn metric(
+        &self,
+        key: &str,
+        m: &RawMetric,
+        variants: &[VariantDef],
+    ) -> Result<MetricDef, ConfigError> {
+        let name = self.name(&m.name, &format!("{key}.name"))?;
+        let kind = match (*m.kind.get_ref(), &m.exposure) {
+            (RawKind::Conversion, Some(x)) => {
+                return Err(self.err(
+                    x.span(),
+                    format!("{key}.exposure"),
+                    "only defect_rate metrics take `exposure`",
+                ))
+            }
+            (RawKind::Conversion, None) => MetricKind::Conversion,
+            (RawKind::DefectRate, x) => {
+                MetricKind::DefectRate(match x.as_ref().map(|x| *x.get_ref()) {
+                    None | Some(RawExposure::Units) => ExposureBasis::Units,
+                    Some(RawExposure::Reported) => ExposureBasis::Reported,
+                })
+            }
+        };
+        let default_prior = match kind {
+            MetricKind::Conversion => Prior::Beta {
+                alpha: 1.0,
+                beta: 1.0,
+            },
+            MetricKind::DefectRate(_) => Prior::Gamma {
+                shape: 1.0,
+                rate: 1.0,
+            },
+        };
+        let prior = match &m.prior {
+            None => default_prior,
+            Some(p) => self.prior(p, &format!("{key}.prior"), kind)?,
+        };
+        let mut variant_priors = vec![None; variants.len()];
+        for (vname, p) in &m.variant_priors {
+            let pkey = format!("{key}.variant_priors.{vname}");
+            let Some(idx) = variants.iter().position(|v| &v.name == vname) else {
+                return Err(self.err(
+                    p.span(),
+                    pkey,
+                    format!("`{vname}` is not one of the variants"),
+                ));
+            };
+            variant_priors[idx] = Some(self.prior(p, &pkey, kind)?);
+        }
+        Ok(MetricDef {
+            name,
+            kind,
+            prior,
+            variant_priors,
+        })
+    }
+
+    fn prior(
+        &self,
+        p: &Spanned<RawPrior>,
+        key: &str,
+        kind: MetricKind,
+    ) -> Result<Prior, ConfigError> {
+        let r = p.get_ref();
+        let positive = |x: Option<f64>, field: &str| -> Result<f64, ConfigError> {
+            match x {
+                Some(v) if v.is_finite() && v > 0.0 => Ok(v),
+                Some(v) => Err(self.err(
+                    p.span(),
+                    format!("{key}.{field}"),
+                    format!("must be a positive finite number, got {v}"),
+                )),
+                None => Err(self.err(p.span(), format!("{key}.{field}"), "is required")),
+            }
+        };
+        match kind {
+            MetricKind::Conversion => {
+                if r.shape.is_some() || r.rate.is_some() {
+                    return Err(self.err(
+                        p.span(),
+                        key,
+                        "a conversion metric takes a Beta prior { alpha, beta }, not shape/rate",
+                    ));
+                }
+                Ok(Prior::Beta {
+                    alpha: positive(r.alpha, "alpha")?,
+                    beta: positive(r.beta, "beta")?,
+                })
+            }
+            MetricKind::DefectRate(_) => {
+                if r.alpha.is_some() || r.beta.is_some() {
+                    return Err(self.err(
+                        p.span(),
+                        key,
+                        "a defect_rate metric takes a Gamma prior { shape, rate }, not alpha/beta",
+                    ));
+                }
+                Ok(Prior::Gamma {
+                    shape: positive(r.shape, "shape")?,
+                    rate: positive(r.rate, "rate")?,
+                })
+            }
+        }
+    }
+}
+
+/// Names appear in URLs, metric labels and events: keep them short and printable.
+fn check_name(name: &str) -> Result<(), String> {
+    let ok_char = |c: char| c.is_ascii_alphanumeric() || matches!(c, '-' | '_' | '.');
+    if name.is_empty() || name.len() > 128 {
+        return Err(format!("must be 1 to 128 characters, got {}", name.len()));
+    }
+    if !name.chars().all(ok_char) {
+        return Err(format!(
+            "{name:?} may use only letters, digits, '-', '_' and '.'"
+        ));
+    }
+    Ok(())
+}
+
+fn env_err(var: &str, message: impl Into<String>) -> ConfigError {
+    ConfigError {
+        origin: "<environment>".into(),
+        line: None,
+        key: var.to_string(),
+        message: message.into(),
+    }
+}
+
+/// Apply `POSTERIORD_*` overrides; documented in the README's configuration section.
+fn apply_env(config: &mut Config, env: &[(String, String)]) -> Result<(), ConfigError> {
+    let get = |name: &str| env.iter().find(|(k, _)| k == name).map(|(_, v)| v.clone());
+    if let Some(v) = get("POSTERIORD_HTTP_ADDR") {
+        config.http.addr = v.parse().map_err(|_| {
+            env_err(
+                "POSTERIORD_HTTP_ADDR",
+                format!("expected IP:PORT, got {v:?}"),
+            )
+        })?;
+    }
+    if let Some(v) = get("POSTERIORD_STORE_DIR") {
+        if v.trim().is_empty() {
+            return Err(env_err("POSTERIORD_STORE_DIR", "must not be empty"));
+        }
+        config.store.dir = PathBuf::from(v);
+    }
+    let brokers = get("POSTERIORD_KAFKA_BROKERS");
+    let topics = get("POSTERIORD_KAFKA_TOPICS");
+    let group = get("POSTERIORD_KAFKA_GROUP");
+    let props: Vec<(String, String)> = env
+        .iter()
+        .filter_map(|(k, v)| {
+            k.strip_prefix("POSTERIORD_KAFKA_PROP_")
+                .map(|p| (p.to_ascii_lowercase().replace('_', "."), v.clone()))
+        })
+        .collect();
+    let any_kafka = brokers.is_some() || topics.is_some() || group.is_some() || !props.is_empty();
+    if any_kafka && config.kafka.is_none() {
+        let (Some(b), Some(_)) = (&brokers, &topics) else {
+            return Err(env_err(
+                "POSTERIORD_KAFKA_BROKERS",
+                "without a [kafka] section, set both POSTERIORD_KAFKA_BROKERS and POSTERIORD_KAFKA_TOPICS",
+            ));
+        };
+        config.kafka = Some(KafkaConfig {
+            brokers: b.clone(),
+            topics: Vec::new(),
+            group: DEFAULT_KAFKA_GROUP.into(),
+            max_event_bytes: DEFAULT_MAX_EVENT_BYTES,
+            properties: BTreeMap::new(),
+        });
+    }
+    if let Some(k) = config.kafka.as_mut() {
+        if let Some(b) = brokers {
+            if b.trim().is_empty() {
+                return Err(env_err("POSTERIORD_KAFKA_BROKERS", "must not be empty"));
+            }
+            k.brokers = b;
+        }
+        if let Some(t) = topics {
+            let list: Vec<String> = t
+                .split(',')
+                .map(|s| s.trim().to_string())
+                .filter(|s| !s.is_empty())
+                .collect();
+            if list.is_empty() {
+                return Err(env_err(
+                    "POSTERIORD_KAFKA_TOPICS",
+                    "must list at least one topic, comma-separated",
+                ));
+            }
+            k.topics = list;
+        }
+        if let Some(g) = group {
+            if g.trim().is_empty() {
+                return Err(env_err("POSTERIORD_KAFKA_GROUP", "must not be empty"));
+            }
+            k.group = g;
+        }
+        for (name, value) in props {
+            k.properties.insert(name, value);
+        }
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests;

@@ -1,0 +1,104 @@
+//! The config file as written: serde structs that only check shape (keys, types), with spans so
+//! that the validation step can name the line of a bad value.
+
+use std::collections::BTreeMap;
+
+use serde::Deserialize;
+use toml::Spanned;
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawConfig {
+    #[serde(default)]
+    pub http: RawHttp,
+    pub kafka: Option<Spanned<RawKafka>>,
+    #[serde(default)]
+    pub store: RawStore,
+    #[serde(default)]
+    pub experiment: Vec<Spanned<RawExperiment>>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawHttp {
+    pub addr: Option<Spanned<String>>,
+    pub max_body_bytes: Option<Spanned<i64>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawKafka {
+    pub brokers: Option<Spanned<String>>,
+    pub topics: Option<Spanned<Vec<Spanned<String>>>>,
+    pub group: Option<Spanned<String>>,
+    pub max_event_bytes: Option<Spanned<i64>>,
+    #[serde(default)]
+    pub properties: BTreeMap<String, Spanned<PropertyValue>>,
+}
+
+/// librdkafka properties are strings, but TOML users write numbers and booleans bare.
+#[derive(Debug, Deserialize)]
+#[serde(untagged)]
+pub(super) enum PropertyValue {
+    Text(String),
+    Integer(i64),
+    Bool(bool),
+    Float(f64),
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawStore {
+    pub dir: Option<Spanned<String>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawExperiment {
+    pub id: Spanned<String>,
+    pub control: Option<Spanned<String>>,
+    pub variants: Spanned<Vec<Spanned<RawVariant>>>,
+    #[serde(default)]
+    pub metric: Vec<Spanned<RawMetric>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawVariant {
+    pub name: Spanned<String>,
+    pub weight: Option<Spanned<f64>>,
+}
+
+#[derive(Debug, Clone, Copy, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub(super) enum RawKind {
+    Conversion,
+    DefectRate,
+}
+
+#[derive(Debug, Clone, Copy, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub(super) enum RawExposure {
+    Units,
+    Reported,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawMetric {
+    pub name: Spanned<String>,
+    pub kind: Spanned<RawKind>,
+    pub exposure: Option<Spanned<RawExposure>>,
+    pub prior: Option<Spanned<RawPrior>>,
+    #[serde(default)]
+    pub variant_priors: BTreeMap<String, Spanned<RawPrior>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawPrior {
+    pub alpha: Option<f64>,
+    pub beta: Option<f64>,
+    pub shape: Option<f64>,
+    pub rate: Option<f64>,
+}

@@ -1,0 +1,226 @@
+//! Tests of config parsing and validation: every error names its key and line.
+
+use super::*;
+
+const EXAMPLE: &str = include_str!("../../config/example.toml");
+
+fn parse(text: &str) -> Result<Config, ConfigError> {
+    Config::parse(text, "test.toml", &[])
+}
+
+fn error(text: &str) -> ConfigError {
+    parse(text).expect_err("config should be refused")
+}
+
+fn line_of(text: &str, needle: &str) -> usize {
+    text.lines().position(|l| l.contains(needle)).expect(needle) + 1
+}
+
+#[test]
+fn the_example_config_is_valid() {
+    let c = parse(EXAMPLE).unwrap();
+    assert_eq!(c.http.addr.to_string(), "127.0.0.1:8080");
+    let k = c.kafka.unwrap();
+    assert_eq!(k.topics, vec!["exp-events".to_string()]);
+    assert_eq!(k.properties["session.timeout.ms"], "10000");
+    let e = &c.experiments[0];
+    assert_eq!(e.id, "checkout-copy");
+    assert_eq!(e.control, 0);
+    assert_eq!(
+        e.metrics[1].kind,
+        MetricKind::DefectRate(ExposureBasis::Units)
+    );
+    assert_eq!(
+        e.metrics[1].prior,
+        Prior::Gamma {
+            shape: 1.0,
+            rate: 1.0
+        }
+    );
+}
+
+#[test]
+fn a_typo_in_a_key_names_the_key_and_line() {
+    let text = EXAMPLE.replace("control = \"control\"", "contrl = \"control\"");
+    let err = error(&text);
+    assert_eq!(err.line, Some(line_of(&text, "contrl =")), "{err}");
+    assert!(err.to_string().contains("contrl"), "{err}");
+    assert!(err.to_string().starts_with("test.toml:"), "{err}");
+}
+
+#[test]
+fn bad_values_name_the_key_and_line() {
+    let cases = [
+        (
+            EXAMPLE.replace(
+                "weight = 0.5 }, { name = \"short-copy\"",
+                "weight = -0.5 }, { name = \"short-copy\"",
+            ),
+            "experiment[0].variants[0].weight",
+            "variants = [",
+        ),
+        (
+            EXAMPLE.replace("control = \"control\"", "control = \"treatment\""),
+            "experiment[0].control",
+            "control = \"treatment\"",
+        ),
+        (
+            EXAMPLE.replace("kind = \"conversion\" ", "kind = \"conversoin\" "),
+            "",
+            "kind = \"conversoin\"",
+        ),
+        (
+            EXAMPLE.replace("alpha = 1.0, beta = 1.0", "alpha = 0.0, beta = 1.0"),
+            "experiment[0].metric[0].prior.alpha",
+            "alpha = 0.0",
+        ),
+        (
+            EXAMPLE.replace("shape = 1.0, rate = 1.0", "alpha = 1.0, beta = 1.0 "),
+            "experiment[0].metric[1].prior",
+            "beta = 1.0  }",
+        ),
+        (
+            EXAMPLE.replace("addr = \"127.0.0.1:8080\"", "addr = \"localhost\""),
+            "http.addr",
+            "addr = \"localhost\"",
+        ),
+        (
+            EXAMPLE.replace(
+                "weight = 0.5 }, { name = \"short-copy\", weight = 0.5",
+                "weight = 0.5 }, { name = \"short-copy\", weight = 0.4",
+            ),
+            "experiment[0].variants",
+            "variants = [",
+        ),
+        (
+            EXAMPLE.replace("name = \"short-copy\"", "name = \"control\""),
+            "experiment[0].variants[1].name",
+            "variants = [",
+        ),
+        (
+            EXAMPLE.replace("name = \"payment-error\"", "name = \"purchase\""),
+            "experiment[0].metric[1].name",
+            "name = \"purchase\"\nkind = \"defect",
+        ),
+        (
+            EXAMPLE.replace("topics = [\"exp-events\"]", "topics = []"),
+            "kafka.topics",
+            "topics = []",
+        ),
+        (
+            EXAMPLE.replace("id = \"checkout-copy\"", "id = \"checkout copy\""),
+            "experiment[0].id",
+            "id = \"checkout copy\"",
+        ),
+    ];
+    for (text, key, needle) in cases {
+        let err = error(&text);
+        assert_eq!(err.key, key, "{err}");
+        let expected = if needle.contains('\n') {
+            // Multi-line needles pick the first line of the match.
+            text[..text.find(needle).unwrap()].lines().count() + 1
+        } else {
+            line_of(&text, needle)
+        };
+        assert_eq!(err.line, Some(expected), "{err}");
+    }
+}
+
+#[test]
+fn exposure_on_a_conversion_metric_is_refused() {
+    let text = EXAMPLE.replace(
+        "kind = \"conversion\"           # Beta-Binomial over exposed units",
+        "kind = \"conversion\"\nexposure = \"units\"",
+    );
+    let err = error(&text);
+    assert_eq!(err.key, "experiment[0].metric[0].exposure");
+}
+
+#[test]
+fn weights_default_to_an_equal_split_and_priors_to_uniform() {
+    let text = r#"
+[[experiment]]
+id = "oven-timer"
+variants = [ { name = "a" }, { name = "b" }, { name = "c" } ]
+[[experiment.metric]]
+name = "burnt-loaf"
+kind = "defect_rate"
+exposure = "reported"
+[[experiment.metric]]
+name = "sold-out"
+kind = "conversion"
+variant_priors = { c = { alpha = 2.0, beta = 8.0 } }
+"#;
+    let c = parse(text).unwrap();
+    assert!(c.kafka.is_none());
+    let e = &c.experiments[0];
+    assert_eq!(e.control, 0);
+    assert!(e
+        .variants
+        .iter()
+        .all(|v| (v.weight - 1.0 / 3.0).abs() < 1e-15));
+    assert_eq!(
+        e.metrics[0].kind,
+        MetricKind::DefectRate(ExposureBasis::Reported)
+    );
+    assert_eq!(
+        e.metrics[1].prior_for(0),
+        Prior::Beta {
+            alpha: 1.0,
+            beta: 1.0
+        }
+    );
+    assert_eq!(
+        e.metrics[1].prior_for(2),
+        Prior::Beta {
+            alpha: 2.0,
+            beta: 8.0
+        }
+    );
+}
+
+#[test]
+fn environment_overrides_apply_and_name_the_variable() {
+    let env = |pairs: &[(&str, &str)]| -> Vec<(String, String)> {
+        pairs
+            .iter()
+            .map(|(k, v)| (k.to_string(), v.to_string()))
+            .collect()
+    };
+    let c = Config::parse(
+        EXAMPLE,
+        "t",
+        &env(&[
+            ("POSTERIORD_HTTP_ADDR", "0.0.0.0:9999"),
+            ("POSTERIORD_KAFKA_BROKERS", "10.1.2.3:9092"),
+            ("POSTERIORD_KAFKA_TOPICS", "a, b"),
+            ("POSTERIORD_KAFKA_PROP_SASL_PASSWORD", "hunter2"),
+            ("POSTERIORD_STORE_DIR", "/var/lib/posteriord"),
+        ]),
+    )
+    .unwrap();
+    assert_eq!(c.http.addr.to_string(), "0.0.0.0:9999");
+    let k = c.kafka.unwrap();
+    assert_eq!(k.brokers, "10.1.2.3:9092");
+    assert_eq!(k.topics, vec!["a".to_string(), "b".to_string()]);
+    assert_eq!(k.properties["sasl.password"], "hunter2");
+    assert_eq!(c.store.dir, PathBuf::from("/var/lib/posteriord"));
+
+    let err =
+        Config::parse(EXAMPLE, "t", &env(&[("POSTERIORD_HTTP_ADDR", "nowhere")])).unwrap_err();
+    assert_eq!(err.key, "POSTERIORD_HTTP_ADDR");
+    let no_kafka = "[http]\naddr = \"127.0.0.1:1\"\n";
+    let err =
+        Config::parse(no_kafka, "t", &env(&[("POSTERIORD_KAFKA_BROKERS", "x:1")])).unwrap_err();
+    assert!(err.message.contains("POSTERIORD_KAFKA_TOPICS"), "{err}");
+    let c = Config::parse(
+        no_kafka,
+        "t",
+        &env(&[
+            ("POSTERIORD_KAFKA_BROKERS", "x:1"),
+            ("POSTERIORD_KAFKA_TOPICS", "t"),
+        ]),
+    )
+    .unwrap();
+    assert_eq!(c.kafka.unwrap().topics, vec!["t".to_string()]);
+}

@@ -1,0 +1,505 @@
+//! Sufficient statistics per experiment, metric and variant, and the exact event semantics that
+//! update them (first exposure, first conversion, duplicates, crossovers, orphans, id dedup).
+//!
+//! Pure and synchronous: sources decode events and call [`Engine::apply`]; readers take an
+//! [`ExperimentSnapshot`], which copies the small per-variant totals and never the unit table.
+
+pub mod units;
+
+use std::collections::{HashMap, HashSet};
+use std::sync::Arc;
+
+use crate::event::{Event, EventBody, Micros, Outcome, Reject, RejectReason, TallyAmounts, Target};
+use crate::experiment::{ExperimentDef, ExposureBasis, MetricKind};
+use units::{key_hash, PassThrough, UnitSlot, UnitTable};
+
+/// Totals of a conversion metric on one variant.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct ConversionTotals {
+    /// Exposed units plus tallied trials.
+    pub trials: u64,
+    /// First conversions plus tallied successes; never exceeds `trials`.
+    pub successes: u64,
+}
+
+/// Totals of a defect-rate metric on one variant.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct DefectTotals {
+    /// Defects counted.
+    pub count: u64,
+    /// Exposure they were counted over.
+    pub exposure: f64,
+}
+
+/// Per-variant totals of one metric.
+#[derive(Debug, Clone, PartialEq)]
+pub enum MetricTotals {
+    /// Conversion metric, one entry per variant.
+    Conversion(Vec<ConversionTotals>),
+    /// Defect-rate metric, one entry per variant.
+    Defect(Vec<DefectTotals>),
+}
+
+/// How many events ended in each [`Outcome`], indexed like `Outcome::ALL`.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct OutcomeCounts(pub [u64; Outcome::ALL.len()]);
+
+impl OutcomeCounts {
+    /// Count of one outcome.
+    pub fn get(&self, outcome: Outcome) -> u64 {
+        self.0[outcome_index(outcome)]
+    }
+
+    fn bump(&mut self, outcome: Outcome) {
+        self.0[outcome_index(outcome)] += 1;
+    }
+}
+
+fn outcome_index(outcome: Outcome) -> usize {
+    Outcome::ALL
+        .iter()
+        .position(|o| *o == outcome)
+        .expect("every outcome is listed in Outcome::ALL")
+}
+
+/// A copy of one experiment's totals, cheap enough to take under the engine lock.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ExperimentSnapshot {
+    /// The definition the totals belong to.
+    pub def: Arc<ExperimentDef>,
+    /// Exposed units per variant.
+    pub units: Vec<u64>,
+    /// Totals per metric, indexed like `def.metrics`.
+    pub metrics: Vec<MetricTotals>,
+    /// Outcomes of all valid events so far.
+    pub outcomes: OutcomeCounts,
+    /// Latest event time seen, if events carried times.
+    pub last_event_time: Option<Micros>,
+}
+
+/// An event resolved against its experiment: indices instead of names, amounts checked.
+#[derive(Debug, Clone, Copy)]
+enum Resolved {
+    Exposure {
+        variant: usize,
+        unit: u64,
+    },
+    Conversion {
+        metric: usize,
+        bit: u8,
+        unit: u64,
+    },
+    UnitDefect {
+        metric: usize,
+        unit: u64,
+        count: u64,
+        exposure: f64,
+    },
+    VariantDefect {
+        metric: usize,
+        variant: usize,
+        count: u64,
+        exposure: f64,
+    },
+    TallyTrials {
+        metric: usize,
+        variant: usize,
+        trials: u64,
+        successes: u64,
+    },
+}
+
+/// The live state of one experiment.
+#[derive(Debug, Clone)]
+pub struct ExperimentState {
+    def: Arc<ExperimentDef>,
+    /// For each metric, its bit in `UnitSlot` if it is a conversion metric.
+    conversion_bit: Vec<Option<u8>>,
+    units: UnitTable,
+    /// Hashes of the ids of applied events.
+    seen_ids: HashSet<u64, PassThrough>,
+    variant_units: Vec<u64>,
+    metrics: Vec<MetricTotals>,
+    outcomes: OutcomeCounts,
+    last_event_time: Option<Micros>,
+}
+
+impl ExperimentState {
+    /// Empty state for `def`.
+    pub fn new(def: Arc<ExperimentDef>) -> ExperimentState {
+        let n_variants = def.variants.len();
+        let mut next_bit = 0u8;
+        let conversion_bit = def
+            .metrics
+            .iter()
+            .map(|m| match m.kind {
+                MetricKind::Conversion => {
+                    let bit = next_bit;
+                    next_bit += 1;
+                    Some(bit)
+                }
+                MetricKind::DefectRate(_) => None,
+            })
+            .collect();
+        let metrics = def
+            .metrics
+            .iter()
+            .map(|m| match m.kind {
+                MetricKind::Conversion => {
+                    MetricTotals::Conversion(vec![ConversionTotals::default(); n_variants])
+                }
+                MetricKind::DefectRate(_) => {
+                    MetricTotals::Defect(vec![DefectTotals::default(); n_variants])
+                }
+            })
+            .collect();
+        ExperimentState {
+            def,
+            conversion_bit,
+            units: UnitTable::default(),
+            seen_ids: HashSet::default(),
+            variant_units: vec![0; n_variants],
+            metrics,
+            outcomes: OutcomeCounts::default(),
+            last_event_time: None,
+        }
+    }
+
+    /// The experiment's definition.
+    pub fn def(&self) -> &Arc<ExperimentDef> {
+        &self.def
+    }
+
+    /// Number of distinct units tracked.
+    pub fn n_units(&self) -> usize {
+        self.units.len()
+    }
+
+    /// A copy of the totals (not the unit table).
+    pub fn snapshot(&self) -> ExperimentSnapshot {
+        ExperimentSnapshot {
+            def: Arc::clone(&self.def),
+            units: self.variant_units.clone(),
+            metrics: self.metrics.clone(),
+            outcomes: self.outcomes,
+            last_event_time: self.last_event_time,
+        }
+    }
+
+    /// Apply one event addressed to this experiment.
+    ///
+    /// An invalid event changes nothing and does not consume its id, so a corrected resend
+    /// with the same id still counts.
+    pub fn apply(&mut self, event: &Event<'_>) -> Result<Outcome, Reject> {
+        let resolved = self.resolve(&event.body)?;
+        let id_hash = event.id.as_deref().map(key_hash);
+        let outcome = match id_hash {
+            Some(h) if self.seen_ids.contains(&h) => Outcome::DuplicateId,
+            _ => self.apply_resolved(resolved)?,
+        };
+        if outcome == Outcome::Applied {
+            if let Some(h) = id_hash {
+                self.seen_ids.insert(h);
+            }
+        }
+        if let Some(t) = event.time {
+            self.last_event_time = Some(self.last_event_time.map_or(t, |old| old.max(t)));
+        }
+        self.outcomes.bump(outcome);
+        Ok(outcome)
+    }
+
+    fn variant(&self, name: &str) -> Result<usize, Reject> {
+        self.def.variant_index(name).ok_or_else(|| {
+            Reject::new(
+                RejectReason::UnknownVariant,
+                format!("experiment `{}` has no variant `{name}`", self.def.id),
+            )
+        })
+    }
+
+    fn metric(&self, name: &str) -> Result<usize, Reject> {
+        self.def.metric_index(name).ok_or_else(|| {
+            Reject::new(
+                RejectReason::UnknownMetric,
+                format!("experiment `{}` has no metric `{name}`", self.def.id),
+            )
+        })
+    }
+
+    fn kind_mismatch(&self, metric: usize, what: &str) -> Reject {
+        let m = &self.def.metrics[metric];
+        Reject::new(
+            RejectReason::MetricKindMismatch,
+            format!(
+                "metric `{}` is a {} metric; {what}",
+                m.name,
+                m.kind.as_str()
+            ),
+        )
+    }
+
+    fn resolve(&self, body: &EventBody<'_>) -> Result<Resolved, Reject> {
+        match body {
+            EventBody::Exposure { variant, unit } => Ok(Resolved::Exposure {
+                variant: self.variant(variant)?,
+                unit: key_hash(unit),
+            }),
+            EventBody::Conversion { metric, unit } => {
+                let metric = self.metric(metric)?;
+                let bit = self.conversion_bit[metric].ok_or_else(|| {
+                    self.kind_mismatch(metric, "conversion events need a conversion metric")
+                })?;
+                Ok(Resolved::Conversion {
+                    metric,
+                    bit,
+                    unit: key_hash(unit),
+                })
+            }
+            EventBody::Defect {
+                metric,
+                target,
+                count,
+                exposure,
+            } => {
+                let metric = self.metric(metric)?;
+                let exposure = self.defect_exposure(metric, *exposure, "defect")?;
+                Ok(match target {
+                    Target::Unit(unit) => Resolved::UnitDefect {
+                        metric,
+                        unit: key_hash(unit),
+                        count: *count,
+                        exposure,
+                    },
+                    Target::Variant(variant) => Resolved::VariantDefect {
+                        metric,
+                        variant: self.variant(variant)?,
+                        count: *count,
+                        exposure,
+                    },
+                })
+            }
+            EventBody::Tally {
+                metric,
+                variant,
+                amounts,
+            } => {
+                let metric = self.metric(metric)?;
+                let variant = self.variant(variant)?;
+                match *amounts {
+                    TallyAmounts::Trials { trials, successes } => {
+                        if self.conversion_bit[metric].is_none() {
+                            return Err(self.kind_mismatch(
+                                metric,
+                                "a tally for it carries `count`/`exposure`, not `trials`/`successes`",
+                            ));
+                        }
+                        if successes > trials {
+                            return Err(Reject::new(
+                                RejectReason::SuccessesExceedTrials,
+                                format!("tally has successes {successes} > trials {trials}"),
+                            ));
+                        }
+                        Ok(Resolved::TallyTrials {
+                            metric,
+                            variant,
+                            trials,
+                            successes,
+                        })
+                    }
+                    TallyAmounts::Defects { count, exposure } => {
+                        let exposure = self.defect_exposure(metric, exposure, "tally")?;
+                        Ok(Resolved::VariantDefect {
+                            metric,
+                            variant,
+                            count,
+                            exposure,
+                        })
+                    }
+                }
+            }
+        }
+    }
+
+    /// Checks that a defect-style event fits the metric and returns the exposure it adds.
+    fn defect_exposure(
+        &self,
+        metric: usize,
+        exposure: Option<f64>,
+        what: &str,
+    ) -> Result<f64, Reject> {
+        let m = &self.def.metrics[metric];
+        match (m.kind, exposure) {
+            (MetricKind::Conversion, _) => Err(self.kind_mismatch(
+                metric,
+                &format!("a {what} for it needs a defect_rate metric"),
+            )),
+            (MetricKind::DefectRate(ExposureBasis::Reported), Some(x)) => Ok(x),
+            (MetricKind::DefectRate(ExposureBasis::Reported), None) => Err(Reject::new(
+                RejectReason::ExposureRequired,
+                format!(
+                    "metric `{}` counts reported exposure; the {what} needs `exposure`",
+                    m.name
+                ),
+            )),
+            (MetricKind::DefectRate(ExposureBasis::Units), None) => Ok(0.0),
+            (MetricKind::DefectRate(ExposureBasis::Units), Some(_)) => Err(Reject::new(
+                RejectReason::ExposureNotAllowed,
+                format!(
+                    "metric `{}` takes its exposure from exposed units; drop `exposure` from the {what}",
+                    m.name
+                ),
+            )),
+        }
+    }
+
+    fn apply_resolved(&mut self, resolved: Resolved) -> Result<Outcome, Reject> {
+        match resolved {
+            Resolved::Exposure { variant, unit } => Ok(match self.units.get(unit) {
+                Some(slot) if slot.variant() == variant => Outcome::DuplicateExposure,
+                Some(_) => Outcome::Crossover,
+                None => {
+                    self.units.set(unit, UnitSlot::new(variant));
+                    self.variant_units[variant] += 1;
+                    for (def, totals) in self.def.metrics.iter().zip(&mut self.metrics) {
+                        match totals {
+                            MetricTotals::Conversion(v) => v[variant].trials += 1,
+                            MetricTotals::Defect(v) => {
+                                if def.kind == MetricKind::DefectRate(ExposureBasis::Units) {
+                                    v[variant].exposure += 1.0;
+                                }
+                            }
+                        }
+                    }
+                    Outcome::Applied
+                }
+            }),
+            Resolved::Conversion { metric, bit, unit } => {
+                let Some(slot) = self.units.get(unit) else {
+                    return Ok(Outcome::Orphan);
+                };
+                if slot.converted(bit) {
+                    return Ok(Outcome::DuplicateConversion);
+                }
+                self.units.set(unit, slot.with_converted(bit));
+                if let MetricTotals::Conversion(v) = &mut self.metrics[metric] {
+                    v[slot.variant()].successes += 1;
+                }
+                Ok(Outcome::Applied)
+            }
+            Resolved::UnitDefect {
+                metric,
+                unit,
+                count,
+                exposure,
+            } => {
+                let Some(slot) = self.units.get(unit) else {
+                    return Ok(Outcome::Orphan);
+                };
+                self.add_defects(metric, slot.variant(), count, exposure)
+            }
+            Resolved::VariantDefect {
+                metric,
+                variant,
+                count,
+                exposure,
+            } => self.add_defects(metric, variant, count, exposure),
+            Resolved::TallyTrials {
+                metric,
+                variant,
+                trials,
+                successes,
+            } => {
+                let MetricTotals::Conversion(v) = &mut self.metrics[metric] else {
+                    unreachable!("resolve checked the metric kind");
+                };
+                let t = &mut v[variant];
+                let (Some(new_trials), Some(new_successes)) = (
+                    t.trials.checked_add(trials),
+                    t.successes.checked_add(successes),
+                ) else {
+                    return Err(overflow());
+                };
+                t.trials = new_trials;
+                t.successes = new_successes;
+                Ok(Outcome::Applied)
+            }
+        }
+    }
+
+    fn add_defects(
+        &mut self,
+        metric: usize,
+        variant: usize,
+        count: u64,
+        exposure: f64,
+    ) -> Result<Outcome, Reject> {
+        let MetricTotals::Defect(v) = &mut self.metrics[metric] else {
+            unreachable!("resolve checked the metric kind");
+        };
+        let t = &mut v[variant];
+        let new_count = t.count.checked_add(count).ok_or_else(overflow)?;
+        let new_exposure = t.exposure + exposure;
+        if !new_exposure.is_finite() {
+            return Err(overflow());
+        }
+        t.count = new_count;
+        t.exposure = new_exposure;
+        Ok(Outcome::Applied)
+    }
+}
+
+fn overflow() -> Reject {
+    Reject::new(
+        RejectReason::TooLarge,
+        "the increment would overflow the running total",
+    )
+}
+
+/// All experiments posteriord watches, addressed by id.
+#[derive(Debug, Default)]
+pub struct Engine {
+    experiments: Vec<ExperimentState>,
+    index: HashMap<String, usize>,
+}
+
+impl Engine {
+    /// An engine watching `defs` (ids must be unique; config validation guarantees it).
+    pub fn new(defs: impl IntoIterator<Item = ExperimentDef>) -> Engine {
+        let mut engine = Engine::default();
+        for def in defs {
+            engine.add(def);
+        }
+        engine
+    }
+
+    fn add(&mut self, def: ExperimentDef) {
+        let idx = self.experiments.len();
+        self.index.insert(def.id.clone(), idx);
+        self.experiments.push(ExperimentState::new(Arc::new(def)));
+    }
+
+    /// Apply one decoded event.
+    pub fn apply(&mut self, event: &Event<'_>) -> Result<Outcome, Reject> {
+        let Some(&idx) = self.index.get(event.experiment.as_ref()) else {
+            return Err(Reject::new(
+                RejectReason::UnknownExperiment,
+                format!("no experiment `{}` is configured", event.experiment),
+            ));
+        };
+        self.experiments[idx].apply(event)
+    }
+
+    /// The experiment called `id`.
+    pub fn experiment(&self, id: &str) -> Option<&ExperimentState> {
+        self.index.get(id).map(|&i| &self.experiments[i])
+    }
+
+    /// All experiments, in configuration order.
+    pub fn experiments(&self) -> impl Iterator<Item = &ExperimentState> {
+        self.experiments.iter()
+    }
+}
+
+#[cfg(test)]
+mod tests;

@@ -1,0 +1,346 @@
+//! Unit tests of the event semantics: first exposure, first conversion, duplicates, crossovers,
+//! orphans, id dedup and tallies, on a small invented bakery experiment.
+
+use std::borrow::Cow;
+
+use super::*;
+use crate::experiment::{MetricDef, Prior, VariantDef};
+
+fn bakery() -> ExperimentDef {
+    let beta = Prior::Beta {
+        alpha: 1.0,
+        beta: 1.0,
+    };
+    let gamma = Prior::Gamma {
+        shape: 1.0,
+        rate: 1.0,
+    };
+    ExperimentDef {
+        id: "crumb-checkout".into(),
+        control: 0,
+        variants: vec![
+            VariantDef {
+                name: "control".into(),
+                weight: 0.5,
+            },
+            VariantDef {
+                name: "short-copy".into(),
+                weight: 0.5,
+            },
+        ],
+        metrics: vec![
+            MetricDef {
+                name: "purchase".into(),
+                kind: MetricKind::Conversion,
+                prior: beta,
+                variant_priors: vec![None, None],
+            },
+            MetricDef {
+                name: "payment-error".into(),
+                kind: MetricKind::DefectRate(ExposureBasis::Units),
+                prior: gamma,
+                variant_priors: vec![None, None],
+            },
+            MetricDef {
+                name: "oven-faults".into(),
+                kind: MetricKind::DefectRate(ExposureBasis::Reported),
+                prior: gamma,
+                variant_priors: vec![None, None],
+            },
+        ],
+    }
+}
+
+fn ev(body: EventBody<'static>) -> Event<'static> {
+    Event {
+        experiment: Cow::Borrowed("crumb-checkout"),
+        id: None,
+        time: None,
+        body,
+    }
+}
+
+fn exposure(variant: &'static str, unit: &'static str) -> Event<'static> {
+    ev(EventBody::Exposure {
+        variant: variant.into(),
+        unit: unit.into(),
+    })
+}
+
+fn conversion(metric: &'static str, unit: &'static str) -> Event<'static> {
+    ev(EventBody::Conversion {
+        metric: metric.into(),
+        unit: unit.into(),
+    })
+}
+
+fn unit_defect(unit: &'static str, count: u64) -> Event<'static> {
+    ev(EventBody::Defect {
+        metric: "payment-error".into(),
+        target: Target::Unit(unit.into()),
+        count,
+        exposure: None,
+    })
+}
+
+/// Applies `events` in order and returns the outcomes (or reject reasons) and the final snapshot.
+fn check(events: &[Event<'static>]) -> (Vec<Result<Outcome, RejectReason>>, ExperimentSnapshot) {
+    let mut engine = Engine::new([bakery()]);
+    let outcomes = events
+        .iter()
+        .map(|e| engine.apply(e).map_err(|r| r.reason))
+        .collect();
+    let snap = engine.experiment("crumb-checkout").unwrap().snapshot();
+    (outcomes, snap)
+}
+
+fn conv(snap: &ExperimentSnapshot, metric: usize) -> Vec<(u64, u64)> {
+    match &snap.metrics[metric] {
+        MetricTotals::Conversion(v) => v.iter().map(|t| (t.trials, t.successes)).collect(),
+        other => panic!("not a conversion metric: {other:?}"),
+    }
+}
+
+fn defects(snap: &ExperimentSnapshot, metric: usize) -> Vec<(u64, f64)> {
+    match &snap.metrics[metric] {
+        MetricTotals::Defect(v) => v.iter().map(|t| (t.count, t.exposure)).collect(),
+        other => panic!("not a defect metric: {other:?}"),
+    }
+}
+
+#[test]
+fn first_exposure_adds_a_trial_and_a_unit_of_exposure() {
+    let (out, snap) = check(&[exposure("control", "u1"), exposure("short-copy", "u2")]);
+    assert_eq!(out, vec![Ok(Outcome::Applied), Ok(Outcome::Applied)]);
+    assert_eq!(snap.units, vec![1, 1]);
+    assert_eq!(conv(&snap, 0), vec![(1, 0), (1, 0)]);
+    assert_eq!(defects(&snap, 1), vec![(0, 1.0), (0, 1.0)]);
+    // Reported-exposure metrics get no exposure from units.
+    assert_eq!(defects(&snap, 2), vec![(0, 0.0), (0, 0.0)]);
+}
+
+#[test]
+fn repeat_exposure_is_a_duplicate_and_other_variant_a_crossover() {
+    let (out, snap) = check(&[
+        exposure("control", "u1"),
+        exposure("control", "u1"),
+        exposure("short-copy", "u1"),
+        conversion("purchase", "u1"),
+    ]);
+    assert_eq!(
+        out,
+        vec![
+            Ok(Outcome::Applied),
+            Ok(Outcome::DuplicateExposure),
+            Ok(Outcome::Crossover),
+            Ok(Outcome::Applied),
+        ]
+    );
+    // The unit stays in its first variant, and its conversion counts there.
+    assert_eq!(snap.units, vec![1, 0]);
+    assert_eq!(conv(&snap, 0), vec![(1, 1), (0, 0)]);
+    assert_eq!(snap.outcomes.get(Outcome::Crossover), 1);
+    assert_eq!(snap.outcomes.get(Outcome::DuplicateExposure), 1);
+}
+
+#[test]
+fn conversions_count_once_per_unit_and_metric_and_need_an_exposure() {
+    let (out, snap) = check(&[
+        conversion("purchase", "ghost"),
+        exposure("short-copy", "u1"),
+        conversion("purchase", "u1"),
+        conversion("purchase", "u1"),
+    ]);
+    assert_eq!(
+        out,
+        vec![
+            Ok(Outcome::Orphan),
+            Ok(Outcome::Applied),
+            Ok(Outcome::Applied),
+            Ok(Outcome::DuplicateConversion),
+        ]
+    );
+    assert_eq!(conv(&snap, 0), vec![(0, 0), (1, 1)]);
+    assert_eq!(snap.outcomes.get(Outcome::Orphan), 1);
+}
+
+#[test]
+fn defects_follow_the_unit_and_accumulate() {
+    let (out, snap) = check(&[
+        unit_defect("u1", 2),
+        exposure("short-copy", "u1"),
+        unit_defect("u1", 2),
+        unit_defect("u1", 3),
+    ]);
+    assert_eq!(
+        out,
+        vec![
+            Ok(Outcome::Orphan),
+            Ok(Outcome::Applied),
+            Ok(Outcome::Applied),
+            Ok(Outcome::Applied),
+        ]
+    );
+    assert_eq!(defects(&snap, 1), vec![(0, 0.0), (5, 1.0)]);
+}
+
+#[test]
+fn same_id_applies_once_but_an_invalid_event_does_not_use_up_its_id() {
+    let mut first = exposure("control", "u1");
+    first.id = Some("evt-1".into());
+    let mut again = exposure("control", "u2");
+    again.id = Some("evt-1".into());
+    let mut bad = exposure("no-such-arm", "u3");
+    bad.id = Some("evt-2".into());
+    let mut fixed = exposure("short-copy", "u3");
+    fixed.id = Some("evt-2".into());
+    let (out, snap) = check(&[first, again, bad, fixed]);
+    assert_eq!(
+        out,
+        vec![
+            Ok(Outcome::Applied),
+            Ok(Outcome::DuplicateId),
+            Err(RejectReason::UnknownVariant),
+            Ok(Outcome::Applied),
+        ]
+    );
+    assert_eq!(snap.units, vec![1, 1]);
+}
+
+#[test]
+fn reported_exposure_metrics_need_exposure_and_units_metrics_refuse_it() {
+    let reported = |exposure| {
+        ev(EventBody::Defect {
+            metric: "oven-faults".into(),
+            target: Target::Variant("control".into()),
+            count: 4,
+            exposure,
+        })
+    };
+    let mut units_with_exposure = unit_defect("u1", 1);
+    if let EventBody::Defect { exposure, .. } = &mut units_with_exposure.body {
+        *exposure = Some(3.0);
+    }
+    let (out, snap) = check(&[
+        reported(None),
+        reported(Some(120.5)),
+        exposure("control", "u1"),
+        units_with_exposure,
+    ]);
+    assert_eq!(
+        out,
+        vec![
+            Err(RejectReason::ExposureRequired),
+            Ok(Outcome::Applied),
+            Ok(Outcome::Applied),
+            Err(RejectReason::ExposureNotAllowed),
+        ]
+    );
+    assert_eq!(defects(&snap, 2), vec![(4, 120.5), (0, 0.0)]);
+}
+
+#[test]
+fn tallies_add_directly_and_are_checked() {
+    let tally = |metric: &'static str, amounts| {
+        ev(EventBody::Tally {
+            metric: metric.into(),
+            variant: "short-copy".into(),
+            amounts,
+        })
+    };
+    let (out, snap) = check(&[
+        tally(
+            "purchase",
+            TallyAmounts::Trials {
+                trials: 100,
+                successes: 7,
+            },
+        ),
+        tally(
+            "purchase",
+            TallyAmounts::Trials {
+                trials: 1,
+                successes: 2,
+            },
+        ),
+        tally(
+            "purchase",
+            TallyAmounts::Defects {
+                count: 1,
+                exposure: None,
+            },
+        ),
+        tally(
+            "payment-error",
+            TallyAmounts::Defects {
+                count: 9,
+                exposure: None,
+            },
+        ),
+        tally(
+            "purchase",
+            TallyAmounts::Trials {
+                trials: u64::MAX,
+                successes: 0,
+            },
+        ),
+    ]);
+    assert_eq!(
+        out,
+        vec![
+            Ok(Outcome::Applied),
+            Err(RejectReason::SuccessesExceedTrials),
+            Err(RejectReason::MetricKindMismatch),
+            Ok(Outcome::Applied),
+            Err(RejectReason::TooLarge),
+        ]
+    );
+    assert_eq!(conv(&snap, 0), vec![(0, 0), (100, 7)]);
+    assert_eq!(defects(&snap, 1), vec![(0, 0.0), (9, 0.0)]);
+    // A tally adds trials without units.
+    assert_eq!(snap.units, vec![0, 0]);
+}
+
+#[test]
+fn unknown_names_are_rejected_with_the_name() {
+    let mut engine = Engine::new([bakery()]);
+    let mut e = exposure("control", "u1");
+    e.experiment = "rye-banner".into();
+    let err = engine.apply(&e).unwrap_err();
+    assert_eq!(err.reason, RejectReason::UnknownExperiment);
+    assert!(err.message.contains("rye-banner"), "{}", err.message);
+    let err = engine.apply(&conversion("refund", "u1")).unwrap_err();
+    assert_eq!(err.reason, RejectReason::UnknownMetric);
+    assert!(err.message.contains("refund"), "{}", err.message);
+    let err = engine
+        .apply(&conversion("payment-error", "u1"))
+        .unwrap_err();
+    assert_eq!(err.reason, RejectReason::MetricKindMismatch);
+}
+
+#[test]
+fn successes_never_exceed_trials_whatever_the_order() {
+    // Exhaustive over short sequences on two units: the invariant the posterior relies on.
+    let pool = [
+        exposure("control", "a"),
+        exposure("short-copy", "a"),
+        exposure("short-copy", "b"),
+        conversion("purchase", "a"),
+        conversion("purchase", "b"),
+    ];
+    for mask in 0..(5u32.pow(4)) {
+        let mut m = mask;
+        let seq: Vec<_> = (0..4)
+            .map(|_| {
+                let e = pool[(m % 5) as usize].clone();
+                m /= 5;
+                e
+            })
+            .collect();
+        let (_, snap) = check(&seq);
+        for (t, s) in conv(&snap, 0) {
+            assert!(s <= t, "successes {s} > trials {t} for {seq:?}");
+        }
+        assert!(snap.units.iter().sum::<u64>() <= 2);
+    }
+}
