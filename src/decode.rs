@@ -148,18 +148,19 @@ fn validate(raw: RawEvent<'_>) -> Result<Event<'_>, Reject> {
         ));
     };
     let kind: &str = &kind.0;
-    let experiment =
-        match kind {
-            "exposure" | "conversion" | "defect" | "tally" => {
-                required(raw.experiment, "experiment", kind)?
-            }
-            other => return Err(Reject::new(
+    let experiment = match kind {
+        "exposure" | "conversion" | "defect" | "tally" => {
+            required(raw.experiment, "experiment", kind)?
+        }
+        other => {
+            return Err(Reject::new(
                 RejectReason::UnknownType,
                 format!(
                     "unknown event type `{other}`; expected exposure, conversion, defect or tally"
                 ),
-            )),
-        };
+            ))
+        }
+    };
     // Time is required where events describe one moment; tallies summarise a period.
     let time = match (raw.time, kind) {
         (Some(t), _) => Some(parse_time(&t.0)?),

@@ -9,8 +9,18 @@
 //! Data flows one way: source → decode → state → (decide) → HTTP API / metrics.
 #![deny(missing_docs)]
 
+pub mod app;
+pub mod cli;
+pub mod compare;
 pub mod config;
 pub mod decode;
 pub mod event;
 pub mod experiment;
+pub mod http;
+pub mod ingest;
+pub mod kafka;
+pub mod metrics;
+pub mod simulate;
 pub mod state;
+pub mod stats;
+pub mod summary;

@@ -1,0 +1,199 @@
+//! JSON documents of the HTTP API: wire types built by hand from the pure summaries, so the
+//! core never sees serde.
+
+use serde::Serialize;
+use serde_json::{json, Value};
+
+use crate::decode::Position;
+use crate::event::{Outcome, Reject};
+use crate::experiment::{ExperimentDef, ExposureBasis, MetricKind, Prior};
+use crate::state::{ExperimentSnapshot, MetricTotals};
+use crate::stats::{ArmSummary, Arms, Interval, SampleRatio, SRM_P_THRESHOLD};
+use crate::summary::ExperimentSummary;
+
+/// Shown with every experiment document: the numbers are only as good as the model and data.
+pub const CAUTION: &str = "Posteriors assume the model (independent units, a stable rate per \
+variant) and clean data: check the sample ratio, crossovers and orphans before acting, and leave \
+shipping decisions that affect people's money or safety to the team's own review.";
+
+/// `{"error":{"code","message","details"}}`, the one error shape of the API.
+pub fn error_body(code: &str, message: &str, details: Value) -> Value {
+    json!({ "error": { "code": code, "message": message, "details": details } })
+}
+
+fn interval(i: &Interval) -> Value {
+    json!({ "level": i.level, "lower": i.lower, "upper": i.upper })
+}
+
+fn prior(p: Prior) -> Value {
+    match p {
+        Prior::Beta { alpha, beta } => json!({ "alpha": alpha, "beta": beta }),
+        Prior::Gamma { shape, rate } => json!({ "shape": shape, "rate": rate }),
+    }
+}
+
+fn time_text(micros: i64) -> Option<String> {
+    let t = time::OffsetDateTime::from_unix_timestamp_nanos(i128::from(micros) * 1_000).ok()?;
+    t.format(&time::format_description::well_known::Rfc3339)
+        .ok()
+}
+
+fn outcomes(snap: &ExperimentSnapshot) -> Value {
+    let mut map = serde_json::Map::new();
+    for o in Outcome::ALL {
+        map.insert(o.as_str().into(), json!(snap.outcomes.get(o)));
+    }
+    Value::Object(map)
+}
+
+/// One line of `GET /v1/experiments`.
+pub fn experiment_entry(snap: &ExperimentSnapshot) -> Value {
+    let def = &snap.def;
+    json!({
+        "id": def.id,
+        "control": def.variants[def.control].name,
+        "variants": def.variants.iter().map(|v| v.name.as_str()).collect::<Vec<_>>(),
+        "metrics": def.metrics.iter().map(|m| json!({"name": m.name, "kind": m.kind.as_str()})).collect::<Vec<_>>(),
+        "units": snap.units.iter().sum::<u64>(),
+        "last_event_time": snap.last_event_time.and_then(time_text),
+    })
+}
+
+fn sample_ratio(s: &Option<Result<SampleRatio, crate::stats::StatsError>>) -> Value {
+    match s {
+        None => Value::Null,
+        Some(Err(e)) => json!({ "error": e.to_string() }),
+        Some(Ok(s)) => json!({
+            "chi2": s.chi2,
+            "df": s.df,
+            "p_value": s.p_value,
+            "threshold": SRM_P_THRESHOLD,
+            "mismatch": s.p_value < SRM_P_THRESHOLD,
+        }),
+    }
+}
+
+fn arm_posterior(arms: &Arms, i: usize) -> Value {
+    match arms {
+        Arms::Beta(v) => json!({ "alpha": v[i].alpha(), "beta": v[i].beta() }),
+        Arms::Gamma(v) => json!({ "shape": v[i].shape(), "rate": v[i].rate() }),
+    }
+}
+
+fn arm_quantities(a: &ArmSummary) -> serde_json::Map<String, Value> {
+    let mut m = serde_json::Map::new();
+    m.insert("mean".into(), json!(a.mean));
+    m.insert("sd".into(), json!(a.sd));
+    m.insert("interval".into(), interval(&a.interval));
+    m.insert("prob_best".into(), json!(a.prob_best));
+    m.insert("expected_loss".into(), json!(a.expected_loss));
+    m.insert("prob_beats_control".into(), json!(a.prob_beats_control));
+    m.insert(
+        "lift".into(),
+        match &a.lift {
+            None => Value::Null,
+            Some(l) => json!({ "mean": l.mean, "interval": interval(&l.interval) }),
+        },
+    );
+    m.insert(
+        "prob_practically_equivalent".into(),
+        json!(a.prob_practically_equivalent),
+    );
+    m.insert("prob_harm".into(), json!(a.prob_harm));
+    m
+}
+
+/// `GET /v1/experiments/{id}`.
+pub fn experiment_document(summary: &ExperimentSummary) -> Value {
+    let snap = &summary.snapshot;
+    let def: &ExperimentDef = &snap.def;
+    let metrics: Vec<Value> = def
+        .metrics
+        .iter()
+        .zip(&snap.metrics)
+        .zip(&summary.metrics)
+        .map(|((m, totals), ms)| {
+            let mut variants = Vec::with_capacity(def.variants.len());
+            for (i, v) in def.variants.iter().enumerate() {
+                let mut obj = serde_json::Map::new();
+                obj.insert("name".into(), json!(v.name));
+                match totals {
+                    MetricTotals::Conversion(t) => {
+                        obj.insert("trials".into(), json!(t[i].trials));
+                        obj.insert("successes".into(), json!(t[i].successes));
+                    }
+                    MetricTotals::Defect(t) => {
+                        obj.insert("count".into(), json!(t[i].count));
+                        obj.insert("exposure".into(), json!(t[i].exposure));
+                    }
+                }
+                if let Ok(p) = &ms.posteriors {
+                    obj.insert("posterior".into(), arm_posterior(p, i));
+                }
+                if let Ok(arms) = &ms.arms {
+                    obj.extend(arm_quantities(&arms[i]));
+                }
+                variants.push(Value::Object(obj));
+            }
+            let mut metric = json!({
+                "name": m.name,
+                "kind": m.kind.as_str(),
+                "prior": prior(m.prior),
+                "variants": variants,
+            });
+            if let MetricKind::DefectRate(basis) = m.kind {
+                metric["exposure"] = json!(match basis {
+                    ExposureBasis::Units => "units",
+                    ExposureBasis::Reported => "reported",
+                });
+            }
+            if let Err(e) = &ms.arms {
+                metric["error"] = json!(e.to_string());
+            }
+            metric
+        })
+        .collect();
+    json!({
+        "id": def.id,
+        "control": def.variants[def.control].name,
+        "variants": def.variants.iter().zip(&snap.units).map(|(v, u)| json!({
+            "name": v.name, "weight": v.weight, "units": u,
+        })).collect::<Vec<_>>(),
+        "outcomes": outcomes(snap),
+        "sample_ratio": sample_ratio(&summary.sample_ratio),
+        "last_event_time": snap.last_event_time.and_then(time_text),
+        "metrics": metrics,
+        "caution": CAUTION,
+    })
+}
+
+/// One refused event in an ingest reply.
+#[derive(Debug, Serialize)]
+pub struct IngestError {
+    /// Zero-based index, for JSON array bodies.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub index: Option<usize>,
+    /// One-based line, for NDJSON bodies.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub line: Option<usize>,
+    /// Machine-readable reason.
+    pub reason: &'static str,
+    /// What is wrong.
+    pub message: String,
+}
+
+impl IngestError {
+    /// From a reject at `position`.
+    pub fn new(position: Position, reject: &Reject) -> IngestError {
+        let (index, line) = match position {
+            Position::Index(i) => (Some(i), None),
+            Position::Line(l) => (None, Some(l)),
+        };
+        IngestError {
+            index,
+            line,
+            reason: reject.reason.as_str(),
+            message: reject.message.clone(),
+        }
+    }
+}

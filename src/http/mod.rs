@@ -1,0 +1,229 @@
+//! The HTTP API (axum): event ingest, experiment documents, health, readiness and metrics.
+//!
+//! Handlers copy what they need out of the engine under its lock and do all derived work
+//! (quadrature, JSON) outside it, on the blocking pool, so reads never stall ingest for long.
+
+pub mod doc;
+
+use std::sync::Arc;
+
+use axum::body::Bytes;
+use axum::extract::{DefaultBodyLimit, Path, State};
+use axum::http::{header, StatusCode};
+use axum::response::{IntoResponse, Response};
+use axum::routing::{get, post};
+use axum::{Json, Router};
+use serde_json::{json, Value};
+use tokio::net::TcpListener;
+use tokio_util::sync::CancellationToken;
+
+use crate::app::Shared;
+use crate::decode::split_body;
+use crate::event::Outcome;
+use crate::metrics::Source;
+use crate::summary::{summarize, ExperimentSummary, DEFAULT_LEVEL};
+
+/// Build the router over `shared`.
+pub fn router(shared: Arc<Shared>, max_body_bytes: usize) -> Router {
+    Router::new()
+        .route("/healthz", get(healthz))
+        .route("/readyz", get(readyz))
+        .route("/metrics", get(metrics))
+        .route("/v1/events", post(ingest))
+        .route("/v1/experiments", get(list_experiments))
+        .route("/v1/experiments/{id}", get(get_experiment))
+        .fallback(not_found)
+        .layer(DefaultBodyLimit::max(max_body_bytes))
+        .with_state(shared)
+}
+
+/// Serve `router` on `listener` until `shutdown` fires, then finish in-flight requests.
+pub async fn serve(
+    listener: TcpListener,
+    router: Router,
+    shutdown: CancellationToken,
+) -> std::io::Result<()> {
+    axum::serve(listener, router)
+        .with_graceful_shutdown(async move { shutdown.cancelled().await })
+        .await
+}
+
+fn error(status: StatusCode, code: &str, message: &str) -> Response {
+    (status, Json(doc::error_body(code, message, Value::Null))).into_response()
+}
+
+async fn not_found() -> Response {
+    error(StatusCode::NOT_FOUND, "not_found", "no such route")
+}
+
+async fn healthz() -> Json<Value> {
+    Json(json!({ "status": "ok" }))
+}
+
+async fn readyz(State(shared): State<Arc<Shared>>) -> Response {
+    let kafka = shared.kafka_reachable();
+    let ready = kafka.unwrap_or(true);
+    let body = json!({
+        "ready": ready,
+        "checks": {
+            "kafka": match kafka {
+                None => "not configured",
+                Some(true) => "reachable",
+                Some(false) => "unreachable",
+            }
+        }
+    });
+    let status = if ready {
+        StatusCode::OK
+    } else {
+        StatusCode::SERVICE_UNAVAILABLE
+    };
+    (status, Json(body)).into_response()
+}
+
+/// Runs `f` on the blocking pool; a panic there becomes a 500, never a dropped connection.
+async fn blocking<T: Send + 'static>(
+    f: impl FnOnce() -> T + Send + 'static,
+) -> Result<T, Response> {
+    tokio::task::spawn_blocking(f).await.map_err(|e| {
+        tracing::error!(error = %e, "request handler failed");
+        error(
+            StatusCode::INTERNAL_SERVER_ERROR,
+            "internal",
+            "internal error; see the server log",
+        )
+    })
+}
+
+async fn ingest(State(shared): State<Arc<Shared>>, body: Bytes) -> Response {
+    let result = blocking(move || {
+        let items = match split_body(&body) {
+            Ok(items) => items,
+            Err(e) => return Err(e.to_string()),
+        };
+        let report = crate::ingest::apply_batch(
+            &shared.engine,
+            &shared.metrics,
+            Source::Http,
+            items.iter().map(|(_, bytes)| *bytes),
+            shared.max_event_bytes,
+        );
+        let errors: Vec<doc::IngestError> = items
+            .iter()
+            .zip(&report.results)
+            .filter_map(|((pos, _), r)| {
+                r.as_ref().err().map(|rej| doc::IngestError::new(*pos, rej))
+            })
+            .collect();
+        let mut not_applied = serde_json::Map::new();
+        for o in Outcome::ALL.into_iter().filter(|o| *o != Outcome::Applied) {
+            not_applied.insert(o.as_str().into(), json!(report.count(o)));
+        }
+        Ok(json!({
+            "received": items.len(),
+            "applied": report.count(Outcome::Applied),
+            "not_applied": not_applied,
+            "rejected": errors.len(),
+            "errors": errors,
+        }))
+    })
+    .await;
+    match result {
+        Err(response) => response,
+        Ok(Err(message)) => error(StatusCode::BAD_REQUEST, "bad_body", &message),
+        Ok(Ok(body)) => {
+            let status = if body["rejected"].as_u64() == Some(0) {
+                StatusCode::OK
+            } else {
+                StatusCode::UNPROCESSABLE_ENTITY
+            };
+            (status, Json(body)).into_response()
+        }
+    }
+}
+
+async fn list_experiments(State(shared): State<Arc<Shared>>) -> Json<Value> {
+    let entries: Vec<Value> = {
+        let engine = shared.lock_engine();
+        engine
+            .experiments()
+            .map(|e| doc::experiment_entry(&e.snapshot()))
+            .collect()
+    };
+    Json(json!({ "experiments": entries }))
+}
+
+async fn get_experiment(State(shared): State<Arc<Shared>>, Path(id): Path<String>) -> Response {
+    let snapshot = shared.lock_engine().experiment(&id).map(|e| e.snapshot());
+    let Some(snapshot) = snapshot else {
+        return error(
+            StatusCode::NOT_FOUND,
+            "unknown_experiment",
+            &format!("no experiment `{id}`"),
+        );
+    };
+    match blocking(move || doc::experiment_document(&summarize(snapshot, DEFAULT_LEVEL))).await {
+        Ok(body) => Json(body).into_response(),
+        Err(response) => response,
+    }
+}
+
+fn refresh_gauges(shared: &Shared, summaries: &[ExperimentSummary]) {
+    let m = &shared.metrics;
+    for s in summaries {
+        let def = &s.snapshot.def;
+        for (v, units) in def.variants.iter().zip(&s.snapshot.units) {
+            m.variant_units
+                .with_label_values(&[def.id.as_str(), v.name.as_str()])
+                .set(*units as i64);
+        }
+        for (metric, ms) in def.metrics.iter().zip(&s.metrics) {
+            let Ok(arms) = &ms.arms else { continue };
+            for (v, a) in def.variants.iter().zip(arms) {
+                let labels = [def.id.as_str(), metric.name.as_str(), v.name.as_str()];
+                m.posterior_mean.with_label_values(&labels).set(a.mean);
+                m.interval_lower
+                    .with_label_values(&labels)
+                    .set(a.interval.lower);
+                m.interval_upper
+                    .with_label_values(&labels)
+                    .set(a.interval.upper);
+                m.prob_best.with_label_values(&labels).set(a.prob_best);
+                m.expected_loss
+                    .with_label_values(&labels)
+                    .set(a.expected_loss);
+                if let Some(p) = a.prob_beats_control {
+                    m.prob_beats_control.with_label_values(&labels).set(p);
+                }
+            }
+        }
+    }
+}
+
+async fn metrics(State(shared): State<Arc<Shared>>) -> Response {
+    let snapshots: Vec<_> = shared
+        .lock_engine()
+        .experiments()
+        .map(|e| e.snapshot())
+        .collect();
+    let text = blocking(move || {
+        let summaries: Vec<ExperimentSummary> = snapshots
+            .into_iter()
+            .map(|s| summarize(s, DEFAULT_LEVEL))
+            .collect();
+        refresh_gauges(&shared, &summaries);
+        shared.metrics.encode()
+    })
+    .await;
+    match text {
+        Ok(text) => (
+            [(
+                header::CONTENT_TYPE,
+                "text/plain; version=0.0.4; charset=utf-8",
+            )],
+            text,
+        )
+            .into_response(),
+        Err(response) => response,
+    }
+}

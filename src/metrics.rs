@@ -1,0 +1,198 @@
+//! Prometheus metrics: process-level counters updated by the sources, and per-experiment gauges
+//! refreshed from the engine at each scrape (so they are never staler than the scrape itself).
+
+use prometheus::{
+    Encoder, GaugeVec, IntCounterVec, IntGauge, IntGaugeVec, Opts, Registry, TextEncoder,
+};
+
+use crate::event::{Outcome, RejectReason};
+
+/// Where an event came from; a label on the event counters.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Source {
+    /// `POST /v1/events`.
+    Http,
+    /// The Kafka consumer.
+    Kafka,
+    /// The built-in traffic simulator of `demo`.
+    Simulator,
+}
+
+impl Source {
+    /// Label value.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Source::Http => "http",
+            Source::Kafka => "kafka",
+            Source::Simulator => "simulator",
+        }
+    }
+}
+
+/// All metrics of one process, in their own registry (no global state, so tests can run
+/// several services in one process).
+pub struct Metrics {
+    registry: Registry,
+    /// Valid events by source and outcome.
+    pub events: IntCounterVec,
+    /// Refused events by source and reason.
+    pub rejected: IntCounterVec,
+    /// 1 while the configured Kafka cluster answers metadata requests.
+    pub kafka_reachable: IntGauge,
+    /// Exposed units per experiment and variant.
+    pub variant_units: IntGaugeVec,
+    /// Posterior mean per experiment, metric and variant.
+    pub posterior_mean: GaugeVec,
+    /// Lower end of the 95% equal-tailed credible interval.
+    pub interval_lower: GaugeVec,
+    /// Upper end of the 95% equal-tailed credible interval.
+    pub interval_upper: GaugeVec,
+    /// P(variant is the best arm).
+    pub prob_best: GaugeVec,
+    /// Expected loss of shipping the variant, in rate units.
+    pub expected_loss: GaugeVec,
+    /// P(variant beats the control); absent for the control.
+    pub prob_beats_control: GaugeVec,
+}
+
+fn counter_vec(registry: &Registry, name: &str, help: &str, labels: &[&str]) -> IntCounterVec {
+    let c = IntCounterVec::new(Opts::new(name, help), labels).expect("valid metric definition");
+    registry
+        .register(Box::new(c.clone()))
+        .expect("metric registered once");
+    c
+}
+
+fn gauge_vec(registry: &Registry, name: &str, help: &str, labels: &[&str]) -> GaugeVec {
+    let g = GaugeVec::new(Opts::new(name, help), labels).expect("valid metric definition");
+    registry
+        .register(Box::new(g.clone()))
+        .expect("metric registered once");
+    g
+}
+
+const ARM: &[&str] = &["experiment", "metric", "variant"];
+
+impl Metrics {
+    /// Fresh metrics with every event counter pre-registered at zero, so dashboards and alert
+    /// rules see a series before the first event of each kind.
+    pub fn new() -> Metrics {
+        let registry = Registry::new();
+        let events = counter_vec(
+            &registry,
+            "posteriord_events_total",
+            "Valid events by source and outcome (applied, or why not).",
+            &["source", "outcome"],
+        );
+        let rejected = counter_vec(
+            &registry,
+            "posteriord_events_rejected_total",
+            "Refused events by source and reason.",
+            &["source", "reason"],
+        );
+        let kafka_reachable = IntGauge::new(
+            "posteriord_kafka_reachable",
+            "1 while the configured Kafka cluster answers metadata requests.",
+        )
+        .expect("valid metric definition");
+        registry
+            .register(Box::new(kafka_reachable.clone()))
+            .expect("metric registered once");
+        let variant_units = IntGaugeVec::new(
+            Opts::new(
+                "posteriord_variant_units",
+                "Exposed units per experiment variant.",
+            ),
+            &["experiment", "variant"],
+        )
+        .expect("valid metric definition");
+        registry
+            .register(Box::new(variant_units.clone()))
+            .expect("metric registered once");
+        let m = Metrics {
+            posterior_mean: gauge_vec(
+                &registry,
+                "posteriord_posterior_mean",
+                "Posterior mean of the metric's rate per variant.",
+                ARM,
+            ),
+            interval_lower: gauge_vec(
+                &registry,
+                "posteriord_posterior_interval_lower",
+                "Lower end of the 95% equal-tailed credible interval.",
+                ARM,
+            ),
+            interval_upper: gauge_vec(
+                &registry,
+                "posteriord_posterior_interval_upper",
+                "Upper end of the 95% equal-tailed credible interval.",
+                ARM,
+            ),
+            prob_best: gauge_vec(
+                &registry,
+                "posteriord_prob_best",
+                "Posterior probability that the variant is the best arm.",
+                ARM,
+            ),
+            expected_loss: gauge_vec(
+                &registry,
+                "posteriord_expected_loss",
+                "Expected loss (regret, in rate units) of shipping the variant.",
+                ARM,
+            ),
+            prob_beats_control: gauge_vec(
+                &registry,
+                "posteriord_prob_beats_control",
+                "Posterior probability that the variant is better than the control.",
+                ARM,
+            ),
+            registry,
+            events,
+            rejected,
+            kafka_reachable,
+            variant_units,
+        };
+        for source in [Source::Http, Source::Kafka, Source::Simulator] {
+            for outcome in Outcome::ALL {
+                m.events
+                    .with_label_values(&[source.as_str(), outcome.as_str()]);
+            }
+            for reason in RejectReason::ALL {
+                m.rejected
+                    .with_label_values(&[source.as_str(), reason.as_str()]);
+            }
+        }
+        m
+    }
+
+    /// Count one valid event.
+    pub fn count_outcome(&self, source: Source, outcome: Outcome, n: u64) {
+        if n > 0 {
+            self.events
+                .with_label_values(&[source.as_str(), outcome.as_str()])
+                .inc_by(n);
+        }
+    }
+
+    /// Count one refused event.
+    pub fn count_reject(&self, source: Source, reason: RejectReason) {
+        self.rejected
+            .with_label_values(&[source.as_str(), reason.as_str()])
+            .inc();
+    }
+
+    /// The registry in Prometheus text exposition format.
+    pub fn encode(&self) -> String {
+        let mut buf = Vec::new();
+        TextEncoder::new()
+            .encode(&self.registry.gather(), &mut buf)
+            .expect("text encoding into memory cannot fail");
+        String::from_utf8(buf).expect("the text format is UTF-8")
+    }
+}
+
+impl Default for Metrics {
+    fn default() -> Self {
+        Metrics::new()
+    }
+}

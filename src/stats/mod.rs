@@ -1,0 +1,111 @@
+//! The pure statistics core: conjugate posteriors, exact k-arm decision quantities by
+//! quadrature, and the sample ratio mismatch test.
+//!
+//! # Layout
+//! - `special`: cancellation-free pieces of log densities (Loader's deviance, Stirling
+//!   remainder, `log1pmx`).
+//! - `grid`: piecewise Clenshaw–Curtis grids holding densities, CDFs and survival functions.
+//! - `posterior`: [`Beta`] (conversion) and [`Gamma`] (defect rate) posteriors.
+//! - `arms`: [`compare`] for 2..=64 arms.
+//! - `srm`: [`sample_ratio_mismatch`].
+//!
+//! **Invariant:** nothing here does I/O, allocates threads, or knows about async runtimes,
+//! message brokers, HTTP or serialization; bad input is an `Err`, never a panic.
+//! Formulas and their sources are listed in docs/methods.md.
+
+mod arms;
+mod grid;
+mod posterior;
+mod special;
+mod srm;
+
+pub use arms::{compare, ArmSummary, Arms, CompareOptions, Lift, MAX_ARMS};
+pub use posterior::{Beta, Gamma, MAX_SHAPE, MIN_SHAPE};
+pub use srm::{sample_ratio_mismatch, SampleRatio, SRM_P_THRESHOLD};
+
+/// Errors from the statistics core.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+#[non_exhaustive]
+pub enum StatsError {
+    /// A distribution parameter or weight is NaN, infinite, zero or negative.
+    #[error("{name} must be a finite number greater than 0, got {value}")]
+    InvalidParameter {
+        /// Which parameter.
+        name: &'static str,
+        /// The rejected value.
+        value: f64,
+    },
+    /// A shape parameter is positive but outside the range the numerics are validated for.
+    #[error("{name} = {value:e} is outside the supported range [{min:e}, {max:e}]")]
+    ParameterOutOfRange {
+        /// Which parameter.
+        name: &'static str,
+        /// The rejected value.
+        value: f64,
+        /// Smallest accepted value.
+        min: f64,
+        /// Largest accepted value.
+        max: f64,
+    },
+    /// An interval level outside (0, 1).
+    #[error("credible interval level must lie strictly between 0 and 1, got {0}")]
+    InvalidLevel(f64),
+    /// A probability outside [0, 1].
+    #[error("probability must lie in [0, 1], got {0}")]
+    InvalidProbability(f64),
+    /// More successes than trials.
+    #[error("successes ({successes}) exceed trials ({trials})")]
+    SuccessesExceedTrials {
+        /// Reported successes.
+        successes: u64,
+        /// Reported trials.
+        trials: u64,
+    },
+    /// Exposure is NaN, infinite or negative.
+    #[error("exposure must be finite and non-negative, got {0}")]
+    InvalidExposure(f64),
+    /// Too few or too many arms.
+    #[error("need between 2 and {max} arms, got {0}", max = MAX_ARMS)]
+    ArmCount(usize),
+    /// The control index does not name an arm.
+    #[error("control index {control} is out of range for {n_arms} arms")]
+    ControlOutOfRange {
+        /// Requested control index.
+        control: usize,
+        /// Number of arms.
+        n_arms: usize,
+    },
+    /// ROPE or harm margin is NaN, infinite or negative.
+    #[error("{name} must be finite and non-negative, got {value}")]
+    InvalidMargin {
+        /// Which option.
+        name: &'static str,
+        /// The rejected value.
+        value: f64,
+    },
+    /// Observed counts and weights have different lengths.
+    #[error("{observed} observed counts but {weights} weights")]
+    LengthMismatch {
+        /// Number of observed counts.
+        observed: usize,
+        /// Number of weights.
+        weights: usize,
+    },
+    /// The sample ratio test got no units at all.
+    #[error("no units observed")]
+    NoUnits,
+    /// An internal consistency check failed (a bug or an input far outside validated ranges).
+    #[error("numerical failure: {0}")]
+    Numerical(&'static str),
+}
+
+/// An equal-tailed credible interval.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Interval {
+    /// Posterior probability inside the interval.
+    pub level: f64,
+    /// Lower end (the (1 − level)/2 quantile).
+    pub lower: f64,
+    /// Upper end (the (1 + level)/2 quantile).
+    pub upper: f64,
+}

@@ -1,0 +1,93 @@
+//! From an experiment's totals to its posteriors and decision quantities: the pure step between
+//! state and the readers (HTTP API, metrics).
+
+use crate::experiment::{MetricDef, Prior};
+use crate::state::{ExperimentSnapshot, MetricTotals};
+use crate::stats::{self, ArmSummary, Arms, Beta, CompareOptions, Gamma, SampleRatio, StatsError};
+
+/// Credible level reported by the API and metrics.
+pub const DEFAULT_LEVEL: f64 = 0.95;
+
+/// Posteriors and decision quantities of one metric.
+#[derive(Debug, Clone)]
+pub struct MetricSummary {
+    /// Posterior of every variant, in variant order.
+    pub posteriors: Result<Arms, StatsError>,
+    /// Decision quantities per variant, or why they could not be computed.
+    pub arms: Result<Vec<ArmSummary>, StatsError>,
+}
+
+/// An experiment's snapshot with everything derived from it.
+#[derive(Debug, Clone)]
+pub struct ExperimentSummary {
+    /// The totals the summary was computed from.
+    pub snapshot: ExperimentSnapshot,
+    /// One entry per metric, in definition order.
+    pub metrics: Vec<MetricSummary>,
+    /// Sample-ratio check of exposed units against the planned weights; `None` before any unit.
+    pub sample_ratio: Option<Result<SampleRatio, StatsError>>,
+}
+
+/// Posterior of every variant of one metric.
+pub fn posteriors(def: &MetricDef, totals: &MetricTotals) -> Result<Arms, StatsError> {
+    match totals {
+        MetricTotals::Conversion(v) => v
+            .iter()
+            .enumerate()
+            .map(|(i, t)| {
+                let (a, b) = match def.prior_for(i) {
+                    Prior::Beta { alpha, beta } => (alpha, beta),
+                    Prior::Gamma { .. } => unreachable!("config pairs conversion with Beta"),
+                };
+                Beta::new(a + t.successes as f64, b + (t.trials - t.successes) as f64)
+            })
+            .collect::<Result<Vec<_>, _>>()
+            .map(Arms::Beta),
+        MetricTotals::Defect(v) => v
+            .iter()
+            .enumerate()
+            .map(|(i, t)| {
+                let (shape, rate) = match def.prior_for(i) {
+                    Prior::Gamma { shape, rate } => (shape, rate),
+                    Prior::Beta { .. } => unreachable!("config pairs defect_rate with Gamma"),
+                };
+                Gamma::new(shape + t.count as f64, rate + t.exposure)
+            })
+            .collect::<Result<Vec<_>, _>>()
+            .map(Arms::Gamma),
+    }
+}
+
+/// Summarise `snapshot` at credible level `level`.
+pub fn summarize(snapshot: ExperimentSnapshot, level: f64) -> ExperimentSummary {
+    let def = &snapshot.def;
+    let options = CompareOptions {
+        control: def.control,
+        level,
+        ..CompareOptions::default()
+    };
+    let metrics = def
+        .metrics
+        .iter()
+        .zip(&snapshot.metrics)
+        .map(|(m, totals)| {
+            let posteriors = posteriors(m, totals);
+            let arms = match &posteriors {
+                Ok(p) => stats::compare(p, &options),
+                Err(e) => Err(e.clone()),
+            };
+            MetricSummary { posteriors, arms }
+        })
+        .collect();
+    let sample_ratio = if snapshot.units.iter().all(|&u| u == 0) {
+        None
+    } else {
+        let weights: Vec<f64> = def.variants.iter().map(|v| v.weight).collect();
+        Some(stats::sample_ratio_mismatch(&snapshot.units, &weights))
+    };
+    ExperimentSummary {
+        snapshot,
+        metrics,
+        sample_ratio,
+    }
+}

@@ -1,0 +1,117 @@
+//! Tests of the command line as a user runs it: `check-config` messages and exit codes, the
+//! demo serving live experiments and stopping on its own or on SIGTERM.
+
+mod common;
+
+use std::process::{Command, Stdio};
+use std::time::Duration;
+
+use common::{bin, client, read_listen_line, signal, wait_exit, wait_for};
+use serde_json::Value;
+
+#[test]
+fn check_config_accepts_the_example() {
+    let example = concat!(env!("CARGO_MANIFEST_DIR"), "/config/example.toml");
+    let out = Command::new(bin())
+        .args(["check-config", example])
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(String::from_utf8_lossy(&out.stdout).contains("ok (1 experiment"));
+}
+
+#[test]
+fn check_config_names_a_typo_and_its_line_and_exits_2() {
+    let dir = tempfile::tempdir().unwrap();
+    let text = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/config/example.toml"))
+        .unwrap()
+        .replace("variants = [", "varaints = [");
+    let line = text
+        .lines()
+        .position(|l| l.starts_with("varaints"))
+        .unwrap()
+        + 1;
+    let path = dir.path().join("typo.toml");
+    std::fs::write(&path, text).unwrap();
+    let out = Command::new(bin())
+        .arg("check-config")
+        .arg(&path)
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(stderr.contains("varaints"), "{stderr}");
+    assert!(stderr.contains(&format!("typo.toml:{line}:")), "{stderr}");
+}
+
+#[test]
+fn check_config_of_a_missing_file_exits_2() {
+    let out = Command::new(bin())
+        .args(["check-config", "/nonexistent/p.toml"])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("cannot read"));
+}
+
+fn start_demo(extra: &[&str]) -> (std::process::Child, String, tempfile::TempDir) {
+    let dir = tempfile::tempdir().unwrap();
+    let log = dir.path().join("demo.log");
+    let mut child = Command::new(bin())
+        .args(["demo", "--addr", "127.0.0.1:0"])
+        .args(extra)
+        .current_dir(dir.path())
+        .stdout(Stdio::piped())
+        .stderr(std::fs::File::create(&log).unwrap())
+        .spawn()
+        .unwrap();
+    let base = read_listen_line(&mut child, &log);
+    // The first URL printed is the experiments list; keep the host part.
+    let base = base.split("/v1/").next().unwrap().to_string();
+    (child, base, dir)
+}
+
+#[test]
+fn demo_serves_live_experiments_and_stops_after_its_duration() {
+    let (mut child, base, _dir) = start_demo(&["--duration", "6", "--units-per-second", "200"]);
+    let http = client();
+    let doc: Value = wait_for(Duration::from_secs(5), "demo traffic", || {
+        let doc: Value = http
+            .get(format!("{base}/v1/experiments/crumb-delivery-banner"))
+            .send()
+            .ok()?
+            .json()
+            .ok()?;
+        (doc["variants"][0]["units"].as_u64()? > 50).then_some(doc)
+    });
+    assert_eq!(doc["variants"].as_array().unwrap().len(), 3);
+    let list: Value = http
+        .get(format!("{base}/v1/experiments"))
+        .send()
+        .unwrap()
+        .json()
+        .unwrap();
+    assert_eq!(list["experiments"].as_array().unwrap().len(), 4);
+    let status =
+        wait_exit(&mut child, Duration::from_secs(20)).expect("demo stops after --duration");
+    assert!(status.success(), "{status:?}");
+}
+
+#[test]
+fn demo_stops_cleanly_on_sigterm() {
+    let (mut child, base, _dir) = start_demo(&[]);
+    let ok = client()
+        .get(format!("{base}/healthz"))
+        .send()
+        .unwrap()
+        .status()
+        .is_success();
+    assert!(ok);
+    signal(child.id(), "TERM");
+    let status = wait_exit(&mut child, Duration::from_secs(20)).expect("demo exits on SIGTERM");
+    assert!(status.success(), "{status:?}");
+}

@@ -1,0 +1,81 @@
+#!/usr/bin/env bash
+# The README's test command. On a fresh Debian machine it installs what the suite needs
+# (a Kafka-protocol broker, the independent Python Kafka client, reference-value tools),
+# starts the broker on a free loopback port, runs `cargo test --all-targets`, and stops the
+# broker again. Any failure fails the script.
+#
+# Environment:
+#   POSTERIORD_SOAK=1      also run the long soak/fuzz modes (off by default)
+#   KEEP_TEST_OUTPUT=1     keep the broker's directory and log after the run
+set -euo pipefail
+
+cd "$(dirname "$0")/.."
+export PATH="$HOME/.cargo/bin:$PATH"
+
+TANSU_VERSION=0.6.0
+CONFLUENT_KAFKA_VERSION=2.16.1
+MPMATH_VERSION=1.3.0
+SCIPY_VERSION=1.17.1
+
+step() { printf '\n==> %s\n' "$*"; }
+
+step "checking tools"
+command -v cargo >/dev/null || { echo "cargo is required (rustup)"; exit 1; }
+command -v python3 >/dev/null || { apt-get update && apt-get install -y python3 python3-pip; }
+
+if ! command -v tansu >/dev/null || ! tansu --version 2>/dev/null | grep -q "$TANSU_VERSION"; then
+    step "installing the tansu $TANSU_VERSION broker (Kafka protocol; builds once, ~30 min)"
+    cargo install tansu --locked --version "$TANSU_VERSION" --features dynostore,libsql
+fi
+
+pip_install() {
+    # $1 = import name, $2 = pip requirement
+    if ! python3 -c "import $1" 2>/dev/null; then
+        step "installing $2 from PyPI"
+        python3 -m pip install --quiet --disable-pip-version-check "$2"
+    fi
+}
+pip_install confluent_kafka "confluent-kafka==$CONFLUENT_KAFKA_VERSION"
+pip_install mpmath "mpmath==$MPMATH_VERSION"
+pip_install scipy "scipy==$SCIPY_VERSION"
+
+WORK="$(mktemp -d -t posteriord-tests.XXXXXX)"
+BROKER_PID=""
+cleanup() {
+    local rc=$?
+    if [[ -n "$BROKER_PID" ]] && kill -0 "$BROKER_PID" 2>/dev/null; then
+        kill "$BROKER_PID" 2>/dev/null || true
+        wait "$BROKER_PID" 2>/dev/null || true
+    fi
+    if [[ $rc -ne 0 ]]; then
+        echo "--- last lines of the broker log ($WORK/tansu.log) ---"
+        tail -n 30 "$WORK/tansu.log" 2>/dev/null || true
+    fi
+    if [[ -z "${KEEP_TEST_OUTPUT:-}" ]]; then rm -rf "$WORK"; fi
+    exit $rc
+}
+trap cleanup EXIT
+
+PORT="$(python3 -c 'import socket; s=socket.socket(); s.bind(("127.0.0.1",0)); print(s.getsockname()[1])')"
+step "starting the broker on 127.0.0.1:$PORT (sqlite storage in $WORK)"
+# tansu reads the path of a sqlite:// URL relative to its working directory.
+(cd "$WORK" && exec tansu broker \
+    --listener-url "tcp://127.0.0.1:$PORT" \
+    --advertised-listener-url "tcp://127.0.0.1:$PORT" \
+    --storage-engine "sqlite://tansu.db" \
+    >"$WORK/tansu.log" 2>&1) &
+BROKER_PID=$!
+for _ in $(seq 1 100); do
+    if python3 -c "import socket,sys; socket.create_connection(('127.0.0.1',$PORT),0.2)" 2>/dev/null; then
+        break
+    fi
+    kill -0 "$BROKER_PID" 2>/dev/null || { echo "the broker exited:"; cat "$WORK/tansu.log"; exit 1; }
+    sleep 0.2
+done
+export POSTERIORD_TEST_BROKERS="127.0.0.1:$PORT"
+export POSTERIORD_TEST_BROKER_PID="$BROKER_PID"
+
+step "cargo test --all-targets"
+cargo test --all-targets
+
+step "all tests passed"
