@@ -2,7 +2,7 @@
 //! server that reads it, all stopped by one cancellation token and awaited before return.
 
 use std::net::SocketAddr;
-use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::sync::{Arc, Mutex, MutexGuard};
 
 use anyhow::Context;
@@ -13,26 +13,33 @@ use tokio_util::task::TaskTracker;
 use crate::config::Config;
 use crate::metrics::Metrics;
 use crate::simulate::SimulateOptions;
-use crate::state::Engine;
+use crate::state::shards::Shards;
+use crate::store::Store;
 
 /// State shared by every task of the service.
 pub struct Shared {
-    /// The experiments' state. A std `Mutex`, not an async one: it is held only to apply one
-    /// batch or copy one snapshot (microseconds), never across an `.await`.
-    pub engine: Mutex<Engine>,
+    /// The experiments' state, by input shard. A std `Mutex`, not an async one: it is held
+    /// only to apply one batch or copy snapshots (microseconds), never across an `.await`.
+    pub shards: Mutex<Shards>,
     /// Prometheus metrics.
     pub metrics: Metrics,
     /// Largest accepted encoded event.
     pub max_event_bytes: usize,
     /// `Some` when Kafka is configured: whether its brokers answered the last probe.
     kafka_reachable: Option<AtomicBool>,
+    /// Partitions being restored; readiness is false while any is.
+    restoring: AtomicUsize,
+    /// Where state is stored (`None` for the demo, which keeps nothing).
+    pub store: Option<Store>,
+    /// How often changed state is written.
+    pub snapshot_interval: std::time::Duration,
 }
 
 impl Shared {
     /// Fresh shared state for `config`.
     pub fn new(config: &Config) -> Shared {
         Shared {
-            engine: Mutex::new(Engine::new(config.experiments.iter().cloned())),
+            shards: Mutex::new(Shards::new(config.experiments.iter().cloned())),
             metrics: Metrics::new(),
             max_event_bytes: config
                 .kafka
@@ -41,13 +48,91 @@ impl Shared {
                     k.max_event_bytes
                 }),
             kafka_reachable: config.kafka.as_ref().map(|_| AtomicBool::new(false)),
+            restoring: AtomicUsize::new(0),
+            store: None,
+            snapshot_interval: config.store.snapshot_interval,
         }
     }
 
-    /// The engine, even if a panic elsewhere poisoned the lock: the state is updated one
+    /// Whether any partition is being restored.
+    pub fn is_restoring(&self) -> bool {
+        self.restoring.load(Ordering::SeqCst) > 0
+    }
+
+    /// Mark `n` partitions as restoring (positive) or done (negative).
+    pub fn add_restoring(&self, n: isize) {
+        if n >= 0 {
+            self.restoring.fetch_add(n as usize, Ordering::SeqCst);
+        } else {
+            self.restoring.fetch_sub(n.unsigned_abs(), Ordering::SeqCst);
+        }
+        self.metrics
+            .restoring
+            .set(self.restoring.load(Ordering::SeqCst) as i64);
+    }
+
+    /// Write every changed shard accepted by `which` to the store. Images are taken under the
+    /// lock (clearing the dirty mark), files written outside it; a failed write marks the
+    /// shard dirty again so the next round retries. Returns whether all writes succeeded.
+    pub fn save_dirty(&self, which: impl Fn(&str) -> bool) -> bool {
+        let Some(store) = &self.store else {
+            return true;
+        };
+        let images: Vec<(String, crate::state::shards::ShardImage)> = {
+            let mut shards = self.lock_shards();
+            shards
+                .ids()
+                .into_iter()
+                .filter(|id| which(id))
+                .filter_map(|id| {
+                    let shard = shards.shard_mut(&id);
+                    if !shard.dirty {
+                        return None;
+                    }
+                    shard.dirty = false;
+                    let image = shard.image();
+                    Some((id, image))
+                })
+                .collect()
+        };
+        let mut all_ok = true;
+        for (id, image) in images {
+            match store.save(&id, &image) {
+                Ok(()) => self.metrics.state_saves.with_label_values(&["ok"]).inc(),
+                Err(e) => {
+                    all_ok = false;
+                    tracing::error!(shard = %id, error = %e, "cannot save state; will retry");
+                    self.metrics.state_saves.with_label_values(&["error"]).inc();
+                    self.lock_shards().shard_mut(&id).dirty = true;
+                }
+            }
+        }
+        all_ok
+    }
+
+    /// Read shard `id` from the store (if stored), reporting experiments that no longer fit.
+    pub fn load_shard(
+        &self,
+        id: &str,
+    ) -> Result<Option<crate::state::shards::Shard>, crate::store::StoreError> {
+        let Some(store) = &self.store else {
+            return Ok(None);
+        };
+        let defs = self.lock_shards().defs().to_vec();
+        let Some(loaded) = store.load(id, &defs)? else {
+            return Ok(None);
+        };
+        for m in &loaded.mismatches {
+            tracing::error!(shard = %id, "{m}; that experiment starts empty in this shard");
+            self.metrics.restore_mismatches.inc();
+        }
+        Ok(Some(loaded.shard))
+    }
+
+    /// The shards, even if a panic elsewhere poisoned the lock: the state is updated one
     /// event at a time, so it is consistent between events.
-    pub fn lock_engine(&self) -> MutexGuard<'_, Engine> {
-        self.engine.lock().unwrap_or_else(|p| p.into_inner())
+    pub fn lock_shards(&self) -> MutexGuard<'_, Shards> {
+        self.shards.lock().unwrap_or_else(|p| p.into_inner())
     }
 
     /// `None` without Kafka; else whether the brokers answered the last probe.
@@ -71,6 +156,27 @@ impl Shared {
 pub struct RunOptions {
     /// Feed simulated traffic (the `demo` command).
     pub simulate: Option<SimulateOptions>,
+    /// Keep state in the store directory (off for the demo).
+    pub persist: bool,
+}
+
+/// Store the HTTP shard on the snapshot cadence and once more at shutdown.
+async fn save_http_shard(
+    shared: Arc<Shared>,
+    every: std::time::Duration,
+    shutdown: CancellationToken,
+) {
+    let http = |id: &str| id == crate::http::HTTP_SHARD;
+    let mut tick = tokio::time::interval(every);
+    loop {
+        tokio::select! {
+            _ = shutdown.cancelled() => break,
+            _ = tick.tick() => {}
+        }
+        let s = Arc::clone(&shared);
+        let _ = tokio::task::spawn_blocking(move || s.save_dirty(http)).await;
+    }
+    // The final save happens in `run`, after the HTTP server has finished its requests.
 }
 
 /// Bind the HTTP listener (separate from [`run`] so callers can print the bound address,
@@ -109,8 +215,28 @@ pub async fn run(
     options: RunOptions,
     shutdown: CancellationToken,
 ) -> anyhow::Result<()> {
-    let shared = Arc::new(Shared::new(&config));
+    let mut shared = Shared::new(&config);
+    if options.persist {
+        shared.store = Some(
+            Store::open(&config.store.dir).context("cannot open the state store (store.dir)")?,
+        );
+    }
+    let shared = Arc::new(shared);
+    // Events posted over HTTP are kept in their own shard, stored on the snapshot cadence.
+    if let Some(shard) = shared.load_shard(crate::http::HTTP_SHARD)? {
+        shared
+            .lock_shards()
+            .insert(crate::http::HTTP_SHARD.to_string(), shard);
+        tracing::info!("restored the state of events posted over HTTP");
+    }
     let tracker = TaskTracker::new();
+    if shared.store.is_some() {
+        tracker.spawn(save_http_shard(
+            Arc::clone(&shared),
+            config.store.snapshot_interval,
+            shutdown.clone(),
+        ));
+    }
     if let Some(kafka) = &config.kafka {
         crate::kafka::start(kafka, Arc::clone(&shared), shutdown.clone(), &tracker)
             .context("cannot start the Kafka consumer")?;
@@ -128,6 +254,14 @@ pub async fn run(
     shutdown.cancel();
     tracker.close();
     tracker.wait().await;
+    let s = Arc::clone(&shared);
+    let saved =
+        tokio::task::spawn_blocking(move || s.save_dirty(|id| id == crate::http::HTTP_SHARD))
+            .await
+            .unwrap_or(false);
+    if !saved {
+        tracing::error!("the state of events posted over HTTP could not be saved at shutdown");
+    }
     tracing::info!("all tasks stopped");
     served.context("the HTTP server failed")
 }

@@ -149,6 +149,7 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
         kafka: None,
         store: StoreConfig {
             dir: PathBuf::from(config::DEFAULT_STORE_DIR),
+            snapshot_interval: Duration::from_millis(config::DEFAULT_SNAPSHOT_INTERVAL_MS),
         },
         experiments: simulate::demo_experiments(),
     };
@@ -172,7 +173,10 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
                 token.cancel();
             });
         }
-        app::run(config, listener, RunOptions { simulate: Some(sim) }, shutdown).await
+        app::run(config, listener, RunOptions {
+                    simulate: Some(sim),
+                    persist: false,
+                }, shutdown).await
     })
 }
 
@@ -190,7 +194,7 @@ fn serve(path: &std::path::Path) -> anyhow::Result<()> {
         tracing::info!(addr = %bound, experiments = config.experiments.len(), kafka = config.kafka.is_some(), "serving");
         let shutdown = CancellationToken::new();
         tokio::spawn(cancel_on_signal(shutdown.clone()));
-        app::run(config, listener, RunOptions::default(), shutdown).await
+        app::run(config, listener, RunOptions { simulate: None, persist: true }, shutdown).await
     })
 }
 

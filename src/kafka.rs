@@ -1,25 +1,39 @@
-//! The Kafka source: a consumer-group member that applies events in batches and stores each
-//! partition's offset only after its events are applied, plus a broker probe for readiness.
+//! The Kafka source: a consumer-group member whose state is owned per partition and stored
+//! together with that partition's offset, plus a dead-letter producer and a broker probe.
 //!
-//! Consumption runs on a dedicated blocking thread with librdkafka's poll loop: applying events
-//! is synchronous CPU work, and a thread lets one batch be decoded and applied under a single
-//! lock without hopping between async tasks.
+//! Delivery guarantee (exactly-once effect on the posteriors): each partition's shard and its
+//! `next_offset` change together under one lock, are written together in one atomic file
+//! (`store`), and on assignment the consumer seeks the partition to the stored
+//! `next_offset`. Events re-read after a crash are therefore applied to the state as it was at
+//! that offset, and offsets below a shard's position are skipped. Kafka's committed offsets
+//! are kept up to date for lag tooling but are not what restores use.
+//!
+//! Consumption runs on a dedicated blocking thread with librdkafka's poll loop; rebalance
+//! callbacks run inside `poll` on the same thread, which keeps restore, apply and save
+//! strictly ordered without extra locking.
 
 use std::collections::HashMap;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
+use rdkafka::client::ClientContext;
 use rdkafka::config::ClientConfig;
-use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer};
+use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer, ConsumerContext, RebalanceProtocol};
 use rdkafka::error::KafkaError;
-use rdkafka::message::Message;
+use rdkafka::message::{Header, Message, OwnedHeaders};
+use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
+use rdkafka::statistics::Statistics;
+use rdkafka::types::RDKafkaRespErr;
 use rdkafka::{Offset, TopicPartitionList};
 use tokio_util::sync::CancellationToken;
 use tokio_util::task::TaskTracker;
 
 use crate::app::Shared;
 use crate::config::KafkaConfig;
+use crate::event::Reject;
+use crate::ingest::Item;
 use crate::metrics::Source;
+use crate::state::shards::{kafka_shard, Shard};
 
 /// Most messages applied under one lock.
 const MAX_BATCH: usize = 2_000;
@@ -29,23 +43,26 @@ const MAX_BATCH_WAIT: Duration = Duration::from_millis(20);
 const POLL_TIMEOUT: Duration = Duration::from_millis(100);
 /// How often readiness asks the brokers for metadata.
 const PROBE_INTERVAL: Duration = Duration::from_secs(2);
+/// How long a save waits for dead letters to be delivered first.
+const DEAD_LETTER_FLUSH: Duration = Duration::from_secs(10);
 
 /// Properties posteriord sets itself because its delivery guarantee depends on them.
 const OWNED_PROPERTIES: [(&str, &str); 2] = [
     // Offsets are stored by hand after the events are applied ...
     ("enable.auto.offset.store", "false"),
-    // ... and committed in the background from what was stored.
+    // ... and committed in the background from what was stored (for lag tooling).
     ("enable.auto.commit", "true"),
 ];
 
-/// The librdkafka configuration for `cfg`: our defaults, then the user's properties, then the
-/// properties the delivery guarantee depends on.
+/// The consumer's librdkafka configuration for `cfg`: our defaults, then the user's
+/// properties, then the properties the delivery guarantee depends on.
 pub fn client_config(cfg: &KafkaConfig) -> ClientConfig {
     let mut c = ClientConfig::new();
     c.set("bootstrap.servers", &cfg.brokers)
         .set("group.id", &cfg.group)
         .set("auto.offset.reset", "earliest")
-        .set("client.id", "posteriord");
+        .set("client.id", "posteriord")
+        .set("statistics.interval.ms", "5000");
     for (k, v) in &cfg.properties {
         c.set(k, v);
     }
@@ -58,6 +75,191 @@ pub fn client_config(cfg: &KafkaConfig) -> ClientConfig {
     c
 }
 
+/// The dead-letter producer's configuration: connection and security properties from the
+/// config, idempotent delivery.
+fn producer_config(cfg: &KafkaConfig) -> ClientConfig {
+    let mut c = ClientConfig::new();
+    c.set("bootstrap.servers", &cfg.brokers)
+        .set("client.id", "posteriord-dead-letters");
+    for (k, v) in &cfg.properties {
+        let shared = k.starts_with("security.")
+            || k.starts_with("sasl.")
+            || k.starts_with("ssl.")
+            || k.starts_with("socket.")
+            || k.starts_with("broker.")
+            || k == "client.dns.lookup";
+        if shared {
+            c.set(k, v);
+        }
+    }
+    c.set("enable.idempotence", "true").set("linger.ms", "5");
+    c
+}
+
+type DeadLetterProducer = ThreadedProducer<DefaultProducerContext>;
+
+/// librdkafka callbacks: restore and release partition state on rebalance; lag from stats.
+struct PartitionContext {
+    shared: Arc<Shared>,
+    dead_letters: Option<Arc<DeadLetterProducer>>,
+}
+
+impl ClientContext for PartitionContext {
+    fn stats(&self, statistics: Statistics) {
+        let shards = self.shared.lock_shards();
+        for (topic, t) in &statistics.topics {
+            for (partition, p) in &t.partitions {
+                if *partition < 0 {
+                    continue; // librdkafka's internal "unassigned" partition
+                }
+                let Some(shard) = shards.shard(&kafka_shard(topic, *partition)) else {
+                    continue;
+                };
+                let next = shard.next_offset.unwrap_or(0);
+                let partition_label = partition.to_string();
+                let labels = [topic.as_str(), partition_label.as_str()];
+                if p.hi_offset >= 0 {
+                    self.shared
+                        .metrics
+                        .kafka_lag
+                        .with_label_values(&labels)
+                        .set((p.hi_offset - next).max(0));
+                }
+            }
+        }
+    }
+}
+
+impl ConsumerContext for PartitionContext {
+    fn rebalance(
+        &self,
+        consumer: &BaseConsumer<Self>,
+        err: RDKafkaRespErr,
+        tpl: &mut TopicPartitionList,
+    ) {
+        let cooperative = matches!(
+            consumer.rebalance_protocol(),
+            RebalanceProtocol::Cooperative
+        );
+        match err {
+            RDKafkaRespErr::RD_KAFKA_RESP_ERR__ASSIGN_PARTITIONS => {
+                self.restore(tpl);
+                let r = if cooperative {
+                    consumer.incremental_assign(tpl)
+                } else {
+                    consumer.assign(tpl)
+                };
+                if let Err(e) = r {
+                    tracing::error!(error = %e, "cannot take the assigned partitions");
+                }
+            }
+            RDKafkaRespErr::RD_KAFKA_RESP_ERR__REVOKE_PARTITIONS => {
+                self.release(tpl);
+                let r = if cooperative {
+                    consumer.incremental_unassign(tpl)
+                } else {
+                    consumer.unassign()
+                };
+                if let Err(e) = r {
+                    tracing::error!(error = %e, "cannot release the revoked partitions");
+                }
+            }
+            other => {
+                tracing::error!(error = ?other, "rebalance error; releasing all partitions");
+                let all = consumer.assignment().unwrap_or_default();
+                self.release(&all);
+                let _ = consumer.unassign();
+            }
+        }
+    }
+}
+
+impl PartitionContext {
+    /// Load each assigned partition's stored state and point the assignment at its offset.
+    fn restore(&self, tpl: &mut TopicPartitionList) {
+        let partitions: Vec<(String, i32)> = tpl
+            .elements()
+            .iter()
+            .map(|e| (e.topic().to_string(), e.partition()))
+            .collect();
+        self.shared.add_restoring(partitions.len() as isize);
+        for (topic, partition) in &partitions {
+            let id = kafka_shard(topic, *partition);
+            let started = Instant::now();
+            let shard = match self.shared.load_shard(&id) {
+                Ok(Some(shard)) => shard,
+                Ok(None) => {
+                    tracing::info!(
+                        topic,
+                        partition,
+                        "no stored state for the partition: reading it from the beginning"
+                    );
+                    Shard::new(self.shared.lock_shards().defs())
+                }
+                Err(e) => {
+                    // Starting empty at the beginning rebuilds the state exactly if the topic
+                    // still holds every event; the damaged file is kept for inspection.
+                    tracing::error!(topic, partition, error = %e, "stored state unreadable: rebuilding the partition from the beginning");
+                    if let Some(store) = &self.shared.store {
+                        let path = store.path(&id);
+                        let _ = std::fs::rename(&path, path.with_extension("state.damaged"));
+                    }
+                    Shard::new(self.shared.lock_shards().defs())
+                }
+            };
+            let offset = match shard.next_offset {
+                Some(next) => Offset::Offset(next),
+                None => Offset::Beginning,
+            };
+            if let Err(e) = tpl.set_partition_offset(topic, *partition, offset) {
+                tracing::error!(topic, partition, error = %e, "cannot set the restore offset");
+            }
+            tracing::info!(
+                topic,
+                partition,
+                ?offset,
+                elapsed_ms = started.elapsed().as_millis() as u64,
+                "partition assigned and restored"
+            );
+            self.shared.lock_shards().insert(id, shard);
+        }
+        self.shared.add_restoring(-(partitions.len() as isize));
+    }
+
+    /// Save and drop the state of revoked partitions: the next owner restores it.
+    fn release(&self, tpl: &TopicPartitionList) {
+        let ids: Vec<String> = tpl
+            .elements()
+            .iter()
+            .map(|e| kafka_shard(e.topic(), e.partition()))
+            .collect();
+        if ids.is_empty() {
+            return;
+        }
+        flush_dead_letters(self.dead_letters.as_deref(), &self.shared);
+        self.shared.save_dirty(|id| ids.iter().any(|x| x == id));
+        let mut shards = self.shared.lock_shards();
+        for id in &ids {
+            shards.remove(id);
+        }
+        tracing::info!(partitions = ?ids, "partitions revoked; state saved and released");
+    }
+}
+
+/// Wait for dead letters to be delivered before offsets that follow them are saved, so a
+/// saved offset never skips an undelivered dead letter. Returns whether all were delivered.
+fn flush_dead_letters(producer: Option<&DeadLetterProducer>, shared: &Shared) -> bool {
+    let Some(p) = producer else { return true };
+    match p.flush(DEAD_LETTER_FLUSH) {
+        Ok(()) => true,
+        Err(e) => {
+            tracing::warn!(error = %e, "dead letters not yet delivered; postponing the state save");
+            shared.metrics.dead_letter_errors.inc();
+            false
+        }
+    }
+}
+
 /// Start the consumer thread and the broker probe on `tracker`.
 pub fn start(
     cfg: &KafkaConfig,
@@ -65,7 +267,18 @@ pub fn start(
     shutdown: CancellationToken,
     tracker: &TaskTracker,
 ) -> Result<(), KafkaError> {
-    let consumer: BaseConsumer = client_config(cfg).create()?;
+    let dead_letters = match &cfg.dead_letter_topic {
+        None => None,
+        Some(_) => Some(Arc::new(
+            producer_config(cfg).create::<DeadLetterProducer>()?,
+        )),
+    };
+    let context = PartitionContext {
+        shared: Arc::clone(&shared),
+        dead_letters: dead_letters.clone(),
+    };
+    let consumer: BaseConsumer<PartitionContext> =
+        client_config(cfg).create_with_context(context)?;
     let topics: Vec<&str> = cfg.topics.iter().map(String::as_str).collect();
     consumer.subscribe(&topics)?;
     tracing::info!(brokers = %cfg.brokers, topics = ?cfg.topics, group = %cfg.group, "kafka consumer subscribed");
@@ -76,8 +289,29 @@ pub fn start(
         let shutdown = shutdown.clone();
         tracker.spawn_blocking(move || probe_loop(&probe, &shared, &shutdown));
     }
-    tracker.spawn_blocking(move || consume_loop(&consumer, &shared, &shutdown));
+    let loop_cfg = LoopConfig {
+        dead_letter_topic: cfg.dead_letter_topic.clone(),
+        snapshot_interval: shared_snapshot_interval(&shared),
+    };
+    tracker.spawn_blocking(move || {
+        consume_loop(
+            &consumer,
+            &shared,
+            dead_letters.as_deref(),
+            &loop_cfg,
+            &shutdown,
+        )
+    });
     Ok(())
+}
+
+fn shared_snapshot_interval(shared: &Shared) -> Duration {
+    shared.snapshot_interval
+}
+
+struct LoopConfig {
+    dead_letter_topic: Option<String>,
+    snapshot_interval: Duration,
 }
 
 fn probe_loop(probe: &BaseConsumer, shared: &Shared, shutdown: &CancellationToken) {
@@ -101,10 +335,56 @@ fn probe_loop(probe: &BaseConsumer, shared: &Shared, shutdown: &CancellationToke
     }
 }
 
-fn consume_loop(consumer: &BaseConsumer, shared: &Shared, shutdown: &CancellationToken) {
-    // Next offset to commit per partition, i.e. last applied + 1.
-    let mut applied: HashMap<(String, i32), i64> = HashMap::new();
+fn dead_letter(
+    producer: &DeadLetterProducer,
+    topic: &str,
+    msg: &rdkafka::message::BorrowedMessage<'_>,
+    reject: &Reject,
+    shared: &Shared,
+) {
+    let source = format!("{}/{}/{}", msg.topic(), msg.partition(), msg.offset());
+    let headers = OwnedHeaders::new()
+        .insert(Header {
+            key: "posteriord-reason",
+            value: Some(reject.reason.as_str()),
+        })
+        .insert(Header {
+            key: "posteriord-message",
+            value: Some(reject.message.as_str()),
+        })
+        .insert(Header {
+            key: "posteriord-source",
+            value: Some(source.as_str()),
+        });
+    let payload = msg.payload().unwrap_or_default();
+    let mut record: BaseRecord<'_, [u8], [u8]> =
+        BaseRecord::to(topic).payload(payload).headers(headers);
+    if let Some(key) = msg.key() {
+        record = record.key(key);
+    }
+    match producer.send(record) {
+        Ok(()) => shared
+            .metrics
+            .dead_letters
+            .with_label_values(&[reject.reason.as_str()])
+            .inc(),
+        Err((e, _)) => {
+            tracing::warn!(error = %e, %source, "cannot queue a dead letter");
+            shared.metrics.dead_letter_errors.inc();
+        }
+    }
+}
+
+fn consume_loop(
+    consumer: &BaseConsumer<PartitionContext>,
+    shared: &Shared,
+    dead_letters: Option<&DeadLetterProducer>,
+    cfg: &LoopConfig,
+    shutdown: &CancellationToken,
+) {
+    let mut shard_ids: HashMap<(String, i32), String> = HashMap::new();
     let mut last_error_log = Instant::now() - Duration::from_secs(60);
+    let mut last_save = Instant::now();
     while !shutdown.is_cancelled() {
         let mut batch = Vec::new();
         let deadline = Instant::now() + MAX_BATCH_WAIT;
@@ -129,64 +409,113 @@ fn consume_loop(consumer: &BaseConsumer, shared: &Shared, shutdown: &Cancellatio
             }
             timeout = deadline - now;
         }
-        if batch.is_empty() {
-            continue;
+        if !batch.is_empty() {
+            apply_messages(consumer, shared, dead_letters, cfg, &batch, &mut shard_ids);
         }
-        crate::ingest::apply_batch(
-            &shared.engine,
-            &shared.metrics,
-            Source::Kafka,
-            batch.iter().map(|m| m.payload().unwrap_or_default()),
-            shared.max_event_bytes,
-        );
-        // Rejected events are counted by reason in apply_batch; they still advance the
-        // offset, since reading them again would refuse them again.
-        let mut in_batch: HashMap<(String, i32), i64> = HashMap::new();
-        for m in &batch {
-            let next = m.offset() + 1;
-            let entry = in_batch
-                .entry((m.topic().to_string(), m.partition()))
-                .or_insert(next);
-            *entry = (*entry).max(next);
-        }
-        let mut tpl = TopicPartitionList::new();
-        for ((topic, partition), next) in &in_batch {
-            if let Err(e) = tpl.add_partition_offset(topic, *partition, Offset::Offset(*next)) {
-                tracing::warn!(error = %e, topic, partition, "cannot record an applied offset");
+        if last_save.elapsed() >= cfg.snapshot_interval {
+            if flush_dead_letters(dead_letters, shared) {
+                shared.save_dirty(|id| id.starts_with("kafka/"));
             }
-        }
-        applied.extend(in_batch);
-        if let Err(e) = consumer.store_offsets(&tpl) {
-            // After a rebalance the partition may belong to another member; its events were
-            // applied here, and the new owner re-reads from the last commit.
-            tracing::debug!(error = %e, "cannot store offsets (partition revoked?)");
+            last_save = Instant::now();
         }
     }
-    commit_final(consumer, &applied);
+    if !flush_dead_letters(dead_letters, shared) {
+        tracing::error!(
+            "dead letters undelivered at shutdown; their events will be read again after restart"
+        );
+    } else if !shared.save_dirty(|id| id.starts_with("kafka/")) {
+        tracing::error!(
+            "state could not be saved at shutdown; events since the last save will be read again"
+        );
+    }
+    commit_positions(consumer, shared);
 }
 
-fn commit_final(consumer: &BaseConsumer, applied: &HashMap<(String, i32), i64>) {
-    if applied.is_empty() {
-        return;
+fn apply_messages(
+    consumer: &BaseConsumer<PartitionContext>,
+    shared: &Shared,
+    dead_letters: Option<&DeadLetterProducer>,
+    cfg: &LoopConfig,
+    batch: &[rdkafka::message::BorrowedMessage<'_>],
+    shard_ids: &mut HashMap<(String, i32), String>,
+) {
+    for m in batch {
+        shard_ids
+            .entry((m.topic().to_string(), m.partition()))
+            .or_insert_with(|| kafka_shard(m.topic(), m.partition()));
     }
-    // Only partitions still assigned may be committed; the others moved to another member.
-    let assigned = consumer.assignment().unwrap_or_default();
-    let mut tpl = TopicPartitionList::new();
-    for ((topic, partition), next) in applied {
-        if assigned.find_partition(topic, *partition).is_some() {
-            let _ = tpl.add_partition_offset(topic, *partition, Offset::Offset(*next));
+    let items: Vec<Item<'_>> = batch
+        .iter()
+        .map(|m| Item {
+            shard: shard_ids[&(m.topic().to_string(), m.partition())].as_str(),
+            offset: Some(m.offset()),
+            bytes: m.payload().unwrap_or_default(),
+        })
+        .collect();
+    let report = crate::ingest::apply_batch(
+        &shared.shards,
+        &shared.metrics,
+        Source::Kafka,
+        &items,
+        shared.max_event_bytes,
+    );
+    for (i, reject) in report.rejects() {
+        let m = &batch[i];
+        tracing::debug!(
+            topic = m.topic(),
+            partition = m.partition(),
+            offset = m.offset(),
+            reason = reject.reason.as_str(),
+            "refused event"
+        );
+        if let (Some(p), Some(topic)) = (dead_letters, &cfg.dead_letter_topic) {
+            dead_letter(p, topic, m, reject, shared);
         }
     }
+    // Keep the group's committed offsets close to what is applied, for lag tooling.
+    let mut next: HashMap<(&str, i32), i64> = HashMap::new();
+    for m in batch {
+        let e = next.entry((m.topic(), m.partition())).or_insert(0);
+        *e = (*e).max(m.offset() + 1);
+    }
+    let mut tpl = TopicPartitionList::new();
+    for ((topic, partition), offset) in &next {
+        let _ = tpl.add_partition_offset(topic, *partition, Offset::Offset(*offset));
+        shared
+            .metrics
+            .kafka_next_offset
+            .with_label_values(&[*topic, partition.to_string().as_str()])
+            .set(*offset);
+    }
+    if let Err(e) = consumer.store_offsets(&tpl) {
+        tracing::debug!(error = %e, "cannot store offsets (partition revoked?)");
+    }
+}
+
+/// Commit the applied positions of still-assigned partitions on shutdown.
+fn commit_positions(consumer: &BaseConsumer<PartitionContext>, shared: &Shared) {
+    let assigned = consumer.assignment().unwrap_or_default();
+    let shards = shared.lock_shards();
+    let mut tpl = TopicPartitionList::new();
+    for e in assigned.elements() {
+        if let Some(next) = shards
+            .shard(&kafka_shard(e.topic(), e.partition()))
+            .and_then(|s| s.next_offset)
+        {
+            let _ = tpl.add_partition_offset(e.topic(), e.partition(), Offset::Offset(next));
+        }
+    }
+    drop(shards);
     if tpl.count() == 0 {
         return;
     }
     match consumer.commit(&tpl, CommitMode::Sync) {
         Ok(()) => tracing::info!(
-            partitions = applied.len(),
+            partitions = tpl.count(),
             "committed applied offsets on shutdown"
         ),
         Err(e) => {
-            tracing::warn!(error = %e, "final offset commit failed; events since the last background commit will be read again")
+            tracing::warn!(error = %e, "final offset commit failed (the stored state keeps the exact position)")
         }
     }
 }

@@ -23,4 +23,5 @@ pub mod metrics;
 pub mod simulate;
 pub mod state;
 pub mod stats;
+pub mod store;
 pub mod summary;

@@ -41,6 +41,20 @@ pub struct Metrics {
     pub kafka_reachable: IntGauge,
     /// Exposed units per experiment and variant.
     pub variant_units: IntGaugeVec,
+    /// Messages between the next offset to apply and the partition's high watermark.
+    pub kafka_lag: IntGaugeVec,
+    /// Next offset to apply per partition (everything before it is in the state).
+    pub kafka_next_offset: IntGaugeVec,
+    /// Partitions whose state is being restored right now.
+    pub restoring: IntGauge,
+    /// Refused messages sent to the dead-letter topic, by reason.
+    pub dead_letters: IntCounterVec,
+    /// Dead-letter messages that could not be delivered.
+    pub dead_letter_errors: prometheus::IntCounter,
+    /// State snapshots written, by outcome (ok, error).
+    pub state_saves: IntCounterVec,
+    /// Experiments whose stored state did not fit the configuration at restore.
+    pub restore_mismatches: prometheus::IntCounter,
     /// Posterior mean per experiment, metric and variant.
     pub posterior_mean: GaugeVec,
     /// Lower end of the 95% equal-tailed credible interval.
@@ -109,7 +123,70 @@ impl Metrics {
         registry
             .register(Box::new(variant_units.clone()))
             .expect("metric registered once");
+        let int_gauge_vec = |name: &str, help: &str, labels: &[&str]| {
+            let g =
+                IntGaugeVec::new(Opts::new(name, help), labels).expect("valid metric definition");
+            registry
+                .register(Box::new(g.clone()))
+                .expect("metric registered once");
+            g
+        };
+        let int_gauge = |name: &str, help: &str| {
+            let g = IntGauge::new(name, help).expect("valid metric definition");
+            registry
+                .register(Box::new(g.clone()))
+                .expect("metric registered once");
+            g
+        };
+        let counter = |name: &str, help: &str| {
+            let c = prometheus::IntCounter::new(name, help).expect("valid metric definition");
+            registry
+                .register(Box::new(c.clone()))
+                .expect("metric registered once");
+            c
+        };
+        let kafka_lag = int_gauge_vec(
+            "posteriord_kafka_lag",
+            "Messages not yet applied: high watermark minus next offset to apply.",
+            &["topic", "partition"],
+        );
+        let kafka_next_offset = int_gauge_vec(
+            "posteriord_kafka_next_offset",
+            "Next offset to apply; everything before it is in the state.",
+            &["topic", "partition"],
+        );
+        let restoring = int_gauge(
+            "posteriord_restoring_partitions",
+            "Partitions whose state is being restored.",
+        );
+        let dead_letters = counter_vec(
+            &registry,
+            "posteriord_dead_letters_total",
+            "Refused messages written to the dead-letter topic, by reason.",
+            &["reason"],
+        );
+        let dead_letter_errors = counter(
+            "posteriord_dead_letter_errors_total",
+            "Dead-letter messages that could not be delivered.",
+        );
+        let state_saves = counter_vec(
+            &registry,
+            "posteriord_state_saves_total",
+            "State snapshots written, by result.",
+            &["result"],
+        );
+        let restore_mismatches = counter(
+            "posteriord_restore_mismatches_total",
+            "Experiments whose stored state did not fit the configuration at restore.",
+        );
         let m = Metrics {
+            kafka_lag,
+            kafka_next_offset,
+            restoring,
+            dead_letters,
+            dead_letter_errors,
+            state_saves,
+            restore_mismatches,
             posterior_mean: gauge_vec(
                 &registry,
                 "posteriord_posterior_mean",

@@ -297,13 +297,27 @@ fn poisson(rng: &mut StdRng, mean: f64) -> u64 {
     }
 }
 
+/// Shard of simulated events.
+pub const SIMULATOR_SHARD: &str = "simulator";
+
+fn items(lines: &[String]) -> Vec<crate::ingest::Item<'_>> {
+    lines
+        .iter()
+        .map(|l| crate::ingest::Item {
+            shard: SIMULATOR_SHARD,
+            offset: None,
+            bytes: l.as_bytes(),
+        })
+        .collect()
+}
+
 /// Feed simulated traffic into `shared` every 100 ms until `shutdown`.
 pub async fn run(options: SimulateOptions, shared: Arc<Shared>, shutdown: CancellationToken) {
     let scenarios: Vec<Scenario> = {
-        let engine = shared.lock_engine();
+        let shards = shared.lock_shards();
         demo_scenarios()
             .into_iter()
-            .filter(|s| engine.experiment(&s.def.id).is_some())
+            .filter(|s| shards.has_experiment(&s.def.id))
             .collect()
     };
     let mut generator = Generator::new(scenarios, options.seed);
@@ -318,11 +332,12 @@ pub async fn run(options: SimulateOptions, shared: Arc<Shared>, shutdown: Cancel
         let units = carry.floor() as usize;
         carry -= units as f64;
         let lines = generator.tick(units);
+        let items = items(&lines);
         crate::ingest::apply_batch(
-            &shared.engine,
+            &shared.shards,
             &shared.metrics,
             Source::Simulator,
-            lines.iter().map(|l| l.as_bytes()),
+            &items,
             shared.max_event_bytes,
         );
     }
@@ -334,30 +349,25 @@ mod tests {
     use super::*;
     use crate::event::Outcome;
     use crate::metrics::Metrics;
-    use crate::state::Engine;
+    use crate::state::shards::Shards;
     use std::sync::Mutex;
 
     #[test]
     fn simulated_traffic_is_valid_and_exercises_every_outcome() {
-        let engine = Mutex::new(Engine::new(demo_experiments()));
+        let shards = Mutex::new(Shards::new(demo_experiments()));
         let metrics = Metrics::new();
         let mut generator = Generator::new(demo_scenarios(), 1);
         let mut totals = [0u64; Outcome::ALL.len()];
         for _ in 0..200 {
             let lines = generator.tick(20);
             let report = crate::ingest::apply_batch(
-                &engine,
+                &shards,
                 &metrics,
                 Source::Simulator,
-                lines.iter().map(|l| l.as_bytes()),
+                &items(&lines),
                 1 << 16,
             );
-            assert_eq!(
-                report.n_rejected(),
-                0,
-                "{:?}",
-                report.results.iter().find(|r| r.is_err())
-            );
+            assert_eq!(report.n_rejected(), 0, "{:?}", report.rejects().next());
             for (i, o) in Outcome::ALL.iter().enumerate() {
                 totals[i] += report.count(*o);
             }
@@ -368,8 +378,11 @@ mod tests {
                 assert!(totals[i] > 0, "no {o:?} in simulated traffic");
             }
         }
-        let e = engine.lock().unwrap();
-        let snap = e.experiment("crumb-checkout-copy").unwrap().snapshot();
+        let snap = shards
+            .lock()
+            .unwrap()
+            .snapshot("crumb-checkout-copy")
+            .unwrap();
         assert_eq!(snap.units.iter().sum::<u64>(), 4_000);
     }
 }

@@ -36,6 +36,9 @@ pub const DEFAULT_KAFKA_GROUP: &str = "posteriord";
 /// Default state directory.
 pub const DEFAULT_STORE_DIR: &str = "./posteriord-data";
 
+/// Default time between state snapshots: bounds how much input is re-read after a crash.
+pub const DEFAULT_SNAPSHOT_INTERVAL_MS: u64 = 5_000;
+
 /// The validated configuration.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Config {
@@ -69,6 +72,8 @@ pub struct KafkaConfig {
     pub group: String,
     /// Largest accepted message; larger ones are rejected as `too_large`.
     pub max_event_bytes: usize,
+    /// Topic that receives refused messages with their reason in headers, if set.
+    pub dead_letter_topic: Option<String>,
     /// librdkafka properties passed through unchanged.
     pub properties: BTreeMap<String, String>,
 }
@@ -78,6 +83,8 @@ pub struct KafkaConfig {
 pub struct StoreConfig {
     /// State directory.
     pub dir: PathBuf,
+    /// How often changed state is written (also on revocation and shutdown).
+    pub snapshot_interval: std::time::Duration,
 }
 
 /// A configuration error: where, which key, what is wrong.
@@ -199,7 +206,21 @@ impl Ctx<'_> {
             Some(v) => self.positive_size(&v, "http.max_body_bytes")?,
         };
         let kafka = raw.kafka.map(|k| self.kafka(k)).transpose()?;
+        let snapshot_interval = match &raw.store.snapshot_interval_ms {
+            None => std::time::Duration::from_millis(DEFAULT_SNAPSHOT_INTERVAL_MS),
+            Some(v) => match u64::try_from(*v.get_ref()) {
+                Ok(ms) if (100..=3_600_000).contains(&ms) => std::time::Duration::from_millis(ms),
+                _ => {
+                    return Err(self.err(
+                        v.span(),
+                        "store.snapshot_interval_ms",
+                        "must be between 100 and 3600000 milliseconds",
+                    ))
+                }
+            },
+        };
         let store = StoreConfig {
+            snapshot_interval,
             dir: match raw.store.dir {
                 None => PathBuf::from(DEFAULT_STORE_DIR),
                 Some(d) if d.get_ref().trim().is_empty() => {
@@ -286,6 +307,20 @@ impl Ctx<'_> {
             None => DEFAULT_MAX_EVENT_BYTES,
             Some(v) => self.positive_size(&v, "kafka.max_event_bytes")?,
         };
+        let dead_letter_topic = match k.dead_letter_topic {
+            None => None,
+            Some(t) if t.get_ref().trim().is_empty() => {
+                return Err(self.err(t.span(), "kafka.dead_letter_topic", "must not be empty"))
+            }
+            Some(t) if topics.contains(t.get_ref()) => {
+                return Err(self.err(
+                    t.span(),
+                    "kafka.dead_letter_topic",
+                    "must differ from the consumed topics",
+                ))
+            }
+            Some(t) => Some(t.into_inner()),
+        };
         let mut properties = BTreeMap::new();
         for (name, value) in k.properties {
             let text = match value.into_inner() {
@@ -301,6 +336,7 @@ impl Ctx<'_> {
             topics,
             group,
             max_event_bytes,
+            dead_letter_topic,
             properties,
         })
     }
@@ -614,6 +650,7 @@ fn apply_env(config: &mut Config, env: &[(String, String)]) -> Result<(), Config
             topics: Vec::new(),
             group: DEFAULT_KAFKA_GROUP.into(),
             max_event_bytes: DEFAULT_MAX_EVENT_BYTES,
+            dead_letter_topic: None,
             properties: BTreeMap::new(),
         });
     }

@@ -32,6 +32,7 @@ pub(super) struct RawKafka {
     pub topics: Option<Spanned<Vec<Spanned<String>>>>,
     pub group: Option<Spanned<String>>,
     pub max_event_bytes: Option<Spanned<i64>>,
+    pub dead_letter_topic: Option<Spanned<String>>,
     #[serde(default)]
     pub properties: BTreeMap<String, Spanned<PropertyValue>>,
 }
@@ -50,6 +51,7 @@ pub(super) enum PropertyValue {
 #[serde(deny_unknown_fields)]
 pub(super) struct RawStore {
     pub dir: Option<Spanned<String>>,
+    pub snapshot_interval_ms: Option<Spanned<i64>>,
 }
 
 #[derive(Debug, Deserialize)]

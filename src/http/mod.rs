@@ -20,8 +20,12 @@ use tokio_util::sync::CancellationToken;
 use crate::app::Shared;
 use crate::decode::split_body;
 use crate::event::Outcome;
+use crate::ingest::Item;
 use crate::metrics::Source;
 use crate::summary::{summarize, ExperimentSummary, DEFAULT_LEVEL};
+
+/// Shard of events posted over HTTP.
+pub const HTTP_SHARD: &str = "http";
 
 /// Build the router over `shared`.
 pub fn router(shared: Arc<Shared>, max_body_bytes: usize) -> Router {
@@ -62,7 +66,8 @@ async fn healthz() -> Json<Value> {
 
 async fn readyz(State(shared): State<Arc<Shared>>) -> Response {
     let kafka = shared.kafka_reachable();
-    let ready = kafka.unwrap_or(true);
+    let restoring = shared.is_restoring();
+    let ready = kafka.unwrap_or(true) && !restoring;
     let body = json!({
         "ready": ready,
         "checks": {
@@ -70,7 +75,8 @@ async fn readyz(State(shared): State<Arc<Shared>>) -> Response {
                 None => "not configured",
                 Some(true) => "reachable",
                 Some(false) => "unreachable",
-            }
+            },
+            "state": if restoring { "restoring" } else { "ready" },
         }
     });
     let status = if ready {
@@ -101,19 +107,24 @@ async fn ingest(State(shared): State<Arc<Shared>>, body: Bytes) -> Response {
             Ok(items) => items,
             Err(e) => return Err(e.to_string()),
         };
+        let batch: Vec<Item<'_>> = items
+            .iter()
+            .map(|(_, bytes)| Item {
+                shard: HTTP_SHARD,
+                offset: None,
+                bytes,
+            })
+            .collect();
         let report = crate::ingest::apply_batch(
-            &shared.engine,
+            &shared.shards,
             &shared.metrics,
             Source::Http,
-            items.iter().map(|(_, bytes)| *bytes),
+            &batch,
             shared.max_event_bytes,
         );
-        let errors: Vec<doc::IngestError> = items
-            .iter()
-            .zip(&report.results)
-            .filter_map(|((pos, _), r)| {
-                r.as_ref().err().map(|rej| doc::IngestError::new(*pos, rej))
-            })
+        let errors: Vec<doc::IngestError> = report
+            .rejects()
+            .map(|(i, rej)| doc::IngestError::new(items[i].0, rej))
             .collect();
         let mut not_applied = serde_json::Map::new();
         for o in Outcome::ALL.into_iter().filter(|o| *o != Outcome::Applied) {
@@ -143,18 +154,13 @@ async fn ingest(State(shared): State<Arc<Shared>>, body: Bytes) -> Response {
 }
 
 async fn list_experiments(State(shared): State<Arc<Shared>>) -> Json<Value> {
-    let entries: Vec<Value> = {
-        let engine = shared.lock_engine();
-        engine
-            .experiments()
-            .map(|e| doc::experiment_entry(&e.snapshot()))
-            .collect()
-    };
+    let snapshots = shared.lock_shards().snapshots();
+    let entries: Vec<Value> = snapshots.iter().map(doc::experiment_entry).collect();
     Json(json!({ "experiments": entries }))
 }
 
 async fn get_experiment(State(shared): State<Arc<Shared>>, Path(id): Path<String>) -> Response {
-    let snapshot = shared.lock_engine().experiment(&id).map(|e| e.snapshot());
+    let snapshot = shared.lock_shards().snapshot(&id);
     let Some(snapshot) = snapshot else {
         return error(
             StatusCode::NOT_FOUND,
@@ -201,11 +207,7 @@ fn refresh_gauges(shared: &Shared, summaries: &[ExperimentSummary]) {
 }
 
 async fn metrics(State(shared): State<Arc<Shared>>) -> Response {
-    let snapshots: Vec<_> = shared
-        .lock_engine()
-        .experiments()
-        .map(|e| e.snapshot())
-        .collect();
+    let snapshots = shared.lock_shards().snapshots();
     let text = blocking(move || {
         let summaries: Vec<ExperimentSummary> = snapshots
             .into_iter()

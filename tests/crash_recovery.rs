@@ -1,0 +1,248 @@
+//! Crash and outage tests against a real broker: the service is SIGKILLed at random moments
+//! while an independent client (Python confluent-kafka) produces events, or its broker is
+//! stopped and restarted; afterwards the API's counts must equal the ground truth computed
+//! independently from the produced events — exactly.
+//!
+//! `POSTERIORD_SOAK=1` raises the crash loop to 1M events and 40 kills.
+
+mod common;
+
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+
+use common::{
+    observed, seen, signal, wait_exit, wait_for, workload, Service, SPECS, TEST_EXPERIMENTS,
+};
+use rand::{Rng, SeedableRng};
+
+fn brokers() -> String {
+    std::env::var("POSTERIORD_TEST_BROKERS").unwrap_or_else(|_| {
+        panic!("POSTERIORD_TEST_BROKERS is not set: run the suite with tests/run.sh")
+    })
+}
+
+fn soak() -> bool {
+    std::env::var("POSTERIORD_SOAK").is_ok_and(|v| v == "1")
+}
+
+fn unique(prefix: &str) -> String {
+    let nanos = SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .unwrap()
+        .as_nanos();
+    format!("{prefix}-{}-{nanos}", std::process::id())
+}
+
+/// Start the independent producer in the background.
+fn spawn_producer(brokers: &str, topic: &str, lines: &[String], dir: &Path) -> Child {
+    let file = dir.join(format!("{topic}.ndjson"));
+    std::fs::write(&file, lines.join("\n") + "\n").unwrap();
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/produce.py");
+    Command::new("python3")
+        .arg(script)
+        .args(["--brokers", brokers, "--topic", topic, "--partitions", "4"])
+        .arg(&file)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("python3 tests/tools/produce.py (confluent-kafka)")
+}
+
+fn config(brokers: &str, topic: &str, group: &str) -> String {
+    // A short session timeout lets a replacement take over soon after a kill; frequent
+    // snapshots make kills land between, during and right after saves.
+    format!(
+        r#"[http]
+addr = "127.0.0.1:0"
+[store]
+snapshot_interval_ms = 250
+[kafka]
+brokers = "{brokers}"
+topics = ["{topic}"]
+group = "{group}"
+[kafka.properties]
+"session.timeout.ms" = 3000
+"heartbeat.interval.ms" = 500
+{TEST_EXPERIMENTS}"#
+    )
+}
+
+fn total_seen(service: &Service) -> u64 {
+    SPECS.iter().map(|s| seen(service, s)).sum()
+}
+
+#[test]
+fn sigkill_at_random_moments_loses_and_doubles_nothing() {
+    let brokers = brokers();
+    let (n_events, n_kills) = if soak() {
+        (1_000_000, 40)
+    } else {
+        (100_000, 20)
+    };
+    let topic = unique("crash-events");
+    let group = unique("crash-group");
+    let scratch = tempfile::tempdir().unwrap();
+    let state: PathBuf = scratch.path().join("state");
+    let w = workload(31, n_events);
+    let mut producer = spawn_producer(&brokers, &topic, &w.lines, scratch.path());
+    let cfg = config(&brokers, &topic, &group);
+    let mut rng = rand::rngs::StdRng::seed_from_u64(99);
+    let started = Instant::now();
+    for kill in 0..n_kills {
+        let mut service = Service::start_in(&cfg, Some(&state), &[]);
+        std::thread::sleep(Duration::from_millis(rng.random_range(300..2_000)));
+        signal(service.child.id(), "KILL");
+        let status =
+            wait_exit(&mut service.child, Duration::from_secs(10)).expect("killed process exits");
+        assert!(!status.success(), "kill {kill}: the process was not killed");
+        // Let the broker expire the dead member before its replacement joins.
+        std::thread::sleep(Duration::from_millis(3_500));
+    }
+    let out = producer.wait_with_output().unwrap();
+    assert!(
+        out.status.success(),
+        "producer failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let delivered: usize = String::from_utf8_lossy(&out.stdout).trim().parse().unwrap();
+    assert_eq!(delivered, w.lines.len());
+    let service = Service::start_in(&cfg, Some(&state), &[]);
+    wait_for(
+        Duration::from_secs(300),
+        "every event to be counted",
+        || (total_seen(&service) >= w.lines.len() as u64).then_some(()),
+    );
+    std::thread::sleep(Duration::from_secs(2));
+    for (spec, expected) in SPECS.iter().zip(&w.expected) {
+        assert_eq!(
+            &observed(&service, spec),
+            expected,
+            "experiment {}",
+            spec.id
+        );
+    }
+    eprintln!(
+        "crash loop: {n_events} events, {n_kills} SIGKILLs, exact after {:?}",
+        started.elapsed()
+    );
+}
+
+/// A private broker this test may stop and restart; sqlite storage keeps the topic.
+struct PrivateBroker {
+    child: Option<Child>,
+    dir: PathBuf,
+    port: u16,
+}
+
+impl PrivateBroker {
+    fn start(dir: &Path) -> PrivateBroker {
+        let port = std::net::TcpListener::bind("127.0.0.1:0")
+            .unwrap()
+            .local_addr()
+            .unwrap()
+            .port();
+        let mut b = PrivateBroker {
+            child: None,
+            dir: dir.to_path_buf(),
+            port,
+        };
+        b.up();
+        b
+    }
+
+    fn up(&mut self) {
+        let url = format!("tcp://127.0.0.1:{}", self.port);
+        // tansu resolves a sqlite:// path against its working directory.
+        let child = Command::new("tansu")
+            .args([
+                "broker",
+                "--listener-url",
+                &url,
+                "--advertised-listener-url",
+                &url,
+            ])
+            .args(["--storage-engine", "sqlite://tansu.db"])
+            .current_dir(&self.dir)
+            .stdout(Stdio::null())
+            .stderr(std::fs::File::create(self.dir.join("tansu.log")).unwrap())
+            .spawn()
+            .expect("start tansu (installed by tests/run.sh)");
+        self.child = Some(child);
+        wait_for(
+            Duration::from_secs(20),
+            "the private broker to listen",
+            || {
+                std::net::TcpStream::connect(("127.0.0.1", self.port))
+                    .ok()
+                    .map(|_| ())
+            },
+        );
+    }
+
+    fn down(&mut self) {
+        if let Some(mut c) = self.child.take() {
+            let _ = c.kill();
+            let _ = c.wait();
+        }
+    }
+
+    fn addr(&self) -> String {
+        format!("127.0.0.1:{}", self.port)
+    }
+}
+
+impl Drop for PrivateBroker {
+    fn drop(&mut self) {
+        self.down();
+    }
+}
+
+#[test]
+fn a_broker_outage_leaves_the_service_up_and_resumes_exactly() {
+    let scratch = tempfile::tempdir().unwrap();
+    let mut broker = PrivateBroker::start(scratch.path());
+    let topic = unique("outage-events");
+    let w = workload(41, 10_000);
+    let (first, second) = w.lines.split_at(5_000);
+    let mut p = spawn_producer(&broker.addr(), &topic, first, scratch.path());
+    assert!(p.wait().unwrap().success());
+    let cfg = config(&broker.addr(), &topic, "outage-group");
+    let service = Service::start_in(&cfg, Some(&scratch.path().join("state")), &[]);
+    wait_for(
+        Duration::from_secs(120),
+        "the first half to be counted",
+        || (total_seen(&service) == first.len() as u64).then_some(()),
+    );
+    let outage = Duration::from_secs(if soak() { 60 } else { 30 });
+    broker.down();
+    let down_at = Instant::now();
+    wait_for(Duration::from_secs(20), "readiness to turn false", || {
+        let (status, body) = service.get("/readyz");
+        (status == 503 && body["checks"]["kafka"] == "unreachable").then_some(())
+    });
+    // The API keeps answering during the outage.
+    let (status, _) = service.get("/v1/experiments/checkout-copy");
+    assert_eq!(status, 200);
+    std::thread::sleep(outage.saturating_sub(down_at.elapsed()));
+    broker.up();
+    wait_for(Duration::from_secs(60), "readiness to return", || {
+        (service.get("/readyz").0 == 200).then_some(())
+    });
+    let mut p = spawn_producer(&broker.addr(), &topic, second, scratch.path());
+    assert!(p.wait().unwrap().success());
+    wait_for(
+        Duration::from_secs(180),
+        "the second half to be counted",
+        || (total_seen(&service) >= w.lines.len() as u64).then_some(()),
+    );
+    std::thread::sleep(Duration::from_secs(1));
+    for (spec, expected) in SPECS.iter().zip(&w.expected) {
+        assert_eq!(
+            &observed(&service, spec),
+            expected,
+            "experiment {}",
+            spec.id
+        );
+    }
+}
