@@ -75,6 +75,16 @@ pub fn decode_event(bytes: &[u8], max_bytes: usize) -> Result<Event<'_>, Reject>
             format!("event is {} bytes; the limit is {max_bytes}", bytes.len()),
         ));
     }
+    // serde would read a JSON array into the struct field by field, so check the shape first.
+    let first = bytes.iter().find(|b| !b.is_ascii_whitespace());
+    if first != Some(&b'{') {
+        return Err(
+            match serde_json::from_slice::<serde::de::IgnoredAny>(bytes) {
+                Ok(_) => Reject::new(RejectReason::NotAnObject, "an event must be a JSON object"),
+                Err(e) => Reject::new(RejectReason::InvalidJson, format!("not valid JSON: {e}")),
+            },
+        );
+    }
     let raw: RawEvent<'_> = serde_json::from_slice(bytes).map_err(|e| classify(bytes, &e))?;
     validate(raw)
 }
@@ -360,6 +370,8 @@ mod tests {
         assert_eq!(reason("\u{feff}"), RejectReason::InvalidJson);
         assert_eq!(reason("[1,2]"), RejectReason::NotAnObject);
         assert_eq!(reason("17"), RejectReason::NotAnObject);
+        assert_eq!(reason(r#"["exposure","x","v"]"#), RejectReason::NotAnObject);
+        assert_eq!(reason(""), RejectReason::InvalidJson);
         assert_eq!(reason(r#"{"experiment":"x"}"#), RejectReason::UnknownType);
         assert_eq!(
             reason(r#"{"type":"purchase","experiment":"x"}"#),

@@ -260,6 +260,43 @@ fn flush_dead_letters(producer: Option<&DeadLetterProducer>, shared: &Shared) ->
     }
 }
 
+/// Create `topic` if the cluster does not have it (broker-default replication), so dead
+/// letters have somewhere to go on clusters without topic auto-creation.
+async fn ensure_topic(cfg: &KafkaConfig, topic: &str) -> Result<(), KafkaError> {
+    use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
+    use rdkafka::client::DefaultClientContext;
+    let admin: AdminClient<DefaultClientContext> = producer_config(cfg).create()?;
+    let metadata = admin
+        .inner()
+        .fetch_metadata(Some(topic), Duration::from_secs(10))?;
+    let exists = metadata
+        .topics()
+        .iter()
+        .any(|t| t.name() == topic && t.error().is_none() && !t.partitions().is_empty());
+    if exists {
+        return Ok(());
+    }
+    let new = NewTopic::new(topic, 1, TopicReplication::Fixed(-1));
+    let results = admin
+        .create_topics(
+            [&new],
+            &AdminOptions::new().operation_timeout(Some(Duration::from_secs(10))),
+        )
+        .await?;
+    for r in results {
+        match r {
+            Ok(_) => tracing::info!(topic, "created the dead-letter topic"),
+            Err((_, rdkafka::types::RDKafkaErrorCode::TopicAlreadyExists)) => {}
+            Err((name, code)) => {
+                return Err(KafkaError::AdminOp(code)).inspect_err(|_| {
+                    tracing::error!(topic = %name, error = %code, "cannot create the dead-letter topic; create it by hand");
+                })
+            }
+        }
+    }
+    Ok(())
+}
+
 /// Start the consumer thread and the broker probe on `tracker`.
 pub fn start(
     cfg: &KafkaConfig,
@@ -283,7 +320,9 @@ pub fn start(
     consumer.subscribe(&topics)?;
     tracing::info!(brokers = %cfg.brokers, topics = ?cfg.topics, group = %cfg.group, "kafka consumer subscribed");
 
-    let probe: BaseConsumer = client_config(cfg).create()?;
+    let mut probe_config = client_config(cfg);
+    probe_config.set("statistics.interval.ms", "0");
+    let probe: BaseConsumer = probe_config.create()?;
     {
         let shared = Arc::clone(&shared);
         let shutdown = shutdown.clone();
@@ -293,14 +332,15 @@ pub fn start(
         dead_letter_topic: cfg.dead_letter_topic.clone(),
         snapshot_interval: shared_snapshot_interval(&shared),
     };
+    let handle = tokio::runtime::Handle::current();
+    let kafka_cfg = cfg.clone();
     tracker.spawn_blocking(move || {
-        consume_loop(
-            &consumer,
-            &shared,
-            dead_letters.as_deref(),
-            &loop_cfg,
-            &shutdown,
-        )
+        if let Some(topic) = &loop_cfg.dead_letter_topic {
+            if let Err(e) = handle.block_on(ensure_topic(&kafka_cfg, topic)) {
+                tracing::error!(topic, error = %e, "dead-letter topic unavailable; the producer keeps retrying");
+            }
+        }
+        consume_loop(&consumer, &shared, dead_letters.as_deref(), &loop_cfg, &shutdown)
     });
     Ok(())
 }

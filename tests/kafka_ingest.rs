@@ -152,3 +152,134 @@ fn readiness_is_false_while_the_broker_is_unreachable() {
     let (status, _) = service.get("/v1/experiments");
     assert_eq!(status, 200);
 }
+
+/// Read `count` messages of `topic` with the independent client.
+fn consume(brokers: &str, topic: &str, count: usize) -> Vec<serde_json::Value> {
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/consume.py");
+    let out = Command::new("python3")
+        .arg(script)
+        .args([
+            "--brokers",
+            brokers,
+            "--topic",
+            topic,
+            "--count",
+            &count.to_string(),
+            "--timeout",
+            "60",
+        ])
+        .output()
+        .expect("run python3 tests/tools/consume.py (confluent-kafka)");
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8_lossy(&out.stdout)
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect()
+}
+
+#[test]
+fn poison_messages_go_to_the_dead_letter_topic_and_the_consumer_keeps_going() {
+    let brokers = brokers();
+    let topic = unique("poison-events");
+    let dead = unique("poison-dead");
+    let scratch = tempfile::tempdir().unwrap();
+    let w = workload(51, 2_000);
+    let huge = format!(r#"{{"type":"exposure","pad":"{}"}}"#, "x".repeat(70_000));
+    let poison = [
+        ("not json", "invalid_json"),
+        (
+            "{\"type\":\"exposure\",\"experiment\":\"checkout-copy\",\"variant\":\"con",
+            "invalid_json",
+        ),
+        ("[\"an\",\"array\"]", "not_an_object"),
+        (
+            r#"{"type":"exposure","experiment":"checkout-copy","variant":12,"unit":"u","time":"2026-05-02T10:00:00Z"}"#,
+            "wrong_type",
+        ),
+        (
+            r#"{"type":"exposure","experiment":"checkout-copy","variant":"teal","unit":"u","time":"2026-05-02T10:00:00Z"}"#,
+            "unknown_variant",
+        ),
+        (huge.as_str(), "too_large"),
+    ];
+    let mut lines = w.lines.clone();
+    for (i, (p, _)) in poison.iter().enumerate() {
+        lines.insert(300 * (i + 1), p.to_string());
+    }
+    assert_eq!(
+        produce(&brokers, &topic, &lines, scratch.path()),
+        lines.len()
+    );
+    let config = kafka_config(&brokers, &topic, &unique("poison-group")).replace(
+        "[kafka.properties]",
+        &format!("dead_letter_topic = \"{dead}\"\n[kafka.properties]"),
+    );
+    let service = Service::start(&config);
+    wait_for(
+        Duration::from_secs(120),
+        "every valid event to be counted",
+        || {
+            (SPECS.iter().map(|s| seen(&service, s)).sum::<u64>() == w.lines.len() as u64)
+                .then_some(())
+        },
+    );
+    for (spec, expected) in SPECS.iter().zip(&w.expected) {
+        assert_eq!(
+            &observed(&service, spec),
+            expected,
+            "experiment {}",
+            spec.id
+        );
+    }
+    let letters = consume(&brokers, &dead, poison.len());
+    assert_eq!(
+        letters.len(),
+        poison.len(),
+        "dead letters read back\n{}",
+        service.log_text()
+    );
+    // Unkeyed messages spread over partitions, so compare as sorted lists of (reason, length,
+    // start of the payload): the payload is kept byte for byte.
+    let summary = |reason: &str, value: &str| {
+        (
+            reason.to_string(),
+            value.len(),
+            value.chars().take(40).collect::<String>(),
+        )
+    };
+    let mut got: Vec<_> = letters
+        .iter()
+        .map(|l| {
+            summary(
+                l["headers"]["posteriord-reason"].as_str().unwrap(),
+                l["value"].as_str().unwrap(),
+            )
+        })
+        .collect();
+    let mut want: Vec<_> = poison.iter().map(|(p, r)| summary(r, p)).collect();
+    got.sort();
+    want.sort();
+    assert_eq!(got, want);
+    for letter in &letters {
+        assert!(
+            letter["headers"]["posteriord-message"]
+                .as_str()
+                .unwrap()
+                .len()
+                > 5
+        );
+        assert!(letter["headers"]["posteriord-source"]
+            .as_str()
+            .unwrap()
+            .starts_with(&topic));
+    }
+    let (_, text) = service.get_text("/metrics");
+    assert!(
+        text.contains(r#"posteriord_dead_letters_total{reason="invalid_json"} 2"#),
+        "{text}"
+    );
+}
