@@ -13,7 +13,7 @@
 //! strictly ordered without extra locking.
 
 use std::collections::HashMap;
-use std::sync::Arc;
+use std::sync::{Arc, OnceLock};
 use std::time::{Duration, Instant};
 
 use rdkafka::client::ClientContext;
@@ -29,6 +29,7 @@ use tokio_util::sync::CancellationToken;
 use tokio_util::task::TaskTracker;
 
 use crate::app::Shared;
+use crate::changelog::Changelog;
 use crate::config::KafkaConfig;
 use crate::event::Reject;
 use crate::ingest::Item;
@@ -102,6 +103,57 @@ type DeadLetterProducer = ThreadedProducer<DefaultProducerContext>;
 struct PartitionContext {
     shared: Arc<Shared>,
     dead_letters: Option<Arc<DeadLetterProducer>>,
+    /// Set once the changelog is reachable (before the consumer subscribes).
+    changelog: Arc<OnceLock<Changelog>>,
+}
+
+/// The input partition number of a Kafka shard id (`kafka/<topic>/<partition>`).
+fn shard_partition(id: &str) -> Option<i32> {
+    id.rsplit('/').next()?.parse().ok()
+}
+
+/// Publish every Kafka shard whose position moved since its last publication; `only` limits
+/// it to some shards. Returns whether all publications succeeded.
+fn publish_changed(shared: &Shared, changelog: &Changelog, only: Option<&[String]>) -> bool {
+    let images: Vec<(String, crate::state::shards::ShardImage)> = {
+        let shards = shared.lock_shards();
+        shards
+            .ids()
+            .into_iter()
+            .filter(|id| id.starts_with("kafka/"))
+            .filter(|id| only.is_none_or(|o| o.contains(id)))
+            .filter_map(|id| {
+                let shard = shards.shard(&id)?;
+                if changelog.is_current(&id, shard.next_offset) {
+                    return None;
+                }
+                Some((id, shard.image()))
+            })
+            .collect()
+    };
+    let mut ok = true;
+    for (id, image) in images {
+        let Some(partition) = shard_partition(&id) else {
+            continue;
+        };
+        match changelog.publish(&id, partition, &image) {
+            Ok(()) => shared
+                .metrics
+                .changelog_publishes
+                .with_label_values(&["ok"])
+                .inc(),
+            Err(e) => {
+                ok = false;
+                shared
+                    .metrics
+                    .changelog_publishes
+                    .with_label_values(&["error"])
+                    .inc();
+                tracing::warn!(shard = %id, error = %e, "cannot publish partition state to the changelog; will retry");
+            }
+        }
+    }
+    ok
 }
 
 impl ClientContext for PartitionContext {
@@ -175,6 +227,42 @@ impl ConsumerContext for PartitionContext {
 }
 
 impl PartitionContext {
+    /// The changelog's state of shard `id` if it is further along than `local`.
+    fn newer_from_changelog(
+        &self,
+        id: &str,
+        partition: i32,
+        local: Option<Shard>,
+    ) -> Option<Shard> {
+        let Some(changelog) = self.changelog.get() else {
+            return local;
+        };
+        let remote = match changelog.restore(id, partition) {
+            Ok(r) => r,
+            Err(e) => {
+                tracing::error!(shard = id, error = %e, "cannot read the changelog; using local state only");
+                return local;
+            }
+        };
+        let local_pos = local.as_ref().and_then(|s| s.next_offset);
+        match remote {
+            Some(image) if image.next_offset > local_pos => {
+                let defs = self.shared.lock_shards().defs().to_vec();
+                let (shard, mismatches) = Shard::from_image(&defs, image);
+                for m in &mismatches {
+                    tracing::error!(
+                        shard = id,
+                        "{m}; that experiment starts empty in this shard"
+                    );
+                    self.shared.metrics.restore_mismatches.inc();
+                }
+                tracing::info!(shard = id, next_offset = ?shard.next_offset, "restored from the changelog");
+                Some(shard)
+            }
+            _ => local,
+        }
+    }
+
     /// Load each assigned partition's stored state and point the assignment at its offset.
     fn restore(&self, tpl: &mut TopicPartitionList) {
         let partitions: Vec<(String, i32)> = tpl
@@ -186,27 +274,29 @@ impl PartitionContext {
         for (topic, partition) in &partitions {
             let id = kafka_shard(topic, *partition);
             let started = Instant::now();
-            let shard = match self.shared.load_shard(&id) {
-                Ok(Some(shard)) => shard,
-                Ok(None) => {
+            let local = match self.shared.load_shard(&id) {
+                Ok(local) => local,
+                Err(e) => {
+                    // The damaged file is kept for inspection; the changelog or a re-read
+                    // from the beginning rebuilds the state exactly.
+                    tracing::error!(topic, partition, error = %e, "stored state unreadable; ignoring it");
+                    if let Some(store) = &self.shared.store {
+                        let path = store.path(&id);
+                        let _ = std::fs::rename(&path, path.with_extension("state.damaged"));
+                    }
+                    None
+                }
+            };
+            let shard = self
+                .newer_from_changelog(&id, *partition, local)
+                .unwrap_or_else(|| {
                     tracing::info!(
                         topic,
                         partition,
                         "no stored state for the partition: reading it from the beginning"
                     );
                     Shard::new(self.shared.lock_shards().defs())
-                }
-                Err(e) => {
-                    // Starting empty at the beginning rebuilds the state exactly if the topic
-                    // still holds every event; the damaged file is kept for inspection.
-                    tracing::error!(topic, partition, error = %e, "stored state unreadable: rebuilding the partition from the beginning");
-                    if let Some(store) = &self.shared.store {
-                        let path = store.path(&id);
-                        let _ = std::fs::rename(&path, path.with_extension("state.damaged"));
-                    }
-                    Shard::new(self.shared.lock_shards().defs())
-                }
-            };
+                });
             let offset = match shard.next_offset {
                 Some(next) => Offset::Offset(next),
                 None => Offset::Beginning,
@@ -238,6 +328,9 @@ impl PartitionContext {
         }
         flush_dead_letters(self.dead_letters.as_deref(), &self.shared);
         self.shared.save_dirty(|id| ids.iter().any(|x| x == id));
+        if let Some(changelog) = self.changelog.get() {
+            publish_changed(&self.shared, changelog, Some(&ids));
+        }
         let mut shards = self.shared.lock_shards();
         for id in &ids {
             shards.remove(id);
@@ -310,15 +403,14 @@ pub fn start(
             producer_config(cfg).create::<DeadLetterProducer>()?,
         )),
     };
+    let changelog: Arc<OnceLock<Changelog>> = Arc::new(OnceLock::new());
     let context = PartitionContext {
         shared: Arc::clone(&shared),
         dead_letters: dead_letters.clone(),
+        changelog: Arc::clone(&changelog),
     };
     let consumer: BaseConsumer<PartitionContext> =
         client_config(cfg).create_with_context(context)?;
-    let topics: Vec<&str> = cfg.topics.iter().map(String::as_str).collect();
-    consumer.subscribe(&topics)?;
-    tracing::info!(brokers = %cfg.brokers, topics = ?cfg.topics, group = %cfg.group, "kafka consumer subscribed");
 
     let mut probe_config = client_config(cfg);
     probe_config.set("statistics.interval.ms", "0");
@@ -330,28 +422,70 @@ pub fn start(
     }
     let loop_cfg = LoopConfig {
         dead_letter_topic: cfg.dead_letter_topic.clone(),
-        snapshot_interval: shared_snapshot_interval(&shared),
+        snapshot_interval: shared.snapshot_interval,
+        changelog_interval: cfg.changelog_interval,
     };
     let handle = tokio::runtime::Handle::current();
     let kafka_cfg = cfg.clone();
+    {
+        let changelog = Arc::clone(&changelog);
+        let shared = Arc::clone(&shared);
+        let shutdown = shutdown.clone();
+        let kafka_cfg = cfg.clone();
+        tracker.spawn_blocking(move || {
+            // Reads of other instances' partitions follow the changelog once it exists.
+            while changelog.get().is_none() {
+                if shutdown.is_cancelled() {
+                    return;
+                }
+                std::thread::sleep(Duration::from_millis(100));
+            }
+            let c = changelog.get().expect("checked above");
+            if let Err(e) = crate::changelog::follow(&kafka_cfg, c.topic(), c.n_partitions(), &shared, &shutdown) {
+                tracing::error!(error = %e, "cannot follow the changelog; reads cover local partitions only");
+            }
+        });
+    }
     tracker.spawn_blocking(move || {
         if let Some(topic) = &loop_cfg.dead_letter_topic {
             if let Err(e) = handle.block_on(ensure_topic(&kafka_cfg, topic)) {
                 tracing::error!(topic, error = %e, "dead-letter topic unavailable; the producer keeps retrying");
             }
         }
-        consume_loop(&consumer, &shared, dead_letters.as_deref(), &loop_cfg, &shutdown)
+        // State handoff needs the changelog, so nothing is consumed before it is reachable.
+        let mut logged = false;
+        while !shutdown.is_cancelled() && changelog.get().is_none() {
+            let partitions = crate::changelog::input_partitions(&kafka_cfg).unwrap_or(1);
+            match handle.block_on(Changelog::open(&kafka_cfg, &kafka_cfg.changelog_topic, partitions)) {
+                Ok(c) => {
+                    tracing::info!(topic = c.topic(), partitions = c.n_partitions(), "changelog ready");
+                    let _ = changelog.set(c);
+                }
+                Err(e) => {
+                    if !logged {
+                        tracing::warn!(error = %e, "changelog not reachable yet; retrying");
+                        logged = true;
+                    }
+                    std::thread::sleep(Duration::from_secs(2));
+                }
+            }
+        }
+        let Some(c) = changelog.get() else { return };
+        let topics: Vec<&str> = kafka_cfg.topics.iter().map(String::as_str).collect();
+        if let Err(e) = consumer.subscribe(&topics) {
+            tracing::error!(error = %e, "cannot subscribe");
+            return;
+        }
+        tracing::info!(brokers = %kafka_cfg.brokers, topics = ?kafka_cfg.topics, group = %kafka_cfg.group, "kafka consumer subscribed");
+        consume_loop(&consumer, &shared, dead_letters.as_deref(), c, &loop_cfg, &shutdown)
     });
     Ok(())
-}
-
-fn shared_snapshot_interval(shared: &Shared) -> Duration {
-    shared.snapshot_interval
 }
 
 struct LoopConfig {
     dead_letter_topic: Option<String>,
     snapshot_interval: Duration,
+    changelog_interval: Duration,
 }
 
 fn probe_loop(probe: &BaseConsumer, shared: &Shared, shutdown: &CancellationToken) {
@@ -419,12 +553,14 @@ fn consume_loop(
     consumer: &BaseConsumer<PartitionContext>,
     shared: &Shared,
     dead_letters: Option<&DeadLetterProducer>,
+    changelog: &Changelog,
     cfg: &LoopConfig,
     shutdown: &CancellationToken,
 ) {
     let mut shard_ids: HashMap<(String, i32), String> = HashMap::new();
     let mut last_error_log = Instant::now() - Duration::from_secs(60);
     let mut last_save = Instant::now();
+    let mut last_publish = Instant::now();
     while !shutdown.is_cancelled() {
         let mut batch = Vec::new();
         let deadline = Instant::now() + MAX_BATCH_WAIT;
@@ -457,6 +593,13 @@ fn consume_loop(
                 shared.save_dirty(|id| id.starts_with("kafka/"));
             }
             last_save = Instant::now();
+        }
+        if last_publish.elapsed() >= cfg.changelog_interval {
+            // Dead letters first, for the same reason as before a local save.
+            if flush_dead_letters(dead_letters, shared) {
+                publish_changed(shared, changelog, None);
+            }
+            last_publish = Instant::now();
         }
     }
     if !flush_dead_letters(dead_letters, shared) {

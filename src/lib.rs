@@ -10,6 +10,7 @@
 #![deny(missing_docs)]
 
 pub mod app;
+pub mod changelog;
 pub mod cli;
 pub mod compare;
 pub mod config;

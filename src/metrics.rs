@@ -55,6 +55,8 @@ pub struct Metrics {
     pub state_saves: IntCounterVec,
     /// Experiments whose stored state did not fit the configuration at restore.
     pub restore_mismatches: prometheus::IntCounter,
+    /// Partition states published to the changelog, by result (ok, error).
+    pub changelog_publishes: IntCounterVec,
     /// Posterior mean per experiment, metric and variant.
     pub posterior_mean: GaugeVec,
     /// Lower end of the 95% equal-tailed credible interval.
@@ -179,7 +181,14 @@ impl Metrics {
             "posteriord_restore_mismatches_total",
             "Experiments whose stored state did not fit the configuration at restore.",
         );
+        let changelog_publishes = counter_vec(
+            &registry,
+            "posteriord_changelog_publishes_total",
+            "Partition states published to the changelog topic, by result.",
+            &["result"],
+        );
         let m = Metrics {
+            changelog_publishes,
             kafka_lag,
             kafka_next_offset,
             restoring,

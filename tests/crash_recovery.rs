@@ -85,7 +85,7 @@ fn sigkill_at_random_moments_loses_and_doubles_nothing() {
     let scratch = tempfile::tempdir().unwrap();
     let state: PathBuf = scratch.path().join("state");
     let w = workload(31, n_events);
-    let mut producer = spawn_producer(&brokers, &topic, &w.lines, scratch.path());
+    let producer = spawn_producer(&brokers, &topic, &w.lines, scratch.path());
     let cfg = config(&brokers, &topic, &group);
     let mut rng = rand::rngs::StdRng::seed_from_u64(99);
     let started = Instant::now();

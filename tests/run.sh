@@ -5,7 +5,9 @@
 # broker again. Any failure fails the script.
 #
 # Environment:
-#   POSTERIORD_SOAK=1      also run the long soak/fuzz modes (off by default)
+#   POSTERIORD_SOAK=1      long soak mode: 1M-event crash loop, 60 s broker outage, and
+#                          two minutes of fuzzing per target (off by default)
+#   POSTERIORD_FUZZ_SECONDS=N  fuzz each target for N seconds after the tests
 #   KEEP_TEST_OUTPUT=1     keep the broker's directory and log after the run
 set -euo pipefail
 
@@ -16,6 +18,8 @@ TANSU_VERSION=0.6.0
 CONFLUENT_KAFKA_VERSION=2.16.1
 MPMATH_VERSION=1.3.0
 SCIPY_VERSION=1.17.1
+PYYAML_VERSION=6.0.3
+CARGO_FUZZ_VERSION=0.13.2
 
 step() { printf '\n==> %s\n' "$*"; }
 
@@ -38,6 +42,20 @@ pip_install() {
 pip_install confluent_kafka "confluent-kafka==$CONFLUENT_KAFKA_VERSION"
 pip_install mpmath "mpmath==$MPMATH_VERSION"
 pip_install scipy "scipy==$SCIPY_VERSION"
+pip_install yaml "PyYAML==$PYYAML_VERSION"
+
+# tests/deploy.rs: promtool (Debian's prometheus package) and systemd-analyze.
+APT_UPDATED=""
+apt_install() {
+    # $1 = command that must exist, $2 = Debian package providing it
+    if ! command -v "$1" >/dev/null; then
+        if [[ -z "$APT_UPDATED" ]]; then apt-get update; APT_UPDATED=1; fi
+        step "installing $2 (for $1)"
+        DEBIAN_FRONTEND=noninteractive apt-get install -y --no-install-recommends "$2"
+    fi
+}
+apt_install promtool prometheus
+apt_install systemd-analyze systemd
 
 WORK="$(mktemp -d -t posteriord-tests.XXXXXX)"
 BROKER_PID=""
@@ -77,5 +95,19 @@ export POSTERIORD_TEST_BROKER_PID="$BROKER_PID"
 
 step "cargo test --all-targets"
 cargo test --all-targets
+
+# Extended mode: bounded fuzzing of the event decoder and the config loader.
+if [[ "${POSTERIORD_SOAK:-}" == "1" || -n "${POSTERIORD_FUZZ_SECONDS:-}" ]]; then
+    FUZZ_SECONDS="${POSTERIORD_FUZZ_SECONDS:-120}"
+    if ! cargo fuzz --version 2>/dev/null | grep -q "$CARGO_FUZZ_VERSION"; then
+        step "installing cargo-fuzz $CARGO_FUZZ_VERSION"
+        cargo install cargo-fuzz --locked --version "$CARGO_FUZZ_VERSION"
+    fi
+    for target in decode_event config_parse; do
+        step "fuzzing $target for ${FUZZ_SECONDS}s"
+        (cd fuzz && RUSTC_BOOTSTRAP=1 cargo fuzz run "$target" "corpus/$target" -- \
+            -max_total_time="$FUZZ_SECONDS" -max_len=4096)
+    done
+fi
 
 step "all tests passed"

@@ -39,6 +39,10 @@ pub const DEFAULT_STORE_DIR: &str = "./posteriord-data";
 /// Default time between state snapshots: bounds how much input is re-read after a crash.
 pub const DEFAULT_SNAPSHOT_INTERVAL_MS: u64 = 5_000;
 
+/// Default time between changelog publications: bounds how much input a new owner re-reads
+/// after an instance dies, and how stale other instances' reads of its partitions are.
+pub const DEFAULT_CHANGELOG_INTERVAL_MS: u64 = 10_000;
+
 /// The validated configuration.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Config {
@@ -74,6 +78,11 @@ pub struct KafkaConfig {
     pub max_event_bytes: usize,
     /// Topic that receives refused messages with their reason in headers, if set.
     pub dead_letter_topic: Option<String>,
+    /// Compacted topic holding each partition's state (default `<group>-changelog`).
+    pub changelog_topic: String,
+    /// How often changed partition state is published to the changelog (also on revocation
+    /// and shutdown).
+    pub changelog_interval: std::time::Duration,
     /// librdkafka properties passed through unchanged.
     pub properties: BTreeMap<String, String>,
 }
@@ -321,6 +330,30 @@ impl Ctx<'_> {
             }
             Some(t) => Some(t.into_inner()),
         };
+        let changelog_topic = match k.changelog_topic {
+            None => format!("{group}-changelog"),
+            Some(t) if t.get_ref().trim().is_empty() || topics.contains(t.get_ref()) => {
+                return Err(self.err(
+                    t.span(),
+                    "kafka.changelog_topic",
+                    "must be a non-empty topic other than the consumed ones",
+                ))
+            }
+            Some(t) => t.into_inner(),
+        };
+        let changelog_interval = match &k.changelog_interval_ms {
+            None => std::time::Duration::from_millis(DEFAULT_CHANGELOG_INTERVAL_MS),
+            Some(v) => match u64::try_from(*v.get_ref()) {
+                Ok(ms) if (100..=3_600_000).contains(&ms) => std::time::Duration::from_millis(ms),
+                _ => {
+                    return Err(self.err(
+                        v.span(),
+                        "kafka.changelog_interval_ms",
+                        "must be between 100 and 3600000 milliseconds",
+                    ))
+                }
+            },
+        };
         let mut properties = BTreeMap::new();
         for (name, value) in k.properties {
             let text = match value.into_inner() {
@@ -337,6 +370,8 @@ impl Ctx<'_> {
             group,
             max_event_bytes,
             dead_letter_topic,
+            changelog_topic,
+            changelog_interval,
             properties,
         })
     }
@@ -651,6 +686,8 @@ fn apply_env(config: &mut Config, env: &[(String, String)]) -> Result<(), Config
             group: DEFAULT_KAFKA_GROUP.into(),
             max_event_bytes: DEFAULT_MAX_EVENT_BYTES,
             dead_letter_topic: None,
+            changelog_topic: format!("{DEFAULT_KAFKA_GROUP}-changelog"),
+            changelog_interval: std::time::Duration::from_millis(DEFAULT_CHANGELOG_INTERVAL_MS),
             properties: BTreeMap::new(),
         });
     }
@@ -678,6 +715,9 @@ fn apply_env(config: &mut Config, env: &[(String, String)]) -> Result<(), Config
         if let Some(g) = group {
             if g.trim().is_empty() {
                 return Err(env_err("POSTERIORD_KAFKA_GROUP", "must not be empty"));
+            }
+            if k.changelog_topic == format!("{}-changelog", k.group) {
+                k.changelog_topic = format!("{g}-changelog");
             }
             k.group = g;
         }

@@ -33,6 +33,8 @@ pub(super) struct RawKafka {
     pub group: Option<Spanned<String>>,
     pub max_event_bytes: Option<Spanned<i64>>,
     pub dead_letter_topic: Option<Spanned<String>>,
+    pub changelog_topic: Option<Spanned<String>>,
+    pub changelog_interval_ms: Option<Spanned<i64>>,
     #[serde(default)]
     pub properties: BTreeMap<String, Spanned<PropertyValue>>,
 }

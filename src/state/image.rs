@@ -6,7 +6,7 @@ use std::fmt;
 use std::sync::Arc;
 
 use super::units::{UnitSlot, UnitTable};
-use super::{ExperimentState, MetricTotals, OutcomeCounts};
+use super::{ExperimentSnapshot, ExperimentState, MetricTotals, OutcomeCounts};
 use crate::event::Micros;
 use crate::experiment::{ExperimentDef, MetricKind};
 
@@ -53,6 +53,34 @@ impl fmt::Display for ImageMismatch {
 }
 
 impl std::error::Error for ImageMismatch {}
+
+impl ExperimentImage {
+    /// The totals of this image as a snapshot of `def`, if the image fits the definition.
+    pub fn totals_snapshot(&self, def: &Arc<ExperimentDef>) -> Option<ExperimentSnapshot> {
+        let variants_match = self.variants.len() == def.variants.len()
+            && self
+                .variants
+                .iter()
+                .zip(&def.variants)
+                .all(|(a, b)| *a == b.name);
+        let metrics_match = self.metrics.len() == def.metrics.len()
+            && self
+                .metrics
+                .iter()
+                .zip(&def.metrics)
+                .all(|((name, kind), m)| *name == m.name && *kind == m.kind);
+        if !(variants_match && metrics_match && self.totals.len() == def.metrics.len()) {
+            return None;
+        }
+        Some(ExperimentSnapshot {
+            def: Arc::clone(def),
+            units: self.variant_units.clone(),
+            metrics: self.totals.clone(),
+            outcomes: self.outcomes,
+            last_event_time: self.last_event_time,
+        })
+    }
+}
 
 impl ExperimentState {
     /// The complete state as an image.

@@ -106,6 +106,9 @@ impl Shard {
 pub struct Shards {
     defs: Vec<Arc<ExperimentDef>>,
     shards: BTreeMap<ShardId, Shard>,
+    /// Totals of shards owned by other instances, as last published in the changelog; used
+    /// only for reading, and only for shard ids not held here.
+    remote: BTreeMap<ShardId, Vec<ExperimentSnapshot>>,
 }
 
 impl Shards {
@@ -114,6 +117,7 @@ impl Shards {
         Shards {
             defs: defs.into_iter().map(Arc::new).collect(),
             shards: BTreeMap::new(),
+            remote: BTreeMap::new(),
         }
     }
 
@@ -155,7 +159,21 @@ impl Shards {
         self.defs.iter().any(|d| d.id == id)
     }
 
-    /// Experiment `id` merged across all shards; `None` if it is not configured.
+    /// Record the totals of shard `id` as another instance last published them.
+    pub fn set_remote(&mut self, id: ShardId, image: &ShardImage) {
+        let snaps = image
+            .experiments
+            .iter()
+            .filter_map(|e| {
+                let def = self.defs.iter().find(|d| d.id == e.id)?;
+                e.totals_snapshot(def)
+            })
+            .collect();
+        self.remote.insert(id, snaps);
+    }
+
+    /// Experiment `id` merged across all shards (local ones, then remote ones not held here);
+    /// `None` if it is not configured.
     pub fn snapshot(&self, id: &str) -> Option<ExperimentSnapshot> {
         let def = self.defs.iter().find(|d| d.id == id)?;
         let mut merged = super::ExperimentState::new(Arc::clone(def)).snapshot();
@@ -165,6 +183,14 @@ impl Shards {
                 if !snap.is_empty() {
                     merged.merge(&snap);
                 }
+            }
+        }
+        for (shard_id, snaps) in &self.remote {
+            if self.shards.contains_key(shard_id) {
+                continue;
+            }
+            for snap in snaps.iter().filter(|s| s.def.id == id) {
+                merged.merge(snap);
             }
         }
         Some(merged)

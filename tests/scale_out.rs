@@ -1,0 +1,140 @@
+//! Scale-out against a real broker: three instances in one consumer group split the
+//! partitions; the one holding data is SIGKILLed mid-stream and a replacement with an empty
+//! state directory (another machine, as far as state goes) joins. Partition state moves through
+//! the compacted changelog topic; every instance's API must then report the exact totals of
+//! all experiments, checked against the independent ground truth.
+//!
+//! Broker note: on the test broker a dead member's partitions move at the next membership
+//! change after its session timeout, so the test waits past the timeout and then starts the
+//! replacement; a Kafka cluster moves them at the timeout itself.
+
+mod common;
+
+use std::path::Path;
+use std::process::{Command, Stdio};
+use std::time::{Duration, SystemTime, UNIX_EPOCH};
+
+use common::{
+    observed, seen, signal, wait_exit, wait_for, workload, Service, SPECS, TEST_EXPERIMENTS,
+};
+
+fn unique(prefix: &str) -> String {
+    let nanos = SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .unwrap()
+        .as_nanos();
+    format!("{prefix}-{}-{nanos}", std::process::id())
+}
+
+fn produce(brokers: &str, topic: &str, lines: &[String], dir: &Path) {
+    let file = dir.join(format!("{topic}-{}.ndjson", lines.len()));
+    std::fs::write(&file, lines.join("\n") + "\n").unwrap();
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/produce.py");
+    let status = Command::new("python3")
+        .arg(script)
+        .args(["--brokers", brokers, "--topic", topic, "--partitions", "6"])
+        .arg(&file)
+        .stdout(Stdio::null())
+        .status()
+        .expect("python3 tests/tools/produce.py (confluent-kafka)");
+    assert!(status.success(), "independent producer failed");
+}
+
+fn kafka_events_applied(s: &Service) -> u64 {
+    let (_, text) = s.get_text("/metrics");
+    text.lines()
+        .filter(|l| l.starts_with("posteriord_events_total{") && l.contains("source=\"kafka\""))
+        .map(|l| l.rsplit(' ').next().unwrap().parse::<u64>().unwrap())
+        .sum()
+}
+
+#[test]
+fn a_killed_instance_s_partitions_move_with_their_exact_state() {
+    let brokers = std::env::var("POSTERIORD_TEST_BROKERS")
+        .expect("POSTERIORD_TEST_BROKERS is not set: run the suite with tests/run.sh");
+    let topic = unique("scale-events");
+    let group = unique("scale-group");
+    let scratch = tempfile::tempdir().unwrap();
+    let w = workload(61, 40_000);
+    let (first, second) = w.lines.split_at(20_000);
+    produce(&brokers, &topic, first, scratch.path());
+    let config = format!(
+        r#"[http]
+addr = "127.0.0.1:0"
+[store]
+snapshot_interval_ms = 300
+[kafka]
+brokers = "{brokers}"
+topics = ["{topic}"]
+group = "{group}"
+changelog_interval_ms = 300
+[kafka.properties]
+"session.timeout.ms" = 3000
+"heartbeat.interval.ms" = 500
+{TEST_EXPERIMENTS}"#
+    );
+    let dirs: Vec<_> = (0..4)
+        .map(|i| scratch.path().join(format!("state-{i}")))
+        .collect();
+    let mut instances: Vec<Service> = (0..3)
+        .map(|i| Service::start_in(&config, Some(&dirs[i]), &[]))
+        .collect();
+    let total = |s: &Service| -> u64 { SPECS.iter().map(|spec| seen(s, spec)).sum() };
+    wait_for(
+        Duration::from_secs(120),
+        "the first half to be consumed",
+        || {
+            let applied: u64 = instances.iter().map(kafka_events_applied).sum();
+            (applied >= first.len() as u64).then_some(())
+        },
+    );
+    // Kill the instance that holds the most data, while the second half streams in.
+    let victim = (0..3)
+        .max_by_key(|&i| kafka_events_applied(&instances[i]))
+        .unwrap();
+    let producer = {
+        let brokers = brokers.clone();
+        let topic = topic.clone();
+        let lines = second.to_vec();
+        let dir = scratch.path().to_path_buf();
+        std::thread::spawn(move || produce(&brokers, &topic, &lines, &dir))
+    };
+    std::thread::sleep(Duration::from_millis(800));
+    let mut dead = instances.remove(victim);
+    signal(dead.child.id(), "KILL");
+    wait_exit(&mut dead.child, Duration::from_secs(10)).expect("killed");
+    std::thread::sleep(Duration::from_millis(3_500));
+    instances.push(Service::start_in(&config, Some(&dirs[3]), &[]));
+    producer.join().unwrap();
+    for (i, s) in instances.iter().enumerate() {
+        wait_for(
+            Duration::from_secs(180),
+            &format!("instance {i} to see every event"),
+            || (total(s) >= w.lines.len() as u64).then_some(()),
+        );
+    }
+    std::thread::sleep(Duration::from_secs(2));
+    // The killed instance's data moved through the changelog, not by re-reading the topic.
+    assert!(
+        instances
+            .iter()
+            .any(|s| s.log_text().contains("restored from the changelog")),
+        "no instance restored a partition from the changelog"
+    );
+    for (i, s) in instances.iter().enumerate() {
+        for (spec, expected) in SPECS.iter().zip(&w.expected) {
+            assert_eq!(
+                &observed(s, spec),
+                expected,
+                "instance {i}, experiment {}\n{}",
+                spec.id,
+                s.log_text()
+                    .lines()
+                    .rev()
+                    .take(30)
+                    .collect::<Vec<_>>()
+                    .join("\n")
+            );
+        }
+    }
+}
