@@ -12,9 +12,10 @@ use tokio_util::task::TaskTracker;
 
 use crate::config::Config;
 use crate::metrics::Metrics;
+use crate::metrics::Source;
 use crate::simulate::SimulateOptions;
 use crate::state::shards::Shards;
-use crate::store::Store;
+use crate::store::{Store, Wal};
 
 /// State shared by every task of the service.
 pub struct Shared {
@@ -33,6 +34,9 @@ pub struct Shared {
     pub store: Option<Store>,
     /// How often changed state is written.
     pub snapshot_interval: std::time::Duration,
+    /// Write-ahead log of events posted over HTTP (with a store only). Its lock also orders
+    /// HTTP batches: a batch is logged and applied while holding it.
+    http_wal: Option<Mutex<Wal>>,
 }
 
 impl Shared {
@@ -51,6 +55,7 @@ impl Shared {
             restoring: AtomicUsize::new(0),
             store: None,
             snapshot_interval: config.store.snapshot_interval,
+            http_wal: None,
         }
     }
 
@@ -98,7 +103,16 @@ impl Shared {
         let mut all_ok = true;
         for (id, image) in images {
             match store.save(&id, &image) {
-                Ok(()) => self.metrics.state_saves.with_label_values(&["ok"]).inc(),
+                Ok(()) => {
+                    self.metrics.state_saves.with_label_values(&["ok"]).inc();
+                    if let (Some(wal), true) = (&self.http_wal, id == crate::http::HTTP_SHARD) {
+                        let from = image.next_offset.unwrap_or(0).max(0) as u64;
+                        let mut wal = wal.lock().unwrap_or_else(|p| p.into_inner());
+                        if let Err(e) = wal.truncate_before(from) {
+                            tracing::warn!(error = %e, "cannot trim the HTTP write-ahead log; it keeps growing until the next save");
+                        }
+                    }
+                }
                 Err(e) => {
                     all_ok = false;
                     tracing::error!(shard = %id, error = %e, "cannot save state; will retry");
@@ -108,6 +122,89 @@ impl Shared {
             }
         }
         all_ok
+    }
+
+    /// Log (durably, when a store is configured) and apply a batch of events posted over
+    /// HTTP. Nothing is applied if logging fails, so an error reply means "not accepted".
+    pub fn ingest_http(
+        &self,
+        items: &[&[u8]],
+    ) -> Result<crate::ingest::BatchReport, crate::store::StoreError> {
+        let http = crate::http::HTTP_SHARD;
+        let batch = |first: Option<i64>| -> Vec<crate::ingest::Item<'_>> {
+            items
+                .iter()
+                .enumerate()
+                .map(|(i, bytes)| crate::ingest::Item {
+                    shard: http,
+                    offset: first.map(|f| f + i as i64),
+                    bytes,
+                })
+                .collect()
+        };
+        let Some(wal) = &self.http_wal else {
+            return Ok(crate::ingest::apply_batch(
+                &self.shards,
+                &self.metrics,
+                Source::Http,
+                &batch(None),
+                self.max_event_bytes,
+            ));
+        };
+        let mut wal = wal.lock().unwrap_or_else(|p| p.into_inner());
+        let first = self.lock_shards().shard_mut(http).next_offset.unwrap_or(0);
+        wal.append(first as u64, items)?;
+        Ok(crate::ingest::apply_batch(
+            &self.shards,
+            &self.metrics,
+            Source::Http,
+            &batch(Some(first)),
+            self.max_event_bytes,
+        ))
+    }
+
+    /// Re-apply logged HTTP events that the stored HTTP shard does not hold yet.
+    fn replay_http_wal(&self) -> anyhow::Result<()> {
+        let Some(wal) = &self.http_wal else {
+            return Ok(());
+        };
+        let mut wal = wal.lock().unwrap_or_else(|p| p.into_inner());
+        let (records, torn) = wal.read()?;
+        let from = self
+            .lock_shards()
+            .shard(crate::http::HTTP_SHARD)
+            .and_then(|s| s.next_offset)
+            .unwrap_or(0);
+        let pending: Vec<&(u64, Vec<u8>)> = records
+            .iter()
+            .filter(|(seq, _)| *seq as i64 >= from)
+            .collect();
+        let items: Vec<crate::ingest::Item<'_>> = pending
+            .iter()
+            .map(|(seq, bytes)| crate::ingest::Item {
+                shard: crate::http::HTTP_SHARD,
+                offset: Some(*seq as i64),
+                bytes,
+            })
+            .collect();
+        if !items.is_empty() {
+            crate::ingest::apply_batch(
+                &self.shards,
+                &self.metrics,
+                Source::Http,
+                &items,
+                self.max_event_bytes,
+            );
+            tracing::info!(
+                events = items.len(),
+                "replayed events posted over HTTP from the write-ahead log"
+            );
+        }
+        if torn {
+            tracing::warn!("the HTTP write-ahead log ended in a partial record (a crash mid-write); it was cut off — that request had not been answered");
+        }
+        wal.truncate_before(from.max(0) as u64)?;
+        Ok(())
     }
 
     /// Read shard `id` from the store (if stored), reporting experiments that no longer fit.
@@ -217,18 +314,26 @@ pub async fn run(
 ) -> anyhow::Result<()> {
     let mut shared = Shared::new(&config);
     if options.persist {
-        shared.store = Some(
-            Store::open(&config.store.dir).context("cannot open the state store (store.dir)")?,
-        );
+        let store =
+            Store::open(&config.store.dir).context("cannot open the state store (store.dir)")?;
+        shared.http_wal = Some(Mutex::new(
+            Wal::open(&store, crate::http::HTTP_SHARD)
+                .context("cannot open the HTTP write-ahead log")?,
+        ));
+        shared.store = Some(store);
     }
     let shared = Arc::new(shared);
-    // Events posted over HTTP are kept in their own shard, stored on the snapshot cadence.
+    // Events posted over HTTP are kept in their own shard: stored on the snapshot cadence,
+    // logged ahead in between.
     if let Some(shard) = shared.load_shard(crate::http::HTTP_SHARD)? {
         shared
             .lock_shards()
             .insert(crate::http::HTTP_SHARD.to_string(), shard);
         tracing::info!("restored the state of events posted over HTTP");
     }
+    shared
+        .replay_http_wal()
+        .context("cannot replay the HTTP write-ahead log")?;
     let tracker = TaskTracker::new();
     if shared.store.is_some() {
         tracker.spawn(save_http_shard(

@@ -495,7 +495,7 @@ pub fn input_partitions(cfg: &KafkaConfig) -> Result<i32, KafkaError> {
     let consumer: BaseConsumer = base_config(cfg)
         .set("group.id", "posteriord-metadata")
         .create()?;
-    let md = consumer.fetch_metadata(None, Duration::from_secs(10))?;
+    let md = consumer.fetch_metadata(None, Duration::from_secs(3))?;
     Ok(md
         .topics()
         .iter()

@@ -181,7 +181,13 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
 }
 
 fn load_config(path: &std::path::Path) -> anyhow::Result<Config> {
-    Config::load(path, &config::process_env()).map_err(|e| UsageError(e.to_string()).into())
+    let config =
+        Config::load(path, &config::process_env()).map_err(|e| UsageError(e.to_string()))?;
+    if let Some(kafka) = &config.kafka {
+        crate::kafka::check_properties(kafka)
+            .map_err(|m| UsageError(format!("{}: {m}", path.display())))?;
+    }
+    Ok(config)
 }
 
 fn serve(path: &std::path::Path) -> anyhow::Result<()> {

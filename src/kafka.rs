@@ -76,6 +76,19 @@ pub fn client_config(cfg: &KafkaConfig) -> ClientConfig {
     c
 }
 
+/// Check that librdkafka accepts the configured properties (names, values, and features of
+/// this build such as TLS and SASL mechanisms) without connecting anywhere.
+pub fn check_properties(cfg: &KafkaConfig) -> Result<(), String> {
+    let consumer: Result<BaseConsumer, KafkaError> = client_config(cfg).create();
+    match consumer {
+        Ok(_) => Ok(()),
+        Err(KafkaError::ClientCreation(message)) => Err(format!(
+            "kafka.properties: librdkafka refused them: {message}"
+        )),
+        Err(e) => Err(format!("kafka.properties: {e}")),
+    }
+}
+
 /// The dead-letter producer's configuration: connection and security properties from the
 /// config, idempotent delivery.
 fn producer_config(cfg: &KafkaConfig) -> ClientConfig {
@@ -335,6 +348,17 @@ impl PartitionContext {
         for id in &ids {
             shards.remove(id);
         }
+        drop(shards);
+        for e in tpl.elements() {
+            // Another instance reports these partitions now.
+            let labels = [e.topic(), &e.partition().to_string()];
+            let _ = self.shared.metrics.kafka_lag.remove_label_values(&labels);
+            let _ = self
+                .shared
+                .metrics
+                .kafka_next_offset
+                .remove_label_values(&labels);
+        }
         tracing::info!(partitions = ?ids, "partitions revoked; state saved and released");
     }
 }
@@ -466,7 +490,12 @@ pub fn start(
                         tracing::warn!(error = %e, "changelog not reachable yet; retrying");
                         logged = true;
                     }
-                    std::thread::sleep(Duration::from_secs(2));
+                    for _ in 0..20 {
+                        if shutdown.is_cancelled() {
+                            break;
+                        }
+                        std::thread::sleep(Duration::from_millis(100));
+                    }
                 }
             }
         }

@@ -220,3 +220,41 @@ fn sigterm_drains_and_exits_zero() {
         service.log_text()
     );
 }
+
+#[test]
+fn accepted_events_survive_a_sigkill() {
+    // A long snapshot interval, so only the write-ahead log can carry the events over.
+    let config = format!("[http]\naddr = \"127.0.0.1:0\"\n[store]\nsnapshot_interval_ms = 3600000\n{TEST_EXPERIMENTS}");
+    let state = tempfile::tempdir().unwrap();
+    let w = workload(81, 3_000);
+    let (first, second) = w.lines.split_at(1_500);
+    let mut service = Service::start_in(&config, Some(state.path()), &[]);
+    for chunk in first.chunks(300) {
+        assert_eq!(service.post("/v1/events", chunk.join("\n")).0, 200);
+    }
+    common::signal(service.child.id(), "KILL");
+    common::wait_exit(&mut service.child, Duration::from_secs(10)).expect("killed");
+    // Restart, add the rest, kill again, restart: every accepted event counted once.
+    let mut service = Service::start_in(&config, Some(state.path()), &[]);
+    for chunk in second.chunks(300) {
+        assert_eq!(service.post("/v1/events", chunk.join("\n")).0, 200);
+    }
+    common::signal(service.child.id(), "KILL");
+    common::wait_exit(&mut service.child, Duration::from_secs(10)).expect("killed");
+    let service = Service::start_in(&config, Some(state.path()), &[]);
+    for (spec, expected) in SPECS.iter().zip(&w.expected) {
+        assert_eq!(
+            &observed(&service, spec),
+            expected,
+            "experiment {}",
+            spec.id
+        );
+    }
+    assert!(
+        service
+            .log_text()
+            .contains("replayed events posted over HTTP"),
+        "{}",
+        service.log_text()
+    );
+}

@@ -20,8 +20,6 @@ use tokio_util::sync::CancellationToken;
 use crate::app::Shared;
 use crate::decode::split_body;
 use crate::event::Outcome;
-use crate::ingest::Item;
-use crate::metrics::Source;
 use crate::summary::{summarize, ExperimentSummary, DEFAULT_LEVEL};
 
 /// Shard of events posted over HTTP.
@@ -101,27 +99,28 @@ async fn blocking<T: Send + 'static>(
     })
 }
 
+/// Why a whole ingest request failed.
+enum IngestFailure {
+    /// The body holds no events.
+    BadBody(String),
+    /// The write-ahead log refused the write.
+    NotDurable,
+}
+
 async fn ingest(State(shared): State<Arc<Shared>>, body: Bytes) -> Response {
     let result = blocking(move || {
         let items = match split_body(&body) {
             Ok(items) => items,
-            Err(e) => return Err(e.to_string()),
+            Err(e) => return Err(IngestFailure::BadBody(e.to_string())),
         };
-        let batch: Vec<Item<'_>> = items
-            .iter()
-            .map(|(_, bytes)| Item {
-                shard: HTTP_SHARD,
-                offset: None,
-                bytes,
-            })
-            .collect();
-        let report = crate::ingest::apply_batch(
-            &shared.shards,
-            &shared.metrics,
-            Source::Http,
-            &batch,
-            shared.max_event_bytes,
-        );
+        let bytes: Vec<&[u8]> = items.iter().map(|(_, b)| *b).collect();
+        let report = match shared.ingest_http(&bytes) {
+            Ok(r) => r,
+            Err(e) => {
+                tracing::error!(error = %e, "cannot log posted events; refusing the request");
+                return Err(IngestFailure::NotDurable);
+            }
+        };
         let errors: Vec<doc::IngestError> = report
             .rejects()
             .map(|(i, rej)| doc::IngestError::new(items[i].0, rej))
@@ -141,7 +140,12 @@ async fn ingest(State(shared): State<Arc<Shared>>, body: Bytes) -> Response {
     .await;
     match result {
         Err(response) => response,
-        Ok(Err(message)) => error(StatusCode::BAD_REQUEST, "bad_body", &message),
+        Ok(Err(IngestFailure::BadBody(message))) => error(StatusCode::BAD_REQUEST, "bad_body", &message),
+        Ok(Err(IngestFailure::NotDurable)) => error(
+            StatusCode::SERVICE_UNAVAILABLE,
+            "not_durable",
+            "the events could not be written to the state directory and were not applied; retry later",
+        ),
         Ok(Ok(body)) => {
             let status = if body["rejected"].as_u64() == Some(0) {
                 StatusCode::OK

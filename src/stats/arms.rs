@@ -334,12 +334,16 @@ fn ratio_guess(v: &[f64; 4], c: &[f64; 4]) -> [f64; 4] {
 /// variable), with the wider arm's CDF interpolated at the image of each node.
 struct Ratio<'a> {
     grid: &'a Grid,
-    /// The arm whose CDF is interpolated.
-    inner: usize,
-    /// True when the nodes belong to the variant (then θ_v ≤ e^s θ_c ⟺ θ_c ≥ e^-s θ_v).
-    over_variant: bool,
+    v: usize,
+    c: usize,
     beta: bool,
-    nodes: Vec<OuterNode>,
+    /// Nodes of the variant and of the control.
+    nodes_v: Vec<OuterNode>,
+    nodes_c: Vec<OuterNode>,
+    /// Largest conversion rate carried by each arm's nodes (for the kink test in `eval`).
+    top_v: f64,
+    top_c: f64,
+    variant_is_narrower: bool,
 }
 
 /// A node of the outer arm with everything that does not depend on s precomputed.
@@ -353,6 +357,30 @@ struct OuterNode {
     comp: f64,
 }
 
+fn outer_nodes(grid: &Grid, j: usize, beta: bool) -> (Vec<OuterNode>, f64) {
+    let arm = &grid.arms[j];
+    let mut nodes = Vec::with_capacity((arm.p1 - arm.p0) * NP);
+    let mut top = 0.0f64;
+    for p in arm.p0..arm.p1 {
+        for i in 0..NP {
+            let wg = grid.weight(p, i) * arm.dens[(p - arm.p0) * NP + i];
+            // Dropped nodes carry < 1e-19 each: far below the 1e-15 the sums resolve.
+            if wg <= 1e-19 {
+                continue;
+            }
+            let t = grid.node(p, i);
+            let (ln_x, comp) = if beta {
+                (-softplus(-t), logistic(-t))
+            } else {
+                (0.0, 0.0)
+            };
+            top = top.max(logistic(t));
+            nodes.push(OuterNode { t, wg, ln_x, comp });
+        }
+    }
+    (nodes, top)
+}
+
 /// P(s_R ≤ s), P(s_R > s) and the density of s_R at s.
 #[derive(Clone, Copy, Debug)]
 struct RatioValue {
@@ -363,40 +391,45 @@ struct RatioValue {
 
 impl<'a> Ratio<'a> {
     fn new(grid: &'a Grid, v: usize, c: usize, beta: bool) -> Ratio<'a> {
-        let (kv, kc) = (grid.arms[v].kernel, grid.arms[c].kernel);
-        let over_variant = kv.sd() <= kc.sd();
-        let (outer, inner) = if over_variant { (v, c) } else { (c, v) };
-        let arm = &grid.arms[outer];
-        let mut nodes = Vec::with_capacity((arm.p1 - arm.p0) * NP);
-        for p in arm.p0..arm.p1 {
-            for i in 0..NP {
-                let wg = grid.weight(p, i) * arm.dens[(p - arm.p0) * NP + i];
-                // Dropped nodes carry < 1e-19 each: far below the 1e-15 the sums resolve.
-                if wg <= 1e-19 {
-                    continue;
-                }
-                let t = grid.node(p, i);
-                let (ln_x, comp) = if beta {
-                    (-softplus(-t), logistic(-t))
-                } else {
-                    (0.0, 0.0)
-                };
-                nodes.push(OuterNode { t, wg, ln_x, comp });
-            }
-        }
+        let (nodes_v, top_v) = outer_nodes(grid, v, beta);
+        let (nodes_c, top_c) = outer_nodes(grid, c, beta);
+        let variant_is_narrower = grid.arms[v].kernel.sd() <= grid.arms[c].kernel.sd();
         Ratio {
             grid,
-            inner,
-            over_variant,
+            v,
+            c,
             beta,
-            nodes,
+            nodes_v,
+            nodes_c,
+            top_v,
+            top_c,
+            variant_is_narrower,
         }
     }
 
     fn eval(&self, s: f64) -> RatioValue {
         // Over the control: θ_v ≤ e^s θ_c ⟺ τ_v ≤ image of t under θ ↦ e^s θ.
         // Over the variant: θ_v ≤ e^s θ_c ⟺ τ_c ≥ image of t under θ ↦ e^-s θ.
-        let shift = if self.over_variant { -s } else { s };
+        // For conversion rates a map with factor > 1 sends some θ past 1, where the integrand
+        // has a kink that quadrature resolves only to O(h²); the other orientation (factor
+        // < 1) is smooth, so it is used whenever the narrower arm's nodes would reach the kink.
+        let mut over_variant = self.variant_is_narrower;
+        if self.beta {
+            let (factor, top) = if over_variant {
+                ((-s).exp(), self.top_v)
+            } else {
+                (s.exp(), self.top_c)
+            };
+            if factor * top >= 1.0 {
+                over_variant = !over_variant;
+            }
+        }
+        let (nodes, inner) = if over_variant {
+            (&self.nodes_v, self.c)
+        } else {
+            (&self.nodes_c, self.v)
+        };
+        let shift = if over_variant { -s } else { s };
         let rho = shift.exp();
         let one_minus_rho = -shift.exp_m1();
         let mut acc = RatioValue {
@@ -404,8 +437,8 @@ impl<'a> Ratio<'a> {
             sf: 0.0,
             dens: 0.0,
         };
-        let mut cursor = self.grid.arms[self.inner].p0;
-        for node in &self.nodes {
+        let mut cursor = self.grid.arms[inner].p0;
+        for node in nodes {
             let image = if self.beta {
                 let ln_rx = shift + node.ln_x;
                 // 1 − ρx as a sum of positive terms when ρ ≤ 1: (1 − ρ) + ρ(1 − x).
@@ -426,11 +459,11 @@ impl<'a> Ratio<'a> {
                 // The image left the support (a conversion rate above 1): certainly below.
                 None => (1.0, 0.0, 0.0),
                 Some((tau, dtau)) => {
-                    let pv = self.grid.eval_near(self.inner, tau, &mut cursor);
+                    let pv = self.grid.eval_near(inner, tau, &mut cursor);
                     (pv.cdf, pv.sf, pv.dens * dtau)
                 }
             };
-            if self.over_variant {
+            if over_variant {
                 acc.cdf += node.wg * above;
                 acc.sf += node.wg * below;
             } else {
