@@ -24,6 +24,94 @@ pub struct ExperimentDef {
     pub variants: Vec<VariantDef>,
     /// Metrics observed on every arm.
     pub metrics: Vec<MetricDef>,
+    /// Which metric decides, which guard, and the data-quality checks.
+    pub rules: ExperimentRules,
+}
+
+/// Experiment-level decision settings (see docs/decisions.md for the defaults and why).
+#[derive(Debug, Clone, PartialEq)]
+pub struct ExperimentRules {
+    /// Index of the metric whose expected loss decides shipping.
+    pub primary: usize,
+    /// Indices of metrics whose harm blocks shipping the harmed variant.
+    pub guardrails: Vec<usize>,
+    /// Sample-ratio mismatch flagged below this p-value (suspends ship decisions).
+    pub srm_p: f64,
+    /// Crossover share of exposed units above which data quality is flagged.
+    pub max_crossover_share: f64,
+    /// Probability that every variant is within the ROPE for "equivalent".
+    pub equivalence_probability: f64,
+}
+
+impl Default for ExperimentRules {
+    fn default() -> Self {
+        ExperimentRules {
+            primary: 0,
+            guardrails: Vec::new(),
+            srm_p: DEFAULT_SRM_P,
+            max_crossover_share: DEFAULT_MAX_CROSSOVER_SHARE,
+            equivalence_probability: DEFAULT_EQUIVALENCE_PROBABILITY,
+        }
+    }
+}
+
+/// Default SRM alarm threshold: p < 0.001 is common practice for this check.
+pub const DEFAULT_SRM_P: f64 = 0.001;
+/// Default crossover bound: more than 1% of units seen in a second arm means assignment leaks.
+pub const DEFAULT_MAX_CROSSOVER_SHARE: f64 = 0.01;
+/// Default probability for practical equivalence.
+pub const DEFAULT_EQUIVALENCE_PROBABILITY: f64 = 0.95;
+/// Default minimum exposed units per variant before any decision.
+pub const DEFAULT_MIN_UNITS: u64 = 500;
+/// Default harm probability: strict, because the rule is checked continuously.
+pub const DEFAULT_HARM_PROBABILITY: f64 = 0.99;
+/// Default ROPE half-width (relative lift).
+pub const DEFAULT_ROPE: f64 = 0.01;
+
+/// Metric-level stopping rules.
+#[derive(Debug, Clone, PartialEq)]
+pub struct MetricRules {
+    /// Exposed units each compared variant needs before any decision.
+    pub min_units: u64,
+    /// Summed exposure each compared variant needs (defect metrics).
+    pub min_exposure: f64,
+    /// Harm: P(worse than control by more than `margin`, relative) ≥ `probability`.
+    pub harm: Option<HarmRule>,
+    /// Ship: expected loss of choosing a variant below the threshold of caring.
+    pub ship: Option<ShipRule>,
+    /// Region of practical equivalence: half-width of the relative lift.
+    pub rope: f64,
+}
+
+impl Default for MetricRules {
+    fn default() -> Self {
+        MetricRules {
+            min_units: DEFAULT_MIN_UNITS,
+            min_exposure: 0.0,
+            harm: Some(HarmRule {
+                probability: DEFAULT_HARM_PROBABILITY,
+                margin: 0.0,
+            }),
+            ship: None,
+            rope: DEFAULT_ROPE,
+        }
+    }
+}
+
+/// The harm rule.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct HarmRule {
+    /// Posterior probability at or above which harm holds.
+    pub probability: f64,
+    /// Relative margin: harm means worse than the control by more than this.
+    pub margin: f64,
+}
+
+/// The ship rule.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ShipRule {
+    /// Largest expected loss (in the metric's rate units) the team is willing to risk.
+    pub threshold_of_caring: f64,
 }
 
 impl ExperimentDef {
@@ -58,6 +146,8 @@ pub struct MetricDef {
     pub prior: Prior,
     /// Per-arm prior overrides, indexed like `ExperimentDef::variants`.
     pub variant_priors: Vec<Option<Prior>>,
+    /// Stopping rules of this metric.
+    pub rules: MetricRules,
 }
 
 impl MetricDef {

@@ -14,6 +14,7 @@ pub mod changelog;
 pub mod cli;
 pub mod compare;
 pub mod config;
+pub mod decide;
 pub mod decode;
 pub mod event;
 pub mod experiment;

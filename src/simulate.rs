@@ -12,7 +12,9 @@ use rand_distr::{Distribution, Poisson};
 use tokio_util::sync::CancellationToken;
 
 use crate::app::Shared;
-use crate::experiment::{ExperimentDef, ExposureBasis, MetricDef, MetricKind, Prior, VariantDef};
+use crate::experiment::{
+    ExperimentDef, ExperimentRules, ExposureBasis, MetricDef, MetricKind, Prior, VariantDef,
+};
 use crate::metrics::Source;
 
 /// How the simulator runs.
@@ -58,11 +60,19 @@ fn variants(names: &[(&str, f64)]) -> Vec<VariantDef> {
 }
 
 fn metric(name: &str, kind: MetricKind, prior: Prior, n_variants: usize) -> MetricDef {
+    let mut rules = crate::experiment::MetricRules::default();
+    if kind == MetricKind::Conversion {
+        // The demo's teams care about 0.2 percentage points of conversion.
+        rules.ship = Some(crate::experiment::ShipRule {
+            threshold_of_caring: 0.002,
+        });
+    }
     MetricDef {
         name: name.into(),
         kind,
         prior,
         variant_priors: vec![None; n_variants],
+        rules,
     }
 }
 
@@ -97,6 +107,11 @@ pub fn demo_scenarios() -> Vec<Scenario> {
                         2,
                     ),
                 ],
+                rules: ExperimentRules {
+                    primary: 0,
+                    guardrails: vec![1],
+                    ..ExperimentRules::default()
+                },
             },
             // Shorter checkout copy converts a little better; payment errors unchanged.
             truths: truths(&[&[0.112, 0.004], &[0.121, 0.004]]),
@@ -111,6 +126,7 @@ pub fn demo_scenarios() -> Vec<Scenario> {
                     ("countdown", 0.33),
                 ]),
                 metrics: vec![metric("add-to-basket", MetricKind::Conversion, UNIFORM, 3)],
+                rules: ExperimentRules::default(),
             },
             // The countdown banner annoys people: clearly worse.
             truths: truths(&[&[0.30], &[0.31], &[0.24]]),
@@ -129,6 +145,11 @@ pub fn demo_scenarios() -> Vec<Scenario> {
                     ),
                     metric("next-day-return", MetricKind::Conversion, UNIFORM, 2),
                 ],
+                rules: ExperimentRules {
+                    primary: 1,
+                    guardrails: vec![0],
+                    ..ExperimentRules::default()
+                },
             },
             // Crashes per session: the new renderer crashes three times as often.
             truths: truths(&[&[0.002, 0.41], &[0.006, 0.41]]),
@@ -139,6 +160,7 @@ pub fn demo_scenarios() -> Vec<Scenario> {
                 control: 0,
                 variants: variants(&[("control", 0.5), ("evening-reminder", 0.5)]),
                 metrics: vec![metric("plant-logged", MetricKind::Conversion, UNIFORM, 2)],
+                rules: ExperimentRules::default(),
             },
             // An A/A-like test: no real difference.
             truths: truths(&[&[0.18], &[0.18]]),

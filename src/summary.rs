@@ -61,16 +61,18 @@ pub fn posteriors(def: &MetricDef, totals: &MetricTotals) -> Result<Arms, StatsE
 /// Summarise `snapshot` at credible level `level`.
 pub fn summarize(snapshot: ExperimentSnapshot, level: f64) -> ExperimentSummary {
     let def = &snapshot.def;
-    let options = CompareOptions {
-        control: def.control,
-        level,
-        ..CompareOptions::default()
-    };
     let metrics = def
         .metrics
         .iter()
         .zip(&snapshot.metrics)
         .map(|(m, totals)| {
+            // Each metric's own ROPE and harm margin shape its probabilities.
+            let options = CompareOptions {
+                control: def.control,
+                level,
+                rope: m.rules.rope,
+                harm_margin: m.rules.harm.map_or(0.0, |h| h.margin),
+            };
             let posteriors = posteriors(m, totals);
             let arms = match &posteriors {
                 Ok(p) => stats::compare(p, &options),

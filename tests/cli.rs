@@ -77,7 +77,7 @@ fn start_demo(extra: &[&str]) -> (std::process::Child, String, tempfile::TempDir
 
 #[test]
 fn demo_serves_live_experiments_and_stops_after_its_duration() {
-    let (mut child, base, _dir) = start_demo(&["--duration", "6", "--units-per-second", "200"]);
+    let (mut child, base, _dir) = start_demo(&["--duration", "14", "--units-per-second", "200"]);
     let http = client();
     let doc: Value = wait_for(Duration::from_secs(5), "demo traffic", || {
         let doc: Value = http

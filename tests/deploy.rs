@@ -79,9 +79,12 @@ fn check_config(toml: &str, what: &str) {
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("posteriord.toml");
     std::fs::write(&path, toml).unwrap();
+    // check-config sees the same environment as serve; the documented SASL examples take
+    // their password from it.
     let out = Command::new(common::bin())
         .arg("check-config")
         .arg(&path)
+        .env("POSTERIORD_KAFKA_PROP_SASL_PASSWORD", "test-only")
         .output()
         .unwrap();
     assert!(

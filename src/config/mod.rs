@@ -16,8 +16,9 @@ use toml::Spanned;
 
 use crate::decode::DEFAULT_MAX_EVENT_BYTES;
 use crate::experiment::{
-    ExperimentDef, ExposureBasis, MetricDef, MetricKind, Prior, VariantDef, MAX_CONVERSION_METRICS,
-    MAX_METRICS, MAX_VARIANTS,
+    ExperimentDef, ExperimentRules, ExposureBasis, HarmRule, MetricDef, MetricKind, MetricRules,
+    Prior, ShipRule, VariantDef, DEFAULT_EQUIVALENCE_PROBABILITY, DEFAULT_HARM_PROBABILITY,
+    DEFAULT_MAX_CROSSOVER_SHARE, DEFAULT_SRM_P, MAX_CONVERSION_METRICS, MAX_METRICS, MAX_VARIANTS,
 };
 use raw::{PropertyValue, RawConfig, RawExperiment, RawExposure, RawKind, RawMetric, RawPrior};
 
@@ -165,6 +166,15 @@ impl Config {
         apply_env(&mut config, env)?;
         Ok(config)
     }
+}
+
+/// The experiment-level rule keys of one `[[experiment]]` table.
+struct RuleKeys<'a> {
+    primary: &'a Option<Spanned<String>>,
+    guardrails: &'a Option<Spanned<Vec<String>>>,
+    srm_p: &'a Option<Spanned<f64>>,
+    max_crossover_share: &'a Option<Spanned<f64>>,
+    equivalence_probability: &'a Option<Spanned<f64>>,
 }
 
 struct Ctx<'a> {
@@ -508,12 +518,176 @@ impl Ctx<'_> {
                 format!("at most {MAX_CONVERSION_METRICS} conversion metrics per experiment, got {n_conversion}"),
             ));
         }
+        let rules = self.experiment_rules(
+            &key,
+            RuleKeys {
+                primary: &e.primary,
+                guardrails: &e.guardrails,
+                srm_p: &e.srm_p,
+                max_crossover_share: &e.max_crossover_share,
+                equivalence_probability: &e.equivalence_probability,
+            },
+            &metrics,
+        )?;
         Ok(ExperimentDef {
             id,
             control,
             variants,
             metrics,
+            rules,
         })
+    }
+
+    fn experiment_rules(
+        &self,
+        key: &str,
+        e: RuleKeys<'_>,
+        metrics: &[MetricDef],
+    ) -> Result<ExperimentRules, ConfigError> {
+        let find = |name: &str| metrics.iter().position(|m| m.name == name);
+        let primary = match e.primary {
+            Some(p) => find(p.get_ref()).ok_or_else(|| {
+                self.err(
+                    p.span(),
+                    format!("{key}.primary"),
+                    format!("`{}` is not one of the experiment's metrics", p.get_ref()),
+                )
+            })?,
+            None => metrics
+                .iter()
+                .position(|m| m.kind == MetricKind::Conversion)
+                .unwrap_or(0),
+        };
+        let guardrails = match e.guardrails {
+            Some(g) => {
+                let mut out = Vec::new();
+                for name in g.get_ref() {
+                    let idx = find(name).ok_or_else(|| {
+                        self.err(
+                            g.span(),
+                            format!("{key}.guardrails"),
+                            format!("`{name}` is not one of the experiment's metrics"),
+                        )
+                    })?;
+                    if idx == primary {
+                        return Err(self.err(
+                            g.span(),
+                            format!("{key}.guardrails"),
+                            format!("`{name}` is the primary metric"),
+                        ));
+                    }
+                    out.push(idx);
+                }
+                out
+            }
+            None => (0..metrics.len()).filter(|&i| i != primary).collect(),
+        };
+        let within = |v: &Option<Spanned<f64>>, k: &str, default: f64, lo: f64, hi: f64| match v {
+            None => Ok(default),
+            Some(x) if x.get_ref().is_finite() && *x.get_ref() > lo && *x.get_ref() < hi => {
+                Ok(*x.get_ref())
+            }
+            Some(x) => Err(self.err(
+                x.span(),
+                format!("{key}.{k}"),
+                format!(
+                    "must be between {lo} and {hi} (exclusive), got {}",
+                    x.get_ref()
+                ),
+            )),
+        };
+        Ok(ExperimentRules {
+            primary,
+            guardrails,
+            srm_p: within(e.srm_p, "srm_p", DEFAULT_SRM_P, 0.0, 0.5)?,
+            max_crossover_share: within(
+                e.max_crossover_share,
+                "max_crossover_share",
+                DEFAULT_MAX_CROSSOVER_SHARE,
+                0.0,
+                1.0,
+            )?,
+            equivalence_probability: within(
+                e.equivalence_probability,
+                "equivalence_probability",
+                DEFAULT_EQUIVALENCE_PROBABILITY,
+                0.5,
+                1.0,
+            )?,
+        })
+    }
+
+    fn metric_rules(
+        &self,
+        key: &str,
+        r: Option<&Spanned<raw::RawRules>>,
+    ) -> Result<MetricRules, ConfigError> {
+        let mut rules = MetricRules::default();
+        let Some(r) = r else { return Ok(rules) };
+        let r = r.get_ref();
+        if let Some(v) = &r.min_units {
+            rules.min_units = u64::try_from(*v.get_ref()).map_err(|_| {
+                self.err(v.span(), format!("{key}.min_units"), "must not be negative")
+            })?;
+        }
+        if let Some(v) = &r.min_exposure {
+            let x = *v.get_ref();
+            if !(x.is_finite() && x >= 0.0) {
+                return Err(self.err(
+                    v.span(),
+                    format!("{key}.min_exposure"),
+                    "must be a non-negative number",
+                ));
+            }
+            rules.min_exposure = x;
+        }
+        if let Some(h) = &r.harm {
+            let probability = h.get_ref().probability.unwrap_or(DEFAULT_HARM_PROBABILITY);
+            let margin = h.get_ref().margin.unwrap_or(0.0);
+            if !(probability > 0.5 && probability < 1.0) {
+                return Err(self.err(
+                    h.span(),
+                    format!("{key}.harm.probability"),
+                    format!("must be between 0.5 and 1 (exclusive), got {probability}"),
+                ));
+            }
+            if !(margin.is_finite() && (0.0..1.0).contains(&margin)) {
+                return Err(self.err(
+                    h.span(),
+                    format!("{key}.harm.margin"),
+                    format!("must be a relative margin in [0, 1), got {margin}"),
+                ));
+            }
+            rules.harm = Some(HarmRule {
+                probability,
+                margin,
+            });
+        }
+        if let Some(sh) = &r.ship {
+            let t = sh.get_ref().threshold_of_caring;
+            if !(t.is_finite() && t > 0.0) {
+                return Err(self.err(
+                    sh.span(),
+                    format!("{key}.ship.threshold_of_caring"),
+                    format!("must be a positive number in the metric's rate units, got {t}"),
+                ));
+            }
+            rules.ship = Some(ShipRule {
+                threshold_of_caring: t,
+            });
+        }
+        if let Some(v) = &r.rope {
+            let x = *v.get_ref();
+            if !(x.is_finite() && x > 0.0 && x < 1.0) {
+                return Err(self.err(
+                    v.span(),
+                    format!("{key}.rope"),
+                    format!("must be a relative half-width in (0, 1), got {x}"),
+                ));
+            }
+            rules.rope = x;
+        }
+        Ok(rules)
     }
 
     fn metric(
@@ -565,11 +739,13 @@ impl Ctx<'_> {
             };
             variant_priors[idx] = Some(self.prior(p, &pkey, kind)?);
         }
+        let rules = self.metric_rules(&format!("{key}.rules"), m.rules.as_ref())?;
         Ok(MetricDef {
             name,
             kind,
             prior,
             variant_priors,
+            rules,
         })
     }
 

@@ -64,6 +64,11 @@ pub(super) struct RawExperiment {
     pub variants: Spanned<Vec<Spanned<RawVariant>>>,
     #[serde(default)]
     pub metric: Vec<Spanned<RawMetric>>,
+    pub primary: Option<Spanned<String>>,
+    pub guardrails: Option<Spanned<Vec<String>>>,
+    pub srm_p: Option<Spanned<f64>>,
+    pub max_crossover_share: Option<Spanned<f64>>,
+    pub equivalence_probability: Option<Spanned<f64>>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -96,6 +101,30 @@ pub(super) struct RawMetric {
     pub prior: Option<Spanned<RawPrior>>,
     #[serde(default)]
     pub variant_priors: BTreeMap<String, Spanned<RawPrior>>,
+    pub rules: Option<Spanned<RawRules>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawRules {
+    pub min_units: Option<Spanned<i64>>,
+    pub min_exposure: Option<Spanned<f64>>,
+    pub harm: Option<Spanned<RawHarm>>,
+    pub ship: Option<Spanned<RawShip>>,
+    pub rope: Option<Spanned<f64>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawHarm {
+    pub probability: Option<f64>,
+    pub margin: Option<f64>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawShip {
+    pub threshold_of_caring: f64,
 }
 
 #[derive(Debug, Deserialize)]

@@ -224,3 +224,55 @@ fn environment_overrides_apply_and_name_the_variable() {
     .unwrap();
     assert_eq!(c.kafka.unwrap().topics, vec!["t".to_string()]);
 }
+
+#[test]
+fn rules_parse_with_defaults_and_name_bad_keys() {
+    let text = EXAMPLE.replace(
+        "prior = { shape = 1.0, rate = 1.0 }",
+        "prior = { shape = 1.0, rate = 1.0 }\n[experiment.metric.rules]\nmin_units = 800\nharm = { probability = 0.995, margin = 0.1 }\nrope = 0.02",
+    )
+    .replace(
+        "prior = { alpha = 1.0, beta = 1.0 }",
+        "prior = { alpha = 1.0, beta = 1.0 }\n[experiment.metric.rules]\nship = { threshold_of_caring = 0.0005 }",
+    );
+    let c = parse(&text).unwrap();
+    let e = &c.experiments[0];
+    assert_eq!(e.rules.primary, 0);
+    assert_eq!(e.rules.guardrails, vec![1]);
+    assert_eq!(
+        e.metrics[0].rules.ship,
+        Some(ShipRule {
+            threshold_of_caring: 0.0005
+        })
+    );
+    assert_eq!(
+        e.metrics[0].rules.min_units,
+        crate::experiment::DEFAULT_MIN_UNITS
+    );
+    assert_eq!(e.metrics[1].rules.min_units, 800);
+    assert_eq!(
+        e.metrics[1].rules.harm,
+        Some(HarmRule {
+            probability: 0.995,
+            margin: 0.1
+        })
+    );
+    assert_eq!(e.metrics[1].rules.rope, 0.02);
+    assert_eq!(e.metrics[1].rules.ship, None);
+
+    let bad = text.replace("probability = 0.995", "probability = 1.5");
+    let err = error(&bad);
+    assert_eq!(
+        err.key, "experiment[0].metric[1].rules.harm.probability",
+        "{err}"
+    );
+    let bad = text.replace("min_units = 800", "min_unit = 800");
+    let err = error(&bad);
+    assert!(err.to_string().contains("min_unit"), "{err}");
+    assert_eq!(err.line, Some(line_of(&bad, "min_unit =")));
+    let bad = text.replace(
+        "id = \"checkout-copy\"",
+        "id = \"checkout-copy\"\nprimary = \"refund\"",
+    );
+    assert_eq!(error(&bad).key, "experiment[0].primary");
+}

@@ -163,8 +163,30 @@ pub fn experiment_document(summary: &ExperimentSummary) -> Value {
         "sample_ratio": sample_ratio(&summary.sample_ratio),
         "last_event_time": snap.last_event_time.and_then(time_text),
         "metrics": metrics,
+        "decisions": decisions(summary),
         "caution": CAUTION,
     })
+}
+
+/// The rules that hold now, with the numbers they compared.
+fn decisions(summary: &ExperimentSummary) -> Value {
+    let def = &summary.snapshot.def;
+    let found: Vec<Value> = crate::decide::evaluate(summary)
+        .into_iter()
+        .map(|f| {
+            json!({
+                "rule": f.rule.as_str(),
+                "metric": f.metric.map(|m| def.metrics[m].name.clone()),
+                "variant": f.variant.map(|v| def.variants[v].name.clone()),
+                "value": f.value,
+                "threshold": f.threshold,
+                "test": f.test,
+                "message": f.message,
+                "units": summary.snapshot.units,
+            })
+        })
+        .collect();
+    Value::Array(found)
 }
 
 /// One refused event in an ingest reply.

@@ -34,20 +34,24 @@ fn bakery() -> ExperimentDef {
                 kind: MetricKind::Conversion,
                 prior: beta,
                 variant_priors: vec![None, None],
+                rules: Default::default(),
             },
             MetricDef {
                 name: "payment-error".into(),
                 kind: MetricKind::DefectRate(ExposureBasis::Units),
                 prior: gamma,
                 variant_priors: vec![None, None],
+                rules: Default::default(),
             },
             MetricDef {
                 name: "oven-faults".into(),
                 kind: MetricKind::DefectRate(ExposureBasis::Reported),
                 prior: gamma,
                 variant_priors: vec![None, None],
+                rules: Default::default(),
             },
         ],
+        rules: Default::default(),
     }
 }
 

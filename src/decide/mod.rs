@@ -1,0 +1,245 @@
+//! The decision engine: from an experiment's posteriors and decision quantities to the rules
+//! that hold now, each with the numbers it compared. Pure: no clocks, no I/O.
+//!
+//! Rules (docs/decisions.md): `harm` (a variant is clearly worse than the control on a
+//! metric), `ship` (an arm's expected loss on the primary metric is below the threshold of
+//! caring, no guardrail harm on it, no sample-ratio mismatch), `equivalent` (every variant
+//! within the ROPE of the control on the primary metric with high probability),
+//! `sample_ratio` (exposed units do not match the planned weights) and `crossovers` (too many
+//! units seen in a second arm). Posteriors assume the model and clean data: the data-quality
+//! rules are reported first and suspend shipping.
+
+use crate::event::Outcome;
+use crate::experiment::{ExperimentDef, MetricKind};
+use crate::state::MetricTotals;
+use crate::stats::ArmSummary;
+use crate::summary::ExperimentSummary;
+
+/// Which rule a finding is about.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub enum Rule {
+    /// Units per arm do not match the planned weights.
+    SampleRatio,
+    /// Too many units were exposed to a second arm.
+    Crossovers,
+    /// A variant is worse than the control by more than the margin, with high probability.
+    Harm,
+    /// An arm can be shipped: its expected loss is below the threshold of caring.
+    Ship,
+    /// All variants are practically equivalent to the control.
+    Equivalent,
+}
+
+impl Rule {
+    /// Stable name used in the API and metrics.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Rule::SampleRatio => "sample_ratio",
+            Rule::Crossovers => "crossovers",
+            Rule::Harm => "harm",
+            Rule::Ship => "ship",
+            Rule::Equivalent => "equivalent",
+        }
+    }
+}
+
+/// A rule that holds now, with what it compared.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Finding {
+    /// The rule.
+    pub rule: Rule,
+    /// Metric index, for metric rules.
+    pub metric: Option<usize>,
+    /// Variant index, for per-variant rules.
+    pub variant: Option<usize>,
+    /// The quantity compared (a probability, an expected loss, a p-value, a share).
+    pub value: f64,
+    /// The threshold it was compared with.
+    pub threshold: f64,
+    /// How: e.g. "prob_harm >= threshold".
+    pub test: &'static str,
+    /// One sentence for the person on call.
+    pub message: String,
+}
+
+fn eligible(
+    def: &ExperimentDef,
+    totals: &MetricTotals,
+    units: &[u64],
+    metric: usize,
+    arm: usize,
+) -> bool {
+    let rules = &def.metrics[metric].rules;
+    if units[arm] < rules.min_units {
+        return false;
+    }
+    match (def.metrics[metric].kind, totals) {
+        (MetricKind::DefectRate(_), MetricTotals::Defect(v)) => {
+            v[arm].exposure >= rules.min_exposure
+        }
+        _ => true,
+    }
+}
+
+/// Evaluate every rule of `summary`'s experiment. Findings are ordered data quality first,
+/// then harm, ship, equivalent.
+pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
+    let snap = &summary.snapshot;
+    let def: &ExperimentDef = &snap.def;
+    let xr = &def.rules;
+    let mut out = Vec::new();
+    let control = def.control;
+
+    // Data quality.
+    let mut srm_holds = false;
+    if let Some(Ok(srm)) = &summary.sample_ratio {
+        // The chi-square approximation needs enough units in every arm (≥ 5 expected is the
+        // textbook rule of thumb); below that the check stays silent.
+        let n: u64 = snap.units.iter().sum();
+        let enough = def.variants.iter().all(|v| v.weight * n as f64 >= 5.0);
+        if enough && srm.p_value < xr.srm_p {
+            srm_holds = true;
+            out.push(Finding {
+                rule: Rule::SampleRatio,
+                metric: None,
+                variant: None,
+                value: srm.p_value,
+                threshold: xr.srm_p,
+                test: "p_value < threshold",
+                message: format!(
+                    "exposed units {:?} do not match the planned weights (chi-square {:.2}, p = {:.3e}); check assignment and logging before trusting any result; shipping is suspended",
+                    snap.units, srm.chi2, srm.p_value
+                ),
+            });
+        }
+    }
+    let crossovers = snap.outcomes.get(Outcome::Crossover) as f64;
+    let units_total: f64 = snap.units.iter().sum::<u64>() as f64;
+    if units_total > 0.0 {
+        let share = crossovers / units_total;
+        if share > xr.max_crossover_share {
+            out.push(Finding {
+                rule: Rule::Crossovers,
+                metric: None,
+                variant: None,
+                value: share,
+                threshold: xr.max_crossover_share,
+                test: "crossover share > threshold",
+                message: format!(
+                    "{:.2}% of units were also exposed to another arm; assignment is leaking, so results mix arms",
+                    share * 100.0
+                ),
+            });
+        }
+    }
+
+    // Harm, on every metric.
+    let mut harmed: Vec<(usize, usize)> = Vec::new();
+    for (m, metric) in def.metrics.iter().enumerate() {
+        let (Some(rule), Ok(arms)) = (metric.rules.harm, &summary.metrics[m].arms) else {
+            continue;
+        };
+        for (v, arm) in arms.iter().enumerate() {
+            if v == control
+                || !eligible(def, &snap.metrics[m], &snap.units, m, v)
+                || !eligible(def, &snap.metrics[m], &snap.units, m, control)
+            {
+                continue;
+            }
+            let Some(p) = arm.prob_harm else { continue };
+            if p >= rule.probability {
+                harmed.push((m, v));
+                out.push(Finding {
+                    rule: Rule::Harm,
+                    metric: Some(m),
+                    variant: Some(v),
+                    value: p,
+                    threshold: rule.probability,
+                    test: "prob_harm >= threshold",
+                    message: format!(
+                        "`{}` is worse than `{}` on `{}`{} with probability {:.4} (threshold {}); consider stopping it",
+                        def.variants[v].name,
+                        def.variants[control].name,
+                        metric.name,
+                        if rule.margin > 0.0 { format!(" by more than {:.1}%", rule.margin * 100.0) } else { String::new() },
+                        p,
+                        rule.probability
+                    ),
+                });
+            }
+        }
+    }
+
+    // Ship and equivalence, on the primary metric.
+    let p = xr.primary;
+    let primary = &def.metrics[p];
+    if let Ok(arms) = &summary.metrics[p].arms {
+        let all_eligible =
+            (0..def.variants.len()).all(|v| eligible(def, &snap.metrics[p], &snap.units, p, v));
+        if all_eligible {
+            if let (Some(rule), false) = (primary.rules.ship, srm_holds) {
+                let best = arms
+                    .iter()
+                    .enumerate()
+                    .filter(|(v, _)| !xr.guardrails.iter().any(|g| harmed.contains(&(*g, *v))))
+                    .min_by(|a, b| a.1.expected_loss.total_cmp(&b.1.expected_loss));
+                if let Some((v, arm)) = best {
+                    if arm.expected_loss < rule.threshold_of_caring {
+                        out.push(Finding {
+                            rule: Rule::Ship,
+                            metric: Some(p),
+                            variant: Some(v),
+                            value: arm.expected_loss,
+                            threshold: rule.threshold_of_caring,
+                            test: "expected_loss < threshold_of_caring",
+                            message: ship_message(def, p, v, arm, rule.threshold_of_caring),
+                        });
+                    }
+                }
+            }
+            let equivalent: Vec<f64> = arms
+                .iter()
+                .enumerate()
+                .filter(|(v, _)| *v != control)
+                .filter_map(|(_, a)| a.prob_practically_equivalent)
+                .collect();
+            if !equivalent.is_empty() {
+                let worst = equivalent.iter().copied().fold(f64::INFINITY, f64::min);
+                if worst >= xr.equivalence_probability {
+                    out.push(Finding {
+                        rule: Rule::Equivalent,
+                        metric: Some(p),
+                        variant: None,
+                        value: worst,
+                        threshold: xr.equivalence_probability,
+                        test: "min prob_practically_equivalent >= threshold",
+                        message: format!(
+                            "every variant is within ±{:.1}% of `{}` on `{}` with probability ≥ {:.3}; more traffic is unlikely to change the choice",
+                            primary.rules.rope * 100.0,
+                            def.variants[control].name,
+                            primary.name,
+                            worst
+                        ),
+                    });
+                }
+            }
+        }
+    }
+    out
+}
+
+fn ship_message(
+    def: &ExperimentDef,
+    metric: usize,
+    v: usize,
+    arm: &ArmSummary,
+    threshold: f64,
+) -> String {
+    format!(
+        "choosing `{}` on `{}` risks an expected loss of {:.3e} (below the threshold of caring {threshold:e}); posteriors assume the model and clean data, so review before shipping",
+        def.variants[v].name, def.metrics[metric].name, arm.expected_loss
+    )
+}
+
+#[cfg(test)]
+mod tests;
