@@ -11,6 +11,7 @@ use tokio_util::sync::CancellationToken;
 use tokio_util::task::TaskTracker;
 
 use crate::config::Config;
+use crate::decide::alerts::{AlertBook, AlertChange};
 use crate::metrics::Metrics;
 use crate::metrics::Source;
 use crate::simulate::SimulateOptions;
@@ -37,6 +38,8 @@ pub struct Shared {
     /// Write-ahead log of events posted over HTTP (with a store only). Its lock also orders
     /// HTTP batches: a batch is logged and applied while holding it.
     http_wal: Option<Mutex<Wal>>,
+    /// Alerts raised by the evaluator; read by `GET /v1/alerts`.
+    pub alerts: Mutex<AlertBook>,
 }
 
 impl Shared {
@@ -56,6 +59,7 @@ impl Shared {
             store: None,
             snapshot_interval: config.store.snapshot_interval,
             http_wal: None,
+            alerts: Mutex::new(AlertBook::new(config.alerts.hold_down.as_micros() as i64)),
         }
     }
 
@@ -257,6 +261,80 @@ pub struct RunOptions {
     pub persist: bool,
 }
 
+fn now_micros() -> i64 {
+    (time::OffsetDateTime::now_utc().unix_timestamp_nanos() / 1_000) as i64
+}
+
+/// Evaluate every experiment's rules and fold the findings into the alert book; each change
+/// is logged as one structured line (the log sink) and counted.
+pub fn evaluate_all(shared: &Shared) {
+    let snapshots = shared.lock_shards().snapshots();
+    let now = now_micros();
+    for snapshot in snapshots {
+        let def = Arc::clone(&snapshot.def);
+        let summary = crate::summary::summarize(snapshot, crate::summary::DEFAULT_LEVEL);
+        let findings = crate::decide::evaluate(&summary);
+        let changes = shared
+            .alerts
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .update(&def, &findings, now);
+        for change in changes {
+            let (kind, alert) = match &change {
+                AlertChange::Opened(a) => ("opened", a),
+                AlertChange::Closed(a) => ("closed", a),
+            };
+            shared
+                .metrics
+                .alert_changes
+                .with_label_values(&[alert.key.rule.as_str(), kind])
+                .inc();
+            tracing::warn!(
+                alert_id = %alert.id,
+                change = kind,
+                state = alert.state.as_str(),
+                experiment = %alert.key.experiment,
+                metric = alert.key.metric.as_deref().unwrap_or(""),
+                variant = alert.key.variant.as_deref().unwrap_or(""),
+                rule = alert.key.rule.as_str(),
+                value = alert.finding.value,
+                threshold = alert.finding.threshold,
+                caution = crate::http::doc::CAUTION_SHORT,
+                "{}",
+                alert.finding.message
+            );
+        }
+    }
+    let book = shared.alerts.lock().unwrap_or_else(|p| p.into_inner());
+    shared.metrics.alerts.reset();
+    for a in book.alerts() {
+        shared
+            .metrics
+            .alerts
+            .with_label_values(&[a.key.rule.as_str(), a.state.as_str()])
+            .inc();
+    }
+}
+
+/// Evaluate the rules on a fixed cadence until shutdown.
+async fn evaluate_loop(
+    shared: Arc<Shared>,
+    every: std::time::Duration,
+    shutdown: CancellationToken,
+) {
+    let mut tick = tokio::time::interval(every);
+    loop {
+        tokio::select! {
+            _ = shutdown.cancelled() => break,
+            _ = tick.tick() => {}
+        }
+        let s = Arc::clone(&shared);
+        if let Err(e) = tokio::task::spawn_blocking(move || evaluate_all(&s)).await {
+            tracing::error!(error = %e, "rule evaluation failed");
+        }
+    }
+}
+
 /// Store the HTTP shard on the snapshot cadence and once more at shutdown.
 async fn save_http_shard(
     shared: Arc<Shared>,
@@ -335,6 +413,11 @@ pub async fn run(
         .replay_http_wal()
         .context("cannot replay the HTTP write-ahead log")?;
     let tracker = TaskTracker::new();
+    tracker.spawn(evaluate_loop(
+        Arc::clone(&shared),
+        config.alerts.evaluate_every,
+        shutdown.clone(),
+    ));
     if shared.store.is_some() {
         tracker.spawn(save_http_shard(
             Arc::clone(&shared),

@@ -152,6 +152,10 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
             snapshot_interval: Duration::from_millis(config::DEFAULT_SNAPSHOT_INTERVAL_MS),
         },
         experiments: simulate::demo_experiments(),
+        alerts: config::AlertsConfig {
+            hold_down: Duration::from_secs(60),
+            evaluate_every: Duration::from_secs(2),
+        },
     };
     runtime()?.block_on(async move {
         let listener = app::bind(config.http.addr).await?;

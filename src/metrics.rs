@@ -57,6 +57,10 @@ pub struct Metrics {
     pub restore_mismatches: prometheus::IntCounter,
     /// Partition states published to the changelog, by result (ok, error).
     pub changelog_publishes: IntCounterVec,
+    /// Alerts by rule and state (open, easing, closed, recorded).
+    pub alerts: IntGaugeVec,
+    /// Alert changes by rule and change (opened, closed).
+    pub alert_changes: IntCounterVec,
     /// Posterior mean per experiment, metric and variant.
     pub posterior_mean: GaugeVec,
     /// Lower end of the 95% equal-tailed credible interval.
@@ -187,7 +191,20 @@ impl Metrics {
             "Partition states published to the changelog topic, by result.",
             &["result"],
         );
+        let alerts = int_gauge_vec(
+            "posteriord_alerts",
+            "Alerts by rule and state (open, easing, closed, recorded).",
+            &["rule", "state"],
+        );
+        let alert_changes = counter_vec(
+            &registry,
+            "posteriord_alert_changes_total",
+            "Alert changes by rule and change (opened, closed).",
+            &["rule", "change"],
+        );
         let m = Metrics {
+            alerts,
+            alert_changes,
             changelog_publishes,
             kafka_lag,
             kafka_next_offset,

@@ -55,7 +55,32 @@ pub struct Config {
     pub store: StoreConfig,
     /// The experiments to watch.
     pub experiments: Vec<ExperimentDef>,
+    /// Alert evaluation and lifecycle.
+    pub alerts: AlertsConfig,
 }
+
+/// `[alerts]`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AlertsConfig {
+    /// How long a finding must stay away before its alert closes.
+    pub hold_down: std::time::Duration,
+    /// How often every experiment's rules are evaluated.
+    pub evaluate_every: std::time::Duration,
+}
+
+impl Default for AlertsConfig {
+    fn default() -> Self {
+        AlertsConfig {
+            hold_down: std::time::Duration::from_secs(DEFAULT_HOLD_DOWN_SECS),
+            evaluate_every: std::time::Duration::from_secs(DEFAULT_EVALUATE_EVERY_SECS),
+        }
+    }
+}
+
+/// Default hold-down: five minutes without the finding before an alert closes.
+pub const DEFAULT_HOLD_DOWN_SECS: u64 = 300;
+/// Default evaluation cadence.
+pub const DEFAULT_EVALUATE_EVERY_SECS: u64 = 10;
 
 /// `[http]`.
 #[derive(Debug, Clone, PartialEq)]
@@ -261,6 +286,32 @@ impl Ctx<'_> {
             }
             experiments.push(def);
         }
+        let secs = |v: &Option<Spanned<i64>>,
+                    key: &str,
+                    default: u64|
+         -> Result<std::time::Duration, ConfigError> {
+            match v {
+                None => Ok(std::time::Duration::from_secs(default)),
+                Some(x) => match u64::try_from(*x.get_ref()) {
+                    Ok(n) if (1..=86_400 * 30).contains(&n) => {
+                        Ok(std::time::Duration::from_secs(n))
+                    }
+                    _ => Err(self.err(x.span(), key, "must be between 1 and 2592000 seconds")),
+                },
+            }
+        };
+        let alerts = AlertsConfig {
+            hold_down: secs(
+                &raw.alerts.hold_down_secs,
+                "alerts.hold_down_secs",
+                DEFAULT_HOLD_DOWN_SECS,
+            )?,
+            evaluate_every: secs(
+                &raw.alerts.evaluate_every_secs,
+                "alerts.evaluate_every_secs",
+                DEFAULT_EVALUATE_EVERY_SECS,
+            )?,
+        };
         Ok(Config {
             http: HttpConfig {
                 addr,
@@ -269,6 +320,7 @@ impl Ctx<'_> {
             kafka,
             store,
             experiments,
+            alerts,
         })
     }
 

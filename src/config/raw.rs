@@ -16,6 +16,15 @@ pub(super) struct RawConfig {
     pub store: RawStore,
     #[serde(default)]
     pub experiment: Vec<Spanned<RawExperiment>>,
+    #[serde(default)]
+    pub alerts: RawAlerts,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawAlerts {
+    pub hold_down_secs: Option<Spanned<i64>>,
+    pub evaluate_every_secs: Option<Spanned<i64>>,
 }
 
 #[derive(Debug, Default, Deserialize)]

@@ -9,6 +9,8 @@
 //! units seen in a second arm). Posteriors assume the model and clean data: the data-quality
 //! rules are reported first and suspend shipping.
 
+pub mod alerts;
+
 use crate::event::Outcome;
 use crate::experiment::{ExperimentDef, MetricKind};
 use crate::state::MetricTotals;

@@ -16,6 +16,30 @@ pub const CAUTION: &str = "Posteriors assume the model (independent units, a sta
 variant) and clean data: check the sample ratio, crossovers and orphans before acting, and leave \
 shipping decisions that affect people's money or safety to the team's own review.";
 
+/// The caution in one line, for alerts.
+pub const CAUTION_SHORT: &str =
+    "posteriors assume the model and clean data; check data quality and review before acting";
+
+/// One alert of `GET /v1/alerts`.
+pub fn alert(a: &crate::decide::alerts::Alert) -> Value {
+    json!({
+        "id": a.id,
+        "experiment": a.key.experiment,
+        "metric": a.key.metric,
+        "variant": a.key.variant,
+        "rule": a.key.rule.as_str(),
+        "state": a.state.as_str(),
+        "opened_at": time_text(a.opened_at),
+        "last_held_at": time_text(a.last_held_at),
+        "closed_at": a.closed_at.and_then(time_text),
+        "value": a.finding.value,
+        "threshold": a.finding.threshold,
+        "test": a.finding.test,
+        "message": a.finding.message,
+        "caution": CAUTION_SHORT,
+    })
+}
+
 /// `{"error":{"code","message","details"}}`, the one error shape of the API.
 pub fn error_body(code: &str, message: &str, details: Value) -> Value {
     json!({ "error": { "code": code, "message": message, "details": details } })

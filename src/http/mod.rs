@@ -34,6 +34,7 @@ pub fn router(shared: Arc<Shared>, max_body_bytes: usize) -> Router {
         .route("/v1/events", post(ingest))
         .route("/v1/experiments", get(list_experiments))
         .route("/v1/experiments/{id}", get(get_experiment))
+        .route("/v1/alerts", get(list_alerts))
         .fallback(not_found)
         .layer(DefaultBodyLimit::max(max_body_bytes))
         .with_state(shared)
@@ -155,6 +156,43 @@ async fn ingest(State(shared): State<Arc<Shared>>, body: Bytes) -> Response {
             (status, Json(body)).into_response()
         }
     }
+}
+
+/// Filters of `GET /v1/alerts`.
+#[derive(serde::Deserialize)]
+struct AlertFilter {
+    experiment: Option<String>,
+    state: Option<String>,
+}
+
+async fn list_alerts(
+    State(shared): State<Arc<Shared>>,
+    axum::extract::Query(filter): axum::extract::Query<AlertFilter>,
+) -> Response {
+    const STATES: [&str; 4] = ["open", "easing", "closed", "recorded"];
+    if let Some(s) = &filter.state {
+        if !STATES.contains(&s.as_str()) {
+            return error(
+                StatusCode::BAD_REQUEST,
+                "bad_filter",
+                &format!("state must be one of {}", STATES.join(", ")),
+            );
+        }
+    }
+    let book = shared.alerts.lock().unwrap_or_else(|p| p.into_inner());
+    let alerts: Vec<Value> = book
+        .alerts()
+        .iter()
+        .filter(|a| {
+            filter
+                .experiment
+                .as_ref()
+                .is_none_or(|e| *e == a.key.experiment)
+        })
+        .filter(|a| filter.state.as_ref().is_none_or(|s| s == a.state.as_str()))
+        .map(doc::alert)
+        .collect();
+    Json(json!({ "alerts": alerts })).into_response()
 }
 
 async fn list_experiments(State(shared): State<Arc<Shared>>) -> Json<Value> {
