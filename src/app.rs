@@ -10,6 +10,7 @@ use tokio::net::TcpListener;
 use tokio_util::sync::CancellationToken;
 use tokio_util::task::TaskTracker;
 
+use crate::alerting::{AlertFile, Delivery};
 use crate::config::Config;
 use crate::decide::alerts::{AlertBook, AlertChange};
 use crate::metrics::Metrics;
@@ -40,6 +41,12 @@ pub struct Shared {
     http_wal: Option<Mutex<Wal>>,
     /// Alerts raised by the evaluator; read by `GET /v1/alerts`.
     pub alerts: Mutex<AlertBook>,
+    /// Alert events not yet delivered to every sink.
+    outbox: Mutex<Vec<Delivery>>,
+    /// Where the alert book and the outbox are kept (with a store only).
+    alert_file: Option<AlertFile>,
+    /// Alert settings (sinks, cadence).
+    pub alerts_config: crate::config::AlertsConfig,
 }
 
 impl Shared {
@@ -60,6 +67,9 @@ impl Shared {
             snapshot_interval: config.store.snapshot_interval,
             http_wal: None,
             alerts: Mutex::new(AlertBook::new(config.alerts.hold_down.as_micros() as i64)),
+            outbox: Mutex::new(Vec::new()),
+            alert_file: None,
+            alerts_config: config.alerts.clone(),
         }
     }
 
@@ -126,6 +136,22 @@ impl Shared {
             }
         }
         all_ok
+    }
+
+    /// Pending alert deliveries.
+    pub fn lock_outbox(&self) -> MutexGuard<'_, Vec<Delivery>> {
+        self.outbox.lock().unwrap_or_else(|p| p.into_inner())
+    }
+
+    /// Write the alert book and the outbox together (no-op without a store).
+    pub fn save_alerts(&self) {
+        let Some(file) = &self.alert_file else { return };
+        // Lock order: alerts, then outbox (the evaluator takes them in the same order).
+        let book = self.alerts.lock().unwrap_or_else(|p| p.into_inner());
+        let outbox = self.lock_outbox();
+        if let Err(e) = file.save(book.alerts(), &outbox) {
+            tracing::error!(error = %e, "cannot save alerts and their pending deliveries");
+        }
     }
 
     /// Log (durably, when a store is configured) and apply a batch of events posted over
@@ -261,7 +287,8 @@ pub struct RunOptions {
     pub persist: bool,
 }
 
-fn now_micros() -> i64 {
+/// Wall-clock time in microseconds since the epoch.
+pub fn now_micros() -> i64 {
     (time::OffsetDateTime::now_utc().unix_timestamp_nanos() / 1_000) as i64
 }
 
@@ -270,6 +297,7 @@ fn now_micros() -> i64 {
 pub fn evaluate_all(shared: &Shared) {
     let snapshots = shared.lock_shards().snapshots();
     let now = now_micros();
+    // Experiments no longer configured keep their alerts; nothing to evaluate for them.
     for snapshot in snapshots {
         let def = Arc::clone(&snapshot.def);
         let summary = crate::summary::summarize(snapshot, crate::summary::DEFAULT_LEVEL);
@@ -279,6 +307,13 @@ pub fn evaluate_all(shared: &Shared) {
             .lock()
             .unwrap_or_else(|p| p.into_inner())
             .update(&def, &findings, now);
+        if changes.is_empty() {
+            continue;
+        }
+        // Recorded durably, with their deliveries, before anything is announced.
+        let deliveries = crate::alerting::deliveries_for(&changes, &shared.alerts_config, now);
+        shared.lock_outbox().extend(deliveries);
+        shared.save_alerts();
         for change in changes {
             let (kind, alert) = match &change {
                 AlertChange::Opened(a) => ("opened", a),
@@ -398,6 +433,19 @@ pub async fn run(
             Wal::open(&store, crate::http::HTTP_SHARD)
                 .context("cannot open the HTTP write-ahead log")?,
         ));
+        let file = AlertFile::new(&config.store.dir);
+        let (book, pending) =
+            crate::alerting::restore(&file, config.alerts.hold_down.as_micros() as i64)
+                .map_err(|e| anyhow::anyhow!("cannot read the stored alerts: {e}"))?;
+        if !pending.is_empty() {
+            tracing::info!(
+                pending = pending.len(),
+                "alert deliveries pending from before the restart"
+            );
+        }
+        shared.alerts = Mutex::new(book);
+        shared.outbox = Mutex::new(pending);
+        shared.alert_file = Some(file);
         shared.store = Some(store);
     }
     let shared = Arc::new(shared);
@@ -413,6 +461,22 @@ pub async fn run(
         .replay_http_wal()
         .context("cannot replay the HTTP write-ahead log")?;
     let tracker = TaskTracker::new();
+    if let (Some(topic), Some(k)) = (&config.alerts.kafka_topic, &config.kafka) {
+        // Best effort: a broker that is down now gets the topic created on a later start;
+        // the producer keeps retrying meanwhile.
+        if let Err(e) = crate::kafka::ensure_topic(k, topic).await {
+            tracing::warn!(topic, error = %e, "cannot check or create the alerts topic now");
+        }
+    }
+    if !config.alerts.webhooks.is_empty() || config.alerts.kafka_topic.is_some() {
+        let sinks = crate::alerting::Sinks::new(&config.alerts, config.kafka.as_ref())
+            .map_err(|e| anyhow::anyhow!(e))?;
+        tracker.spawn(crate::alerting::deliver_loop(
+            Arc::clone(&shared),
+            sinks,
+            shutdown.clone(),
+        ));
+    }
     tracker.spawn(evaluate_loop(
         Arc::clone(&shared),
         config.alerts.evaluate_every,

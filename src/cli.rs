@@ -155,6 +155,7 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
         alerts: config::AlertsConfig {
             hold_down: Duration::from_secs(60),
             evaluate_every: Duration::from_secs(2),
+            ..Default::default()
         },
     };
     runtime()?.block_on(async move {

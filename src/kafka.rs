@@ -91,7 +91,7 @@ pub fn check_properties(cfg: &KafkaConfig) -> Result<(), String> {
 
 /// The dead-letter producer's configuration: connection and security properties from the
 /// config, idempotent delivery.
-fn producer_config(cfg: &KafkaConfig) -> ClientConfig {
+pub fn producer_config(cfg: &KafkaConfig) -> ClientConfig {
     let mut c = ClientConfig::new();
     c.set("bootstrap.servers", &cfg.brokers)
         .set("client.id", "posteriord-dead-letters");
@@ -378,8 +378,8 @@ fn flush_dead_letters(producer: Option<&DeadLetterProducer>, shared: &Shared) ->
 }
 
 /// Create `topic` if the cluster does not have it (broker-default replication), so dead
-/// letters have somewhere to go on clusters without topic auto-creation.
-async fn ensure_topic(cfg: &KafkaConfig, topic: &str) -> Result<(), KafkaError> {
+/// letters and alerts have somewhere to go on clusters without topic auto-creation.
+pub async fn ensure_topic(cfg: &KafkaConfig, topic: &str) -> Result<(), KafkaError> {
     use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
     use rdkafka::client::DefaultClientContext;
     let admin: AdminClient<DefaultClientContext> = producer_config(cfg).create()?;
@@ -402,11 +402,11 @@ async fn ensure_topic(cfg: &KafkaConfig, topic: &str) -> Result<(), KafkaError> 
         .await?;
     for r in results {
         match r {
-            Ok(_) => tracing::info!(topic, "created the dead-letter topic"),
+            Ok(_) => tracing::info!(topic, "created the topic"),
             Err((_, rdkafka::types::RDKafkaErrorCode::TopicAlreadyExists)) => {}
             Err((name, code)) => {
                 return Err(KafkaError::AdminOp(code)).inspect_err(|_| {
-                    tracing::error!(topic = %name, error = %code, "cannot create the dead-letter topic; create it by hand");
+                    tracing::error!(topic = %name, error = %code, "cannot create the topic; create it by hand");
                 })
             }
         }

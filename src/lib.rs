@@ -9,6 +9,7 @@
 //! Data flows one way: source → decode → state → (decide) → HTTP API / metrics.
 #![deny(missing_docs)]
 
+pub mod alerting;
 pub mod app;
 pub mod changelog;
 pub mod cli;

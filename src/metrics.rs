@@ -61,6 +61,8 @@ pub struct Metrics {
     pub alerts: IntGaugeVec,
     /// Alert changes by rule and change (opened, closed).
     pub alert_changes: IntCounterVec,
+    /// Alert delivery attempts by sink kind and result.
+    pub alert_deliveries: IntCounterVec,
     /// Posterior mean per experiment, metric and variant.
     pub posterior_mean: GaugeVec,
     /// Lower end of the 95% equal-tailed credible interval.
@@ -202,7 +204,14 @@ impl Metrics {
             "Alert changes by rule and change (opened, closed).",
             &["rule", "change"],
         );
+        let alert_deliveries = counter_vec(
+            &registry,
+            "posteriord_alert_deliveries_total",
+            "Alert delivery attempts by sink (webhook, kafka) and result (ok, error).",
+            &["sink", "result"],
+        );
         let m = Metrics {
+            alert_deliveries,
             alerts,
             alert_changes,
             changelog_publishes,

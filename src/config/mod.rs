@@ -66,6 +66,31 @@ pub struct AlertsConfig {
     pub hold_down: std::time::Duration,
     /// How often every experiment's rules are evaluated.
     pub evaluate_every: std::time::Duration,
+    /// Webhooks that receive alert events.
+    pub webhooks: Vec<WebhookConfig>,
+    /// Kafka topic that receives alert events (brokers from `[kafka]`).
+    pub kafka_topic: Option<String>,
+}
+
+/// `[[alerts.webhook]]`.
+#[derive(Clone, PartialEq)]
+pub struct WebhookConfig {
+    /// Where alert events are POSTed.
+    pub url: String,
+    /// Name of the environment variable holding the HMAC key.
+    pub secret_env: String,
+    /// The HMAC key (never logged).
+    pub secret: Vec<u8>,
+}
+
+impl std::fmt::Debug for WebhookConfig {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("WebhookConfig")
+            .field("url", &self.url)
+            .field("secret_env", &self.secret_env)
+            .field("secret", &"<redacted>")
+            .finish()
+    }
 }
 
 impl Default for AlertsConfig {
@@ -73,6 +98,8 @@ impl Default for AlertsConfig {
         AlertsConfig {
             hold_down: std::time::Duration::from_secs(DEFAULT_HOLD_DOWN_SECS),
             evaluate_every: std::time::Duration::from_secs(DEFAULT_EVALUATE_EVERY_SECS),
+            webhooks: Vec::new(),
+            kafka_topic: None,
         }
     }
 }
@@ -151,14 +178,10 @@ impl fmt::Display for ConfigError {
 
 impl std::error::Error for ConfigError {}
 
-/// Reads environment variables; a function so tests need not touch the process environment.
-pub type EnvLookup<'a> = &'a dyn Fn(&str) -> Option<String>;
-
-/// Every variable of the process environment that starts with [`ENV_PREFIX`].
+/// The process environment: the `POSTERIORD_*` overrides, and the variables that config keys
+/// such as `alerts.webhook.secret_env` name (values are never logged).
 pub fn process_env() -> Vec<(String, String)> {
-    std::env::vars()
-        .filter(|(k, _)| k.starts_with(ENV_PREFIX))
-        .collect()
+    std::env::vars().collect()
 }
 
 impl Config {
@@ -187,7 +210,7 @@ impl Config {
             key: String::new(),
             message: e.message().trim().to_string(),
         })?;
-        let mut config = ctx.validate(raw)?;
+        let mut config = ctx.validate(raw, env)?;
         apply_env(&mut config, env)?;
         Ok(config)
     }
@@ -231,7 +254,7 @@ impl Ctx<'_> {
         }
     }
 
-    fn validate(&self, raw: RawConfig) -> Result<Config, ConfigError> {
+    fn validate(&self, raw: RawConfig, env: &[(String, String)]) -> Result<Config, ConfigError> {
         let addr = match raw.http.addr {
             None => DEFAULT_HTTP_ADDR.parse().expect("default address parses"),
             Some(a) => a.get_ref().parse().map_err(|_| {
@@ -300,6 +323,52 @@ impl Ctx<'_> {
                 },
             }
         };
+        let mut webhooks = Vec::new();
+        for (i, w) in raw.alerts.webhook.iter().enumerate() {
+            let w = w.get_ref();
+            let url = w.url.get_ref();
+            if !(url.starts_with("http://") || url.starts_with("https://")) {
+                return Err(self.err(
+                    w.url.span(),
+                    format!("alerts.webhook[{i}].url"),
+                    "must be an http:// or https:// URL",
+                ));
+            }
+            let var = w.secret_env.get_ref();
+            let secret = env.iter().find(|(k, _)| k == var).map(|(_, v)| v.clone());
+            let secret = match secret {
+                Some(s) if !s.is_empty() => s.into_bytes(),
+                _ => {
+                    return Err(self.err(
+                        w.secret_env.span(),
+                        format!("alerts.webhook[{i}].secret_env"),
+                        format!("the environment variable {var} (the webhook's HMAC key) is not set or empty"),
+                    ))
+                }
+            };
+            webhooks.push(WebhookConfig {
+                url: url.clone(),
+                secret_env: var.clone(),
+                secret,
+            });
+        }
+        let kafka_topic = match &raw.alerts.kafka {
+            None => None,
+            Some(k) => {
+                let t = &k.get_ref().topic;
+                if t.get_ref().trim().is_empty() {
+                    return Err(self.err(t.span(), "alerts.kafka.topic", "must not be empty"));
+                }
+                if kafka.is_none() {
+                    return Err(self.err(
+                        k.span(),
+                        "alerts.kafka",
+                        "needs a [kafka] section for the brokers",
+                    ));
+                }
+                Some(t.get_ref().clone())
+            }
+        };
         let alerts = AlertsConfig {
             hold_down: secs(
                 &raw.alerts.hold_down_secs,
@@ -311,6 +380,8 @@ impl Ctx<'_> {
                 "alerts.evaluate_every_secs",
                 DEFAULT_EVALUATE_EVERY_SECS,
             )?,
+            webhooks,
+            kafka_topic,
         };
         Ok(Config {
             http: HttpConfig {

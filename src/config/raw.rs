@@ -25,6 +25,22 @@ pub(super) struct RawConfig {
 pub(super) struct RawAlerts {
     pub hold_down_secs: Option<Spanned<i64>>,
     pub evaluate_every_secs: Option<Spanned<i64>>,
+    #[serde(default)]
+    pub webhook: Vec<Spanned<RawWebhook>>,
+    pub kafka: Option<Spanned<RawAlertsKafka>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawWebhook {
+    pub url: Spanned<String>,
+    pub secret_env: Spanned<String>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawAlertsKafka {
+    pub topic: Spanned<String>,
 }
 
 #[derive(Debug, Default, Deserialize)]

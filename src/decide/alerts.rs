@@ -62,6 +62,8 @@ pub struct Alert {
     pub closed_at: Option<Micros>,
     /// The finding as it last held.
     pub finding: Finding,
+    /// When someone acknowledged it, if anyone did.
+    pub acknowledged_at: Option<Micros>,
 }
 
 /// A change worth telling people about.
@@ -93,9 +95,21 @@ impl AlertBook {
         }
     }
 
+    /// A book holding `alerts` (restored from the store).
+    pub fn from_alerts(alerts: Vec<Alert>, hold_down: Micros) -> AlertBook {
+        AlertBook { alerts, hold_down }
+    }
+
     /// Every alert, oldest first.
     pub fn alerts(&self) -> &[Alert] {
         &self.alerts
+    }
+
+    /// Acknowledge alert `id` at `now` (idempotent); `None` if there is no such alert.
+    pub fn acknowledge(&mut self, id: &str, now: Micros) -> Option<&Alert> {
+        let a = self.alerts.iter_mut().find(|a| a.id == id)?;
+        a.acknowledged_at.get_or_insert(now);
+        Some(a)
     }
 
     /// Fold the findings of one evaluation of `def` at time `now` into the book.
@@ -144,6 +158,7 @@ impl AlertBook {
                         last_held_at: now,
                         closed_at: None,
                         finding: (*finding).clone(),
+                        acknowledged_at: None,
                     };
                     changes.push(AlertChange::Opened(alert.clone()));
                     self.alerts.push(alert);

@@ -33,6 +33,31 @@ pub enum Rule {
 }
 
 impl Rule {
+    /// Every rule.
+    pub const ALL: [Rule; 5] = [
+        Rule::SampleRatio,
+        Rule::Crossovers,
+        Rule::Harm,
+        Rule::Ship,
+        Rule::Equivalent,
+    ];
+
+    /// The comparison the rule makes, as shown with each finding.
+    pub fn test(self) -> &'static str {
+        match self {
+            Rule::SampleRatio => "p_value < threshold",
+            Rule::Crossovers => "crossover share > threshold",
+            Rule::Harm => "prob_harm >= threshold",
+            Rule::Ship => "expected_loss < threshold_of_caring",
+            Rule::Equivalent => "min prob_practically_equivalent >= threshold",
+        }
+    }
+
+    /// The rule called `name`.
+    pub fn from_name(name: &str) -> Option<Rule> {
+        Rule::ALL.into_iter().find(|r| r.as_str() == name)
+    }
+
     /// Stable name used in the API and metrics.
     pub fn as_str(self) -> &'static str {
         match self {
@@ -107,7 +132,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                 variant: None,
                 value: srm.p_value,
                 threshold: xr.srm_p,
-                test: "p_value < threshold",
+                test: Rule::SampleRatio.test(),
                 message: format!(
                     "exposed units {:?} do not match the planned weights (chi-square {:.2}, p = {:.3e}); check assignment and logging before trusting any result; shipping is suspended",
                     snap.units, srm.chi2, srm.p_value
@@ -126,7 +151,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                 variant: None,
                 value: share,
                 threshold: xr.max_crossover_share,
-                test: "crossover share > threshold",
+                test: Rule::Crossovers.test(),
                 message: format!(
                     "{:.2}% of units were also exposed to another arm; assignment is leaking, so results mix arms",
                     share * 100.0
@@ -157,7 +182,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                     variant: Some(v),
                     value: p,
                     threshold: rule.probability,
-                    test: "prob_harm >= threshold",
+                    test: Rule::Harm.test(),
                     message: format!(
                         "`{}` is worse than `{}` on `{}`{} with probability {:.4} (threshold {}); consider stopping it",
                         def.variants[v].name,
@@ -193,7 +218,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                             variant: Some(v),
                             value: arm.expected_loss,
                             threshold: rule.threshold_of_caring,
-                            test: "expected_loss < threshold_of_caring",
+                            test: Rule::Ship.test(),
                             message: ship_message(def, p, v, arm, rule.threshold_of_caring),
                         });
                     }
@@ -214,7 +239,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                         variant: None,
                         value: worst,
                         threshold: xr.equivalence_probability,
-                        test: "min prob_practically_equivalent >= threshold",
+                        test: Rule::Equivalent.test(),
                         message: format!(
                             "every variant is within ±{:.1}% of `{}` on `{}` with probability ≥ {:.3}; more traffic is unlikely to change the choice",
                             primary.rules.rope * 100.0,

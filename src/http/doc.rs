@@ -32,6 +32,7 @@ pub fn alert(a: &crate::decide::alerts::Alert) -> Value {
         "opened_at": time_text(a.opened_at),
         "last_held_at": time_text(a.last_held_at),
         "closed_at": a.closed_at.and_then(time_text),
+        "acknowledged_at": a.acknowledged_at.and_then(time_text),
         "value": a.finding.value,
         "threshold": a.finding.threshold,
         "test": a.finding.test,
@@ -56,7 +57,8 @@ fn prior(p: Prior) -> Value {
     }
 }
 
-fn time_text(micros: i64) -> Option<String> {
+/// RFC 3339 text of a time in microseconds since the epoch.
+pub fn time_text(micros: i64) -> Option<String> {
     let t = time::OffsetDateTime::from_unix_timestamp_nanos(i128::from(micros) * 1_000).ok()?;
     t.format(&time::format_description::well_known::Rfc3339)
         .ok()

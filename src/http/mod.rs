@@ -35,6 +35,7 @@ pub fn router(shared: Arc<Shared>, max_body_bytes: usize) -> Router {
         .route("/v1/experiments", get(list_experiments))
         .route("/v1/experiments/{id}", get(get_experiment))
         .route("/v1/alerts", get(list_alerts))
+        .route("/v1/alerts/{id}/ack", post(ack_alert))
         .fallback(not_found)
         .layer(DefaultBodyLimit::max(max_body_bytes))
         .with_state(shared)
@@ -193,6 +194,26 @@ async fn list_alerts(
         .map(doc::alert)
         .collect();
     Json(json!({ "alerts": alerts })).into_response()
+}
+
+async fn ack_alert(State(shared): State<Arc<Shared>>, Path(id): Path<String>) -> Response {
+    let now = crate::app::now_micros();
+    let body = {
+        let mut book = shared.alerts.lock().unwrap_or_else(|p| p.into_inner());
+        book.acknowledge(&id, now).map(doc::alert)
+    };
+    match body {
+        None => error(
+            StatusCode::NOT_FOUND,
+            "unknown_alert",
+            &format!("no alert `{id}`"),
+        ),
+        Some(body) => {
+            let s = Arc::clone(&shared);
+            let _ = tokio::task::spawn_blocking(move || s.save_alerts()).await;
+            Json(body).into_response()
+        }
+    }
 }
 
 async fn list_experiments(State(shared): State<Arc<Shared>>) -> Json<Value> {

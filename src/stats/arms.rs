@@ -10,7 +10,9 @@
 
 use statrs::distribution::{ContinuousCDF, Normal};
 
-use super::grid::{logistic, rule, softplus, Grid, Kernel, NP};
+use std::cell::OnceCell;
+
+use super::grid::{gauss_rule, logistic, rule, softplus, Grid, Kernel, GL_N, NP};
 use super::posterior::tail_levels;
 use super::{Beta, Gamma, Interval, StatsError};
 
@@ -165,7 +167,8 @@ pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, St
     let c = opts.control;
     let totals = integrate_all(&grid, c, higher);
 
-    let log_cumulants: Vec<[f64; 4]> = (0..k).map(|j| log_cumulants(&grid, j, higher)).collect();
+    let log_cumulants = log_cumulants(&grid, higher);
+    let outer = OuterCache::new(k);
     let mut out = Vec::with_capacity(k);
     for j in 0..k {
         let kernel = grid.arms[j].kernel;
@@ -188,7 +191,7 @@ pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, St
         };
         if j != c {
             summary.prob_beats_control = Some(totals.beats[j].clamp(0.0, 1.0));
-            let ratio = Ratio::new(&grid, j, c, higher);
+            let ratio = Ratio::new(&grid, &outer, j, c, higher);
             let guess = ratio_guess(&log_cumulants[j], &log_cumulants[c]);
             let lower = ratio.quantile(lo_q, &guess)?;
             let upper = ratio.quantile(hi_q, &guess)?;
@@ -205,21 +208,30 @@ pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, St
                     upper: upper.exp_m1(),
                 },
             });
-            let rope_hi = ratio.eval(opts.rope.ln_1p()).cdf;
+            let rope_hi = ratio.eval(opts.rope.ln_1p(), Tail::Lower, false).tail;
             let rope_lo = if opts.rope < 1.0 {
-                ratio.eval((-opts.rope).ln_1p()).cdf
+                ratio.eval((-opts.rope).ln_1p(), Tail::Lower, false).tail
             } else {
                 0.0
             };
             summary.prob_practically_equivalent = Some((rope_hi - rope_lo).clamp(0.0, 1.0));
-            let harm = if higher {
+            // With no margin, harm is P(θ_v worse than θ_c), which the pass over the shared
+            // grid has already integrated (∫ f_v·S_c or ∫ f_v·F_c) more accurately than the
+            // ratio quadrature would.
+            let harm = if opts.harm_margin == 0.0 {
+                totals.worse[j]
+            } else if higher {
                 if opts.harm_margin < 1.0 {
-                    ratio.eval((-opts.harm_margin).ln_1p()).cdf
+                    ratio
+                        .eval((-opts.harm_margin).ln_1p(), Tail::Lower, false)
+                        .tail
                 } else {
                     0.0
                 }
             } else {
-                ratio.eval(opts.harm_margin.ln_1p()).sf
+                ratio
+                    .eval(opts.harm_margin.ln_1p(), Tail::Upper, false)
+                    .tail
             };
             summary.prob_harm = Some(harm.clamp(0.0, 1.0));
         }
@@ -232,6 +244,8 @@ struct Totals {
     best: Vec<f64>,
     loss: Vec<f64>,
     beats: Vec<f64>,
+    /// P(θ_j strictly worse than the control): the harm probability at margin 0.
+    worse: Vec<f64>,
 }
 
 /// One pass over all nodes: P(best), expected loss and P(beats control) for every arm.
@@ -243,6 +257,7 @@ fn integrate_all(grid: &Grid, control: usize, higher: bool) -> Totals {
         best: vec![0.0; k],
         loss: vec![0.0; k],
         beats: vec![0.0; k],
+        worse: vec![0.0; k],
     };
     // "good" = P(θ_j below u) for higher-is-better, P(θ_j above u) otherwise; "bad" is its
     // complement, both taken from the tables (never 1 − the other).
@@ -296,33 +311,53 @@ fn integrate_all(grid: &Grid, control: usize, higher: bool) -> Totals {
                 totals.best[j] += w * dens[j] * others;
                 totals.loss[j] += w * jac * good[j] * not_others;
                 totals.beats[j] += w * dens[j] * good[control];
+                totals.worse[j] += w * dens[j] * bad[control];
             }
         }
     }
     totals
 }
 
-/// First four cumulants of ln θ_j from the grid (used only to start the lift root search).
-fn log_cumulants(grid: &Grid, j: usize, beta: bool) -> [f64; 4] {
-    let arm = &grid.arms[j];
-    let ln_theta = |t: f64| if beta { -softplus(-t) } else { t };
-    let mut m1 = 0.0;
-    for p in arm.p0..arm.p1 {
+/// First four cumulants of ln θ_j for every arm from the grid (used only to start the lift
+/// root search). ln θ is computed once per shared node, and the moments are taken about each
+/// arm's ln θ at its mode, so the sums carry no large offsets.
+fn log_cumulants(grid: &Grid, beta: bool) -> Vec<[f64; 4]> {
+    let n_nodes = grid.n_panels() * NP;
+    let mut ln_theta = Vec::with_capacity(n_nodes);
+    let mut weight = Vec::with_capacity(n_nodes);
+    for p in 0..grid.n_panels() {
         for i in 0..NP {
-            m1 += grid.weight(p, i) * arm.dens[(p - arm.p0) * NP + i] * ln_theta(grid.node(p, i));
+            let t = grid.node(p, i);
+            ln_theta.push(if beta { -softplus(-t) } else { t });
+            weight.push(grid.weight(p, i));
         }
     }
-    let (mut m2, mut m3, mut m4) = (0.0, 0.0, 0.0);
-    for p in arm.p0..arm.p1 {
-        for i in 0..NP {
-            let d = ln_theta(grid.node(p, i)) - m1;
-            let w = grid.weight(p, i) * arm.dens[(p - arm.p0) * NP + i];
-            m2 += w * d * d;
-            m3 += w * d * d * d;
-            m4 += w * d * d * d * d;
-        }
-    }
-    [m1, m2, m3, m4 - 3.0 * m2 * m2]
+    grid.arms
+        .iter()
+        .map(|arm| {
+            let m = arm.kernel.mode();
+            let centre = if beta { -softplus(-m) } else { m };
+            let base = arm.p0 * NP;
+            let mut raw = [0.0f64; 4];
+            for (idx, g) in arm.dens.iter().enumerate() {
+                let wg = weight[base + idx] * g;
+                let d = ln_theta[base + idx] - centre;
+                let d2 = d * d;
+                raw[0] += wg * d;
+                raw[1] += wg * d2;
+                raw[2] += wg * d2 * d;
+                raw[3] += wg * d2 * d2;
+            }
+            // Central moments from raw moments about the mode; the mode is within a fraction
+            // of an sd of the mean, so the conversion loses at most a digit or two, and these
+            // only seed a Newton iteration.
+            let mu = raw[0];
+            let m2 = raw[1] - mu * mu;
+            let m3 = raw[2] - 3.0 * mu * raw[1] + 2.0 * mu * mu * mu;
+            let m4 = raw[3] - 4.0 * mu * raw[2] + 6.0 * mu * mu * raw[1] - 3.0 * mu.powi(4);
+            [centre + mu, m2, m3, m4 - 3.0 * m2 * m2]
+        })
+        .collect()
 }
 
 /// Cumulants of s = ln θ_v − ln θ_c.
@@ -330,20 +365,34 @@ fn ratio_guess(v: &[f64; 4], c: &[f64; 4]) -> [f64; 4] {
     [v[0] - c[0], v[1] + c[1], v[2] - c[2], v[3] + c[3]]
 }
 
-/// The distribution of s = ln(θ_v/θ_c) by quadrature over the narrower arm (in its working
-/// variable), with the wider arm's CDF interpolated at the image of each node.
-struct Ratio<'a> {
-    grid: &'a Grid,
-    v: usize,
-    c: usize,
-    beta: bool,
-    /// Nodes of the variant and of the control.
-    nodes_v: Vec<OuterNode>,
-    nodes_c: Vec<OuterNode>,
-    /// Largest conversion rate carried by each arm's nodes (for the kink test in `eval`).
-    top_v: f64,
-    top_c: f64,
-    variant_is_narrower: bool,
+/// Panel width of the ratio rule at most this many local sds: a 16-point Gauss–Legendre rule
+/// integrates a normal density times a smooth CDF over 4 sds to ~1e-16 (measured against the
+/// closed form P(Z₂ ≤ aZ₁ + b) = Φ(b/√(1 + a²))).
+const RATIO_WIDTH_SD: f64 = 4.0;
+/// Panel width of the ratio rule at most this many e-folds of the outer density, 16/(|ℓ'| + 1):
+/// the Gauss–Legendre error bound for e^{cx} on [−1, 1] with c = 8 is ~2e-16 relative.
+const RATIO_EFOLDS: f64 = 16.0;
+/// Panel width of the ratio rule for conversion rates at most this many logit units where
+/// t > −2·`RATIO_MAX_WIDTH`, and at most |t|/2 further left. The logit density, the images
+/// τ(t) = logit(ρ·logistic(t)) and the inner CDF at them are analytic except at points with
+/// Re t ≥ 0 and Im t = ±π (the poles of the logistic function and the zeros of 1 − ρ·x), so
+/// Gauss–Legendre converges like ρ_B^-2n with ρ_B the Bernstein ellipse that reaches them: a
+/// panel of width 2 gives ρ_B ≈ 6.6 and ρ_B^-32 ≈ 1e-26, while far to the left the distance
+/// to the singularities grows with |t| and so may the panels (small shapes have left tails
+/// thousands of logit units long). Measured before this bound: 3e-13 error in the ratio CDF
+/// of two Beta(1, 1) arms with 5.7-unit panels.
+const RATIO_MAX_WIDTH: f64 = 2.0;
+/// Ratio-rule nodes more than this far below the outer arm's peak log density are dropped:
+/// e^-36 ≈ 2e-16, and the ratio probabilities are needed to absolute accuracy only.
+const RATIO_DROP: f64 = 36.0;
+
+/// Which tail of the ratio distribution a caller needs.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum Tail {
+    /// P(s_R ≤ s).
+    Lower,
+    /// P(s_R > s).
+    Upper,
 }
 
 /// A node of the outer arm with everything that does not depend on s precomputed.
@@ -357,7 +406,41 @@ struct OuterNode {
     comp: f64,
 }
 
-fn outer_nodes(grid: &Grid, j: usize, beta: bool) -> (Vec<OuterNode>, f64) {
+/// An arm's outer nodes and the largest conversion rate they carry (for the kink test).
+struct OuterNodes {
+    nodes: Vec<OuterNode>,
+    top: f64,
+}
+
+/// Outer node sets per arm, built on first use and shared by every variant that needs them
+/// (the control is the outer arm of several ratios).
+struct OuterCache {
+    /// Each arm's own Gauss–Legendre rule (the usual case).
+    gauss: Vec<OnceCell<OuterNodes>>,
+    /// Each arm's nodes on the shared Clenshaw–Curtis grid (fallback near the x = 1 kink).
+    shared: Vec<OnceCell<OuterNodes>>,
+}
+
+impl OuterCache {
+    fn new(k: usize) -> OuterCache {
+        OuterCache {
+            gauss: (0..k).map(|_| OnceCell::new()).collect(),
+            shared: (0..k).map(|_| OnceCell::new()).collect(),
+        }
+    }
+}
+
+fn outer_node(t: f64, wg: f64, beta: bool) -> OuterNode {
+    let (ln_x, comp) = if beta {
+        (-softplus(-t), logistic(-t))
+    } else {
+        (0.0, 0.0)
+    };
+    OuterNode { t, wg, ln_x, comp }
+}
+
+/// Arm j's nodes on the shared grid (CC, panels resolving every arm).
+fn shared_nodes(grid: &Grid, j: usize, beta: bool) -> OuterNodes {
     let arm = &grid.arms[j];
     let mut nodes = Vec::with_capacity((arm.p1 - arm.p0) * NP);
     let mut top = 0.0f64;
@@ -369,76 +452,149 @@ fn outer_nodes(grid: &Grid, j: usize, beta: bool) -> (Vec<OuterNode>, f64) {
                 continue;
             }
             let t = grid.node(p, i);
-            let (ln_x, comp) = if beta {
-                (-softplus(-t), logistic(-t))
-            } else {
-                (0.0, 0.0)
-            };
             top = top.max(logistic(t));
-            nodes.push(OuterNode { t, wg, ln_x, comp });
+            nodes.push(outer_node(t, wg, beta));
         }
     }
-    (nodes, top)
+    OuterNodes { nodes, top }
 }
 
-/// P(s_R ≤ s), P(s_R > s) and the density of s_R at s.
+/// Arm j's own composite Gauss–Legendre rule over its window.
+///
+/// The outer integrand is the arm's density times the inner arm's CDF at the image, and the
+/// inner arm is the wider one, so the outer density sets the resolution. The shared grid is
+/// built for CDFs to ~1e-16 *relative* in the tails (expected losses need that) and for the
+/// spread of a maximum of k arms; a probability needs neither, and Gauss–Legendre is exact to
+/// degree 2n − 1 instead of n, so this rule needs about a quarter of the shared grid's nodes.
+fn gauss_nodes(grid: &Grid, j: usize, beta: bool) -> OuterNodes {
+    let arm = &grid.arms[j];
+    let kernel = arm.kernel;
+    let (lo, hi) = arm.window;
+    let peak = kernel.log_density(kernel.mode());
+    let sd_cap = RATIO_WIDTH_SD * kernel.sd();
+    let step = |t: f64| {
+        let cap = if beta {
+            sd_cap.min(RATIO_MAX_WIDTH.max(-0.5 * t))
+        } else {
+            sd_cap
+        };
+        let (slope, curvature) = kernel.slope_curvature(t);
+        let by_curvature = if curvature > 0.0 {
+            RATIO_WIDTH_SD / curvature.sqrt()
+        } else {
+            f64::INFINITY
+        };
+        by_curvature
+            .min(RATIO_EFOLDS / (slope.abs() + 1.0))
+            .min(cap)
+    };
+    let gl = gauss_rule();
+    let mut nodes = Vec::with_capacity(8 * GL_N);
+    let mut top = 0.0f64;
+    let mut total = 0.0;
+    let mut t = lo;
+    let mut guard = 0;
+    while t < hi && guard < 1_000_000 {
+        guard += 1;
+        let h = step(t).min(step((t + step(t)).min(hi)));
+        let mut next = (t + h).min(hi);
+        if hi - next < 0.1 * h {
+            next = hi;
+        }
+        if next <= t {
+            break;
+        }
+        let (mid, half) = (0.5 * (t + next), 0.5 * (next - t));
+        for i in 0..GL_N {
+            let u = mid + half * gl.x[i];
+            let ld = kernel.log_density(u);
+            if ld < peak - RATIO_DROP {
+                continue;
+            }
+            let wg = half * gl.w[i] * ld.exp();
+            total += wg;
+            top = top.max(logistic(u));
+            nodes.push(outer_node(u, wg, beta));
+        }
+        t = next;
+    }
+    // The kernel's analytic normalization agrees with the quadrature to ~1e-10; renormalize so
+    // that the ratio CDF and survival function each sum to exactly the same total mass.
+    if total > 0.0 {
+        for node in &mut nodes {
+            node.wg /= total;
+        }
+    }
+    OuterNodes { nodes, top }
+}
+
+/// P(s_R ≤ s) or P(s_R > s), and the density of s_R at s.
 #[derive(Clone, Copy, Debug)]
 struct RatioValue {
-    cdf: f64,
-    sf: f64,
+    tail: f64,
     dens: f64,
 }
 
+/// The distribution of s = ln(θ_v/θ_c) by quadrature over the narrower arm (in its working
+/// variable), with the wider arm's CDF interpolated at the image of each node.
+struct Ratio<'a> {
+    grid: &'a Grid,
+    cache: &'a OuterCache,
+    v: usize,
+    c: usize,
+    beta: bool,
+    variant_is_narrower: bool,
+}
+
 impl<'a> Ratio<'a> {
-    fn new(grid: &'a Grid, v: usize, c: usize, beta: bool) -> Ratio<'a> {
-        let (nodes_v, top_v) = outer_nodes(grid, v, beta);
-        let (nodes_c, top_c) = outer_nodes(grid, c, beta);
+    fn new(grid: &'a Grid, cache: &'a OuterCache, v: usize, c: usize, beta: bool) -> Ratio<'a> {
         let variant_is_narrower = grid.arms[v].kernel.sd() <= grid.arms[c].kernel.sd();
         Ratio {
             grid,
+            cache,
             v,
             c,
             beta,
-            nodes_v,
-            nodes_c,
-            top_v,
-            top_c,
             variant_is_narrower,
         }
     }
 
-    fn eval(&self, s: f64) -> RatioValue {
+    fn gauss(&self, j: usize) -> &'a OuterNodes {
+        self.cache.gauss[j].get_or_init(|| gauss_nodes(self.grid, j, self.beta))
+    }
+
+    fn shared(&self, j: usize) -> &'a OuterNodes {
+        self.cache.shared[j].get_or_init(|| shared_nodes(self.grid, j, self.beta))
+    }
+
+    fn eval(&self, s: f64, want: Tail, with_dens: bool) -> RatioValue {
         // Over the control: θ_v ≤ e^s θ_c ⟺ τ_v ≤ image of t under θ ↦ e^s θ.
         // Over the variant: θ_v ≤ e^s θ_c ⟺ τ_c ≥ image of t under θ ↦ e^-s θ.
         // For conversion rates a map with factor > 1 sends some θ past 1, where the integrand
         // has a kink that quadrature resolves only to O(h²); the other orientation (factor
         // < 1) is smooth, so it is used whenever the narrower arm's nodes would reach the kink.
+        // The wider arm then carries the outer integral, and its nodes on the shared grid
+        // (which also resolve the narrower arm) are used instead of its own coarser rule.
         let mut over_variant = self.variant_is_narrower;
+        let narrower = if over_variant { self.v } else { self.c };
+        let mut outer = self.gauss(narrower);
         if self.beta {
-            let (factor, top) = if over_variant {
-                ((-s).exp(), self.top_v)
-            } else {
-                (s.exp(), self.top_c)
-            };
-            if factor * top >= 1.0 {
+            let factor = if over_variant { (-s).exp() } else { s.exp() };
+            if factor * outer.top >= 1.0 {
                 over_variant = !over_variant;
+                outer = self.shared(if over_variant { self.v } else { self.c });
             }
         }
-        let (nodes, inner) = if over_variant {
-            (&self.nodes_v, self.c)
-        } else {
-            (&self.nodes_c, self.v)
-        };
+        let inner = if over_variant { self.c } else { self.v };
+        // Over the variant, P(s_R ≤ s) collects the inner (control) arm's survival function;
+        // over the control it collects the inner (variant) arm's CDF.
+        let inner_upper = over_variant != (want == Tail::Upper);
         let shift = if over_variant { -s } else { s };
         let rho = shift.exp();
         let one_minus_rho = -shift.exp_m1();
-        let mut acc = RatioValue {
-            cdf: 0.0,
-            sf: 0.0,
-            dens: 0.0,
-        };
+        let (mut tail, mut dens) = (0.0, 0.0);
         let mut cursor = self.grid.arms[inner].p0;
-        for node in nodes {
+        for node in &outer.nodes {
             let image = if self.beta {
                 let ln_rx = shift + node.ln_x;
                 // 1 − ρx as a sum of positive terms when ρ ≤ 1: (1 − ρ) + ρ(1 − x).
@@ -455,24 +611,24 @@ impl<'a> Ratio<'a> {
             } else {
                 Some((node.t + shift, 1.0))
             };
-            let (below, above, dens) = match image {
-                // The image left the support (a conversion rate above 1): certainly below.
-                None => (1.0, 0.0, 0.0),
-                Some((tau, dtau)) => {
-                    let pv = self.grid.eval_near(inner, tau, &mut cursor);
-                    (pv.cdf, pv.sf, pv.dens * dtau)
+            match image {
+                // The image left the support (a conversion rate above 1): the inner arm is
+                // certainly below it.
+                None => {
+                    if !inner_upper {
+                        tail += node.wg;
+                    }
                 }
-            };
-            if over_variant {
-                acc.cdf += node.wg * above;
-                acc.sf += node.wg * below;
-            } else {
-                acc.cdf += node.wg * below;
-                acc.sf += node.wg * above;
+                Some((tau, dtau)) => {
+                    let (v, g) = self.grid.tail_near(inner, tau, &mut cursor, inner_upper);
+                    tail += node.wg * v;
+                    if with_dens {
+                        dens += node.wg * g * dtau;
+                    }
+                }
             }
-            acc.dens += node.wg * dens;
         }
-        acc
+        RatioValue { tail, dens }
     }
 
     /// The s with P(ln R ≤ s) = q: safeguarded Newton from a Cornish–Fisher start.
@@ -501,11 +657,11 @@ impl<'a> Ratio<'a> {
         let (mut lo, mut hi) = (f64::NEG_INFINITY, f64::INFINITY);
         let mut step = sd.max(1e-12);
         for _ in 0..100 {
-            let val = self.eval(s);
+            let val = self.eval(s, if upper_tail { Tail::Upper } else { Tail::Lower }, true);
             let h = if upper_tail {
-                target - val.sf
+                target - val.tail
             } else {
-                val.cdf - target
+                val.tail - target
             };
             if h == 0.0 {
                 return Ok(s);

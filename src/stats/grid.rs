@@ -60,6 +60,79 @@ pub(crate) fn rule() -> &'static Rule {
     RULE.get_or_init(build_rule)
 }
 
+/// Nodes per panel of the Gauss–Legendre rule used for the ratio (lift, ROPE, harm) integrals.
+pub(crate) const GL_N: usize = 16;
+
+/// Gauss–Legendre nodes and weights on [−1, 1].
+pub(crate) struct GaussRule {
+    /// Nodes, increasing.
+    pub(crate) x: [f64; GL_N],
+    /// Weights (sum 2).
+    pub(crate) w: [f64; GL_N],
+}
+
+/// The shared Gauss–Legendre rule, built once by Newton's method on P_n from the
+/// Tricomi-type start cos(π(i − ¼)/(n + ½)) (Abramowitz & Stegun 22.16.6 for the node
+/// asymptotics; weights 2/((1 − x²)P_n'(x)²), A&S 25.4.29).
+pub(crate) fn gauss_rule() -> &'static GaussRule {
+    static RULE: OnceLock<GaussRule> = OnceLock::new();
+    RULE.get_or_init(|| {
+        let n = GL_N;
+        let mut x = [0.0; GL_N];
+        let mut w = [0.0; GL_N];
+        for i in 0..n {
+            let mut z = (std::f64::consts::PI * (i as f64 + 0.75) / (n as f64 + 0.5)).cos();
+            let mut dp = 1.0;
+            for _ in 0..100 {
+                // Three-term recurrence for P_n(z) and its derivative.
+                let (mut p0, mut p1) = (1.0, z);
+                for k in 2..=n {
+                    let kf = k as f64;
+                    let p2 = ((2.0 * kf - 1.0) * z * p1 - (kf - 1.0) * p0) / kf;
+                    p0 = p1;
+                    p1 = p2;
+                }
+                dp = n as f64 * (z * p1 - p0) / (z * z - 1.0);
+                let dz = p1 / dp;
+                z -= dz;
+                if dz.abs() < 1e-16 {
+                    break;
+                }
+            }
+            // Largest root first from the start formula; store increasing.
+            x[n - 1 - i] = z;
+            w[n - 1 - i] = 2.0 / ((1.0 - z * z) * dp * dp);
+        }
+        GaussRule { x, w }
+    })
+}
+
+/// Barycentric factors bary_k·Π_{j≠k}(s − s_j) at s ∈ [−1, 1].
+///
+/// The second (true) barycentric form Σ c_k v_k / Σ c_k with c_k = bary_k/(s − s_k) is what we
+/// evaluate; multiplying every c_k by the common factor Π_j (s − s_j) leaves the quotient
+/// unchanged and turns 17 divisions into prefix and suffix products (one division per point
+/// instead of seventeen), and it needs no special case when s hits a node: all factors but
+/// that node's vanish, so the quotient returns the tabulated value. |s − s_j| ≤ 2, so the
+/// products neither overflow nor underflow.
+#[inline(always)]
+fn lagrange_factors(s: f64) -> [f64; NP] {
+    let r = rule();
+    let diff: [f64; NP] = std::array::from_fn(|k| s - r.s[k]);
+    let mut out = [0.0; NP];
+    let mut prefix = 1.0;
+    for k in 0..NP {
+        out[k] = prefix;
+        prefix *= diff[k];
+    }
+    let mut suffix = 1.0;
+    for k in (0..NP).rev() {
+        out[k] *= suffix * r.bary[k];
+        suffix *= diff[k];
+    }
+    out
+}
+
 fn build_rule() -> Rule {
     use std::f64::consts::PI;
     let n = DEG;
@@ -170,6 +243,10 @@ pub(crate) enum Kernel {
         mode: f64,
         /// ln of the logit density at the mode.
         log_peak: f64,
+        /// a/b = e^mode, kept so that each density evaluation needs one exponential fewer.
+        a_over_b: f64,
+        /// b/a = e^-mode.
+        b_over_a: f64,
     },
     /// Gamma(shape a, rate r) seen through t = ln λ.
     GammaLog {
@@ -192,6 +269,8 @@ impl Kernel {
             b,
             mode: a.ln() - b.ln(),
             log_peak: beta_logit_log_mode_density(a, b),
+            a_over_b: a / b,
+            b_over_a: b / a,
         }
     }
 
@@ -230,16 +309,22 @@ impl Kernel {
                 b,
                 mode,
                 log_peak,
+                a_over_b,
+                b_over_a,
             } => {
                 let d = t - mode;
                 // e1 = x/x* − 1 and e2 = (1−x)/(1−x*) − 1, from whichever algebraic form
-                // neither overflows nor cancels; a·e1 + b·e2 = 0 gives the other one.
+                // neither overflows nor cancels; a·e1 + b·e2 = 0 gives the other one. e^t is
+                // e^mode·(1 + expm1(d)): it only enters 1 + e^t, where a relative error of an
+                // ulp or two is harmless, and it saves an exponential per node.
                 let (e1, e2) = if t <= 0.0 {
-                    let e1 = d.exp_m1() / (1.0 + t.exp());
-                    (e1, -(a / b) * e1)
+                    let em1 = d.exp_m1();
+                    let e1 = em1 / (1.0 + a_over_b * (1.0 + em1));
+                    (e1, -a_over_b * e1)
                 } else {
-                    let e2 = (-d).exp_m1() / (1.0 + (-t).exp());
-                    (-(b / a) * e2, e2)
+                    let em1 = (-d).exp_m1();
+                    let e2 = em1 / (1.0 + b_over_a * (1.0 + em1));
+                    (-b_over_a * e2, e2)
                 };
                 // a·[ln(1+e1) − e1] + b·[ln(1+e2) − e2]; the linear terms cancel exactly
                 // (a·e1 + b·e2 = 0). Far out, ln(1+e) comes from softplus differences so
@@ -269,7 +354,7 @@ impl Kernel {
     }
 
     /// ln density and its first two derivatives' magnitudes, for panel sizing.
-    fn slope_curvature(&self, t: f64) -> (f64, f64) {
+    pub(crate) fn slope_curvature(&self, t: f64) -> (f64, f64) {
         match *self {
             Kernel::BetaLogit { a, b, .. } => {
                 let x = logistic(t);
@@ -360,6 +445,8 @@ pub(crate) struct ArmTable {
     pub(crate) p0: usize,
     /// One past the last panel in which the arm has mass.
     pub(crate) p1: usize,
+    /// The arm's window [L, U] in t (log density within `LOG_DROP` of its peak).
+    pub(crate) window: (f64, f64),
     /// Normalized density in t at the nodes of panels p0..p1, NP per panel.
     pub(crate) dens: Vec<f64>,
     /// CDF at the same nodes (summed from the left).
@@ -464,7 +551,7 @@ impl Grid {
             let p1 = breaks
                 .partition_point(|&b| b < window.1)
                 .clamp(p0 + 1, n_panels);
-            arms.push(tabulate(*kernel, &breaks, p0, p1)?);
+            arms.push(tabulate(*kernel, *window, &breaks, p0, p1)?);
         }
         Ok(Grid { breaks, arms })
     }
@@ -529,34 +616,73 @@ impl Grid {
         let (a, b) = (self.breaks[p], self.breaks[p + 1]);
         let s = (2.0 * t - a - b) / (b - a);
         let base = (p - arm.p0) * NP;
-        let r = rule();
         let (dens, cdf, sf) = (
             &arm.dens[base..base + NP],
             &arm.cdf[base..base + NP],
             &arm.sf[base..base + NP],
         );
+        let c = lagrange_factors(s);
         let mut num = [0.0f64; 3];
         let mut den = 0.0;
         for k in 0..NP {
-            let diff = s - r.s[k];
-            if diff == 0.0 {
-                return PointValue {
-                    dens: dens[k],
-                    cdf: cdf[k],
-                    sf: sf[k],
-                };
-            }
-            let c = r.bary[k] / diff;
-            den += c;
-            num[0] += c * dens[k];
-            num[1] += c * cdf[k];
-            num[2] += c * sf[k];
+            den += c[k];
+            num[0] += c[k] * dens[k];
+            num[1] += c[k] * cdf[k];
+            num[2] += c[k] * sf[k];
         }
         PointValue {
             dens: (num[0] / den).max(0.0),
             cdf: (num[1] / den).clamp(0.0, 1.0),
             sf: (num[2] / den).clamp(0.0, 1.0),
         }
+    }
+
+    /// Arm j's density and one tail (the survival function when `upper`, else the CDF) at t,
+    /// for the ratio integrals, which need only these two and call this ~1e3 times per variant.
+    pub(crate) fn tail_near(
+        &self,
+        j: usize,
+        t: f64,
+        cursor: &mut usize,
+        upper: bool,
+    ) -> (f64, f64) {
+        let arm = &self.arms[j];
+        let lower = self.breaks[arm.p0];
+        let top = self.breaks[arm.p1];
+        if t <= lower {
+            return (if upper { 1.0 } else { 0.0 }, 0.0);
+        }
+        if t >= top {
+            return (if upper { 0.0 } else { 1.0 }, 0.0);
+        }
+        if t.is_nan() {
+            return (f64::NAN, f64::NAN);
+        }
+        let mut p = (*cursor).clamp(arm.p0, arm.p1 - 1);
+        while t < self.breaks[p] && p > arm.p0 {
+            p -= 1;
+        }
+        while t >= self.breaks[p + 1] && p + 1 < arm.p1 {
+            p += 1;
+        }
+        *cursor = p;
+        let (a, b) = (self.breaks[p], self.breaks[p + 1]);
+        let s = (2.0 * t - a - b) / (b - a);
+        let base = (p - arm.p0) * NP;
+        let tail = if upper {
+            &arm.sf[base..base + NP]
+        } else {
+            &arm.cdf[base..base + NP]
+        };
+        let dens = &arm.dens[base..base + NP];
+        let c = lagrange_factors(s);
+        let (mut den, mut num_tail, mut num_dens) = (0.0, 0.0, 0.0);
+        for k in 0..NP {
+            den += c[k];
+            num_tail += c[k] * tail[k];
+            num_dens += c[k] * dens[k];
+        }
+        ((num_tail / den).clamp(0.0, 1.0), (num_dens / den).max(0.0))
     }
 
     /// The t at which arm j's CDF equals `p` (0 < p < 1). Probabilities beyond the resolved
@@ -616,7 +742,13 @@ impl Grid {
 }
 
 /// Sample an arm's density on panels p0..p1 and integrate it both ways.
-fn tabulate(kernel: Kernel, breaks: &[f64], p0: usize, p1: usize) -> Result<ArmTable, StatsError> {
+fn tabulate(
+    kernel: Kernel,
+    window: (f64, f64),
+    breaks: &[f64],
+    p0: usize,
+    p1: usize,
+) -> Result<ArmTable, StatsError> {
     let r = rule();
     let n = p1 - p0;
     let mut dens = vec![0.0; n * NP];
@@ -677,6 +809,7 @@ fn tabulate(kernel: Kernel, breaks: &[f64], p0: usize, p1: usize) -> Result<ArmT
         kernel,
         p0,
         p1,
+        window,
         dens,
         cdf,
         sf,

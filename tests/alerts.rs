@@ -1,0 +1,252 @@
+//! Alert delivery end to end, over real HTTP and a real broker: a webhook receiver that is down
+//! at first (a Python http.server checking signatures with Python's hmac module, the
+//! independent HMAC-SHA256 implementation), a crash between raising and delivering, and the
+//! Kafka alerts topic read back with the independent client (Python confluent-kafka).
+
+mod common;
+
+use std::collections::BTreeSet;
+use std::path::Path;
+use std::process::{Child, Command, Stdio};
+use std::time::Duration;
+
+use common::{signal, wait_exit, wait_for, Service};
+use serde_json::Value;
+
+const SECRET: &str = "crumb-and-co-hook-key";
+
+fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port()
+}
+
+struct Receiver {
+    child: Child,
+    out: std::path::PathBuf,
+}
+
+impl Receiver {
+    fn start(port: u16, dir: &Path) -> Receiver {
+        let out = dir.join(format!("received-{port}.ndjson"));
+        let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/receiver.py");
+        let child = Command::new("python3")
+            .arg(script)
+            .args(["--port", &port.to_string(), "--secret", SECRET])
+            .arg("--out")
+            .arg(&out)
+            .stdout(Stdio::null())
+            .spawn()
+            .expect("python3 tests/tools/receiver.py");
+        wait_for(Duration::from_secs(10), "the receiver to listen", || {
+            std::net::TcpStream::connect(("127.0.0.1", port))
+                .ok()
+                .map(|_| ())
+        });
+        Receiver { child, out }
+    }
+
+    fn records(&self) -> Vec<Value> {
+        std::fs::read_to_string(&self.out)
+            .unwrap_or_default()
+            .lines()
+            .map(|l| serde_json::from_str(l).unwrap())
+            .collect()
+    }
+}
+
+impl Drop for Receiver {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+fn config(port: u16, extra: &str) -> String {
+    format!(
+        r#"[http]
+addr = "127.0.0.1:0"
+{extra}
+[alerts]
+evaluate_every_secs = 1
+[[alerts.webhook]]
+url = "http://127.0.0.1:{port}/hooks/experiments"
+secret_env = "CRUMB_HOOK_SECRET"
+{}"#,
+        common::TEST_EXPERIMENTS
+    )
+}
+
+/// Events in which `short-copy` converts far worse than `control` (4% against 12%).
+fn harmful_events() -> String {
+    let t = r#""time":"2026-05-02T10:00:00Z""#;
+    let mut lines = Vec::new();
+    for i in 0..700 {
+        for (arm, rate) in [("control", 12), ("short-copy", 4)] {
+            lines.push(format!(r#"{{"type":"exposure","experiment":"checkout-copy","variant":"{arm}","unit":"{arm}-{i}",{t}}}"#));
+            if i % 100 < rate {
+                lines.push(format!(r#"{{"type":"conversion","experiment":"checkout-copy","metric":"purchase","unit":"{arm}-{i}",{t}}}"#));
+            }
+        }
+    }
+    lines.join("\n")
+}
+
+fn open_harm_alert(service: &Service) -> String {
+    wait_for(Duration::from_secs(20), "an open harm alert", || {
+        let (_, list) = service.get("/v1/alerts?experiment=checkout-copy&state=open");
+        list["alerts"]
+            .as_array()?
+            .iter()
+            .find(|a| {
+                a["rule"] == "harm" && a["metric"] == "purchase" && a["variant"] == "short-copy"
+            })
+            .map(|a| a["id"].as_str().unwrap().to_string())
+    })
+}
+
+fn event_ids(records: &[Value]) -> BTreeSet<String> {
+    records
+        .iter()
+        .map(|r| r["event"]["id"].as_str().unwrap().to_string())
+        .collect()
+}
+
+const ENV: [(&str, &str); 1] = [("CRUMB_HOOK_SECRET", SECRET)];
+
+#[test]
+fn alerts_reach_a_receiver_that_was_down_signed_and_once_per_id() {
+    let dir = tempfile::tempdir().unwrap();
+    let port = free_port();
+    let service = Service::start_in(&config(port, ""), Some(&dir.path().join("state")), &ENV);
+    assert_eq!(service.post("/v1/events", harmful_events()).0, 200);
+    let id = open_harm_alert(&service);
+    // The receiver is down: deliveries fail and are retried.
+    wait_for(Duration::from_secs(20), "failed delivery attempts", || {
+        let (_, text) = service.get_text("/metrics");
+        text.lines()
+            .any(|l| {
+                l.starts_with(r#"posteriord_alert_deliveries_total{result="error",sink="webhook"}"#)
+                    && !l.ends_with(" 0")
+            })
+            .then_some(())
+    });
+    let receiver = Receiver::start(port, dir.path());
+    wait_for(Duration::from_secs(90), "the alert to be delivered", || {
+        (!receiver.records().is_empty()).then_some(())
+    });
+    // Later evaluations and retries must not deliver it again under another id.
+    std::thread::sleep(Duration::from_secs(3));
+    let records = receiver.records();
+    assert!(
+        records.iter().all(|r| r["valid"] == true),
+        "signatures verified by Python's hmac: {records:?}"
+    );
+    assert_eq!(
+        event_ids(&records),
+        BTreeSet::from([format!("{id}.opened")])
+    );
+    let r = &records[0];
+    assert_eq!(r["idempotency_key"], format!("{id}.opened"));
+    assert_eq!(r["path"], "/hooks/experiments");
+    assert!(r["content_type"]
+        .as_str()
+        .unwrap()
+        .starts_with("application/cloudevents+json"));
+    // CloudEvents 1.0 required attributes, and our data.
+    let e = &r["event"];
+    assert_eq!(e["specversion"], "1.0");
+    assert_eq!(e["type"], "posteriord.alert.opened");
+    assert!(e["source"].as_str().is_some_and(|s| !s.is_empty()));
+    assert_eq!(e["data"]["rule"], "harm");
+    assert_eq!(e["data"]["experiment"], "checkout-copy");
+    assert!(e["data"]["value"].as_f64().unwrap() >= e["data"]["threshold"].as_f64().unwrap());
+    assert!(e["data"]["caution"].as_str().unwrap().contains("model"));
+    // Acknowledging is recorded.
+    let (status, acked) = service.post(&format!("/v1/alerts/{id}/ack"), "");
+    assert_eq!(status, 200, "{acked}");
+    assert!(acked["acknowledged_at"].is_string());
+    assert_eq!(service.post("/v1/alerts/nope/ack", "").0, 404);
+}
+
+#[test]
+fn an_alert_raised_before_a_crash_is_delivered_after_restart_with_the_same_id() {
+    let dir = tempfile::tempdir().unwrap();
+    let state = dir.path().join("state");
+    let port = free_port();
+    let mut service = Service::start_in(&config(port, ""), Some(&state), &ENV);
+    assert_eq!(service.post("/v1/events", harmful_events()).0, 200);
+    let id = open_harm_alert(&service);
+    signal(service.child.id(), "KILL");
+    wait_exit(&mut service.child, Duration::from_secs(10)).expect("killed");
+    let receiver = Receiver::start(port, dir.path());
+    let service = Service::start_in(&config(port, ""), Some(&state), &ENV);
+    wait_for(
+        Duration::from_secs(60),
+        "the alert to be delivered after the restart",
+        || (!receiver.records().is_empty()).then_some(()),
+    );
+    // Evaluations after the restart see the restored alert: no second alert, no new id.
+    std::thread::sleep(Duration::from_secs(4));
+    assert_eq!(
+        event_ids(&receiver.records()),
+        BTreeSet::from([format!("{id}.opened")])
+    );
+    assert_eq!(open_harm_alert(&service), id);
+}
+
+#[test]
+fn alerts_are_published_to_the_kafka_topic() {
+    let brokers = std::env::var("POSTERIORD_TEST_BROKERS")
+        .expect("POSTERIORD_TEST_BROKERS is not set: run the suite with tests/run.sh");
+    let dir = tempfile::tempdir().unwrap();
+    let nanos = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap()
+        .as_nanos();
+    let topic = format!("experiment-alerts-{nanos}");
+    let kafka = format!(
+        "[kafka]\nbrokers = \"{brokers}\"\ntopics = [\"alerts-test-input-{nanos}\"]\ngroup = \"alerts-{nanos}\"\n"
+    );
+    let cfg = config(free_port(), &kafka).replace(
+        "[[alerts.webhook]]",
+        &format!("[alerts.kafka]\ntopic = \"{topic}\"\n[[alerts.webhook]]"),
+    );
+    let service = Service::start_in(&cfg, Some(&dir.path().join("state")), &ENV);
+    assert_eq!(service.post("/v1/events", harmful_events()).0, 200);
+    let id = open_harm_alert(&service);
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/consume.py");
+    let out = Command::new("python3")
+        .arg(script)
+        .args([
+            "--brokers",
+            &brokers,
+            "--topic",
+            &topic,
+            "--count",
+            "1",
+            "--timeout",
+            "60",
+        ])
+        .output()
+        .expect("python3 tests/tools/consume.py (confluent-kafka)");
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let message: Value = serde_json::from_str(
+        String::from_utf8_lossy(&out.stdout)
+            .lines()
+            .next()
+            .expect("one alert message"),
+    )
+    .unwrap();
+    assert_eq!(message["key"], "checkout-copy");
+    assert_eq!(message["headers"]["ce_id"], format!("{id}.opened"));
+    let event: Value = serde_json::from_str(message["value"].as_str().unwrap()).unwrap();
+    assert_eq!(event["id"], format!("{id}.opened"));
+    assert_eq!(event["data"]["rule"], "harm");
+}
