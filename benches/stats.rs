@@ -1,5 +1,6 @@
 //! Benchmarks of the statistics core: exact quadrature against a 1e5-draw Monte Carlo
-//! estimator of the same decision quantities, and the cost of a full `compare` for 2..64 arms.
+//! estimator of the same decision quantities, and the cost of a full `compare` (and of the
+//! P(best)/loss/P(beats control)-only `decide`) for 2..64 arms.
 //!
 //! Run with `cargo bench --bench stats`. Before the criterion groups it prints, from one run,
 //! the speed ratio (Monte Carlo time / exact time) and the error ratio (Monte Carlo error /
@@ -14,7 +15,7 @@ use rand::SeedableRng;
 use rand_distr::Distribution;
 use serde_json::Value;
 
-use posteriord::stats::{compare, Arms, Beta, CompareOptions};
+use posteriord::stats::{compare, decide, Arms, Beta, CompareOptions};
 
 const MC_DRAWS: usize = 100_000;
 
@@ -108,6 +109,9 @@ fn print_ratios() {
     let t_exact = median_time(51, || {
         black_box(compare(black_box(&family), &opts).unwrap());
     });
+    let t_decide = median_time(51, || {
+        black_box(decide(black_box(&family), opts.control).unwrap());
+    });
     let t_mc = median_time(5, || {
         black_box(monte_carlo(black_box(&arms), &mut rng));
     });
@@ -128,6 +132,11 @@ fn print_ratios() {
     println!(
         "  speed ratio MC/exact: {:.1}x",
         t_mc.as_secs_f64() / t_exact.as_secs_f64()
+    );
+    println!("  decide (P(best), loss, P(beats control) only): {t_decide:?}");
+    println!(
+        "  speed ratio MC/decide: {:.1}x",
+        t_mc.as_secs_f64() / t_decide.as_secs_f64()
     );
     println!(
         "  P(best) max abs error: exact {e_best:.1e}, MC {m_best:.1e}, ratio {:.1e}x",
@@ -162,6 +171,11 @@ fn bench_compare(c: &mut Criterion) {
             group.bench_with_input(BenchmarkId::new(format!("n={n:e}"), k), &arms, |b, arms| {
                 b.iter(|| compare(black_box(arms), &opts).unwrap())
             });
+            group.bench_with_input(
+                BenchmarkId::new(format!("decide n={n:e}"), k),
+                &arms,
+                |b, arms| b.iter(|| decide(black_box(arms), 0).unwrap()),
+            );
         }
     }
     group.finish();

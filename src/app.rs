@@ -295,7 +295,56 @@ pub fn now_micros() -> i64 {
 /// Evaluate every experiment's rules and fold the findings into the alert book; each change
 /// is logged as one structured line (the log sink) and counted.
 pub fn evaluate_all(shared: &Shared) {
-    let snapshots = shared.lock_shards().snapshots();
+    evaluate_due(shared, &mut Cadence::always());
+}
+
+/// When each experiment was last evaluated, to evaluate every T seconds or N events per
+/// experiment, whichever comes first.
+pub struct Cadence {
+    every: std::time::Duration,
+    every_events: u64,
+    last: std::collections::HashMap<String, (std::time::Instant, u64)>,
+}
+
+impl Cadence {
+    /// A cadence of `every` or `every_events`.
+    pub fn new(every: std::time::Duration, every_events: u64) -> Cadence {
+        Cadence {
+            every,
+            every_events,
+            last: Default::default(),
+        }
+    }
+
+    fn always() -> Cadence {
+        Cadence::new(std::time::Duration::ZERO, 0)
+    }
+
+    /// Whether `id`, which has seen `events` valid events, is due; marks it evaluated if so.
+    fn due(&mut self, id: &str, events: u64) -> bool {
+        let now = std::time::Instant::now();
+        let due = match self.last.get(id) {
+            None => true,
+            Some((at, seen)) => {
+                now.duration_since(*at) >= self.every
+                    || events.saturating_sub(*seen) >= self.every_events
+            }
+        };
+        if due {
+            self.last.insert(id.to_string(), (now, events));
+        }
+        due
+    }
+}
+
+/// Evaluate the experiments that `cadence` says are due.
+pub fn evaluate_due(shared: &Shared, cadence: &mut Cadence) {
+    let snapshots: Vec<_> = shared
+        .lock_shards()
+        .snapshots()
+        .into_iter()
+        .filter(|s| cadence.due(&s.def.id, s.outcomes.0.iter().sum()))
+        .collect();
     let now = now_micros();
     // Experiments no longer configured keep their alerts; nothing to evaluate for them.
     for snapshot in snapshots {
@@ -351,20 +400,26 @@ pub fn evaluate_all(shared: &Shared) {
     }
 }
 
-/// Evaluate the rules on a fixed cadence until shutdown.
+/// Evaluate the rules on their cadence until shutdown: every experiment every `every`, or
+/// sooner once `every_events` events reached it.
 async fn evaluate_loop(
     shared: Arc<Shared>,
     every: std::time::Duration,
+    every_events: u64,
     shutdown: CancellationToken,
 ) {
-    let mut tick = tokio::time::interval(every);
+    let cadence = Arc::new(Mutex::new(Cadence::new(every, every_events)));
+    // Checking is cheap (counters only); evaluation happens only for due experiments.
+    let mut tick = tokio::time::interval(every.min(std::time::Duration::from_secs(1)));
     loop {
         tokio::select! {
             _ = shutdown.cancelled() => break,
             _ = tick.tick() => {}
         }
         let s = Arc::clone(&shared);
-        if let Err(e) = tokio::task::spawn_blocking(move || evaluate_all(&s)).await {
+        let c = Arc::clone(&cadence);
+        let run = move || evaluate_due(&s, &mut c.lock().unwrap_or_else(|p| p.into_inner()));
+        if let Err(e) = tokio::task::spawn_blocking(run).await {
             tracing::error!(error = %e, "rule evaluation failed");
         }
     }
@@ -480,6 +535,7 @@ pub async fn run(
     tracker.spawn(evaluate_loop(
         Arc::clone(&shared),
         config.alerts.evaluate_every,
+        config.alerts.evaluate_every_events,
         shutdown.clone(),
     ));
     if shared.store.is_some() {

@@ -27,7 +27,7 @@ use crate::state::shards::{ShardId, ShardImage};
 const CHUNK_BYTES: usize = 512 * 1024;
 const CHUNK_MAGIC: &[u8; 8] = b"PSTDCHG1";
 /// How long a publish waits for delivery.
-const PUBLISH_TIMEOUT: Duration = Duration::from_secs(30);
+const PUBLISH_TIMEOUT: Duration = Duration::from_secs(10);
 /// How long a restore may take to read one changelog partition.
 const RESTORE_TIMEOUT: Duration = Duration::from_secs(60);
 

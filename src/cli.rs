@@ -157,6 +157,7 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
             evaluate_every: Duration::from_secs(2),
             ..Default::default()
         },
+        shutdown_grace: Duration::from_secs(config::DEFAULT_SHUTDOWN_GRACE_SECS),
     };
     runtime()?.block_on(async move {
         let listener = app::bind(config.http.addr).await?;
@@ -198,15 +199,34 @@ fn load_config(path: &std::path::Path) -> anyhow::Result<Config> {
 fn serve(path: &std::path::Path) -> anyhow::Result<()> {
     let config = load_config(path)?;
     app::prepare_store(&config)?;
-    runtime()?.block_on(async move {
+    let grace = config.shutdown_grace;
+    let rt = runtime()?;
+    let result = rt.block_on(async move {
         let listener = app::bind(config.http.addr).await?;
         let bound = listener.local_addr()?;
         println!("posteriord listening on http://{bound}");
         tracing::info!(addr = %bound, experiments = config.experiments.len(), kafka = config.kafka.is_some(), "serving");
         let shutdown = CancellationToken::new();
         tokio::spawn(cancel_on_signal(shutdown.clone()));
-        app::run(config, listener, RunOptions { simulate: None, persist: true }, shutdown).await
-    })
+        let options = RunOptions {
+            simulate: None,
+            persist: true,
+        };
+        let run = app::run(config, listener, options, shutdown.clone());
+        tokio::pin!(run);
+        tokio::select! {
+            r = &mut run => r,
+            _ = async { shutdown.cancelled().await; tokio::time::sleep(grace).await } => {
+                Err(anyhow::anyhow!(
+                    "the drain took longer than shutdown.grace_secs = {} s; exiting without waiting further (each partition resumes from its last saved state)",
+                    grace.as_secs()
+                ))
+            }
+        }
+    });
+    // Blocking threads still draining are not waited for past the grace period.
+    rt.shutdown_timeout(Duration::from_millis(500));
+    result
 }
 
 fn check_config(path: &std::path::Path) -> anyhow::Result<()> {

@@ -41,6 +41,9 @@ pub struct ExperimentRules {
     pub max_crossover_share: f64,
     /// Probability that every variant is within the ROPE for "equivalent".
     pub equivalence_probability: f64,
+    /// Event-time span after which an experiment with neither ship nor equivalence is
+    /// recorded as inconclusive (µs); `None` = no limit.
+    pub max_duration: Option<i64>,
 }
 
 impl Default for ExperimentRules {
@@ -51,6 +54,7 @@ impl Default for ExperimentRules {
             srm_p: DEFAULT_SRM_P,
             max_crossover_share: DEFAULT_MAX_CROSSOVER_SHARE,
             equivalence_probability: DEFAULT_EQUIVALENCE_PROBABILITY,
+            max_duration: None,
         }
     }
 }

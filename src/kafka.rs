@@ -128,6 +128,11 @@ fn shard_partition(id: &str) -> Option<i32> {
 /// Publish every Kafka shard whose position moved since its last publication; `only` limits
 /// it to some shards. Returns whether all publications succeeded.
 fn publish_changed(shared: &Shared, changelog: &Changelog, only: Option<&[String]>) -> bool {
+    // During an outage a publication would only wait out its timeout; the local file keeps
+    // the exact position, and the next round publishes.
+    if shared.kafka_reachable() != Some(true) {
+        return false;
+    }
     let images: Vec<(String, crate::state::shards::ShardImage)> = {
         let shards = shared.lock_shards();
         shards
@@ -479,6 +484,12 @@ pub fn start(
         // State handoff needs the changelog, so nothing is consumed before it is reachable.
         let mut logged = false;
         while !shutdown.is_cancelled() && changelog.get().is_none() {
+            // librdkafka's metadata calls cannot be interrupted, so wait for the probe to see
+            // the brokers before trying: a drain during an outage stays prompt.
+            if shared.kafka_reachable() != Some(true) {
+                std::thread::sleep(Duration::from_millis(100));
+                continue;
+            }
             let partitions = crate::changelog::input_partitions(&kafka_cfg).unwrap_or(1);
             match handle.block_on(Changelog::open(&kafka_cfg, &kafka_cfg.changelog_topic, partitions)) {
                 Ok(c) => {

@@ -23,7 +23,7 @@ use crate::state::shards::{Shard, ShardImage};
 use crate::state::{ConversionTotals, DefectTotals, MetricTotals, OutcomeCounts};
 
 const MAGIC: &[u8; 8] = b"PSTDSHRD";
-const VERSION: u32 = 1;
+const VERSION: u32 = 2;
 const NONE_I64: i64 = i64::MIN;
 
 /// Store failures.
@@ -301,6 +301,7 @@ pub fn encode(image: &ShardImage) -> Vec<u8> {
             w.u64(n);
         }
         w.i64(e.last_event_time.unwrap_or(NONE_I64));
+        w.i64(e.first_event_time.unwrap_or(NONE_I64));
     }
     let crc = crc32fast::hash(&w.0);
     w.u32(crc);
@@ -445,6 +446,7 @@ pub fn decode(bytes: &[u8]) -> Result<ShardImage, String> {
             *slot = r.u64()?;
         }
         let last_event_time = opt(r.i64()?);
+        let first_event_time = opt(r.i64()?);
         experiments.push(ExperimentImage {
             id,
             variants,
@@ -455,6 +457,7 @@ pub fn decode(bytes: &[u8]) -> Result<ShardImage, String> {
             totals,
             outcomes,
             last_event_time,
+            first_event_time,
         });
     }
     if r.pos != body.len() {

@@ -115,3 +115,26 @@ fn demo_stops_cleanly_on_sigterm() {
     let status = wait_exit(&mut child, Duration::from_secs(20)).expect("demo exits on SIGTERM");
     assert!(status.success(), "{status:?}");
 }
+
+#[test]
+fn with_the_brokers_unreachable_sigterm_still_drains_within_the_grace_period() {
+    let dead = std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port();
+    let config = format!(
+        "[http]\naddr = \"127.0.0.1:0\"\n[shutdown]\ngrace_secs = 10\n[kafka]\nbrokers = \"127.0.0.1:{dead}\"\ntopics = [\"t\"]\n{}",
+        common::TEST_EXPERIMENTS
+    );
+    let mut service = common::Service::start(&config);
+    std::thread::sleep(Duration::from_millis(1500));
+    let started = std::time::Instant::now();
+    let status = service.terminate(Duration::from_secs(30));
+    assert!(status.success(), "{}", service.log_text());
+    assert!(
+        started.elapsed() < Duration::from_secs(10),
+        "drained in {:?}",
+        started.elapsed()
+    );
+}

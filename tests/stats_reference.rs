@@ -863,3 +863,41 @@ fn a_certain_winner_has_zero_loss() {
     assert!(r[1].expected_loss < 1e-100, "{}", r[1].expected_loss);
     assert!(r[0].expected_loss > 3.9);
 }
+
+#[test]
+fn decide_matches_compare_on_the_reference_table() {
+    // `decide` must report exactly what `compare` reports (same pass over the same grid), so
+    // the mpmath checks on `compare` above carry over; checked here on every reference case.
+    let doc: Value = serde_json::from_str(
+        &std::fs::read_to_string(
+            PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/reference/cases.json"),
+        )
+        .expect("cases.json"),
+    )
+    .expect("json");
+    for case in doc["cases"].as_array().unwrap() {
+        let params: Vec<(f64, f64)> = case["params"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|p| (p[0].as_f64().unwrap(), p[1].as_f64().unwrap()))
+            .collect();
+        let arms = if case["metric"] == "conversion" {
+            Arms::Beta(params.iter().map(|&(a, b)| beta(a, b)).collect())
+        } else {
+            Arms::Gamma(params.iter().map(|&(a, r)| gamma(a, r)).collect())
+        };
+        let control = case["control"].as_u64().unwrap() as usize;
+        let full = compare_with(arms.clone(), control);
+        let quick = posteriord::stats::decide(&arms, control).unwrap();
+        for (s, d) in full.iter().zip(&quick) {
+            assert_eq!(s.prob_best, d.prob_best, "{}", case["id"]);
+            assert_eq!(s.expected_loss, d.expected_loss, "{}", case["id"]);
+            assert_eq!(s.prob_beats_control, d.prob_beats_control, "{}", case["id"]);
+        }
+    }
+    assert!(matches!(
+        posteriord::stats::decide(&Arms::Beta(vec![beta(1.0, 1.0), beta(1.0, 1.0)]), 2),
+        Err(StatsError::ControlOutOfRange { .. })
+    ));
+}

@@ -57,7 +57,12 @@ pub struct Config {
     pub experiments: Vec<ExperimentDef>,
     /// Alert evaluation and lifecycle.
     pub alerts: AlertsConfig,
+    /// Longest a SIGTERM drain may take before the process gives up and exits 1.
+    pub shutdown_grace: std::time::Duration,
 }
+
+/// Default drain budget; the deploy kit gives 45 s before a forced kill.
+pub const DEFAULT_SHUTDOWN_GRACE_SECS: u64 = 30;
 
 /// `[alerts]`.
 #[derive(Debug, Clone, PartialEq)]
@@ -66,6 +71,9 @@ pub struct AlertsConfig {
     pub hold_down: std::time::Duration,
     /// How often every experiment's rules are evaluated.
     pub evaluate_every: std::time::Duration,
+    /// An experiment is also evaluated once this many events reached it since its last
+    /// evaluation (whichever comes first; never per event).
+    pub evaluate_every_events: u64,
     /// Webhooks that receive alert events.
     pub webhooks: Vec<WebhookConfig>,
     /// Kafka topic that receives alert events (brokers from `[kafka]`).
@@ -98,6 +106,7 @@ impl Default for AlertsConfig {
         AlertsConfig {
             hold_down: std::time::Duration::from_secs(DEFAULT_HOLD_DOWN_SECS),
             evaluate_every: std::time::Duration::from_secs(DEFAULT_EVALUATE_EVERY_SECS),
+            evaluate_every_events: DEFAULT_EVALUATE_EVERY_EVENTS,
             webhooks: Vec::new(),
             kafka_topic: None,
         }
@@ -108,6 +117,8 @@ impl Default for AlertsConfig {
 pub const DEFAULT_HOLD_DOWN_SECS: u64 = 300;
 /// Default evaluation cadence.
 pub const DEFAULT_EVALUATE_EVERY_SECS: u64 = 10;
+/// Default event-count cadence.
+pub const DEFAULT_EVALUATE_EVERY_EVENTS: u64 = 10_000;
 
 /// `[http]`.
 #[derive(Debug, Clone, PartialEq)]
@@ -223,6 +234,7 @@ struct RuleKeys<'a> {
     srm_p: &'a Option<Spanned<f64>>,
     max_crossover_share: &'a Option<Spanned<f64>>,
     equivalence_probability: &'a Option<Spanned<f64>>,
+    max_duration_days: &'a Option<Spanned<f64>>,
 }
 
 struct Ctx<'a> {
@@ -380,9 +392,27 @@ impl Ctx<'_> {
                 "alerts.evaluate_every_secs",
                 DEFAULT_EVALUATE_EVERY_SECS,
             )?,
+            evaluate_every_events: match &raw.alerts.evaluate_every_events {
+                None => DEFAULT_EVALUATE_EVERY_EVENTS,
+                Some(v) => match u64::try_from(*v.get_ref()) {
+                    Ok(n) if n >= 100 => n,
+                    _ => {
+                        return Err(self.err(
+                            v.span(),
+                            "alerts.evaluate_every_events",
+                            "must be at least 100 (rules are never evaluated per event)",
+                        ))
+                    }
+                },
+            },
             webhooks,
             kafka_topic,
         };
+        let shutdown_grace = secs(
+            &raw.shutdown.grace_secs,
+            "shutdown.grace_secs",
+            DEFAULT_SHUTDOWN_GRACE_SECS,
+        )?;
         Ok(Config {
             http: HttpConfig {
                 addr,
@@ -392,6 +422,7 @@ impl Ctx<'_> {
             store,
             experiments,
             alerts,
+            shutdown_grace,
         })
     }
 
@@ -649,6 +680,7 @@ impl Ctx<'_> {
                 srm_p: &e.srm_p,
                 max_crossover_share: &e.max_crossover_share,
                 equivalence_probability: &e.equivalence_probability,
+                max_duration_days: &e.max_duration_days,
             },
             &metrics,
         )?;
@@ -719,6 +751,22 @@ impl Ctx<'_> {
                 ),
             )),
         };
+        let max_duration = match e.max_duration_days {
+            None => None,
+            Some(d) if d.get_ref().is_finite() && *d.get_ref() > 0.0 && *d.get_ref() <= 3650.0 => {
+                Some((*d.get_ref() * 86_400.0 * 1e6) as i64)
+            }
+            Some(d) => {
+                return Err(self.err(
+                    d.span(),
+                    format!("{key}.max_duration_days"),
+                    format!(
+                        "must be a positive number of days (at most 3650), got {}",
+                        d.get_ref()
+                    ),
+                ))
+            }
+        };
         Ok(ExperimentRules {
             primary,
             guardrails,
@@ -737,6 +785,7 @@ impl Ctx<'_> {
                 0.5,
                 1.0,
             )?,
+            max_duration,
         })
     }
 

@@ -18,6 +18,14 @@ pub(super) struct RawConfig {
     pub experiment: Vec<Spanned<RawExperiment>>,
     #[serde(default)]
     pub alerts: RawAlerts,
+    #[serde(default)]
+    pub shutdown: RawShutdown,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawShutdown {
+    pub grace_secs: Option<Spanned<i64>>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -25,6 +33,7 @@ pub(super) struct RawConfig {
 pub(super) struct RawAlerts {
     pub hold_down_secs: Option<Spanned<i64>>,
     pub evaluate_every_secs: Option<Spanned<i64>>,
+    pub evaluate_every_events: Option<Spanned<i64>>,
     #[serde(default)]
     pub webhook: Vec<Spanned<RawWebhook>>,
     pub kafka: Option<Spanned<RawAlertsKafka>>,
@@ -94,6 +103,7 @@ pub(super) struct RawExperiment {
     pub srm_p: Option<Spanned<f64>>,
     pub max_crossover_share: Option<Spanned<f64>>,
     pub equivalence_probability: Option<Spanned<f64>>,
+    pub max_duration_days: Option<Spanned<f64>>,
 }
 
 #[derive(Debug, Deserialize)]

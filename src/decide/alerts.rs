@@ -83,7 +83,7 @@ pub struct AlertBook {
 }
 
 fn is_final(rule: Rule) -> bool {
-    matches!(rule, Rule::Ship | Rule::Equivalent)
+    matches!(rule, Rule::Ship | Rule::Equivalent | Rule::Inconclusive)
 }
 
 impl AlertBook {

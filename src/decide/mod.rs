@@ -30,16 +30,19 @@ pub enum Rule {
     Ship,
     /// All variants are practically equivalent to the control.
     Equivalent,
+    /// The experiment ran for its maximum duration without a ship or equivalence decision.
+    Inconclusive,
 }
 
 impl Rule {
     /// Every rule.
-    pub const ALL: [Rule; 5] = [
+    pub const ALL: [Rule; 6] = [
         Rule::SampleRatio,
         Rule::Crossovers,
         Rule::Harm,
         Rule::Ship,
         Rule::Equivalent,
+        Rule::Inconclusive,
     ];
 
     /// The comparison the rule makes, as shown with each finding.
@@ -50,6 +53,7 @@ impl Rule {
             Rule::Harm => "prob_harm >= threshold",
             Rule::Ship => "expected_loss < threshold_of_caring",
             Rule::Equivalent => "min prob_practically_equivalent >= threshold",
+            Rule::Inconclusive => "duration_days >= max_duration_days",
         }
     }
 
@@ -66,6 +70,7 @@ impl Rule {
             Rule::Harm => "harm",
             Rule::Ship => "ship",
             Rule::Equivalent => "equivalent",
+            Rule::Inconclusive => "inconclusive",
         }
     }
 }
@@ -250,6 +255,32 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                     });
                 }
             }
+        }
+    }
+    // Inconclusive: out of time by the events' own clock, with neither ship nor equivalence.
+    if let (Some(max), Some(first), Some(last)) =
+        (xr.max_duration, snap.first_event_time, snap.last_event_time)
+    {
+        let decided = out
+            .iter()
+            .any(|f| matches!(f.rule, Rule::Ship | Rule::Equivalent));
+        let ran = last - first;
+        if ran >= max && !decided {
+            let day = 86_400.0 * 1e6;
+            out.push(Finding {
+                rule: Rule::Inconclusive,
+                metric: Some(p),
+                variant: None,
+                value: ran as f64 / day,
+                threshold: max as f64 / day,
+                test: Rule::Inconclusive.test(),
+                message: format!(
+                    "ran {:.1} days (limit {:.1}) without a ship or equivalence decision on `{}`; the data cannot tell the arms apart at the thresholds set",
+                    ran as f64 / day,
+                    max as f64 / day,
+                    primary.name
+                ),
+            });
         }
     }
     out

@@ -100,6 +100,7 @@ fn findings(
         ],
         outcomes,
         last_event_time: None,
+        first_event_time: None,
     };
     let summary = summarize(snap, 0.95);
     (evaluate(&summary), summary)
@@ -339,4 +340,35 @@ fn identical_arms_with_much_data_are_equivalent() {
     assert!(!f.iter().any(|x| x.rule == Rule::Equivalent));
     // No harm on identical arms.
     assert!(!f.iter().any(|x| x.rule == Rule::Harm), "{f:?}");
+}
+
+#[test]
+fn inconclusive_at_max_duration_unless_decided() {
+    let day: i64 = 86_400_000_000;
+    let arms = even([480, 470, 490], [10, 10, 10]);
+    let limited = ExperimentRules {
+        max_duration: Some(14 * day),
+        ..rules()
+    };
+    let run = |span: i64, conv_rules: MetricRules| {
+        let d = def(conv_rules, MetricRules::default(), limited.clone());
+        let (_, summary) = findings(d, &arms, 0);
+        let mut snap = summary.snapshot.clone();
+        snap.first_event_time = Some(0);
+        snap.last_event_time = Some(span);
+        evaluate(&summarize(snap, 0.95))
+    };
+    assert!(!run(14 * day - 1, MetricRules::default())
+        .iter()
+        .any(|f| f.rule == Rule::Inconclusive));
+    let f = run(14 * day, MetricRules::default());
+    let inc = f
+        .iter()
+        .find(|f| f.rule == Rule::Inconclusive)
+        .expect("inconclusive at the limit");
+    assert_eq!((inc.value, inc.threshold), (14.0, 14.0));
+    // A ship decision at the limit is not inconclusive.
+    assert!(!run(20 * day, ship_at(1.0))
+        .iter()
+        .any(|f| f.rule == Rule::Inconclusive));
 }

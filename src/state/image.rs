@@ -31,6 +31,8 @@ pub struct ExperimentImage {
     pub outcomes: OutcomeCounts,
     /// Latest event time seen.
     pub last_event_time: Option<Micros>,
+    /// Earliest event time seen.
+    pub first_event_time: Option<Micros>,
 }
 
 /// Why an image does not fit the configured definition.
@@ -78,6 +80,7 @@ impl ExperimentImage {
             metrics: self.totals.clone(),
             outcomes: self.outcomes,
             last_event_time: self.last_event_time,
+            first_event_time: self.first_event_time,
         })
     }
 }
@@ -100,6 +103,7 @@ impl ExperimentState {
             totals: self.metrics.clone(),
             outcomes: self.outcomes,
             last_event_time: self.last_event_time,
+            first_event_time: self.first_event_time,
         }
     }
 
@@ -172,6 +176,7 @@ impl ExperimentState {
         state.metrics = image.totals;
         state.outcomes = image.outcomes;
         state.last_event_time = image.last_event_time;
+        state.first_event_time = image.first_event_time;
         Ok(state)
     }
 }

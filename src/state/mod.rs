@@ -77,6 +77,8 @@ pub struct ExperimentSnapshot {
     pub outcomes: OutcomeCounts,
     /// Latest event time seen, if events carried times.
     pub last_event_time: Option<Micros>,
+    /// Earliest event time seen: the experiment's start as far as the data says.
+    pub first_event_time: Option<Micros>,
 }
 
 impl ExperimentSnapshot {
@@ -112,6 +114,10 @@ impl ExperimentSnapshot {
         }
         self.last_event_time = match (self.last_event_time, other.last_event_time) {
             (Some(a), Some(b)) => Some(a.max(b)),
+            (a, b) => a.or(b),
+        };
+        self.first_event_time = match (self.first_event_time, other.first_event_time) {
+            (Some(a), Some(b)) => Some(a.min(b)),
             (a, b) => a.or(b),
         };
     }
@@ -162,6 +168,7 @@ pub struct ExperimentState {
     metrics: Vec<MetricTotals>,
     outcomes: OutcomeCounts,
     last_event_time: Option<Micros>,
+    first_event_time: Option<Micros>,
 }
 
 impl ExperimentState {
@@ -202,6 +209,7 @@ impl ExperimentState {
             metrics,
             outcomes: OutcomeCounts::default(),
             last_event_time: None,
+            first_event_time: None,
         }
     }
 
@@ -223,6 +231,7 @@ impl ExperimentState {
             metrics: self.metrics.clone(),
             outcomes: self.outcomes,
             last_event_time: self.last_event_time,
+            first_event_time: self.first_event_time,
         }
     }
 
@@ -244,6 +253,7 @@ impl ExperimentState {
         }
         if let Some(t) = event.time {
             self.last_event_time = Some(self.last_event_time.map_or(t, |old| old.max(t)));
+            self.first_event_time = Some(self.first_event_time.map_or(t, |old| old.min(t)));
         }
         self.outcomes.bump(outcome);
         Ok(outcome)

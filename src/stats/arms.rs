@@ -109,6 +109,44 @@ pub struct ArmSummary {
     pub prob_harm: Option<f64>,
 }
 
+/// The quantities a frequently re-evaluated experiment needs, for one arm (see [`decide`]).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Decision {
+    /// Probability that this arm is the best of all k (sums to 1 over the arms).
+    pub prob_best: f64,
+    /// Expected regret of shipping this arm, in rate units (as in [`ArmSummary`]).
+    pub expected_loss: f64,
+    /// P(θ_v > θ_c) for conversion, P(θ_v < θ_c) for defect rates; None for the control.
+    pub prob_beats_control: Option<f64>,
+}
+
+/// P(best), expected loss and P(beats control) only, in input order: the same numbers as
+/// [`compare`] (bit for bit, from the same single pass over the shared grid) without the
+/// intervals, lifts, ROPE and harm probabilities, which cost more than half of a full
+/// `compare`. Meant for continuous re-evaluation against a stopping rule.
+pub fn decide(arms: &Arms, control: usize) -> Result<Vec<Decision>, StatsError> {
+    let k = arms.len();
+    if !(2..=MAX_ARMS).contains(&k) {
+        return Err(StatsError::ArmCount(k));
+    }
+    if control >= k {
+        return Err(StatsError::ControlOutOfRange { control, n_arms: k });
+    }
+    let kernels: Vec<Kernel> = match arms {
+        Arms::Beta(v) => v.iter().map(Beta::kernel).collect(),
+        Arms::Gamma(v) => v.iter().map(Gamma::kernel).collect(),
+    };
+    let grid = Grid::new(&kernels)?;
+    let totals = integrate_all(&grid, control, arms.higher_is_better());
+    Ok((0..k)
+        .map(|j| Decision {
+            prob_best: totals.best[j].clamp(0.0, 1.0),
+            expected_loss: totals.loss[j].max(0.0),
+            prob_beats_control: (j != control).then(|| totals.beats[j].clamp(0.0, 1.0)),
+        })
+        .collect())
+}
+
 /// Compute every decision quantity for `arms`, returned in input order.
 pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, StatsError> {
     let k = arms.len();

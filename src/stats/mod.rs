@@ -6,7 +6,8 @@
 //!   remainder, `log1pmx`).
 //! - `grid`: piecewise Clenshaw–Curtis grids holding densities, CDFs and survival functions.
 //! - `posterior`: [`Beta`] (conversion) and [`Gamma`] (defect rate) posteriors.
-//! - `arms`: [`compare`] for 2..=64 arms.
+//! - `arms`: [`compare`] for 2..=64 arms, and [`decide`] (P(best), loss and P(beats
+//!   control) only) for frequent re-evaluation.
 //! - `srm`: [`sample_ratio_mismatch`].
 //!
 //! **Invariant:** nothing here does I/O, allocates threads, or knows about async runtimes,
@@ -19,7 +20,7 @@ mod posterior;
 mod special;
 mod srm;
 
-pub use arms::{compare, ArmSummary, Arms, CompareOptions, Lift, MAX_ARMS};
+pub use arms::{compare, decide, ArmSummary, Arms, CompareOptions, Decision, Lift, MAX_ARMS};
 pub use posterior::{Beta, Gamma, MAX_SHAPE, MIN_SHAPE};
 pub use srm::{sample_ratio_mismatch, SampleRatio, SRM_P_THRESHOLD};
 
