@@ -133,6 +133,13 @@ fn alert_json(a: &Alert) -> Value {
             "value": a.finding.value,
             "threshold": a.finding.threshold,
             "message": a.finding.message,
+            "evidence": {
+                "arms": a.finding.evidence.arms.iter().map(|x| json!({
+                    "variant": x.variant, "name": x.name, "posterior": x.posterior.map(|(p, q)| [p, q]), "units": x.units,
+                })).collect::<Vec<_>>(),
+                "event_time": a.finding.evidence.event_time,
+                "positions": a.finding.evidence.positions.iter().map(|(s, n)| json!([s, n])).collect::<Vec<_>>(),
+            },
         },
     })
 }
@@ -168,8 +175,43 @@ fn alert_from(v: &Value) -> Option<Alert> {
             threshold: f["threshold"].as_f64()?,
             test: rule.test(),
             message: f["message"].as_str()?.to_string(),
+            evidence: evidence_from(&f["evidence"]),
         },
     })
+}
+
+fn evidence_from(v: &Value) -> crate::decide::Evidence {
+    let arms = v["arms"]
+        .as_array()
+        .map(|a| {
+            a.iter()
+                .filter_map(|x| {
+                    let posterior = x["posterior"]
+                        .as_array()
+                        .and_then(|p| Some((p.first()?.as_f64()?, p.get(1)?.as_f64()?)));
+                    Some(crate::decide::ArmEvidence {
+                        variant: x["variant"].as_u64()? as usize,
+                        name: x["name"].as_str()?.to_string(),
+                        posterior,
+                        units: x["units"].as_u64()?,
+                    })
+                })
+                .collect()
+        })
+        .unwrap_or_default();
+    let positions = v["positions"]
+        .as_array()
+        .map(|a| {
+            a.iter()
+                .filter_map(|p| Some((p.get(0)?.as_str()?.to_string(), p.get(1)?.as_i64()?)))
+                .collect()
+        })
+        .unwrap_or_default();
+    crate::decide::Evidence {
+        arms,
+        event_time: v["event_time"].as_i64(),
+        positions,
+    }
 }
 
 /// The alert file: the book and the pending deliveries, together.

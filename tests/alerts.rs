@@ -164,6 +164,14 @@ fn alerts_reach_a_receiver_that_was_down_signed_and_once_per_id() {
     assert_eq!(e["data"]["experiment"], "checkout-copy");
     assert!(e["data"]["value"].as_f64().unwrap() >= e["data"]["threshold"].as_f64().unwrap());
     assert!(e["data"]["caution"].as_str().unwrap().contains("model"));
+    // The evidence: both arms' posteriors (Beta(1,1) prior + counts) and units, and the time.
+    let arms = e["data"]["evidence"]["arms"].as_array().unwrap();
+    assert_eq!(arms.len(), 2);
+    assert_eq!(arms[0]["variant"], "control");
+    assert_eq!(arms[0]["units"], 700);
+    assert_eq!(arms[0]["posterior"], serde_json::json!([85.0, 617.0]));
+    assert_eq!(arms[1]["posterior"], serde_json::json!([29.0, 673.0]));
+    assert_eq!(e["data"]["evidence"]["event_time"], "2026-05-02T10:00:00Z");
     // Acknowledging is recorded.
     let (status, acked) = service.post(&format!("/v1/alerts/{id}/ack"), "");
     assert_eq!(status, 200, "{acked}");

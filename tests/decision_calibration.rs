@@ -74,6 +74,7 @@ fn simulate(runs: usize, looks: u64, step: u64, rates: [f64; 2], seed: u64) -> V
                     outcomes,
                     last_event_time: None,
                     first_event_time: None,
+                    positions: Vec::new(),
                 };
                 if evaluate(&summarize(snap, 0.95))
                     .iter()

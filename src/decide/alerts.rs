@@ -233,6 +233,7 @@ mod tests {
 
     fn finding(rule: Rule) -> Finding {
         Finding {
+            evidence: Default::default(),
             rule,
             metric: Some(0),
             variant: Some(1),

@@ -92,6 +92,33 @@ pub struct Finding {
     pub test: &'static str,
     /// One sentence for the person on call.
     pub message: String,
+    /// The data behind the comparison.
+    pub evidence: Evidence,
+}
+
+/// What a finding was computed from, for the person who has to trust or overrule it.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct Evidence {
+    /// The arms involved (the variant and the control; every arm for experiment rules).
+    pub arms: Vec<ArmEvidence>,
+    /// Latest event time in the data.
+    pub event_time: Option<crate::event::Micros>,
+    /// Input positions (shard, next offset) the data reflects.
+    pub positions: Vec<(String, i64)>,
+}
+
+/// One arm's posterior and exposed units.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ArmEvidence {
+    /// Variant index.
+    pub variant: usize,
+    /// Variant name.
+    pub name: String,
+    /// Posterior parameters: (alpha, beta) for conversion, (shape, rate) for defect rates;
+    /// `None` for experiment-level rules.
+    pub posterior: Option<(f64, f64)>,
+    /// Exposed units.
+    pub units: u64,
 }
 
 fn eligible(
@@ -132,6 +159,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
         if enough && srm.p_value < xr.srm_p {
             srm_holds = true;
             out.push(Finding {
+                evidence: Evidence::default(),
                 rule: Rule::SampleRatio,
                 metric: None,
                 variant: None,
@@ -151,6 +179,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
         let share = crossovers / units_total;
         if share > xr.max_crossover_share {
             out.push(Finding {
+                evidence: Evidence::default(),
                 rule: Rule::Crossovers,
                 metric: None,
                 variant: None,
@@ -182,6 +211,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
             if p >= rule.probability {
                 harmed.push((m, v));
                 out.push(Finding {
+                evidence: Evidence::default(),
                     rule: Rule::Harm,
                     metric: Some(m),
                     variant: Some(v),
@@ -218,6 +248,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                 if let Some((v, arm)) = best {
                     if arm.expected_loss < rule.threshold_of_caring {
                         out.push(Finding {
+                            evidence: Evidence::default(),
                             rule: Rule::Ship,
                             metric: Some(p),
                             variant: Some(v),
@@ -239,6 +270,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                 let worst = equivalent.iter().copied().fold(f64::INFINITY, f64::min);
                 if worst >= xr.equivalence_probability {
                     out.push(Finding {
+                evidence: Evidence::default(),
                         rule: Rule::Equivalent,
                         metric: Some(p),
                         variant: None,
@@ -268,6 +300,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
         if ran >= max && !decided {
             let day = 86_400.0 * 1e6;
             out.push(Finding {
+                evidence: Evidence::default(),
                 rule: Rule::Inconclusive,
                 metric: Some(p),
                 variant: None,
@@ -283,7 +316,40 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
             });
         }
     }
+    for f in &mut out {
+        f.evidence = evidence(summary, f);
+    }
     out
+}
+
+fn evidence(summary: &ExperimentSummary, f: &Finding) -> Evidence {
+    let snap = &summary.snapshot;
+    let control = snap.def.control;
+    let arms_of: Vec<usize> = match f.variant {
+        Some(v) if v != control => vec![control, v],
+        Some(v) => vec![v],
+        None => (0..snap.def.variants.len()).collect(),
+    };
+    let posterior = |v: usize| -> Option<(f64, f64)> {
+        let m = f.metric?;
+        match summary.metrics[m].posteriors.as_ref().ok()? {
+            crate::stats::Arms::Beta(b) => b.get(v).map(|x| (x.alpha(), x.beta())),
+            crate::stats::Arms::Gamma(g) => g.get(v).map(|x| (x.shape(), x.rate())),
+        }
+    };
+    Evidence {
+        arms: arms_of
+            .into_iter()
+            .map(|v| ArmEvidence {
+                variant: v,
+                name: snap.def.variants[v].name.clone(),
+                posterior: posterior(v),
+                units: snap.units[v],
+            })
+            .collect(),
+        event_time: snap.last_event_time,
+        positions: snap.positions.clone(),
+    }
 }
 
 fn ship_message(

@@ -101,6 +101,7 @@ fn findings(
         outcomes,
         last_event_time: None,
         first_event_time: None,
+        positions: Vec::new(),
     };
     let summary = summarize(snap, 0.95);
     (evaluate(&summary), summary)

@@ -20,6 +20,19 @@ shipping decisions that affect people's money or safety to the team's own review
 pub const CAUTION_SHORT: &str =
     "posteriors assume the model and clean data; check data quality and review before acting";
 
+/// The evidence of a finding as JSON: arms with posteriors and units, event time, positions.
+pub fn evidence(e: &crate::decide::Evidence) -> Value {
+    json!({
+        "arms": e.arms.iter().map(|a| json!({
+            "variant": a.name,
+            "posterior": a.posterior.map(|(x, y)| json!([x, y])),
+            "units": a.units,
+        })).collect::<Vec<_>>(),
+        "event_time": e.event_time.and_then(time_text),
+        "positions": e.positions.iter().map(|(shard, next)| json!({"shard": shard, "next_offset": next})).collect::<Vec<_>>(),
+    })
+}
+
 /// One alert of `GET /v1/alerts`.
 pub fn alert(a: &crate::decide::alerts::Alert) -> Value {
     json!({
@@ -37,6 +50,7 @@ pub fn alert(a: &crate::decide::alerts::Alert) -> Value {
         "threshold": a.finding.threshold,
         "test": a.finding.test,
         "message": a.finding.message,
+        "evidence": evidence(&a.finding.evidence),
         "caution": CAUTION_SHORT,
     })
 }
@@ -208,7 +222,7 @@ fn decisions(summary: &ExperimentSummary) -> Value {
                 "threshold": f.threshold,
                 "test": f.test,
                 "message": f.message,
-                "units": summary.snapshot.units,
+                "evidence": evidence(&f.evidence),
             })
         })
         .collect();

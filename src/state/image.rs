@@ -81,6 +81,7 @@ impl ExperimentImage {
             outcomes: self.outcomes,
             last_event_time: self.last_event_time,
             first_event_time: self.first_event_time,
+            positions: Vec::new(),
         })
     }
 }

@@ -79,6 +79,8 @@ pub struct ExperimentSnapshot {
     pub last_event_time: Option<Micros>,
     /// Earliest event time seen: the experiment's start as far as the data says.
     pub first_event_time: Option<Micros>,
+    /// Input positions (shard, next offset) the totals reflect, when merged across shards.
+    pub positions: Vec<(String, i64)>,
 }
 
 impl ExperimentSnapshot {
@@ -232,6 +234,7 @@ impl ExperimentState {
             outcomes: self.outcomes,
             last_event_time: self.last_event_time,
             first_event_time: self.first_event_time,
+            positions: Vec::new(),
         }
     }
 

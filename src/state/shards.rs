@@ -108,7 +108,7 @@ pub struct Shards {
     shards: BTreeMap<ShardId, Shard>,
     /// Totals of shards owned by other instances, as last published in the changelog; used
     /// only for reading, and only for shard ids not held here.
-    remote: BTreeMap<ShardId, Vec<ExperimentSnapshot>>,
+    remote: BTreeMap<ShardId, (Option<i64>, Vec<ExperimentSnapshot>)>,
 }
 
 impl Shards {
@@ -169,7 +169,7 @@ impl Shards {
                 e.totals_snapshot(def)
             })
             .collect();
-        self.remote.insert(id, snaps);
+        self.remote.insert(id, (image.next_offset, snaps));
     }
 
     /// Experiment `id` merged across all shards (local ones, then remote ones not held here);
@@ -177,20 +177,26 @@ impl Shards {
     pub fn snapshot(&self, id: &str) -> Option<ExperimentSnapshot> {
         let def = self.defs.iter().find(|d| d.id == id)?;
         let mut merged = super::ExperimentState::new(Arc::clone(def)).snapshot();
-        for shard in self.shards.values() {
+        for (shard_id, shard) in &self.shards {
             if let Some(e) = shard.engine.experiment(id) {
                 let snap = e.snapshot();
                 if !snap.is_empty() {
                     merged.merge(&snap);
+                    if let Some(next) = shard.next_offset {
+                        merged.positions.push((shard_id.clone(), next));
+                    }
                 }
             }
         }
-        for (shard_id, snaps) in &self.remote {
+        for (shard_id, (next, snaps)) in &self.remote {
             if self.shards.contains_key(shard_id) {
                 continue;
             }
             for snap in snaps.iter().filter(|s| s.def.id == id) {
                 merged.merge(snap);
+                if let Some(next) = next {
+                    merged.positions.push((shard_id.clone(), *next));
+                }
             }
         }
         Some(merged)
