@@ -9,44 +9,14 @@ mod common;
 
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
-use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+use std::time::{Duration, Instant};
 
-use common::{
-    observed, seen, signal, wait_exit, wait_for, workload, Service, SPECS, TEST_EXPERIMENTS,
-};
+use common::kafka::{brokers, spawn_producer, unique};
+use common::{signal, total_seen, wait_exit, wait_for, workload, Service, TEST_EXPERIMENTS};
 use rand::{Rng, SeedableRng};
-
-fn brokers() -> String {
-    std::env::var("POSTERIORD_TEST_BROKERS").unwrap_or_else(|_| {
-        panic!("POSTERIORD_TEST_BROKERS is not set: run the suite with tests/run.sh")
-    })
-}
 
 fn soak() -> bool {
     std::env::var("POSTERIORD_SOAK").is_ok_and(|v| v == "1")
-}
-
-fn unique(prefix: &str) -> String {
-    let nanos = SystemTime::now()
-        .duration_since(UNIX_EPOCH)
-        .unwrap()
-        .as_nanos();
-    format!("{prefix}-{}-{nanos}", std::process::id())
-}
-
-/// Start the independent producer in the background.
-fn spawn_producer(brokers: &str, topic: &str, lines: &[String], dir: &Path) -> Child {
-    let file = dir.join(format!("{topic}.ndjson"));
-    std::fs::write(&file, lines.join("\n") + "\n").unwrap();
-    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/produce.py");
-    Command::new("python3")
-        .arg(script)
-        .args(["--brokers", brokers, "--topic", topic, "--partitions", "4"])
-        .arg(&file)
-        .stdout(Stdio::piped())
-        .stderr(Stdio::piped())
-        .spawn()
-        .expect("python3 tests/tools/produce.py (confluent-kafka)")
 }
 
 fn config(brokers: &str, topic: &str, group: &str) -> String {
@@ -68,10 +38,6 @@ group = "{group}"
     )
 }
 
-fn total_seen(service: &Service) -> u64 {
-    SPECS.iter().map(|s| seen(service, s)).sum()
-}
-
 #[test]
 fn sigkill_at_random_moments_loses_and_doubles_nothing() {
     let brokers = brokers();
@@ -85,7 +51,7 @@ fn sigkill_at_random_moments_loses_and_doubles_nothing() {
     let scratch = tempfile::tempdir().unwrap();
     let state: PathBuf = scratch.path().join("state");
     let w = workload(31, n_events);
-    let producer = spawn_producer(&brokers, &topic, &w.lines, scratch.path());
+    let producer = spawn_producer(&brokers, &topic, 4, &w.lines, scratch.path());
     let cfg = config(&brokers, &topic, &group);
     let mut rng = rand::rngs::StdRng::seed_from_u64(99);
     let started = Instant::now();
@@ -114,14 +80,7 @@ fn sigkill_at_random_moments_loses_and_doubles_nothing() {
         || (total_seen(&service) >= w.lines.len() as u64).then_some(()),
     );
     std::thread::sleep(Duration::from_secs(2));
-    for (spec, expected) in SPECS.iter().zip(&w.expected) {
-        assert_eq!(
-            &observed(&service, spec),
-            expected,
-            "experiment {}",
-            spec.id
-        );
-    }
+    common::assert_exact(&service, &w.expected);
     eprintln!(
         "crash loop: {n_events} events, {n_kills} SIGKILLs, exact after {:?}",
         started.elapsed()
@@ -205,7 +164,7 @@ fn a_broker_outage_leaves_the_service_up_and_resumes_exactly() {
     let topic = unique("outage-events");
     let w = workload(41, 10_000);
     let (first, second) = w.lines.split_at(5_000);
-    let mut p = spawn_producer(&broker.addr(), &topic, first, scratch.path());
+    let mut p = spawn_producer(&broker.addr(), &topic, 4, first, scratch.path());
     assert!(p.wait().unwrap().success());
     let cfg = config(&broker.addr(), &topic, "outage-group");
     let service = Service::start_in(&cfg, Some(&scratch.path().join("state")), &[]);
@@ -229,7 +188,7 @@ fn a_broker_outage_leaves_the_service_up_and_resumes_exactly() {
     wait_for(Duration::from_secs(60), "readiness to return", || {
         (service.get("/readyz").0 == 200).then_some(())
     });
-    let mut p = spawn_producer(&broker.addr(), &topic, second, scratch.path());
+    let mut p = spawn_producer(&broker.addr(), &topic, 4, second, scratch.path());
     assert!(p.wait().unwrap().success());
     wait_for(
         Duration::from_secs(180),
@@ -237,12 +196,5 @@ fn a_broker_outage_leaves_the_service_up_and_resumes_exactly() {
         || (total_seen(&service) >= w.lines.len() as u64).then_some(()),
     );
     std::thread::sleep(Duration::from_secs(1));
-    for (spec, expected) in SPECS.iter().zip(&w.expected) {
-        assert_eq!(
-            &observed(&service, spec),
-            expected,
-            "experiment {}",
-            spec.id
-        );
-    }
+    common::assert_exact(&service, &w.expected);
 }

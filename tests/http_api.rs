@@ -6,7 +6,7 @@ mod common;
 
 use std::time::Duration;
 
-use common::{observed, workload, Service, SPECS, TEST_EXPERIMENTS};
+use common::{workload, Service, TEST_EXPERIMENTS};
 use serde_json::Value;
 
 fn config() -> String {
@@ -28,14 +28,7 @@ fn posted_events_are_counted_exactly() {
         assert_eq!(reply["received"], chunk.len());
         assert_eq!(reply["rejected"], 0);
     }
-    for (spec, expected) in SPECS.iter().zip(&w.expected) {
-        assert_eq!(
-            &observed(&service, spec),
-            expected,
-            "experiment {}",
-            spec.id
-        );
-    }
+    common::assert_exact(&service, &w.expected);
     // The workload must actually exercise the semantics it checks.
     let e = &w.expected[0];
     assert!(
@@ -242,14 +235,7 @@ fn accepted_events_survive_a_sigkill() {
     common::signal(service.child.id(), "KILL");
     common::wait_exit(&mut service.child, Duration::from_secs(10)).expect("killed");
     let service = Service::start_in(&config, Some(state.path()), &[]);
-    for (spec, expected) in SPECS.iter().zip(&w.expected) {
-        assert_eq!(
-            &observed(&service, spec),
-            expected,
-            "experiment {}",
-            spec.id
-        );
-    }
+    common::assert_exact(&service, &w.expected);
     assert!(
         service
             .log_text()

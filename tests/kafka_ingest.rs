@@ -4,47 +4,10 @@
 
 mod common;
 
-use std::path::Path;
-use std::process::Command;
-use std::time::{Duration, SystemTime, UNIX_EPOCH};
+use std::time::Duration;
 
-use common::{observed, seen, wait_for, workload, Service, SPECS, TEST_EXPERIMENTS};
-
-fn brokers() -> String {
-    std::env::var("POSTERIORD_TEST_BROKERS").unwrap_or_else(|_| {
-        panic!(
-            "POSTERIORD_TEST_BROKERS is not set: run the suite with tests/run.sh, which starts a \
-             Kafka-protocol broker on loopback and sets it"
-        )
-    })
-}
-
-fn unique(prefix: &str) -> String {
-    let nanos = SystemTime::now()
-        .duration_since(UNIX_EPOCH)
-        .unwrap()
-        .as_nanos();
-    format!("{prefix}-{}-{nanos}", std::process::id())
-}
-
-/// Produce `lines` with the independent client; returns how many it delivered.
-fn produce(brokers: &str, topic: &str, lines: &[String], dir: &Path) -> usize {
-    let file = dir.join(format!("{topic}.ndjson"));
-    std::fs::write(&file, lines.join("\n") + "\n").unwrap();
-    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/produce.py");
-    let out = Command::new("python3")
-        .arg(script)
-        .args(["--brokers", brokers, "--topic", topic, "--partitions", "3"])
-        .arg(&file)
-        .output()
-        .expect("run python3 tests/tools/produce.py (confluent-kafka)");
-    assert!(
-        out.status.success(),
-        "independent producer failed: {}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    String::from_utf8_lossy(&out.stdout).trim().parse().unwrap()
-}
+use common::kafka::{brokers, consume, produce, unique};
+use common::{seen, total_seen, wait_for, workload, Service, SPECS, TEST_EXPERIMENTS};
 
 fn kafka_config(brokers: &str, topic: &str, group: &str) -> String {
     format!(
@@ -59,10 +22,6 @@ group = "{group}"
 "heartbeat.interval.ms" = 1000
 {TEST_EXPERIMENTS}"#
     )
-}
-
-fn total_seen(service: &Service) -> u64 {
-    SPECS.iter().map(|s| seen(service, s)).sum()
 }
 
 #[test]
@@ -85,7 +44,7 @@ fn events_from_an_independent_producer_are_counted_exactly() {
         lines.insert(1_000 * (i + 1), p.clone());
     }
     assert_eq!(
-        produce(&brokers, &topic, &lines, scratch.path()),
+        produce(&brokers, &topic, 3, &lines, scratch.path()),
         lines.len()
     );
 
@@ -116,7 +75,7 @@ fn events_from_an_independent_producer_are_counted_exactly() {
     let exit = service.terminate(Duration::from_secs(30));
     assert!(exit.success(), "{exit:?}\n{}", service.log_text());
     assert_eq!(
-        produce(&brokers, &topic, second, scratch.path()),
+        produce(&brokers, &topic, 3, second, scratch.path()),
         second.len()
     );
     let service = Service::start_in(&config, Some(&state), &[]);
@@ -125,14 +84,7 @@ fn events_from_an_independent_producer_are_counted_exactly() {
     });
     // Give a wrong re-read of old offsets time to show up before the final check.
     std::thread::sleep(Duration::from_secs(2));
-    for (spec, expected) in SPECS.iter().zip(&w.expected) {
-        assert_eq!(
-            &observed(&service, spec),
-            expected,
-            "experiment {}",
-            spec.id
-        );
-    }
+    common::assert_exact(&service, &w.expected);
 }
 
 #[test]
@@ -151,34 +103,6 @@ fn readiness_is_false_while_the_broker_is_unreachable() {
     // The API keeps answering meanwhile.
     let (status, _) = service.get("/v1/experiments");
     assert_eq!(status, 200);
-}
-
-/// Read `count` messages of `topic` with the independent client.
-fn consume(brokers: &str, topic: &str, count: usize) -> Vec<serde_json::Value> {
-    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/consume.py");
-    let out = Command::new("python3")
-        .arg(script)
-        .args([
-            "--brokers",
-            brokers,
-            "--topic",
-            topic,
-            "--count",
-            &count.to_string(),
-            "--timeout",
-            "60",
-        ])
-        .output()
-        .expect("run python3 tests/tools/consume.py (confluent-kafka)");
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    String::from_utf8_lossy(&out.stdout)
-        .lines()
-        .map(|l| serde_json::from_str(l).unwrap())
-        .collect()
 }
 
 #[test]
@@ -211,7 +135,7 @@ fn poison_messages_go_to_the_dead_letter_topic_and_the_consumer_keeps_going() {
         lines.insert(300 * (i + 1), p.to_string());
     }
     assert_eq!(
-        produce(&brokers, &topic, &lines, scratch.path()),
+        produce(&brokers, &topic, 3, &lines, scratch.path()),
         lines.len()
     );
     let config = kafka_config(&brokers, &topic, &unique("poison-group")).replace(
@@ -227,14 +151,7 @@ fn poison_messages_go_to_the_dead_letter_topic_and_the_consumer_keeps_going() {
                 .then_some(())
         },
     );
-    for (spec, expected) in SPECS.iter().zip(&w.expected) {
-        assert_eq!(
-            &observed(&service, spec),
-            expected,
-            "experiment {}",
-            spec.id
-        );
-    }
+    common::assert_exact(&service, &w.expected);
     let letters = consume(&brokers, &dead, poison.len());
     assert_eq!(
         letters.len(),

@@ -10,35 +10,12 @@
 
 mod common;
 
-use std::path::Path;
-use std::process::{Command, Stdio};
-use std::time::{Duration, SystemTime, UNIX_EPOCH};
+use std::time::Duration;
 
+use common::kafka::{brokers, produce, unique};
 use common::{
     observed, seen, signal, wait_exit, wait_for, workload, Service, SPECS, TEST_EXPERIMENTS,
 };
-
-fn unique(prefix: &str) -> String {
-    let nanos = SystemTime::now()
-        .duration_since(UNIX_EPOCH)
-        .unwrap()
-        .as_nanos();
-    format!("{prefix}-{}-{nanos}", std::process::id())
-}
-
-fn produce(brokers: &str, topic: &str, lines: &[String], dir: &Path) {
-    let file = dir.join(format!("{topic}-{}.ndjson", lines.len()));
-    std::fs::write(&file, lines.join("\n") + "\n").unwrap();
-    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/produce.py");
-    let status = Command::new("python3")
-        .arg(script)
-        .args(["--brokers", brokers, "--topic", topic, "--partitions", "6"])
-        .arg(&file)
-        .stdout(Stdio::null())
-        .status()
-        .expect("python3 tests/tools/produce.py (confluent-kafka)");
-    assert!(status.success(), "independent producer failed");
-}
 
 fn kafka_events_applied(s: &Service) -> u64 {
     let (_, text) = s.get_text("/metrics");
@@ -50,14 +27,16 @@ fn kafka_events_applied(s: &Service) -> u64 {
 
 #[test]
 fn a_killed_instance_s_partitions_move_with_their_exact_state() {
-    let brokers = std::env::var("POSTERIORD_TEST_BROKERS")
-        .expect("POSTERIORD_TEST_BROKERS is not set: run the suite with tests/run.sh");
+    let brokers = brokers();
     let topic = unique("scale-events");
     let group = unique("scale-group");
     let scratch = tempfile::tempdir().unwrap();
     let w = workload(61, 40_000);
     let (first, second) = w.lines.split_at(20_000);
-    produce(&brokers, &topic, first, scratch.path());
+    assert_eq!(
+        produce(&brokers, &topic, 6, first, scratch.path()),
+        first.len()
+    );
     let config = format!(
         r#"[http]
 addr = "127.0.0.1:0"
@@ -97,7 +76,7 @@ changelog_interval_ms = 300
         let topic = topic.clone();
         let lines = second.to_vec();
         let dir = scratch.path().to_path_buf();
-        std::thread::spawn(move || produce(&brokers, &topic, &lines, &dir))
+        std::thread::spawn(move || produce(&brokers, &topic, 6, &lines, &dir))
     };
     std::thread::sleep(Duration::from_millis(800));
     let mut dead = instances.remove(victim);

@@ -2,6 +2,8 @@
 //! real signals, and compute ground truth for generated events independently of the engine.
 #![allow(dead_code)]
 
+pub mod kafka;
+
 use std::collections::{HashMap, HashSet};
 use std::io::{BufRead, BufReader};
 use std::path::{Path, PathBuf};
@@ -531,4 +533,16 @@ pub fn seen(service: &Service, spec: &Spec) -> u64 {
         + e.crossover
         + e.orphan
         + e.duplicate_conversion
+}
+
+/// Valid events the API has seen across both test experiments.
+pub fn total_seen(service: &Service) -> u64 {
+    SPECS.iter().map(|s| seen(service, s)).sum()
+}
+
+/// The API's totals equal the ground truth, for both test experiments.
+pub fn assert_exact(service: &Service, expected: &[Expected]) {
+    for (spec, expected) in SPECS.iter().zip(expected) {
+        assert_eq!(&observed(service, spec), expected, "experiment {}", spec.id);
+    }
 }
