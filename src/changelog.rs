@@ -77,22 +77,8 @@ fn parse_key(key: &str) -> Option<(&str, i64, u32)> {
     Some((shard, generation.parse().ok()?, chunk.parse().ok()?))
 }
 
-/// Connection and security properties shared by every changelog client.
 fn base_config(cfg: &KafkaConfig) -> ClientConfig {
-    let mut c = ClientConfig::new();
-    c.set("bootstrap.servers", &cfg.brokers);
-    for (k, v) in &cfg.properties {
-        let shared = k.starts_with("security.")
-            || k.starts_with("sasl.")
-            || k.starts_with("ssl.")
-            || k.starts_with("socket.")
-            || k.starts_with("broker.")
-            || k == "client.dns.lookup";
-        if shared {
-            c.set(k, v);
-        }
-    }
-    c
+    crate::kafka::connection_config(cfg)
 }
 
 /// Chunks of one generation as read back.
@@ -194,8 +180,9 @@ impl PartitionContents {
 pub struct Changelog {
     topic: String,
     n_partitions: i32,
-    cfg: KafkaConfig,
     producer: ThreadedProducer<DefaultProducerContext>,
+    /// Reader for restores (assigned one partition at a time).
+    reader: Mutex<BaseConsumer>,
     /// Generations known to be in the topic per shard, to tombstone after the next publish.
     known: Mutex<HashMap<ShardId, Vec<(i64, u32)>>>,
 }
@@ -219,11 +206,16 @@ impl Changelog {
             .set("enable.idempotence", "true")
             .set("linger.ms", "5");
         let producer = pc.create().map_err(err)?;
+        let mut rc = base_config(cfg);
+        rc.set("group.id", "posteriord-changelog-reader")
+            .set("enable.auto.commit", "false")
+            .set("client.id", "posteriord-changelog-reader");
+        let reader: BaseConsumer = rc.create().map_err(err)?;
         Ok(Changelog {
             topic: topic.to_string(),
             n_partitions: n,
-            cfg: cfg.clone(),
             producer,
+            reader: Mutex::new(reader),
             known: Mutex::new(HashMap::new()),
         })
     }
@@ -301,7 +293,12 @@ impl Changelog {
 
     /// Read changelog partition `cp` to its end.
     pub fn read_partition(&self, cp: i32) -> Result<PartitionContents, ChangelogError> {
-        read_partition(&self.cfg, &self.topic, cp, RESTORE_TIMEOUT)
+        // One long-lived reader: creating a client per restore costs a connection and a
+        // metadata round trip each, inside the rebalance callback.
+        let reader = self.reader.lock().unwrap_or_else(|p| p.into_inner());
+        let r = read_partition(&reader, &self.topic, cp, RESTORE_TIMEOUT);
+        let _ = reader.unassign();
+        r
     }
 
     /// The newest complete state of `shard` (input partition `partition`), if published.
@@ -337,7 +334,7 @@ impl Changelog {
 
 /// Read `topic` partition `cp` from the beginning to the high watermark seen at the start.
 pub fn read_partition(
-    cfg: &KafkaConfig,
+    consumer: &BaseConsumer,
     topic: &str,
     cp: i32,
     timeout: Duration,
@@ -346,12 +343,6 @@ pub fn read_partition(
         topic: topic.to_string(),
         source,
     };
-    let mut cc = base_config(cfg);
-    cc.set("group.id", "posteriord-changelog-reader")
-        .set("enable.auto.commit", "false")
-        .set("enable.partition.eof", "false")
-        .set("client.id", "posteriord-changelog-reader");
-    let consumer: BaseConsumer = cc.create().map_err(err)?;
     let (low, high) = consumer
         .fetch_watermarks(topic, cp, Duration::from_secs(10))
         .map_err(err)?;

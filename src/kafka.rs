@@ -89,12 +89,11 @@ pub fn check_properties(cfg: &KafkaConfig) -> Result<(), String> {
     }
 }
 
-/// The dead-letter producer's configuration: connection and security properties from the
-/// config, idempotent delivery.
-pub fn producer_config(cfg: &KafkaConfig) -> ClientConfig {
+/// Connection and security properties of `cfg` (brokers, TLS, SASL, sockets), without the
+/// consumer-only ones: the base of every client posteriord creates besides the consumer.
+pub fn connection_config(cfg: &KafkaConfig) -> ClientConfig {
     let mut c = ClientConfig::new();
-    c.set("bootstrap.servers", &cfg.brokers)
-        .set("client.id", "posteriord-dead-letters");
+    c.set("bootstrap.servers", &cfg.brokers);
     for (k, v) in &cfg.properties {
         let shared = k.starts_with("security.")
             || k.starts_with("sasl.")
@@ -106,7 +105,15 @@ pub fn producer_config(cfg: &KafkaConfig) -> ClientConfig {
             c.set(k, v);
         }
     }
-    c.set("enable.idempotence", "true").set("linger.ms", "5");
+    c
+}
+
+/// An idempotent producer's configuration (dead letters, alerts).
+pub fn producer_config(cfg: &KafkaConfig) -> ClientConfig {
+    let mut c = connection_config(cfg);
+    c.set("client.id", "posteriord-dead-letters")
+        .set("enable.idempotence", "true")
+        .set("linger.ms", "5");
     c
 }
 

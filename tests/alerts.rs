@@ -225,33 +225,8 @@ fn alerts_are_published_to_the_kafka_topic() {
     let service = Service::start_in(&cfg, Some(&dir.path().join("state")), &ENV);
     assert_eq!(service.post("/v1/events", harmful_events()).0, 200);
     let id = open_harm_alert(&service);
-    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/consume.py");
-    let out = Command::new("python3")
-        .arg(script)
-        .args([
-            "--brokers",
-            &brokers,
-            "--topic",
-            &topic,
-            "--count",
-            "1",
-            "--timeout",
-            "60",
-        ])
-        .output()
-        .expect("python3 tests/tools/consume.py (confluent-kafka)");
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    let message: Value = serde_json::from_str(
-        String::from_utf8_lossy(&out.stdout)
-            .lines()
-            .next()
-            .expect("one alert message"),
-    )
-    .unwrap();
+    let messages = common::kafka::consume(&brokers, &topic, 1);
+    let message = messages.first().expect("one alert message");
     assert_eq!(message["key"], "checkout-copy");
     assert_eq!(message["headers"]["ce_id"], format!("{id}.opened"));
     let event: Value = serde_json::from_str(message["value"].as_str().unwrap()).unwrap();
