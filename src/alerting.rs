@@ -146,13 +146,7 @@ fn alert_json(a: &Alert) -> Value {
 
 fn alert_from(v: &Value) -> Option<Alert> {
     let rule = Rule::from_name(v["rule"].as_str()?)?;
-    let state = match v["state"].as_str()? {
-        "open" => AlertState::Open,
-        "easing" => AlertState::Easing,
-        "closed" => AlertState::Closed,
-        "recorded" => AlertState::Recorded,
-        _ => return None,
-    };
+    let state = AlertState::from_name(v["state"].as_str()?)?;
     let f = &v["finding"];
     Some(Alert {
         id: v["id"].as_str()?.to_string(),

@@ -292,12 +292,6 @@ pub fn now_micros() -> i64 {
     (time::OffsetDateTime::now_utc().unix_timestamp_nanos() / 1_000) as i64
 }
 
-/// Evaluate every experiment's rules and fold the findings into the alert book; each change
-/// is logged as one structured line (the log sink) and counted.
-pub fn evaluate_all(shared: &Shared) {
-    evaluate_due(shared, &mut Cadence::always());
-}
-
 /// When each experiment was last evaluated, to evaluate every T seconds or N events per
 /// experiment, whichever comes first.
 pub struct Cadence {
@@ -314,10 +308,6 @@ impl Cadence {
             every_events,
             last: Default::default(),
         }
-    }
-
-    fn always() -> Cadence {
-        Cadence::new(std::time::Duration::ZERO, 0)
     }
 
     /// Whether `id`, which has seen `events` valid events, is due; marks it evaluated if so.
@@ -337,7 +327,8 @@ impl Cadence {
     }
 }
 
-/// Evaluate the experiments that `cadence` says are due.
+/// Evaluate the experiments that `cadence` says are due and fold the findings into the alert
+/// book; each change is logged as one structured line (the log sink) and counted.
 pub fn evaluate_due(shared: &Shared, cadence: &mut Cadence) {
     let snapshots: Vec<_> = shared
         .lock_shards()

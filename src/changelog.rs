@@ -13,7 +13,6 @@ use std::collections::{BTreeMap, HashMap};
 use std::sync::Mutex;
 use std::time::{Duration, Instant};
 
-use rdkafka::config::ClientConfig;
 use rdkafka::consumer::{BaseConsumer, Consumer};
 use rdkafka::error::KafkaError;
 use rdkafka::message::Message;
@@ -21,6 +20,7 @@ use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedPr
 use rdkafka::{Offset, TopicPartitionList};
 
 use crate::config::KafkaConfig;
+use crate::kafka::connection_config;
 use crate::state::shards::{ShardId, ShardImage};
 
 /// Largest chunk value, well below the common 1 MB message limit.
@@ -75,10 +75,6 @@ fn parse_key(key: &str) -> Option<(&str, i64, u32)> {
     let (rest, chunk) = key.rsplit_once('#')?;
     let (shard, generation) = rest.rsplit_once('@')?;
     Some((shard, generation.parse().ok()?, chunk.parse().ok()?))
-}
-
-fn base_config(cfg: &KafkaConfig) -> ClientConfig {
-    crate::kafka::connection_config(cfg)
 }
 
 /// Chunks of one generation as read back.
@@ -198,15 +194,20 @@ impl Changelog {
             topic: topic.to_string(),
             source,
         };
-        let n = ensure_compacted_topic(cfg, topic, n_partitions)
-            .await
-            .map_err(err)?;
-        let mut pc = base_config(cfg);
+        let n = crate::kafka::ensure_topic_with(
+            cfg,
+            topic,
+            n_partitions,
+            &[("cleanup.policy", "compact")],
+        )
+        .await
+        .map_err(err)?;
+        let mut pc = connection_config(cfg);
         pc.set("client.id", "posteriord-changelog")
             .set("enable.idempotence", "true")
             .set("linger.ms", "5");
         let producer = pc.create().map_err(err)?;
-        let mut rc = base_config(cfg);
+        let mut rc = connection_config(cfg);
         rc.set("group.id", "posteriord-changelog-reader")
             .set("enable.auto.commit", "false")
             .set("client.id", "posteriord-changelog-reader");
@@ -395,7 +396,7 @@ pub fn follow(
         topic: topic.to_string(),
         source,
     };
-    let mut cc = base_config(cfg);
+    let mut cc = connection_config(cfg);
     cc.set("group.id", "posteriord-changelog-follower")
         .set("enable.auto.commit", "false")
         .set("client.id", "posteriord-changelog-follower");
@@ -437,53 +438,9 @@ pub fn follow(
     Ok(())
 }
 
-/// Create the compacted changelog topic if missing; returns its partition count.
-async fn ensure_compacted_topic(
-    cfg: &KafkaConfig,
-    topic: &str,
-    n_partitions: i32,
-) -> Result<i32, KafkaError> {
-    use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
-    use rdkafka::client::DefaultClientContext;
-    let admin: AdminClient<DefaultClientContext> = base_config(cfg).create()?;
-    let existing = |admin: &AdminClient<DefaultClientContext>| -> Result<Option<i32>, KafkaError> {
-        let md = admin
-            .inner()
-            .fetch_metadata(Some(topic), Duration::from_secs(10))?;
-        Ok(md
-            .topics()
-            .iter()
-            .find(|t| t.name() == topic && t.error().is_none() && !t.partitions().is_empty())
-            .map(|t| t.partitions().len() as i32))
-    };
-    if let Some(n) = existing(&admin)? {
-        return Ok(n);
-    }
-    let new = NewTopic::new(topic, n_partitions.max(1), TopicReplication::Fixed(-1))
-        .set("cleanup.policy", "compact");
-    let results = admin
-        .create_topics(
-            [&new],
-            &AdminOptions::new().operation_timeout(Some(Duration::from_secs(10))),
-        )
-        .await?;
-    for r in results {
-        match r {
-            Ok(_) => tracing::info!(
-                topic,
-                partitions = n_partitions,
-                "created the changelog topic (compacted)"
-            ),
-            Err((_, rdkafka::types::RDKafkaErrorCode::TopicAlreadyExists)) => {}
-            Err((_, code)) => return Err(KafkaError::AdminOp(code)),
-        }
-    }
-    Ok(existing(&admin)?.unwrap_or(n_partitions.max(1)))
-}
-
 /// Partition count of input `topics` (the largest), for sizing the changelog.
 pub fn input_partitions(cfg: &KafkaConfig) -> Result<i32, KafkaError> {
-    let consumer: BaseConsumer = base_config(cfg)
+    let consumer: BaseConsumer = connection_config(cfg)
         .set("group.id", "posteriord-metadata")
         .create()?;
     let md = consumer.fetch_metadata(None, Duration::from_secs(3))?;

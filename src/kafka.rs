@@ -389,23 +389,36 @@ fn flush_dead_letters(producer: Option<&DeadLetterProducer>, shared: &Shared) ->
     }
 }
 
-/// Create `topic` if the cluster does not have it (broker-default replication), so dead
-/// letters and alerts have somewhere to go on clusters without topic auto-creation.
-pub async fn ensure_topic(cfg: &KafkaConfig, topic: &str) -> Result<(), KafkaError> {
+/// Create `topic` if the cluster does not have it, with `partitions` partitions,
+/// broker-default replication and the given topic `settings`; returns its partition count.
+/// Dead letters, alerts and the changelog thus have somewhere to go on clusters without topic
+/// auto-creation.
+pub async fn ensure_topic_with(
+    cfg: &KafkaConfig,
+    topic: &str,
+    partitions: i32,
+    settings: &[(&str, &str)],
+) -> Result<i32, KafkaError> {
     use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
     use rdkafka::client::DefaultClientContext;
-    let admin: AdminClient<DefaultClientContext> = producer_config(cfg).create()?;
-    let metadata = admin
-        .inner()
-        .fetch_metadata(Some(topic), Duration::from_secs(10))?;
-    let exists = metadata
-        .topics()
-        .iter()
-        .any(|t| t.name() == topic && t.error().is_none() && !t.partitions().is_empty());
-    if exists {
-        return Ok(());
+    let admin: AdminClient<DefaultClientContext> = connection_config(cfg).create()?;
+    let existing = |admin: &AdminClient<DefaultClientContext>| -> Result<Option<i32>, KafkaError> {
+        let md = admin
+            .inner()
+            .fetch_metadata(Some(topic), Duration::from_secs(10))?;
+        Ok(md
+            .topics()
+            .iter()
+            .find(|t| t.name() == topic && t.error().is_none() && !t.partitions().is_empty())
+            .map(|t| t.partitions().len() as i32))
+    };
+    if let Some(n) = existing(&admin)? {
+        return Ok(n);
     }
-    let new = NewTopic::new(topic, 1, TopicReplication::Fixed(-1));
+    let mut new = NewTopic::new(topic, partitions.max(1), TopicReplication::Fixed(-1));
+    for (k, v) in settings {
+        new = new.set(k, v);
+    }
     let results = admin
         .create_topics(
             [&new],
@@ -414,7 +427,7 @@ pub async fn ensure_topic(cfg: &KafkaConfig, topic: &str) -> Result<(), KafkaErr
         .await?;
     for r in results {
         match r {
-            Ok(_) => tracing::info!(topic, "created the topic"),
+            Ok(_) => tracing::info!(topic, partitions, ?settings, "created the topic"),
             Err((_, rdkafka::types::RDKafkaErrorCode::TopicAlreadyExists)) => {}
             Err((name, code)) => {
                 return Err(KafkaError::AdminOp(code)).inspect_err(|_| {
@@ -423,7 +436,12 @@ pub async fn ensure_topic(cfg: &KafkaConfig, topic: &str) -> Result<(), KafkaErr
             }
         }
     }
-    Ok(())
+    Ok(existing(&admin)?.unwrap_or(partitions.max(1)))
+}
+
+/// [`ensure_topic_with`] for a plain one-partition topic.
+pub async fn ensure_topic(cfg: &KafkaConfig, topic: &str) -> Result<(), KafkaError> {
+    ensure_topic_with(cfg, topic, 1, &[]).await.map(|_| ())
 }
 
 /// Start the consumer thread and the broker probe on `tracker`.
@@ -529,6 +547,9 @@ pub fn start(
     Ok(())
 }
 
+/// Shard id of each (topic, partition) seen by the consumer.
+type ShardIds = HashMap<String, HashMap<i32, String>>;
+
 struct LoopConfig {
     dead_letter_topic: Option<String>,
     snapshot_interval: Duration,
@@ -604,7 +625,7 @@ fn consume_loop(
     cfg: &LoopConfig,
     shutdown: &CancellationToken,
 ) {
-    let mut shard_ids: HashMap<(String, i32), String> = HashMap::new();
+    let mut shard_ids = ShardIds::new();
     let mut last_error_log = Instant::now() - Duration::from_secs(60);
     let mut last_save = Instant::now();
     let mut last_publish = Instant::now();
@@ -667,17 +688,25 @@ fn apply_messages(
     dead_letters: Option<&DeadLetterProducer>,
     cfg: &LoopConfig,
     batch: &[rdkafka::message::BorrowedMessage<'_>],
-    shard_ids: &mut HashMap<(String, i32), String>,
+    shard_ids: &mut ShardIds,
 ) {
+    // Keyed by topic, then partition, so that looking up a message's shard allocates nothing
+    // once the partition has been seen.
     for m in batch {
-        shard_ids
-            .entry((m.topic().to_string(), m.partition()))
-            .or_insert_with(|| kafka_shard(m.topic(), m.partition()));
+        if !shard_ids
+            .get(m.topic())
+            .is_some_and(|p| p.contains_key(&m.partition()))
+        {
+            shard_ids
+                .entry(m.topic().to_string())
+                .or_default()
+                .insert(m.partition(), kafka_shard(m.topic(), m.partition()));
+        }
     }
     let items: Vec<Item<'_>> = batch
         .iter()
         .map(|m| Item {
-            shard: shard_ids[&(m.topic().to_string(), m.partition())].as_str(),
+            shard: shard_ids[m.topic()][&m.partition()].as_str(),
             offset: Some(m.offset()),
             bytes: m.payload().unwrap_or_default(),
         })

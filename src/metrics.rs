@@ -112,25 +112,6 @@ impl Metrics {
             "Refused events by source and reason.",
             &["source", "reason"],
         );
-        let kafka_reachable = IntGauge::new(
-            "posteriord_kafka_reachable",
-            "1 while the configured Kafka cluster answers metadata requests.",
-        )
-        .expect("valid metric definition");
-        registry
-            .register(Box::new(kafka_reachable.clone()))
-            .expect("metric registered once");
-        let variant_units = IntGaugeVec::new(
-            Opts::new(
-                "posteriord_variant_units",
-                "Exposed units per experiment variant.",
-            ),
-            &["experiment", "variant"],
-        )
-        .expect("valid metric definition");
-        registry
-            .register(Box::new(variant_units.clone()))
-            .expect("metric registered once");
         let int_gauge_vec = |name: &str, help: &str, labels: &[&str]| {
             let g =
                 IntGaugeVec::new(Opts::new(name, help), labels).expect("valid metric definition");
@@ -153,6 +134,15 @@ impl Metrics {
                 .expect("metric registered once");
             c
         };
+        let kafka_reachable = int_gauge(
+            "posteriord_kafka_reachable",
+            "1 while the configured Kafka cluster answers metadata requests.",
+        );
+        let variant_units = int_gauge_vec(
+            "posteriord_variant_units",
+            "Exposed units per experiment variant.",
+            &["experiment", "variant"],
+        );
         let kafka_lag = int_gauge_vec(
             "posteriord_kafka_lag",
             "Messages not yet applied: high watermark minus next offset to apply.",

@@ -21,6 +21,19 @@ pub enum AlertState {
 }
 
 impl AlertState {
+    /// Every state.
+    pub const ALL: [AlertState; 4] = [
+        AlertState::Open,
+        AlertState::Easing,
+        AlertState::Closed,
+        AlertState::Recorded,
+    ];
+
+    /// The state called `name`.
+    pub fn from_name(name: &str) -> Option<AlertState> {
+        AlertState::ALL.into_iter().find(|s| s.as_str() == name)
+    }
+
     /// Stable name used in the API.
     pub fn as_str(self) -> &'static str {
         match self {

@@ -170,13 +170,14 @@ async fn list_alerts(
     State(shared): State<Arc<Shared>>,
     axum::extract::Query(filter): axum::extract::Query<AlertFilter>,
 ) -> Response {
-    const STATES: [&str; 4] = ["open", "easing", "closed", "recorded"];
+    use crate::decide::alerts::AlertState;
     if let Some(s) = &filter.state {
-        if !STATES.contains(&s.as_str()) {
+        if AlertState::from_name(s).is_none() {
+            let names: Vec<&str> = AlertState::ALL.iter().map(|s| s.as_str()).collect();
             return error(
                 StatusCode::BAD_REQUEST,
                 "bad_filter",
-                &format!("state must be one of {}", STATES.join(", ")),
+                &format!("state must be one of {}", names.join(", ")),
             );
         }
     }
