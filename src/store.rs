@@ -18,7 +18,7 @@ use std::sync::Arc;
 
 use crate::event::Outcome;
 use crate::experiment::{ExperimentDef, ExposureBasis, MetricKind};
-use crate::state::image::{ExperimentImage, ImageMismatch};
+use crate::state::image::{ExperimentImage, ImageMismatch, UnitRecord};
 use crate::state::shards::{Shard, ShardImage};
 use crate::state::{ConversionTotals, DefectTotals, MetricTotals, OutcomeCounts};
 
@@ -87,10 +87,11 @@ impl Store {
     pub fn save(&self, id: &str, image: &ShardImage) -> Result<(), StoreError> {
         let path = self.path(id);
         let tmp = path.with_extension("state.tmp");
-        let bytes = encode(image);
         {
-            let mut f = File::create(&tmp).map_err(io_err(&tmp))?;
-            f.write_all(&bytes).map_err(io_err(&tmp))?;
+            let f = File::create(&tmp).map_err(io_err(&tmp))?;
+            let f = write_image(image, io::BufWriter::with_capacity(1 << 20, f))
+                .and_then(|w| w.into_inner().map_err(io::IntoInnerError::into_error))
+                .map_err(io_err(&tmp))?;
             f.sync_all().map_err(io_err(&tmp))?;
         }
         fs::rename(&tmp, &path).map_err(io_err(&path))?;
@@ -117,6 +118,8 @@ impl Store {
             path: path.clone(),
             reason,
         })?;
+        // Not needed any more; freeing it before the tables are built lowers the peak.
+        drop(bytes);
         let (shard, mismatches) = Shard::from_image(defs, image);
         Ok(Some(Loaded { shard, mismatches }))
     }
@@ -215,30 +218,65 @@ impl Wal {
     }
 }
 
-struct Writer(Vec<u8>);
+/// Little-endian writer that keeps the running CRC-32 and the first I/O error, so the encoder
+/// reads straight through and the file is written without first building it in memory (with
+/// ten million units, the encoded copy alone would be 120 MB on top of the state).
+struct Writer<W: Write> {
+    out: W,
+    crc: crc32fast::Hasher,
+    error: Option<io::Error>,
+}
 
-impl Writer {
+impl<W: Write> Writer<W> {
+    fn new(out: W) -> Writer<W> {
+        Writer {
+            out,
+            crc: crc32fast::Hasher::new(),
+            error: None,
+        }
+    }
+    fn put(&mut self, bytes: &[u8]) {
+        if self.error.is_none() {
+            self.crc.update(bytes);
+            if let Err(e) = self.out.write_all(bytes) {
+                self.error = Some(e);
+            }
+        }
+    }
     fn u8(&mut self, v: u8) {
-        self.0.push(v);
+        self.put(&[v]);
     }
     fn u32(&mut self, v: u32) {
-        self.0.extend_from_slice(&v.to_le_bytes());
+        self.put(&v.to_le_bytes());
     }
     fn u64(&mut self, v: u64) {
-        self.0.extend_from_slice(&v.to_le_bytes());
+        self.put(&v.to_le_bytes());
     }
     fn i64(&mut self, v: i64) {
-        self.0.extend_from_slice(&v.to_le_bytes());
+        self.put(&v.to_le_bytes());
     }
     fn f64(&mut self, v: f64) {
-        self.0.extend_from_slice(&v.to_bits().to_le_bytes());
+        self.put(&v.to_bits().to_le_bytes());
     }
     fn str(&mut self, s: &str) {
         self.u32(s.len() as u32);
-        self.0.extend_from_slice(s.as_bytes());
+        self.put(s.as_bytes());
     }
     fn len(&mut self, n: usize) {
         self.u64(n as u64);
+    }
+    /// Append the CRC of everything written and hand back the output.
+    fn finish(mut self) -> io::Result<W> {
+        let crc = self.crc.clone().finalize();
+        if self.error.is_none() {
+            if let Err(e) = self.out.write_all(&crc.to_le_bytes()) {
+                self.error = Some(e);
+            }
+        }
+        match self.error {
+            Some(e) => Err(e),
+            None => Ok(self.out),
+        }
     }
 }
 
@@ -253,8 +291,13 @@ fn kind_code(kind: MetricKind) -> u8 {
 /// Encode a shard image (public for tests and tools).
 pub fn encode(image: &ShardImage) -> Vec<u8> {
     let units: usize = image.experiments.iter().map(|e| e.units.len()).sum();
-    let mut w = Writer(Vec::with_capacity(64 + units * 12));
-    w.0.extend_from_slice(MAGIC);
+    write_image(image, Vec::with_capacity(64 + units * 12)).expect("writing to memory cannot fail")
+}
+
+/// Write the encoding of `image` to `out`.
+fn write_image<W: Write>(image: &ShardImage, out: W) -> io::Result<W> {
+    let mut w = Writer::new(out);
+    w.put(MAGIC);
     w.u32(VERSION);
     w.i64(image.next_offset.unwrap_or(NONE_I64));
     w.len(image.experiments.len());
@@ -270,9 +313,9 @@ pub fn encode(image: &ShardImage) -> Vec<u8> {
             w.u8(kind_code(*kind));
         }
         w.len(e.units.len());
-        for (k, slot) in &e.units {
-            w.u64(*k);
-            w.u32(*slot);
+        for &UnitRecord { key, raw } in &e.units {
+            w.u64(key);
+            w.u32(raw);
         }
         w.len(e.seen_ids.len());
         for id in &e.seen_ids {
@@ -303,9 +346,7 @@ pub fn encode(image: &ShardImage) -> Vec<u8> {
         w.i64(e.last_event_time.unwrap_or(NONE_I64));
         w.i64(e.first_event_time.unwrap_or(NONE_I64));
     }
-    let crc = crc32fast::hash(&w.0);
-    w.u32(crc);
-    w.0
+    w.finish()
 }
 
 struct Reader<'a> {
@@ -409,7 +450,10 @@ pub fn decode(bytes: &[u8]) -> Result<ShardImage, String> {
         let n_units = r.len(12)?;
         let mut units = Vec::with_capacity(n_units);
         for _ in 0..n_units {
-            units.push((r.u64()?, r.u32()?));
+            units.push(UnitRecord {
+                key: r.u64()?,
+                raw: r.u32()?,
+            });
         }
         let n_ids = r.len(8)?;
         let seen_ids = (0..n_ids).map(|_| r.u64()).collect::<Result<Vec<_>, _>>()?;

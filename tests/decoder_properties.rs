@@ -166,3 +166,33 @@ proptest! {
         prop_assert_eq!(rejected_in_metrics(&metrics), refused as u64);
     }
 }
+
+/// Reference for timestamps: the `time` crate's RFC 3339 parser (an implementation outside
+/// this project), truncated to microseconds the way posteriord documents.
+fn reference_micros(text: &str) -> Option<i64> {
+    time::OffsetDateTime::parse(text, &time::format_description::well_known::Rfc3339)
+        .ok()
+        .map(|t| (t.unix_timestamp_nanos() / 1_000) as i64)
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(20_000))]
+    /// posteriord parses the common timestamp shapes by hand; every accepted or refused
+    /// timestamp must agree with the reference parser.
+    #[test]
+    fn timestamps_agree_with_the_reference_parser(
+        year in prop_oneof![1960i64..1975, 1975i64..2100, 2100i64..10000],
+        month in 0u32..14,
+        day in 0u32..33,
+        hour in 0u32..25,
+        minute in 0u32..61,
+        second in 0u32..62,
+        fraction in prop_oneof![Just(String::new()), "\\.[0-9]{1,12}", Just(".".to_string())],
+        offset in prop_oneof![Just("Z".to_string()), Just("z".to_string()), "[+-](0[0-9]|1[0-9]|2[0-5]):[0-6][0-9]", Just("+0100".to_string())],
+        sep in prop_oneof![Just('T'), Just('t'), Just(' ')],
+    ) {
+        let text = format!("{year:04}-{month:02}-{day:02}{sep}{hour:02}:{minute:02}:{second:02}{fraction}{offset}");
+        let ours = posteriord::decode::parse_time(&text).ok();
+        prop_assert_eq!(ours, reference_micros(&text), "{}", text);
+    }
+}

@@ -1,14 +1,24 @@
 //! Images of experiment state: everything needed to rebuild an [`ExperimentState`] exactly
 //! (unit table, applied ids, totals, outcome counters), as plain data for the store to encode.
 
-use std::collections::HashSet;
 use std::fmt;
 use std::sync::Arc;
 
-use super::units::{UnitSlot, UnitTable};
+use super::units::{IdSet, UnitSlot, UnitTable};
 use super::{ExperimentSnapshot, ExperimentState, MetricTotals, OutcomeCounts};
 use crate::event::Micros;
 use crate::experiment::{ExperimentDef, MetricKind};
+
+/// One unit of an image: its id hash and packed slot, in 12 bytes (a `(u64, u32)` pair would
+/// be padded to 16, a third more for every unit saved, published or restored).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
+#[repr(C, packed(4))]
+pub struct UnitRecord {
+    /// Hash of the unit id.
+    pub key: u64,
+    /// `UnitSlot` raw value.
+    pub raw: u32,
+}
 
 /// The complete state of one experiment as plain data.
 #[derive(Debug, Clone, PartialEq)]
@@ -19,8 +29,8 @@ pub struct ExperimentImage {
     pub variants: Vec<String>,
     /// Metric names and kinds, in the order totals are stored.
     pub metrics: Vec<(String, MetricKind)>,
-    /// Unit hash → packed slot.
-    pub units: Vec<(u64, u32)>,
+    /// Unit hash → packed slot, 12 bytes each.
+    pub units: Vec<UnitRecord>,
     /// Hashes of applied event ids.
     pub seen_ids: Vec<u64>,
     /// Exposed units per variant.
@@ -98,8 +108,12 @@ impl ExperimentState {
                 .iter()
                 .map(|m| (m.name.clone(), m.kind))
                 .collect(),
-            units: self.units.iter().map(|(k, s)| (k, s.raw())).collect(),
-            seen_ids: self.seen_ids.iter().copied().collect(),
+            units: self
+                .units
+                .iter()
+                .map(|(key, s)| UnitRecord { key, raw: s.raw() })
+                .collect(),
+            seen_ids: self.seen_ids.iter().collect(),
             variant_units: self.variant_units.clone(),
             totals: self.metrics.clone(),
             outcomes: self.outcomes,
@@ -158,8 +172,12 @@ impl ExperimentState {
             ));
         }
         let mut state = ExperimentState::new(Arc::clone(&def));
-        let mut units = UnitTable::with_capacity(image.units.len());
-        for (k, raw) in image.units {
+        // Room for an eighth more units: a restored experiment is usually still running,
+        // and a table filled to its limit would grow (old and new table side by side) at
+        // its first new unit.
+        let n_units = image.units.len();
+        let mut units = UnitTable::with_capacity(n_units + n_units / 8);
+        for UnitRecord { key, raw } in image.units {
             let slot = UnitSlot::from_raw(raw);
             if slot.variant() >= n {
                 return Err(mismatch(format!(
@@ -167,11 +185,13 @@ impl ExperimentState {
                     slot.variant()
                 )));
             }
-            units.set(k, slot);
+            units.get_or_insert(key, slot);
         }
         state.units = units;
-        let mut seen = HashSet::with_capacity_and_hasher(image.seen_ids.len(), Default::default());
-        seen.extend(image.seen_ids);
+        let mut seen = IdSet::with_capacity(image.seen_ids.len());
+        for id in image.seen_ids {
+            seen.insert(id);
+        }
         state.seen_ids = seen;
         state.variant_units = image.variant_units;
         state.metrics = image.totals;

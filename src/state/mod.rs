@@ -8,12 +8,12 @@ pub mod image;
 pub mod shards;
 pub mod units;
 
-use std::collections::{HashMap, HashSet};
+use std::collections::HashMap;
 use std::sync::Arc;
 
 use crate::event::{Event, EventBody, Micros, Outcome, Reject, RejectReason, TallyAmounts, Target};
 use crate::experiment::{ExperimentDef, ExposureBasis, MetricKind};
-use units::{key_hash, PassThrough, UnitSlot, UnitTable};
+use units::{key_hash, IdSet, PassThrough, UnitSlot, UnitTable};
 
 /// Totals of a conversion metric on one variant.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
@@ -165,7 +165,7 @@ pub struct ExperimentState {
     conversion_bit: Vec<Option<u8>>,
     units: UnitTable,
     /// Hashes of the ids of applied events.
-    seen_ids: HashSet<u64, PassThrough>,
+    seen_ids: IdSet,
     variant_units: Vec<u64>,
     metrics: Vec<MetricTotals>,
     outcomes: OutcomeCounts,
@@ -206,7 +206,7 @@ impl ExperimentState {
             def,
             conversion_bit,
             units: UnitTable::default(),
-            seen_ids: HashSet::default(),
+            seen_ids: IdSet::default(),
             variant_units: vec![0; n_variants],
             metrics,
             outcomes: OutcomeCounts::default(),
@@ -238,6 +238,25 @@ impl ExperimentState {
         }
     }
 
+    /// Start loading the table entries `event` will touch (see [`UnitTable::prefetch`]).
+    #[inline]
+    pub fn prefetch(&self, event: &Event<'_>) {
+        let unit = match &event.body {
+            EventBody::Exposure { unit, .. } | EventBody::Conversion { unit, .. } => Some(unit),
+            EventBody::Defect {
+                target: Target::Unit(unit),
+                ..
+            } => Some(unit),
+            _ => None,
+        };
+        if let Some(unit) = unit {
+            self.units.prefetch(key_hash(unit));
+        }
+        if let Some(id) = &event.id {
+            self.seen_ids.prefetch(key_hash(id));
+        }
+    }
+
     /// Apply one event addressed to this experiment.
     ///
     /// An invalid event changes nothing and does not consume its id, so a corrected resend
@@ -246,7 +265,7 @@ impl ExperimentState {
         let resolved = self.resolve(&event.body)?;
         let id_hash = event.id.as_deref().map(key_hash);
         let outcome = match id_hash {
-            Some(h) if self.seen_ids.contains(&h) => Outcome::DuplicateId,
+            Some(h) if self.seen_ids.contains(h) => Outcome::DuplicateId,
             _ => self.apply_resolved(resolved)?,
         };
         if outcome == Outcome::Applied {
@@ -408,33 +427,33 @@ impl ExperimentState {
 
     fn apply_resolved(&mut self, resolved: Resolved) -> Result<Outcome, Reject> {
         match resolved {
-            Resolved::Exposure { variant, unit } => Ok(match self.units.get(unit) {
-                Some(slot) if slot.variant() == variant => Outcome::DuplicateExposure,
-                Some(_) => Outcome::Crossover,
-                None => {
-                    self.units.set(unit, UnitSlot::new(variant));
-                    self.variant_units[variant] += 1;
-                    for (def, totals) in self.def.metrics.iter().zip(&mut self.metrics) {
-                        match totals {
-                            MetricTotals::Conversion(v) => v[variant].trials += 1,
-                            MetricTotals::Defect(v) => {
-                                if def.kind == MetricKind::DefectRate(ExposureBasis::Units) {
-                                    v[variant].exposure += 1.0;
+            Resolved::Exposure { variant, unit } => Ok(
+                match self.units.get_or_insert(unit, UnitSlot::new(variant)) {
+                    Some(slot) if slot.variant() == variant => Outcome::DuplicateExposure,
+                    Some(_) => Outcome::Crossover,
+                    None => {
+                        self.variant_units[variant] += 1;
+                        for (def, totals) in self.def.metrics.iter().zip(&mut self.metrics) {
+                            match totals {
+                                MetricTotals::Conversion(v) => v[variant].trials += 1,
+                                MetricTotals::Defect(v) => {
+                                    if def.kind == MetricKind::DefectRate(ExposureBasis::Units) {
+                                        v[variant].exposure += 1.0;
+                                    }
                                 }
                             }
                         }
+                        Outcome::Applied
                     }
-                    Outcome::Applied
-                }
-            }),
+                },
+            ),
             Resolved::Conversion { metric, bit, unit } => {
-                let Some(slot) = self.units.get(unit) else {
+                let Some(slot) = self.units.mark_converted(unit, bit) else {
                     return Ok(Outcome::Orphan);
                 };
                 if slot.converted(bit) {
                     return Ok(Outcome::DuplicateConversion);
                 }
-                self.units.set(unit, slot.with_converted(bit));
                 if let MetricTotals::Conversion(v) = &mut self.metrics[metric] {
                     v[slot.variant()].successes += 1;
                 }
@@ -513,7 +532,10 @@ fn overflow() -> Reject {
 #[derive(Debug, Default)]
 pub struct Engine {
     experiments: Vec<ExperimentState>,
-    index: HashMap<String, usize>,
+    /// Position of each experiment by the hash of its id: one hash per event instead of
+    /// SipHash over the name. An id whose hash another id already took is in `collided`.
+    index: HashMap<u64, usize, PassThrough>,
+    collided: Vec<usize>,
 }
 
 impl Engine {
@@ -527,22 +549,41 @@ impl Engine {
         let mut engine = Engine::default();
         for def in defs {
             let idx = engine.experiments.len();
-            engine.index.insert(def.id.clone(), idx);
+            match engine.index.entry(key_hash(&def.id)) {
+                std::collections::hash_map::Entry::Vacant(v) => {
+                    v.insert(idx);
+                }
+                std::collections::hash_map::Entry::Occupied(_) => engine.collided.push(idx),
+            }
             engine.experiments.push(ExperimentState::new(def));
         }
         engine
     }
 
+    /// Position of experiment `id`.
+    #[inline]
+    fn position(&self, id: &str) -> Option<usize> {
+        if let Some(&i) = self.index.get(&key_hash(id)) {
+            if self.experiments[i].def.id == id {
+                return Some(i);
+            }
+        }
+        self.collided
+            .iter()
+            .copied()
+            .find(|&i| self.experiments[i].def.id == id)
+    }
+
     /// Replace the state of one experiment (restore from a stored image).
     pub fn replace(&mut self, state: ExperimentState) {
-        if let Some(&idx) = self.index.get(&state.def.id) {
+        if let Some(idx) = self.position(&state.def.id) {
             self.experiments[idx] = state;
         }
     }
 
     /// Apply one decoded event.
     pub fn apply(&mut self, event: &Event<'_>) -> Result<Outcome, Reject> {
-        let Some(&idx) = self.index.get(event.experiment.as_ref()) else {
+        let Some(idx) = self.position(&event.experiment) else {
             return Err(Reject::new(
                 RejectReason::UnknownExperiment,
                 format!("no experiment `{}` is configured", event.experiment),
@@ -551,9 +592,17 @@ impl Engine {
         self.experiments[idx].apply(event)
     }
 
+    /// Start loading what applying `event` will touch; a no-op for unknown experiments.
+    #[inline]
+    pub fn prefetch(&self, event: &Event<'_>) {
+        if let Some(idx) = self.position(&event.experiment) {
+            self.experiments[idx].prefetch(event);
+        }
+    }
+
     /// The experiment called `id`.
     pub fn experiment(&self, id: &str) -> Option<&ExperimentState> {
-        self.index.get(id).map(|&i| &self.experiments[i])
+        self.position(id).map(|i| &self.experiments[i])
     }
 
     /// All experiments, in configuration order.

@@ -43,6 +43,13 @@ impl Shard {
     }
 
     /// Apply one event and mark the shard dirty if it changed anything countable.
+    /// See [`crate::state::Engine::prefetch`].
+    #[inline]
+    pub fn prefetch(&self, event: &Event<'_>) {
+        self.engine.prefetch(event);
+    }
+
+    /// Apply one event to this shard's state.
     pub fn apply(&mut self, event: &Event<'_>) -> Result<Outcome, Reject> {
         let r = self.engine.apply(event);
         if r.is_ok() {
