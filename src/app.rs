@@ -340,7 +340,7 @@ pub fn evaluate_due(shared: &Shared, cadence: &mut Cadence) {
     // Experiments no longer configured keep their alerts; nothing to evaluate for them.
     for snapshot in snapshots {
         let def = Arc::clone(&snapshot.def);
-        let summary = crate::summary::summarize(snapshot, crate::summary::DEFAULT_LEVEL);
+        let summary = crate::summary::summarize_for_decisions(snapshot);
         let findings = crate::decide::evaluate(&summary);
         let changes = shared
             .alerts

@@ -220,6 +220,7 @@ pub fn run(input: &str, format: Format) -> Result<String, CompareError> {
         level: raw.interval.unwrap_or(defaults.level),
         rope: raw.rope.unwrap_or(defaults.rope),
         harm_margin: raw.harm_margin.unwrap_or(defaults.harm_margin),
+        ..defaults
     };
     let metric_prior = raw.prior.ok_or_else(|| invalid("missing field `prior`"))?;
     let arms = build_arms(metric, &metric_prior, &raw.variants)?;

@@ -60,18 +60,37 @@ pub fn posteriors(def: &MetricDef, totals: &MetricTotals) -> Result<Arms, StatsE
 
 /// Summarise `snapshot` at credible level `level`.
 pub fn summarize(snapshot: ExperimentSnapshot, level: f64) -> ExperimentSummary {
+    summarize_with(snapshot, level, false)
+}
+
+/// Summarise `snapshot` with only what the stopping rules read: no lift intervals, and the
+/// ROPE probability on the primary metric only. About half the cost of [`summarize`] for
+/// the same probabilities (bit for bit), which matters when thousands of experiments are
+/// re-evaluated on a cadence.
+pub fn summarize_for_decisions(snapshot: ExperimentSnapshot) -> ExperimentSummary {
+    summarize_with(snapshot, DEFAULT_LEVEL, true)
+}
+
+fn summarize_with(
+    snapshot: ExperimentSnapshot,
+    level: f64,
+    decisions_only: bool,
+) -> ExperimentSummary {
     let def = &snapshot.def;
     let metrics = def
         .metrics
         .iter()
         .zip(&snapshot.metrics)
-        .map(|(m, totals)| {
+        .enumerate()
+        .map(|(i, (m, totals))| {
             // Each metric's own ROPE and harm margin shape its probabilities.
             let options = CompareOptions {
                 control: def.control,
                 level,
                 rope: m.rules.rope,
                 harm_margin: m.rules.harm.map_or(0.0, |h| h.margin),
+                lift_interval: !decisions_only,
+                equivalence: !decisions_only || i == def.rules.primary,
             };
             let posteriors = posteriors(m, totals);
             let arms = match &posteriors {

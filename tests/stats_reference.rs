@@ -96,6 +96,7 @@ fn every_case_of_the_reference_table_is_within_tolerance() {
             level: case["level"].as_f64().unwrap(),
             rope: case["rope"].as_f64().unwrap(),
             harm_margin: case["harm_margin"].as_f64().unwrap(),
+            ..CompareOptions::default()
         };
         let got = compare(&arms_of(case), &opts).unwrap_or_else(|e| panic!("{id}: {e}"));
         let expect = &case["expect"];

@@ -103,8 +103,13 @@ fn findings(
         first_event_time: None,
         positions: Vec::new(),
     };
+    // The evaluator's cheaper summary (no lift intervals; ROPE on the primary only) must
+    // not change a single finding, bit for bit.
+    let fast = evaluate(&crate::summary::summarize_for_decisions(snap.clone()));
     let summary = summarize(snap, 0.95);
-    (evaluate(&summary), summary)
+    let found = evaluate(&summary);
+    assert_eq!(format!("{fast:?}"), format!("{found:?}"));
+    (found, summary)
 }
 
 fn rules_of(f: &[Finding]) -> Vec<(Rule, Option<usize>, Option<usize>)> {

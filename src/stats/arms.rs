@@ -61,6 +61,12 @@ pub struct CompareOptions {
     /// Relative margin for harm: a conversion variant harms when θ_v < (1 − m)·θ_c, a defect
     /// variant when θ_v > (1 + m)·θ_c.
     pub harm_margin: f64,
+    /// Compute the lift interval (two quantiles of the ratio per variant, the dearest part).
+    /// Off, `lift` is `None`; every probability is unchanged bit for bit.
+    pub lift_interval: bool,
+    /// Compute `prob_practically_equivalent` (two ratio evaluations per variant). Off, it is
+    /// `None`.
+    pub equivalence: bool,
 }
 
 impl Default for CompareOptions {
@@ -70,6 +76,8 @@ impl Default for CompareOptions {
             level: 0.95,
             rope: 0.01,
             harm_margin: 0.0,
+            lift_interval: true,
+            equivalence: true,
         }
     }
 }
@@ -205,7 +213,11 @@ pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, St
     let c = opts.control;
     let totals = integrate_all(&grid, c, higher);
 
-    let log_cumulants = log_cumulants(&grid, higher);
+    let log_cumulants = if opts.lift_interval {
+        log_cumulants(&grid, higher)
+    } else {
+        Vec::new()
+    };
     let outer = OuterCache::new(k);
     let mut out = Vec::with_capacity(k);
     for j in 0..k {
@@ -230,29 +242,33 @@ pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, St
         if j != c {
             summary.prob_beats_control = Some(totals.beats[j].clamp(0.0, 1.0));
             let ratio = Ratio::new(&grid, &outer, j, c, higher);
-            let guess = ratio_guess(&log_cumulants[j], &log_cumulants[c]);
-            let lower = ratio.quantile(lo_q, &guess)?;
-            let upper = ratio.quantile(hi_q, &guess)?;
-            let lift_mean = if moments[c].2.is_finite() {
-                moments[j].0 * moments[c].2 - 1.0
-            } else {
-                f64::INFINITY
-            };
-            summary.lift = Some(Lift {
-                mean: lift_mean,
-                interval: Interval {
-                    level: opts.level,
-                    lower: lower.exp_m1(),
-                    upper: upper.exp_m1(),
-                },
-            });
-            let rope_hi = ratio.eval(opts.rope.ln_1p(), Tail::Lower, false).tail;
-            let rope_lo = if opts.rope < 1.0 {
-                ratio.eval((-opts.rope).ln_1p(), Tail::Lower, false).tail
-            } else {
-                0.0
-            };
-            summary.prob_practically_equivalent = Some((rope_hi - rope_lo).clamp(0.0, 1.0));
+            if opts.lift_interval {
+                let guess = ratio_guess(&log_cumulants[j], &log_cumulants[c]);
+                let lower = ratio.quantile(lo_q, &guess)?;
+                let upper = ratio.quantile(hi_q, &guess)?;
+                let lift_mean = if moments[c].2.is_finite() {
+                    moments[j].0 * moments[c].2 - 1.0
+                } else {
+                    f64::INFINITY
+                };
+                summary.lift = Some(Lift {
+                    mean: lift_mean,
+                    interval: Interval {
+                        level: opts.level,
+                        lower: lower.exp_m1(),
+                        upper: upper.exp_m1(),
+                    },
+                });
+            }
+            if opts.equivalence {
+                let rope_hi = ratio.eval(opts.rope.ln_1p(), Tail::Lower, false).tail;
+                let rope_lo = if opts.rope < 1.0 {
+                    ratio.eval((-opts.rope).ln_1p(), Tail::Lower, false).tail
+                } else {
+                    0.0
+                };
+                summary.prob_practically_equivalent = Some((rope_hi - rope_lo).clamp(0.0, 1.0));
+            }
             // With no margin, harm is P(θ_v worse than θ_c), which the pass over the shared
             // grid has already integrated (∫ f_v·S_c or ∫ f_v·F_c) more accurately than the
             // ratio quadrature would.
