@@ -47,6 +47,8 @@ pub struct Shared {
     alert_file: Option<AlertFile>,
     /// Alert settings (sinks, cadence).
     pub alerts_config: crate::config::AlertsConfig,
+    /// Decision quantities over time, recorded at each evaluation (bounded; in memory).
+    pub history: Mutex<crate::history::History>,
 }
 
 impl Shared {
@@ -70,6 +72,7 @@ impl Shared {
             outbox: Mutex::new(Vec::new()),
             alert_file: None,
             alerts_config: config.alerts.clone(),
+            history: Mutex::new(crate::history::History::new()),
         }
     }
 
@@ -342,6 +345,7 @@ pub fn evaluate_due(shared: &Shared, cadence: &mut Cadence) {
         let def = Arc::clone(&snapshot.def);
         let summary = crate::summary::summarize(snapshot, crate::summary::DEFAULT_LEVEL);
         let findings = crate::decide::evaluate(&summary);
+        crate::http::history::record(shared, &summary, &findings, now);
         let changes = shared
             .alerts
             .lock()
