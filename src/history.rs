@@ -14,7 +14,8 @@
 //! average of two credible intervals is not a credible interval of anything.
 //!
 //! Evaluations that saw no new event since the previous point of the experiment are not
-//! recorded (the numbers would repeat), so an idle experiment does not thin its own history.
+//! recorded (the numbers would repeat), so an idle experiment does not thin its own history;
+//! nor are evaluations before the experiment's first event (they would show only the prior).
 
 use std::collections::{HashMap, VecDeque};
 
@@ -295,8 +296,8 @@ impl History {
     }
 
     /// Record one evaluation of `summary`'s experiment at `at`: every metric's arms (when its
-    /// posteriors could be computed) and the rules that hold (`findings`). Skipped when no
-    /// event reached the experiment since its previous point.
+    /// posteriors could be computed) and the rules that hold (`findings`). Points are skipped
+    /// when no event reached the experiment since its previous point, or ever.
     pub fn record(&mut self, summary: &ExperimentSummary, findings: &[Finding], at: Micros) {
         let snap = &summary.snapshot;
         let def = &snap.def;
@@ -312,7 +313,7 @@ impl History {
         }
         h.record_transitions(findings, at);
         let events: u64 = snap.outcomes.0.iter().sum();
-        if h.last_events == Some(events) {
+        if events == 0 || h.last_events == Some(events) {
             return;
         }
         h.last_events = Some(events);
@@ -404,6 +405,135 @@ mod tests {
         assert_eq!(s.last().unwrap().at, 9_999);
         // Older points stand for more evaluations than newer ones (graceful degradation).
         assert!(s.windows(2).all(|w| w[0].covers >= w[1].covers));
+    }
+
+    use std::sync::Arc;
+
+    use crate::experiment::{
+        ExperimentDef, ExperimentRules, MetricDef, MetricKind, Prior, VariantDef,
+    };
+    use crate::state::{ConversionTotals, ExperimentSnapshot, MetricTotals, OutcomeCounts};
+
+    fn def(variants: &[&str]) -> Arc<ExperimentDef> {
+        Arc::new(ExperimentDef {
+            id: "orchard-seed-packets".into(),
+            control: 0,
+            variants: variants
+                .iter()
+                .map(|n| VariantDef {
+                    name: n.to_string(),
+                    weight: 1.0 / variants.len() as f64,
+                })
+                .collect(),
+            metrics: vec![MetricDef {
+                name: "sign-up".into(),
+                kind: MetricKind::Conversion,
+                prior: Prior::Beta {
+                    alpha: 1.0,
+                    beta: 1.0,
+                },
+                variant_priors: vec![None; variants.len()],
+                rules: Default::default(),
+            }],
+            rules: ExperimentRules::default(),
+        })
+    }
+
+    fn summary(def: &Arc<ExperimentDef>, units: u64) -> ExperimentSummary {
+        let n = def.variants.len();
+        let mut outcomes = OutcomeCounts::default();
+        outcomes.0[0] = units * n as u64;
+        crate::summary::summarize(
+            ExperimentSnapshot {
+                def: Arc::clone(def),
+                units: vec![units; n],
+                metrics: vec![MetricTotals::Conversion(
+                    (0..n)
+                        .map(|i| ConversionTotals {
+                            trials: units,
+                            successes: units / (4 + i as u64),
+                        })
+                        .collect(),
+                )],
+                outcomes,
+                last_event_time: None,
+                first_event_time: None,
+                positions: Vec::new(),
+            },
+            0.95,
+        )
+    }
+
+    fn finding(rule: Rule, variant: usize, value: f64) -> Finding {
+        Finding {
+            rule,
+            metric: Some(0),
+            variant: Some(variant),
+            value,
+            threshold: 0.95,
+            test: rule.test(),
+            message: String::new(),
+            evidence: Default::default(),
+        }
+    }
+
+    #[test]
+    fn record_keeps_points_with_new_data_and_logs_rule_transitions() {
+        let d = def(&["control", "bigger-photos"]);
+        let mut h = History::new();
+        h.record(&summary(&d, 0), &[], 1);
+        assert!(h
+            .experiment(&d.id)
+            .unwrap()
+            .series("sign-up")
+            .unwrap()
+            .is_empty());
+        let s = summary(&d, 400);
+        h.record(&s, &[], 2);
+        h.record(&s, &[finding(Rule::Harm, 1, 0.97)], 3);
+        h.record(&summary(&d, 800), &[], 4);
+        let e = h.experiment(&d.id).unwrap();
+        let pts = e.series("sign-up").unwrap();
+        // The idle evaluation at 3 added no point, but its finding was logged.
+        assert_eq!(pts.iter().map(|p| p.at).collect::<Vec<_>>(), vec![2, 4]);
+        assert_eq!(e.evaluations(), 2);
+        let arms = s.metrics[0].arms.as_ref().unwrap();
+        assert_eq!(pts[0].arms[1].mean, arms[1].mean);
+        assert_eq!(pts[0].arms[1].prob_best, arms[1].prob_best);
+        assert_eq!(pts[0].arms[1].units, 400);
+        assert!(pts[0].arms[0].lift.is_none() && pts[0].arms[1].lift.is_some());
+        let t: Vec<(Micros, Change, f64)> =
+            e.transitions().map(|t| (t.at, t.change, t.value)).collect();
+        assert_eq!(t, vec![(3, Change::Holds, 0.97), (4, Change::Ends, 0.97)]);
+        assert_eq!(e.holding().count(), 0);
+        assert_eq!(e.quality().len(), 2);
+        assert!(e.series("refund").is_none());
+        // A redefinition with other arms starts over.
+        let d3 = def(&["control", "bigger-photos", "video"]);
+        h.record(&summary(&d3, 100), &[], 5);
+        let e = h.experiment(&d.id).unwrap();
+        assert_eq!(e.variants().len(), 3);
+        assert_eq!(e.series("sign-up").unwrap().len(), 1);
+    }
+
+    #[test]
+    fn the_transition_log_is_bounded() {
+        let d = def(&["control", "bigger-photos"]);
+        let mut h = History::new();
+        for t in 0..(MAX_TRANSITIONS as i64 + 10) {
+            let f = if t % 2 == 0 {
+                vec![finding(Rule::Ship, 1, 0.001)]
+            } else {
+                vec![]
+            };
+            h.record(&summary(&d, 10 + t as u64), &f, t);
+        }
+        let e = h.experiment(&d.id).unwrap();
+        assert_eq!(e.transitions().count(), MAX_TRANSITIONS);
+        assert_eq!(
+            e.transitions().last().unwrap().at,
+            MAX_TRANSITIONS as i64 + 9
+        );
     }
 
     #[test]

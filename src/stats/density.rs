@@ -94,7 +94,8 @@ pub fn lift_density(
             }
             let lo = c_lo.max(v_lo / rho).max(f64::MIN_POSITIVE);
             let hi = c_hi.min(v_hi / rho);
-            if !(hi > lo) {
+            // NaN bounds compare false too, and give 0.
+            if hi.partial_cmp(&lo) != Some(std::cmp::Ordering::Greater) {
                 return 0.0;
             }
             let (a, b) = (lo.ln(), hi.ln());
