@@ -47,8 +47,9 @@ pub struct Shared {
     alert_file: Option<AlertFile>,
     /// Alert settings (sinks, cadence).
     pub alerts_config: crate::config::AlertsConfig,
-    /// Decision quantities over time, recorded at each evaluation (bounded; in memory).
-    pub history: Mutex<crate::history::History>,
+    /// Decision quantities over time, recorded at each evaluation (bounded; stored with a
+    /// store).
+    pub history: crate::http::history::Recorder,
 }
 
 impl Shared {
@@ -72,7 +73,7 @@ impl Shared {
             outbox: Mutex::new(Vec::new()),
             alert_file: None,
             alerts_config: config.alerts.clone(),
-            history: Mutex::new(crate::history::History::new()),
+            history: crate::http::history::Recorder::in_memory(),
         }
     }
 
@@ -497,6 +498,8 @@ pub async fn run(
         shared.outbox = Mutex::new(pending);
         shared.alert_file = Some(file);
         shared.store = Some(store);
+        shared.history = crate::http::history::Recorder::restore(&config.store.dir)
+            .context("cannot open the stored history (store.dir)")?;
     }
     let shared = Arc::new(shared);
     // Events posted over HTTP are kept in their own shard: stored on the snapshot cadence,
@@ -565,6 +568,8 @@ pub async fn run(
     if !saved {
         tracing::error!("the state of events posted over HTTP could not be saved at shutdown");
     }
+    let s = Arc::clone(&shared);
+    let _ = tokio::task::spawn_blocking(move || s.history.save()).await;
     tracing::info!("all tasks stopped");
     served.context("the HTTP server failed")
 }

@@ -244,6 +244,98 @@ impl ExperimentHistory {
     }
 }
 
+/// Everything an [`ExperimentHistory`] holds, as plain data (for the history file).
+#[derive(Debug, Clone, PartialEq)]
+pub struct HistoryParts {
+    /// Metric names, in definition order.
+    pub metrics: Vec<String>,
+    /// Variant names, in definition order.
+    pub variants: Vec<String>,
+    /// One series per metric.
+    pub series: Vec<Vec<Point>>,
+    /// Data-quality numbers over time.
+    pub quality: Vec<QualityPoint>,
+    /// Evaluations recorded.
+    pub evaluations: u64,
+    /// Valid events the experiment had seen at its latest point.
+    pub last_events: Option<u64>,
+    /// Rules holding at the latest evaluation, with value and threshold.
+    pub holding: Vec<(RuleKey, (f64, f64))>,
+    /// Rule transitions, oldest first.
+    pub transitions: Vec<Transition>,
+}
+
+/// Why stored parts cannot become a history.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum PartsError {
+    /// The series do not match the metrics, or a point's arms the variants.
+    #[error("{0}")]
+    Shape(String),
+}
+
+impl ExperimentHistory {
+    /// The history as plain data.
+    pub fn to_parts(&self) -> HistoryParts {
+        let mut holding: Vec<(RuleKey, (f64, f64))> =
+            self.holding.iter().map(|(k, v)| (*k, *v)).collect();
+        holding.sort_by(|a, b| a.0.cmp(&b.0));
+        HistoryParts {
+            metrics: self.metrics.clone(),
+            variants: self.variants.clone(),
+            series: self.series.clone(),
+            quality: self.quality.clone(),
+            evaluations: self.evaluations,
+            last_events: self.last_events,
+            holding,
+            transitions: self.transitions.iter().cloned().collect(),
+        }
+    }
+
+    /// A history from plain data, checked for shape and time order. A series longer than the
+    /// capacity for its shape is thinned by the usual scheme, so a file written under larger
+    /// limits still fits the bound.
+    pub fn from_parts(p: HistoryParts) -> Result<ExperimentHistory, PartsError> {
+        if p.series.len() != p.metrics.len() {
+            return Err(PartsError::Shape(format!(
+                "{} series for {} metrics",
+                p.series.len(),
+                p.metrics.len()
+            )));
+        }
+        let n = p.variants.len();
+        for s in &p.series {
+            if let Some(bad) = s.iter().find(|pt| pt.arms.len() != n) {
+                return Err(PartsError::Shape(format!(
+                    "a point has {} arms for {n} variants",
+                    bad.arms.len()
+                )));
+            }
+            if !s
+                .windows(2)
+                .all(|w| w[0].at <= w[1].since && w[1].since <= w[1].at)
+            {
+                return Err(PartsError::Shape("points are not in time order".into()));
+            }
+        }
+        let mut h = ExperimentHistory::new(p.metrics, p.variants);
+        let cap = h.capacity;
+        for (slot, series) in h.series.iter_mut().zip(p.series) {
+            for point in series {
+                push_bounded(slot, point, cap, merge_points);
+            }
+        }
+        for q in p.quality {
+            push_bounded(&mut h.quality, q, cap, |_, b| b);
+        }
+        h.evaluations = p.evaluations;
+        h.last_events = p.last_events;
+        h.holding = p.holding.into_iter().collect();
+        let skip = p.transitions.len().saturating_sub(MAX_TRANSITIONS);
+        h.transitions = p.transitions.into_iter().skip(skip).collect();
+        Ok(h)
+    }
+}
+
 /// Thin the older half of `points` by merging adjacent pairs when it is full.
 fn push_bounded<T>(points: &mut Vec<T>, point: T, capacity: usize, merge: impl Fn(T, T) -> T) {
     if points.len() >= capacity {
@@ -288,6 +380,11 @@ impl History {
             def.metrics.iter().map(|m| m.name.clone()).collect(),
             def.variants.iter().map(|v| v.name.clone()).collect(),
         )
+    }
+
+    /// Put back the stored history of experiment `id` (at start-up).
+    pub fn insert(&mut self, id: String, h: ExperimentHistory) {
+        self.experiments.insert(id, h);
     }
 
     /// The history of experiment `id`, if it was ever evaluated.
@@ -514,6 +611,33 @@ mod tests {
         let e = h.experiment(&d.id).unwrap();
         assert_eq!(e.variants().len(), 3);
         assert_eq!(e.series("sign-up").unwrap().len(), 1);
+    }
+
+    #[test]
+    fn parts_round_trip_and_bad_shapes_are_refused() {
+        let d = def(&["control", "bigger-photos"]);
+        let mut h = History::new();
+        for t in 0..700 {
+            let f = if t > 600 {
+                vec![finding(Rule::Harm, 1, 0.99)]
+            } else {
+                vec![]
+            };
+            h.record(&summary(&d, 10 + t as u64), &f, t);
+        }
+        let e = h.experiment(&d.id).unwrap();
+        let parts = e.to_parts();
+        let back = ExperimentHistory::from_parts(parts.clone()).unwrap();
+        assert_eq!(back.to_parts(), parts);
+        let mut bad = parts.clone();
+        bad.series[0][3].arms.pop();
+        assert!(ExperimentHistory::from_parts(bad).is_err());
+        let mut bad = parts.clone();
+        bad.series[0].swap(1, 2);
+        assert!(ExperimentHistory::from_parts(bad).is_err());
+        let mut bad = parts;
+        bad.metrics.push("refund".into());
+        assert!(ExperimentHistory::from_parts(bad).is_err());
     }
 
     #[test]

@@ -361,7 +361,8 @@ fn points(service: &Service) -> Vec<Value> {
 
 #[test]
 fn history_route_over_real_http() {
-    let service = Service::start(&serve_config());
+    let state = tempfile::tempdir().unwrap();
+    let service = Service::start_in(&serve_config(), Some(state.path()), &[]);
     let body = [tally("control", 1200, 130), tally("short-copy", 1180, 151)].join("\n");
     let (status, reply) = service.post("/v1/events", body);
     assert_eq!(status, 200, "{reply}");
@@ -484,4 +485,24 @@ fn history_route_over_real_http() {
     let (status, page) = service.get_text("/experiments/nope");
     assert_eq!(status, 404);
     assert!(page.contains("No experiment"));
+
+    // The history is stored at shutdown and read back at start-up, point for point; a file
+    // that cannot be read is set aside, not overwritten, and the service still starts.
+    let before = points(&service);
+    let mut service = service;
+    signal(service.child.id(), "TERM");
+    wait_exit(&mut service.child, Duration::from_secs(20)).expect("exits on SIGTERM");
+    let file = state.path().join("history/checkout-copy.json");
+    assert!(file.exists(), "no history file at {}", file.display());
+    let garbage = state.path().join("history/jar-sensor.json");
+    std::fs::write(&garbage, b"{\"version\":1,\"experiment\":").unwrap();
+    let again = Service::start_in(&serve_config(), Some(state.path()), &[]);
+    assert_eq!(points(&again), before);
+    assert!(!garbage.exists());
+    assert!(state
+        .path()
+        .join("history/jar-sensor.json.unreadable")
+        .exists());
+    let log = std::fs::read_to_string(&again.log).unwrap();
+    assert!(log.contains("cannot read a stored history"), "{log}");
 }

@@ -114,12 +114,7 @@ async fn experiment(
             page::layout("posteriord · not found", "not found", &main, "/"),
         );
     };
-    let history = shared
-        .history
-        .lock()
-        .unwrap_or_else(|p| p.into_inner())
-        .experiment(&id)
-        .cloned();
+    let history = shared.history.lock().experiment(&id).cloned();
     let alerts: Vec<_> = shared
         .alerts
         .lock()
