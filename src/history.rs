@@ -278,7 +278,7 @@ impl ExperimentHistory {
     pub fn to_parts(&self) -> HistoryParts {
         let mut holding: Vec<(RuleKey, (f64, f64))> =
             self.holding.iter().map(|(k, v)| (*k, *v)).collect();
-        holding.sort_by(|a, b| a.0.cmp(&b.0));
+        holding.sort_by_key(|a| a.0);
         HistoryParts {
             metrics: self.metrics.clone(),
             variants: self.variants.clone(),
