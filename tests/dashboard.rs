@@ -474,6 +474,10 @@ fn history_route_over_real_http() {
         .to_str()
         .unwrap()
         .starts_with("text/html"));
+    // No external resources, no framing; the browser test shows the refresh still works
+    // under this policy.
+    let csp = r.headers()["content-security-policy"].to_str().unwrap();
+    assert!(csp.contains("default-src 'none'") && csp.contains("frame-ancestors 'none'"));
     let page = r.text().unwrap();
     assert!(page.starts_with("<!doctype html>") && page.contains(r#"data-plot="density""#));
     let (status, part) = service.get_text("/experiments/checkout-copy?part=main");
@@ -505,4 +509,57 @@ fn history_route_over_real_http() {
         .exists());
     let log = std::fs::read_to_string(&again.log).unwrap();
     assert!(log.contains("cannot read a stored history"), "{log}");
+}
+
+#[test]
+fn the_plotted_intervals_are_the_api_numbers_in_a_real_browser() {
+    chromium();
+    let service = Service::start(&serve_config());
+    let body = [tally("control", 2400, 262), tally("short-copy", 2390, 301)].join("\n");
+    let (status, reply) = service.post("/v1/events", body);
+    assert_eq!(status, 200, "{reply}");
+    wait_for(Duration::from_secs(20), "a recorded evaluation", || {
+        (!points(&service).is_empty()).then_some(())
+    });
+    let (_, doc) = service.get("/v1/experiments/checkout-copy");
+    let purchase = doc["metrics"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|m| m["name"] == "purchase")
+        .unwrap()
+        .clone();
+    let lift = &purchase["variants"][1]["lift"]["interval"];
+    let profile = service.dir.path().join("chromium-profile");
+    let dom = dump_dom(&service.url("/experiments/checkout-copy"), 500, &profile);
+    // The interval bar under the lift curve is `compare`'s lift interval, to the last digit.
+    let bars = tags(
+        plot(&dom, "lift", "purchase"),
+        "g",
+        &[("data-role", "interval"), ("data-variant", "short-copy")],
+    );
+    assert_eq!(bars.len(), 1);
+    let lower: f64 = attr(&bars[0], "data-lower").unwrap().parse().unwrap();
+    let upper: f64 = attr(&bars[0], "data-upper").unwrap().parse().unwrap();
+    assert_eq!(lower, lift["lower"].as_f64().unwrap());
+    assert_eq!(upper, lift["upper"].as_f64().unwrap());
+    // The numbers table shows the document's P(best) for each arm (four decimals).
+    for (i, v) in ["control", "short-copy"].iter().enumerate() {
+        let p = purchase["variants"][i]["prob_best"].as_f64().unwrap();
+        let row_start = dom
+            .find(&format!(r#"<tr data-variant="{v}">"#))
+            .expect("numbers row");
+        let row = &dom[row_start..row_start + dom[row_start..].find("</tr>").unwrap()];
+        assert!(
+            row.contains(&format!("{p:.4}")),
+            "{v}: P(best) {p:.4} not in its row"
+        );
+    }
+    // Every history point is on the P(best) curve of each variant.
+    let n = points(&service).len();
+    let s = series(plot(&dom, "prob-best", "purchase"));
+    assert_eq!(
+        s,
+        vec![("control".to_string(), n), ("short-copy".to_string(), n)]
+    );
 }
