@@ -363,12 +363,15 @@ fn metric_section(s: &mut String, v: &ExperimentView, m: usize) {
         &density_plot(def, &metric.name, posteriors, higher),
     );
     if let Some(p) = lift_plot(def, &metric.name, posteriors, arms, metric.rules.rope) {
-        figure(
-            s,
-            "Lift against the control",
-            "relative difference θ_v/θ_c − 1; shaded: the region of practical equivalence (ROPE); bars: 95% credible intervals",
-            &p,
+        let hint = format!(
+            "relative difference θ_v/θ_c − 1 ({}); shaded: the region of practical equivalence (ROPE); bars: 95% credible intervals",
+            if higher {
+                "right of zero is better"
+            } else {
+                "right of zero means more defects, worse"
+            }
         );
+        figure(s, "Lift against the control", &hint, &p);
     }
     let series = v.history.as_ref().and_then(|h| h.series(&metric.name));
     let series = series.unwrap_or(&[]);
