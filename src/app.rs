@@ -498,8 +498,9 @@ pub async fn run(
         shared.outbox = Mutex::new(pending);
         shared.alert_file = Some(file);
         shared.store = Some(store);
-        shared.history = crate::http::history::Recorder::restore(&config.store.dir)
-            .context("cannot open the stored history (store.dir)")?;
+        shared.history =
+            crate::http::history::Recorder::restore(&config.store.dir, &config.experiments)
+                .context("cannot open the stored history (store.dir)")?;
     }
     let shared = Arc::new(shared);
     // Events posted over HTTP are kept in their own shard: stored on the snapshot cadence,

@@ -59,10 +59,14 @@ impl Recorder {
         }
     }
 
-    /// The history stored under `store_dir`, or an empty one. A file that cannot be read back
-    /// is set aside as `<name>.unreadable` (never overwritten) and reported; that experiment
-    /// starts a fresh history.
-    pub fn restore(store_dir: &Path) -> Result<Recorder, HistoryFileError> {
+    /// The history stored under `store_dir` for the experiments in `configured`, or an empty
+    /// one. Files of experiments no longer configured stay on disk untouched. A file that
+    /// cannot be read back is set aside as `<name>.unreadable` (never overwritten) and
+    /// reported; that experiment starts a fresh history.
+    pub fn restore(
+        store_dir: &Path,
+        configured: &[crate::experiment::ExperimentDef],
+    ) -> Result<Recorder, HistoryFileError> {
         let dir = store_dir.join("history");
         let io = |path: &Path| {
             let path = path.to_path_buf();
@@ -72,12 +76,18 @@ impl Recorder {
         let mut history = History::new();
         for entry in std::fs::read_dir(&dir).map_err(io(&dir))? {
             let path = entry.map_err(io(&dir))?.path();
-            if path.extension().and_then(|e| e.to_str()) != Some("json") {
+            let stem = path.file_stem().and_then(|s| s.to_str()).unwrap_or("");
+            if path.extension().and_then(|e| e.to_str()) != Some("json")
+                || !configured.iter().any(|d| d.id == stem)
+            {
                 continue;
             }
             let text = std::fs::read_to_string(&path).map_err(io(&path))?;
             match decode(&text) {
-                Ok((id, h)) => history.insert(id, h),
+                Ok((id, h)) if id == stem => history.insert(id, h),
+                Ok((id, _)) => {
+                    tracing::warn!(file = %path.display(), holds = %id, "a history file holds another experiment; ignored");
+                }
                 Err(e) => {
                     let aside = path.with_extension("json.unreadable");
                     tracing::error!(file = %path.display(), error = %e, moved_to = %aside.display(), "cannot read a stored history; it is set aside and that experiment's history starts over");
