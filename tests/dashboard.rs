@@ -212,6 +212,15 @@ fn the_demo_dashboard_shows_every_plot_in_a_real_browser() {
         });
     }
 
+    // The countdown banner is clearly worse in the demo: wait for its harm alert, which the
+    // page's timeline must show as an alert lane.
+    let alert = wait_for(Duration::from_secs(60), "the demo's harm alert", || {
+        get("/v1/alerts?experiment=crumb-delivery-banner")["alerts"]
+            .as_array()
+            .and_then(|a| a.iter().find(|a| a["rule"] == "harm").cloned())
+    });
+    assert_eq!(alert["variant"], "countdown");
+
     let profile = dir.path().join("chromium-profile");
     // The list page: one row per experiment the API lists, each linking to its page.
     let list = dump_dom(&dashboard, 1000, &profile);
@@ -303,8 +312,12 @@ fn the_demo_dashboard_shows_every_plot_in_a_real_browser() {
                 None => assert!(marks.is_empty()),
             }
         }
-        // The rule timeline and the data-quality checks.
+        // The rule timeline (with the harm alert's lane) and the data-quality checks.
         assert!(dom.contains(r#"data-plot="timeline""#));
+        if id == "crumb-delivery-banner" {
+            assert!(!tags(&dom, "g", &[("class", "lane alert"), ("data-rule", "harm")]).is_empty());
+            assert!(!tags(&dom, "g", &[("class", "lane rule"), ("data-rule", "harm")]).is_empty());
+        }
         assert_eq!(tags(&dom, "section", &[("data-role", "quality")]).len(), 1);
         assert_eq!(tags(&dom, "p", &[("data-check", "sample_ratio")]).len(), 1);
         for check in ["crossover", "orphan"] {

@@ -64,6 +64,8 @@ svg .interval { stroke-width:2.5; }
 svg .legend-box { fill:#fffdf9; stroke:var(--rule); opacity:.92; }
 svg .span { opacity:.85; }
 svg .span.open { stroke:var(--ink); stroke-width:1; }
+svg .lane.alert .span { opacity:.55; }
+svg .lane.alert .lane-label { font-style:italic; }
 table { border-collapse:collapse; font-size:.9rem; margin:.3rem 0 .6rem; }
 th, td { text-align:left; padding:.25rem .7rem .25rem 0; border-bottom:1px solid var(--rule); vertical-align:top; }
 th { font-weight:600; color:var(--soft); }
@@ -775,13 +777,43 @@ fn decisions_section(s: &mut String, v: &ExperimentView) {
                         rule: key.0.as_str(),
                         spans,
                         style: key.2,
+                        kind: "rule",
                     }
                 })
                 .collect();
         }
     }
+    // Each alert from opening to closing, under the rules.
+    let def = &v.summary.snapshot.def;
+    let mut lanes = lanes;
+    for a in &v.alerts {
+        let mut label = format!("alert · {}", a.key.rule.as_str());
+        for part in [&a.key.metric, &a.key.variant].into_iter().flatten() {
+            label.push_str(" · ");
+            label.push_str(part);
+        }
+        lanes.push(Lane {
+            label,
+            rule: a.key.rule.as_str(),
+            // A recorded final decision is a moment, not a state that lasts.
+            spans: vec![(
+                secs(a.opened_at).max(lo),
+                if a.state == crate::decide::alerts::AlertState::Recorded {
+                    Some(secs(a.opened_at).max(lo))
+                } else {
+                    a.closed_at.map(secs)
+                },
+            )],
+            style: a
+                .key
+                .variant
+                .as_ref()
+                .and_then(|n| def.variants.iter().position(|v| v.name == *n)),
+            kind: "alert",
+        });
+    }
     s.push_str(&svg::timeline(&lanes, lo, hi));
-    s.push_str(r#"<p class="muted">Bars: when a stopping rule held at the evaluations; an outlined bar still holds. Alerts open after a rule holds and close after a hold-down.</p>"#);
+    s.push_str(r#"<p class="muted">Rule bars: when a stopping rule held at the evaluations. Alert bars (lighter, names in italics): from an alert's opening to its closing after the hold-down; a recorded final decision is a thin mark. An outlined bar still holds or is still open.</p>"#);
     if v.alerts.is_empty() {
         s.push_str(r#"<p class="muted">No alerts for this experiment.</p>"#);
     } else {

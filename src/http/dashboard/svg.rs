@@ -592,12 +592,14 @@ pub struct Lane {
     pub spans: Vec<(f64, Option<f64>)>,
     /// Variant index for the colour, if the rule is about one variant.
     pub style: Option<usize>,
+    /// `rule` (when the rule held at evaluations) or `alert` (from opening to closing).
+    pub kind: &'static str,
 }
 
 /// The rule timeline over `[lo, hi]` (seconds since the epoch).
 pub fn timeline(lanes: &[Lane], lo: f64, hi: f64) -> String {
     let w = 1120.0;
-    let left = 210.0;
+    let left = 270.0;
     let right = 20.0;
     let lane_h = 22.0;
     let h = 40.0 + lane_h * lanes.len().max(1) as f64;
@@ -629,7 +631,8 @@ pub fn timeline(lanes: &[Lane], lo: f64, hi: f64) -> String {
         let colour = lane.style.map_or("#5b6170", |v| style(v).0);
         let _ = write!(
             s,
-            r#"<g class="lane" data-rule="{}"><text class="lane-label" x="{:.1}" y="{:.1}" text-anchor="end">{}</text>"#,
+            r#"<g class="lane {}" data-rule="{}"><text class="lane-label" x="{:.1}" y="{:.1}" text-anchor="end">{}</text>"#,
+            lane.kind,
             lane.rule,
             left - 8.0,
             y + 14.0,
