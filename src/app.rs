@@ -47,6 +47,9 @@ pub struct Shared {
     alert_file: Option<AlertFile>,
     /// Alert settings (sinks, cadence).
     pub alerts_config: crate::config::AlertsConfig,
+    /// Decision quantities over time, recorded at each evaluation (bounded; stored with a
+    /// store).
+    pub history: crate::http::history::Recorder,
 }
 
 impl Shared {
@@ -70,6 +73,7 @@ impl Shared {
             outbox: Mutex::new(Vec::new()),
             alert_file: None,
             alerts_config: config.alerts.clone(),
+            history: crate::http::history::Recorder::in_memory(),
         }
     }
 
@@ -342,6 +346,7 @@ pub fn evaluate_due(shared: &Shared, cadence: &mut Cadence) {
         let def = Arc::clone(&snapshot.def);
         let summary = crate::summary::summarize_for_decisions(snapshot);
         let findings = crate::decide::evaluate(&summary);
+        crate::http::history::record(shared, &summary, &findings, now);
         let changes = shared
             .alerts
             .lock()
@@ -493,6 +498,9 @@ pub async fn run(
         shared.outbox = Mutex::new(pending);
         shared.alert_file = Some(file);
         shared.store = Some(store);
+        shared.history =
+            crate::http::history::Recorder::restore(&config.store.dir, &config.experiments)
+                .context("cannot open the stored history (store.dir)")?;
     }
     let shared = Arc::new(shared);
     // Events posted over HTTP are kept in their own shard: stored on the snapshot cadence,
@@ -561,6 +569,8 @@ pub async fn run(
     if !saved {
         tracing::error!("the state of events posted over HTTP could not be saved at shutdown");
     }
+    let s = Arc::clone(&shared);
+    let _ = tokio::task::spawn_blocking(move || s.history.save()).await;
     tracing::info!("all tasks stopped");
     served.context("the HTTP server failed")
 }

@@ -162,10 +162,12 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
     runtime()?.block_on(async move {
         let listener = app::bind(config.http.addr).await?;
         let bound = listener.local_addr()?;
+        // The dashboard comes first: it is what a person opening the demo wants.
+        println!("dashboard: http://{bound}/");
         println!("posteriord demo: simulated traffic for the invented bakery Crumb & Co and the gardening app Pocket Orchard");
         println!("  experiments: http://{bound}/v1/experiments");
         for e in &config.experiments {
-            println!("  {:<28} http://{bound}/v1/experiments/{}", e.id, e.id);
+            println!("  {:<28} http://{bound}/experiments/{}", e.id, e.id);
         }
         println!("  metrics:     http://{bound}/metrics");
         println!("  stop with Ctrl-C{}", duration.map_or(String::new(), |d| format!(" (or wait {} s)", d.as_secs())));

@@ -1,7 +1,8 @@
 //! posteriord: continuous, exact Bayesian monitoring of online experiments.
 //!
 //! # Layout
-//! - [`experiment`], [`event`], [`state`], [`stats`]: the pure core (no I/O, no async, no serde).
+//! - [`experiment`], [`event`], [`state`], [`stats`], [`history`]: the pure core (no I/O, no async,
+//!   no serde).
 //! - [`decode`]: the JSON event wire format.
 //! - [`config`]: TOML config → validated [`config::Config`].
 //! - `app`, `http`, `kafka`, `simulate`, `metrics`: the edges that move events in and state out.
@@ -19,6 +20,7 @@ pub mod decide;
 pub mod decode;
 pub mod event;
 pub mod experiment;
+pub mod history;
 pub mod http;
 pub mod ingest;
 pub mod kafka;

@@ -70,7 +70,7 @@ fn start_demo(extra: &[&str]) -> (std::process::Child, String, tempfile::TempDir
         .spawn()
         .unwrap();
     let base = read_listen_line(&mut child, &log);
-    // The first URL printed is the experiments list; keep the host part.
+    // The first URL printed is the dashboard; keep the host part.
     let base = base.split("/v1/").next().unwrap().to_string();
     (child, base, dir)
 }

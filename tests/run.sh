@@ -56,6 +56,8 @@ apt_install() {
 }
 apt_install promtool prometheus
 apt_install systemd-analyze systemd
+# tests/dashboard.rs: a real browser loads the demo's dashboard (headless).
+apt_install chromium chromium
 
 WORK="$(mktemp -d -t posteriord-tests.XXXXXX)"
 BROKER_PID=""

@@ -54,6 +54,7 @@ fn the_core_is_pure() {
         "src/state",
         "src/stats",
         "src/summary.rs",
+        "src/history.rs",
     ];
     let forbidden = [
         "tokio",

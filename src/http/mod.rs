@@ -3,7 +3,9 @@
 //! Handlers copy what they need out of the engine under its lock and do all derived work
 //! (quadrature, JSON) outside it, on the blocking pool, so reads never stall ingest for long.
 
+pub mod dashboard;
 pub mod doc;
+pub mod history;
 
 use std::sync::Arc;
 
@@ -36,6 +38,8 @@ pub fn router(shared: Arc<Shared>, max_body_bytes: usize) -> Router {
         .route("/v1/experiments/{id}", get(get_experiment))
         .route("/v1/alerts", get(list_alerts))
         .route("/v1/alerts/{id}/ack", post(ack_alert))
+        // History of decision quantities and the HTML dashboard.
+        .merge(dashboard::routes())
         .fallback(not_found)
         .layer(DefaultBodyLimit::max(max_body_bytes))
         .with_state(shared)

@@ -9,18 +9,21 @@
 //! - `arms`: [`compare`] for 2..=64 arms, and [`decide`] (P(best), loss and P(beats
 //!   control) only) for frequent re-evaluation.
 //! - `srm`: [`sample_ratio_mismatch`].
+//! - `density`: posterior and lift densities for plots ([`posterior_density`], [`lift_density`]).
 //!
 //! **Invariant:** nothing here does I/O, allocates threads, or knows about async runtimes,
 //! message brokers, HTTP or serialization; bad input is an `Err`, never a panic.
 //! Formulas and their sources are listed in docs/methods.md.
 
 mod arms;
+mod density;
 mod grid;
 mod posterior;
 mod special;
 mod srm;
 
 pub use arms::{compare, decide, ArmSummary, Arms, CompareOptions, Decision, Lift, MAX_ARMS};
+pub use density::{lift_density, plot_range, posterior_density, PLOT_TAIL};
 pub use posterior::{Beta, Gamma, MAX_SHAPE, MIN_SHAPE};
 pub use srm::{sample_ratio_mismatch, SampleRatio, SRM_P_THRESHOLD};
 
