@@ -1172,9 +1172,46 @@ fn kafka_targets(work: &Path, kafka: bool, http: bool) -> Vec<Row> {
 // Target 3: the cost of rule evaluation.
 
 fn evaluation_target() -> Vec<Row> {
-    println!("\n== evaluation: 10 000 experiments × 4 variants ==");
-    println!("  (measured once the evaluator is event-driven; see docs/performance.md)");
-    let _ = std::io::stdout().lock().flush();
-    let _ = std::io::BufReader::new(std::io::empty()).lines();
-    Vec::new()
+    println!("\n== evaluation: cost of one evaluation, 4 variants × (conversion + defect rate) ==");
+    let config = workload_config(1, 4, "");
+    let mut shards = Shards::new(config.experiments.iter().cloned());
+    let events = workload_events(200_000, 1, 4);
+    let shard = shards.shard_mut("bench-0");
+    for e in &events {
+        if let Ok(ev) = posteriord::decode::decode_event(e, 64 * 1024) {
+            let _ = shard.apply(&ev);
+        }
+    }
+    let snap = shards.snapshot("orchard-0").expect("configured");
+    let rounds = 300;
+    let mut full = Vec::new();
+    let mut lean = Vec::new();
+    for _ in 0..3 {
+        let t = CpuTimer::start();
+        for _ in 0..rounds {
+            let s = posteriord::summary::summarize(snap.clone(), posteriord::summary::DEFAULT_LEVEL);
+            std::hint::black_box(posteriord::decide::evaluate(&s));
+        }
+        full.push(t.secs() / rounds as f64);
+        let t = CpuTimer::start();
+        for _ in 0..rounds {
+            let s = posteriord::summary::summarize_for_decisions(snap.clone());
+            std::hint::black_box(posteriord::decide::evaluate(&s));
+        }
+        lean.push(t.secs() / rounds as f64);
+    }
+    let (full, lean) = (fastest(full), fastest(lean));
+    println!(
+        "  full summary + rules: {:.0} µs; decision-only summary + rules: {:.0} µs",
+        full * 1e6,
+        lean * 1e6
+    );
+    vec![Row {
+        target: "3 one evaluation (4 variants, 2 metrics)",
+        baseline: format!("full summary {:.0} µs", full * 1e6),
+        ours: format!("{:.0} µs", lean * 1e6),
+        ratio: format!("{:.2}×", full / lean),
+        goal: "report",
+        met: None,
+    }]
 }
