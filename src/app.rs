@@ -47,6 +47,8 @@ pub struct Shared {
     alert_file: Option<AlertFile>,
     /// Alert settings (sinks, cadence).
     pub alerts_config: crate::config::AlertsConfig,
+    /// Experiments defined over the API, and the archive. Lock order: catalog, then shards.
+    catalog: Mutex<crate::catalog::Catalog>,
 }
 
 impl Shared {
@@ -70,7 +72,15 @@ impl Shared {
             outbox: Mutex::new(Vec::new()),
             alert_file: None,
             alerts_config: config.alerts.clone(),
+            catalog: Mutex::new(crate::catalog::Catalog::in_memory(
+                config.experiments.iter().map(|e| e.id.clone()),
+            )),
         }
+    }
+
+    /// The catalog of API experiments (taken before the shards when both are needed).
+    pub fn lock_catalog(&self) -> MutexGuard<'_, crate::catalog::Catalog> {
+        self.catalog.lock().unwrap_or_else(|p| p.into_inner())
     }
 
     /// Whether any partition is being restored.
@@ -493,6 +503,23 @@ pub async fn run(
         shared.outbox = Mutex::new(pending);
         shared.alert_file = Some(file);
         shared.store = Some(store);
+        // API experiments join before any stored state is read, so their state restores.
+        let (catalog, defs, warnings) = crate::catalog::Catalog::load(
+            &config.store.dir,
+            config.experiments.iter().map(|e| e.id.clone()),
+        )
+        .context("cannot read the experiments defined over the API")?;
+        for w in warnings {
+            tracing::warn!("{w}");
+        }
+        if !defs.is_empty() {
+            tracing::info!(experiments = defs.len(), "experiments defined over the API");
+        }
+        let shards = shared.shards.get_mut().unwrap_or_else(|p| p.into_inner());
+        for def in defs {
+            shards.define(def);
+        }
+        shared.catalog = Mutex::new(catalog);
     }
     let shared = Arc::new(shared);
     // Events posted over HTTP are kept in their own shard: stored on the snapshot cadence,
@@ -547,7 +574,8 @@ pub async fn run(
             shutdown.clone(),
         ));
     }
-    let router = crate::http::router(Arc::clone(&shared), config.http.max_body_bytes);
+    let auth = crate::http::guard::Auth::new(&config.http, listener.local_addr()?)?;
+    let router = crate::http::router(Arc::clone(&shared), &config.http, auth);
     let served = crate::http::serve(listener, router, shutdown.clone()).await;
     // If the server stopped on its own (an accept error), the other tasks must stop too.
     shutdown.cancel();

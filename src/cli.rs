@@ -143,8 +143,17 @@ async fn cancel_on_signal(token: CancellationToken) {
 fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> anyhow::Result<()> {
     let config = Config {
         http: HttpConfig {
-            addr,
-            max_body_bytes: config::DEFAULT_MAX_BODY_BYTES,
+            // The demo accepts tokens like `serve` does, so it can be shown beyond loopback.
+            tokens: config::ApiTokens(
+                std::env::var("POSTERIORD_API_TOKENS")
+                    .unwrap_or_default()
+                    .split(',')
+                    .map(str::trim)
+                    .filter(|t| !t.is_empty())
+                    .map(String::from)
+                    .collect(),
+            ),
+            ..HttpConfig::on(addr)
         },
         kafka: None,
         store: StoreConfig {

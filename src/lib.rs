@@ -11,6 +11,7 @@
 
 pub mod alerting;
 pub mod app;
+pub mod catalog;
 pub mod changelog;
 pub mod cli;
 pub mod compare;

@@ -85,20 +85,7 @@ impl Store {
 
     /// Atomically replace the stored state of shard `id` with `image`.
     pub fn save(&self, id: &str, image: &ShardImage) -> Result<(), StoreError> {
-        let path = self.path(id);
-        let tmp = path.with_extension("state.tmp");
-        let bytes = encode(image);
-        {
-            let mut f = File::create(&tmp).map_err(io_err(&tmp))?;
-            f.write_all(&bytes).map_err(io_err(&tmp))?;
-            f.sync_all().map_err(io_err(&tmp))?;
-        }
-        fs::rename(&tmp, &path).map_err(io_err(&path))?;
-        // The rename is durable only once the directory entry is.
-        File::open(&self.dir)
-            .and_then(|d| d.sync_all())
-            .map_err(io_err(&self.dir))?;
-        Ok(())
+        write_atomic(&self.path(id), &encode(image))
     }
 
     /// The stored state of shard `id`, if any, rebuilt over `defs`.
@@ -120,6 +107,27 @@ impl Store {
         let (shard, mismatches) = Shard::from_image(defs, image);
         Ok(Some(Loaded { shard, mismatches }))
     }
+}
+
+/// Replace the file at `path` with `bytes` atomically: write a temporary file beside it,
+/// fsync, rename over, fsync the directory. After a crash the file holds the old or the new
+/// bytes, never a mix.
+pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<(), StoreError> {
+    let mut tmp = path.as_os_str().to_owned();
+    tmp.push(".tmp");
+    let tmp = PathBuf::from(tmp);
+    {
+        let mut f = File::create(&tmp).map_err(io_err(&tmp))?;
+        f.write_all(bytes).map_err(io_err(&tmp))?;
+        f.sync_all().map_err(io_err(&tmp))?;
+    }
+    fs::rename(&tmp, path).map_err(io_err(path))?;
+    // The rename is durable only once the directory entry is.
+    let dir = path.parent().unwrap_or(Path::new("."));
+    File::open(dir)
+        .and_then(|d| d.sync_all())
+        .map_err(io_err(dir))?;
+    Ok(())
 }
 
 /// One logged event: its sequence number and encoded bytes.

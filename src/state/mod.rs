@@ -220,6 +220,59 @@ impl ExperimentState {
         &self.def
     }
 
+    /// Carry this state over to `def`, a redefinition that keeps every variant and metric in
+    /// order and may append more (checked by `ExperimentDef::incompatibility` before).
+    ///
+    /// A metric appended to a running experiment counts every unit exposed so far as a trial
+    /// (conversion) or as exposure (`exposure = "units"`), because those units were exposed;
+    /// conversions and defects from before it existed were not recorded, so its early rate
+    /// leans low — docs/api.md carries that caution.
+    pub fn redefine(&mut self, def: Arc<ExperimentDef>) -> Result<(), image::ImageMismatch> {
+        let image = self.image();
+        let mut state = ExperimentState::from_image(Arc::clone(&def), image)?;
+        std::mem::swap(self, &mut state);
+        Ok(())
+    }
+
+    /// Pad variant and metric totals, restored for a prefix of the definition, to its full
+    /// shape (see [`ExperimentState::redefine`] for what appended metrics start from).
+    fn pad_to_def(&mut self) {
+        let n = self.def.variants.len();
+        self.variant_units.resize(n, 0);
+        for t in &mut self.metrics {
+            match t {
+                MetricTotals::Conversion(v) => v.resize(n, ConversionTotals::default()),
+                MetricTotals::Defect(v) => v.resize(n, DefectTotals::default()),
+            }
+        }
+        for m in &self.def.metrics[self.metrics.len()..] {
+            self.metrics.push(match m.kind {
+                MetricKind::Conversion => MetricTotals::Conversion(
+                    self.variant_units
+                        .iter()
+                        .map(|&u| ConversionTotals {
+                            trials: u,
+                            successes: 0,
+                        })
+                        .collect(),
+                ),
+                MetricKind::DefectRate(basis) => MetricTotals::Defect(
+                    self.variant_units
+                        .iter()
+                        .map(|&u| DefectTotals {
+                            count: 0,
+                            exposure: if basis == ExposureBasis::Units {
+                                u as f64
+                            } else {
+                                0.0
+                            },
+                        })
+                        .collect(),
+                ),
+            });
+        }
+    }
+
     /// Number of distinct units tracked.
     pub fn n_units(&self) -> usize {
         self.units.len()
@@ -538,6 +591,39 @@ impl Engine {
         if let Some(&idx) = self.index.get(&state.def.id) {
             self.experiments[idx] = state;
         }
+    }
+
+    /// Watch `def` too, or redefine the experiment of that id: a new generation starts empty,
+    /// the same generation carries its state over (see [`ExperimentState::redefine`]; when
+    /// that is refused the experiment starts empty and the reason is returned).
+    pub fn define(&mut self, def: Arc<ExperimentDef>) -> Option<image::ImageMismatch> {
+        let Some(&idx) = self.index.get(&def.id) else {
+            self.index.insert(def.id.clone(), self.experiments.len());
+            self.experiments.push(ExperimentState::new(def));
+            return None;
+        };
+        let state = &mut self.experiments[idx];
+        if state.def.generation == def.generation {
+            if let Err(m) = state.redefine(Arc::clone(&def)) {
+                *state = ExperimentState::new(def);
+                return Some(m);
+            }
+        } else {
+            *state = ExperimentState::new(def);
+        }
+        None
+    }
+
+    /// Stop watching experiment `id`; returns its state, if it was watched.
+    pub fn remove(&mut self, id: &str) -> Option<ExperimentState> {
+        let idx = self.index.remove(id)?;
+        let state = self.experiments.remove(idx);
+        for i in self.index.values_mut() {
+            if *i > idx {
+                *i -= 1;
+            }
+        }
+        Some(state)
     }
 
     /// Apply one decoded event.

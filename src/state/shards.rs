@@ -85,7 +85,7 @@ impl Shard {
         shard.next_offset = image.next_offset;
         let mut mismatches = Vec::new();
         for e in image.experiments {
-            let Some(def) = defs.iter().find(|d| d.id == e.id) else {
+            let Some(def) = defs.iter().find(|d| d.state_key() == e.id) else {
                 mismatches.push(ImageMismatch {
                     id: e.id.clone(),
                     reason: "the experiment is no longer configured".into(),
@@ -154,6 +154,43 @@ impl Shards {
         self.shards.keys().cloned().collect()
     }
 
+    /// Watch `def` in every shard, or redefine the experiment of that id (see
+    /// [`Engine::define`]); returns the shards where state could not carry over, with why.
+    pub fn define(&mut self, def: ExperimentDef) -> Vec<(ShardId, ImageMismatch)> {
+        let def = Arc::new(def);
+        match self.defs.iter_mut().find(|d| d.id == def.id) {
+            Some(d) => *d = Arc::clone(&def),
+            None => self.defs.push(Arc::clone(&def)),
+        }
+        let mut refused = Vec::new();
+        for (id, shard) in &mut self.shards {
+            if let Some(m) = shard.engine.define(Arc::clone(&def)) {
+                refused.push((id.clone(), m));
+            }
+            shard.dirty = true;
+        }
+        // Remote totals were taken under the old shape; the follower refreshes them.
+        for (_, snaps) in self.remote.values_mut() {
+            snaps.retain(|s| s.def.id != def.id);
+        }
+        refused
+    }
+
+    /// Stop watching experiment `id` in every shard; `false` if it was not watched.
+    pub fn undefine(&mut self, id: &str) -> bool {
+        let before = self.defs.len();
+        self.defs.retain(|d| d.id != id);
+        for shard in self.shards.values_mut() {
+            if shard.engine.remove(id).is_some() {
+                shard.dirty = true;
+            }
+        }
+        for (_, snaps) in self.remote.values_mut() {
+            snaps.retain(|s| s.def.id != id);
+        }
+        self.defs.len() != before
+    }
+
     /// Whether experiment `id` is configured.
     pub fn has_experiment(&self, id: &str) -> bool {
         self.defs.iter().any(|d| d.id == id)
@@ -165,7 +202,7 @@ impl Shards {
             .experiments
             .iter()
             .filter_map(|e| {
-                let def = self.defs.iter().find(|d| d.id == e.id)?;
+                let def = self.defs.iter().find(|d| d.state_key() == e.id)?;
                 e.totals_snapshot(def)
             })
             .collect();

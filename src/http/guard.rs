@@ -1,0 +1,277 @@
+//! What stands between a client and the handlers: bearer-token checks, request ids, the
+//! request timeout, panic capture, and the mapping of every error reply to the one JSON error
+//! shape (axum's own rejections — bad query, bad path, body too large, wrong method — are
+//! plain text, so they are rewritten here rather than route by route).
+
+use std::net::SocketAddr;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Arc;
+
+use axum::body::Body;
+use axum::extract::{Request, State};
+use axum::http::{header, HeaderValue, Method, StatusCode};
+use axum::middleware::Next;
+use axum::response::{IntoResponse, Response};
+use axum::{Json, Router};
+use serde_json::{json, Value};
+use sha2::{Digest, Sha256};
+use subtle::ConstantTimeEq;
+use tower_http::request_id::{
+    MakeRequestId, PropagateRequestIdLayer, RequestId, SetRequestIdLayer,
+};
+
+use super::doc;
+use crate::config::HttpConfig;
+
+/// The header carrying the request id (set on every response; a client may send its own).
+pub const REQUEST_ID: &str = "x-request-id";
+
+/// Paths that never need a token: probes must work without secrets, and the API
+/// description is public documentation.
+const OPEN_PATHS: &[&str] = &["/healthz", "/readyz", "/v1/openapi.json"];
+
+/// Why the server must not start.
+#[derive(Debug, thiserror::Error)]
+#[error("refusing to listen on {addr} without an API token: anyone who can reach that address could post events and change experiments. Set POSTERIORD_API_TOKENS (comma-separated) or http.token_file, or listen on a loopback address such as 127.0.0.1")]
+pub struct Unprotected {
+    /// The address that is not loopback.
+    pub addr: SocketAddr,
+}
+
+/// Who may do what.
+#[derive(Clone)]
+pub struct Auth {
+    /// SHA-256 of each token: compared in constant time, and the tokens themselves are not
+    /// kept around in this struct.
+    digests: Arc<Vec<[u8; 32]>>,
+    protect_reads: bool,
+}
+
+impl std::fmt::Debug for Auth {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Auth")
+            .field("tokens", &self.digests.len())
+            .field("protect_reads", &self.protect_reads)
+            .finish()
+    }
+}
+
+fn digest(token: &[u8]) -> [u8; 32] {
+    Sha256::digest(token).into()
+}
+
+impl Auth {
+    /// The policy for a server bound to `bound`: with no token, writes are open only on a
+    /// loopback address, and any other address is refused.
+    pub fn new(http: &HttpConfig, bound: SocketAddr) -> Result<Auth, Unprotected> {
+        let digests: Vec<[u8; 32]> = http.tokens.0.iter().map(|t| digest(t.as_bytes())).collect();
+        if digests.is_empty() {
+            if !bound.ip().is_loopback() {
+                return Err(Unprotected { addr: bound });
+            }
+            tracing::warn!(addr = %bound, "no API token configured: writes are accepted without a token because the server listens on a loopback address only");
+        } else {
+            tracing::info!(
+                tokens = digests.len(),
+                protect_reads = http.protect_reads,
+                "API writes need a bearer token"
+            );
+        }
+        Ok(Auth {
+            digests: Arc::new(digests),
+            protect_reads: http.protect_reads,
+        })
+    }
+
+    /// Whether `presented` is one of the tokens. Every token is compared, in constant time
+    /// over equal-length digests, so timing tells nothing about which bytes matched.
+    fn accepts(&self, presented: &[u8]) -> bool {
+        let d = digest(presented);
+        let mut ok = subtle::Choice::from(0);
+        for t in self.digests.iter() {
+            ok |= t.ct_eq(&d);
+        }
+        ok.into()
+    }
+}
+
+/// `{"error":...}` with `status`.
+pub fn error(status: StatusCode, code: &str, message: &str, details: Value) -> Response {
+    (status, Json(doc::error_body(code, message, details))).into_response()
+}
+
+/// Checks the bearer token of writes (every method but GET and HEAD) and, with
+/// `protect_reads`, of reads, except on [`OPEN_PATHS`].
+async fn check_token(State(auth): State<Auth>, request: Request, next: Next) -> Response {
+    let path = request.uri().path();
+    let read = matches!(*request.method(), Method::GET | Method::HEAD);
+    let needs_token =
+        !OPEN_PATHS.contains(&path) && !auth.digests.is_empty() && (!read || auth.protect_reads);
+    if !needs_token {
+        return next.run(request).await;
+    }
+    let presented = request
+        .headers()
+        .get(header::AUTHORIZATION)
+        .and_then(|v| v.as_bytes().strip_prefix(b"Bearer "))
+        .map(|t| t.trim_ascii());
+    match presented {
+        None => {
+            let mut r = error(
+                StatusCode::UNAUTHORIZED,
+                "unauthenticated",
+                "this request needs an `Authorization: Bearer <token>` header",
+                Value::Null,
+            );
+            r.headers_mut()
+                .insert(header::WWW_AUTHENTICATE, HeaderValue::from_static("Bearer"));
+            r
+        }
+        Some(t) if auth.accepts(t) => next.run(request).await,
+        Some(_) => error(
+            StatusCode::FORBIDDEN,
+            "forbidden",
+            "the bearer token is not one of the configured API tokens",
+            Value::Null,
+        ),
+    }
+}
+
+/// Request ids: a per-process prefix and a counter, short enough to read out of a log.
+#[derive(Clone)]
+struct RequestIds {
+    prefix: u32,
+    next: Arc<AtomicU64>,
+}
+
+impl MakeRequestId for RequestIds {
+    fn make_request_id<B>(&mut self, _request: &axum::http::Request<B>) -> Option<RequestId> {
+        let n = self.next.fetch_add(1, Ordering::Relaxed);
+        HeaderValue::from_str(&format!("{:08x}-{n}", self.prefix))
+            .ok()
+            .map(RequestId::new)
+    }
+}
+
+fn code_for(status: StatusCode) -> &'static str {
+    match status {
+        StatusCode::BAD_REQUEST => "bad_request",
+        StatusCode::UNAUTHORIZED => "unauthenticated",
+        StatusCode::FORBIDDEN => "forbidden",
+        StatusCode::NOT_FOUND => "not_found",
+        StatusCode::METHOD_NOT_ALLOWED => "method_not_allowed",
+        StatusCode::REQUEST_TIMEOUT => "timeout",
+        StatusCode::PAYLOAD_TOO_LARGE => "too_large",
+        StatusCode::UNSUPPORTED_MEDIA_TYPE => "unsupported_media_type",
+        StatusCode::UNPROCESSABLE_ENTITY => "unprocessable",
+        StatusCode::SERVICE_UNAVAILABLE => "unavailable",
+        s if s.is_server_error() => "internal",
+        _ => "error",
+    }
+}
+
+/// Rewrites every error reply that is not JSON yet into the one error shape, and makes
+/// server errors carry the request id (also logged) so a report can be matched to the log.
+async fn json_errors(request: Request, next: Next) -> Response {
+    let request_id = request
+        .headers()
+        .get(REQUEST_ID)
+        .and_then(|v| v.to_str().ok())
+        .unwrap_or("")
+        .to_string();
+    let method = request.method().clone();
+    let path = request.uri().path().to_string();
+    let response = next.run(request).await;
+    let status = response.status();
+    if !(status.is_client_error() || status.is_server_error()) {
+        return response;
+    }
+    let is_json = response
+        .headers()
+        .get(header::CONTENT_TYPE)
+        .is_some_and(|v| v.as_bytes().starts_with(b"application/json"));
+    if status.is_server_error() {
+        tracing::error!(request_id, %method, path, status = status.as_u16(), "request failed");
+    }
+    if is_json && !status.is_server_error() {
+        return response;
+    }
+    let (parts, body) = response.into_parts();
+    let bytes = axum::body::to_bytes(body, 64 * 1024)
+        .await
+        .unwrap_or_default();
+    let mut replaced: Option<Value> = None;
+    if is_json {
+        // Already our shape: only add the request id to server errors.
+        if let Ok(mut v) = serde_json::from_slice::<Value>(&bytes) {
+            if let Some(e) = v.get_mut("error").and_then(Value::as_object_mut) {
+                if e.get("details").is_none_or(Value::is_null) {
+                    e.insert("details".into(), json!({}));
+                }
+                if let Some(d) = e.get_mut("details").and_then(Value::as_object_mut) {
+                    d.insert("request_id".into(), json!(request_id));
+                }
+                replaced = Some(v);
+            }
+        }
+    }
+    let body = replaced.unwrap_or_else(|| {
+        let text = String::from_utf8_lossy(&bytes).trim().to_string();
+        let message = if status.is_server_error() {
+            format!("internal error; quote request id {request_id} when reporting it")
+        } else if text.is_empty() {
+            status
+                .canonical_reason()
+                .unwrap_or("request refused")
+                .to_string()
+        } else {
+            text
+        };
+        let details = if status.is_server_error() {
+            json!({ "request_id": request_id })
+        } else {
+            Value::Null
+        };
+        doc::error_body(code_for(status), &message, details)
+    });
+    let mut response = (status, Json(body)).into_response();
+    for (name, value) in parts.headers.iter() {
+        if name != header::CONTENT_TYPE && name != header::CONTENT_LENGTH {
+            response.headers_mut().insert(name.clone(), value.clone());
+        }
+    }
+    response
+}
+
+fn panic_reply(panic: Box<dyn std::any::Any + Send + 'static>) -> Response<Body> {
+    let what = panic
+        .downcast_ref::<String>()
+        .map(String::as_str)
+        .or_else(|| panic.downcast_ref::<&str>().copied())
+        .unwrap_or("(no message)");
+    tracing::error!(panic = what, "a request handler panicked");
+    // Plain on purpose: `json_errors` outside turns it into the error shape with the id.
+    StatusCode::INTERNAL_SERVER_ERROR.into_response()
+}
+
+/// Wrap `routes` in the guards: tokens, timeout, panic capture, JSON errors, request ids.
+/// Every route added to `routes` gets all of them.
+pub fn guard(routes: Router, http: &HttpConfig, auth: Auth) -> Router {
+    let ids = RequestIds {
+        prefix: rand::random(),
+        next: Arc::new(AtomicU64::new(1)),
+    };
+    let header_name = header::HeaderName::from_static(REQUEST_ID);
+    routes
+        .layer(axum::middleware::from_fn_with_state(auth, check_token))
+        .layer(tower_http::timeout::TimeoutLayer::with_status_code(
+            StatusCode::REQUEST_TIMEOUT,
+            http.request_timeout,
+        ))
+        .layer(tower_http::catch_panic::CatchPanicLayer::custom(
+            panic_reply,
+        ))
+        .layer(axum::middleware::from_fn(json_errors))
+        .layer(PropagateRequestIdLayer::new(header_name.clone()))
+        .layer(SetRequestIdLayer::new(header_name, ids))
+}
