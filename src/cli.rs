@@ -207,6 +207,7 @@ fn load_config(path: &std::path::Path) -> anyhow::Result<Config> {
 
 fn serve(path: &std::path::Path) -> anyhow::Result<()> {
     let config = load_config(path)?;
+    crate::http::guard::check_exposure(&config.http, config.http.addr)?;
     app::prepare_store(&config)?;
     let grace = config.shutdown_grace;
     let rt = runtime()?;

@@ -181,8 +181,8 @@ pub async fn get_archived(shared: &Shared, id: &str, number: Option<u32>) -> Res
     let found = shared
         .lock_catalog()
         .archive(id, number)
-        .map(|a| (a.snapshot.clone(), archive_note(a)));
-    let Some((snapshot, note)) = found else {
+        .map(|a| (a.snapshot.clone(), archive_note(a), a.def.generation));
+    let Some((snapshot, note, generation)) = found else {
         return error(
             StatusCode::NOT_FOUND,
             "unknown_experiment",
@@ -196,6 +196,7 @@ pub async fn get_archived(shared: &Shared, id: &str, number: Option<u32>) -> Res
     match blocking(move || {
         let mut d = doc::experiment_document(&summarize(snapshot, DEFAULT_LEVEL));
         d["source"] = json!("api");
+        d["generation"] = json!(generation);
         d["archive"] = note;
         d
     })

@@ -60,15 +60,22 @@ fn digest(token: &[u8]) -> [u8; 32] {
     Sha256::digest(token).into()
 }
 
+/// Refuse to serve `addr` without a token unless it is a loopback address (checked before
+/// binding, and again on the bound address).
+pub fn check_exposure(http: &HttpConfig, addr: SocketAddr) -> Result<(), Unprotected> {
+    if http.tokens.0.is_empty() && !addr.ip().is_loopback() {
+        return Err(Unprotected { addr });
+    }
+    Ok(())
+}
+
 impl Auth {
     /// The policy for a server bound to `bound`: with no token, writes are open only on a
     /// loopback address, and any other address is refused.
     pub fn new(http: &HttpConfig, bound: SocketAddr) -> Result<Auth, Unprotected> {
+        check_exposure(http, bound)?;
         let digests: Vec<[u8; 32]> = http.tokens.0.iter().map(|t| digest(t.as_bytes())).collect();
         if digests.is_empty() {
-            if !bound.ip().is_loopback() {
-                return Err(Unprotected { addr: bound });
-            }
             tracing::warn!(addr = %bound, "no API token configured: writes are accepted without a token because the server listens on a loopback address only");
         } else {
             tracing::info!(
@@ -274,4 +281,60 @@ pub fn guard(routes: Router, http: &HttpConfig, auth: Auth) -> Router {
         .layer(axum::middleware::from_fn(json_errors))
         .layer(PropagateRequestIdLayer::new(header_name.clone()))
         .layer(SetRequestIdLayer::new(header_name, ids))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A handler that panics answers 500 in the error shape with the request id, over real
+    /// HTTP on loopback; the server keeps serving.
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn a_panicking_handler_becomes_a_500_with_a_request_id() {
+        let http = HttpConfig::on("127.0.0.1:0".parse().unwrap());
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let addr = listener.local_addr().unwrap();
+        let auth = Auth::new(&http, addr).unwrap();
+        let routes = Router::new()
+            .route(
+                "/boom",
+                axum::routing::get(|| async {
+                    if true {
+                        panic!("the oven caught fire");
+                    }
+                    "unreachable"
+                }),
+            )
+            .route("/fine", axum::routing::get(|| async { "ok" }));
+        let app = guard(routes, &http, auth);
+        let server = tokio::spawn(async move { axum::serve(listener, app).await });
+        let c = reqwest::Client::new();
+        let r = c.get(format!("http://{addr}/boom")).send().await.unwrap();
+        assert_eq!(r.status().as_u16(), 500);
+        let id = r.headers()[REQUEST_ID].to_str().unwrap().to_string();
+        let body: Value = r.json().await.unwrap();
+        assert_eq!(body["error"]["code"], "internal");
+        assert_eq!(body["error"]["details"]["request_id"], id.as_str());
+        assert!(body["error"]["message"].as_str().unwrap().contains(&id));
+        let r = c.get(format!("http://{addr}/fine")).send().await.unwrap();
+        assert_eq!(r.status().as_u16(), 200);
+        server.abort();
+    }
+
+    #[test]
+    fn tokens_are_matched_exactly() {
+        let mut http = HttpConfig::on("127.0.0.1:0".parse().unwrap());
+        http.tokens.0 = vec![
+            "crumb-ops-7c1f9e2a4b6d8e0f".into(),
+            "orchard-ci-3a5b7c9d1e2f4a6b".into(),
+        ];
+        let auth = Auth::new(&http, "0.0.0.0:80".parse().unwrap()).unwrap();
+        assert!(auth.accepts(b"orchard-ci-3a5b7c9d1e2f4a6b"));
+        assert!(auth.accepts(b"crumb-ops-7c1f9e2a4b6d8e0f"));
+        assert!(!auth.accepts(b"crumb-ops-7c1f9e2a4b6d8e0"));
+        assert!(!auth.accepts(b""));
+        http.tokens.0.clear();
+        assert!(Auth::new(&http, "0.0.0.0:80".parse().unwrap()).is_err());
+        assert!(Auth::new(&http, "[::1]:80".parse().unwrap()).is_ok());
+    }
 }
