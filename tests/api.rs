@@ -640,8 +640,13 @@ fn schemathesis_finds_no_server_error_and_no_schema_violation() {
         "addr = \"127.0.0.1:0\"\nprotect_reads = true",
     );
     let svc = Service::start_with_env(&config, &[("POSTERIORD_API_TOKENS", TOKEN_A)]);
-    let out = Command::new("schemathesis")
-        .arg("run")
+    // Through Python rather than the `schemathesis` script, which pip may put off PATH.
+    let out = Command::new("python3")
+        .args([
+            "-c",
+            "import sys; from schemathesis.cli import schemathesis; sys.argv[0] = 'schemathesis'; schemathesis()",
+            "run",
+        ])
         .arg(svc.url("/v1/openapi.json"))
         .args([
             "--checks",

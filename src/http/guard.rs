@@ -204,25 +204,25 @@ async fn json_errors(request: Request, next: Next) -> Response {
         return response;
     }
     let (parts, body) = response.into_parts();
-    let bytes = axum::body::to_bytes(body, 64 * 1024)
-        .await
-        .unwrap_or_default();
-    let mut replaced: Option<Value> = None;
+    let bytes = axum::body::to_bytes(body, 64 * 1024).await.unwrap_or_default();
     if is_json {
-        // Already our shape: only add the request id to server errors.
-        if let Ok(mut v) = serde_json::from_slice::<Value>(&bytes) {
-            if let Some(e) = v.get_mut("error").and_then(Value::as_object_mut) {
-                if e.get("details").is_none_or(Value::is_null) {
-                    e.insert("details".into(), json!({}));
-                }
-                if let Some(d) = e.get_mut("details").and_then(Value::as_object_mut) {
-                    d.insert("request_id".into(), json!(request_id));
-                }
-                replaced = Some(v);
-            }
+        // A JSON server error: ours gets the request id; any other (the readiness document
+        // of a 503) passes unchanged.
+        let mut v: Value = serde_json::from_slice(&bytes).unwrap_or(Value::Null);
+        let Some(e) = v.get_mut("error").and_then(Value::as_object_mut) else {
+            return Response::from_parts(parts, Body::from(bytes));
+        };
+        if e.get("details").is_none_or(Value::is_null) {
+            e.insert("details".into(), json!({}));
         }
+        if let Some(d) = e.get_mut("details").and_then(Value::as_object_mut) {
+            d.insert("request_id".into(), json!(request_id));
+        }
+        let mut r = (status, Json(v)).into_response();
+        copy_headers(&parts.headers, r.headers_mut());
+        return r;
     }
-    let body = replaced.unwrap_or_else(|| {
+    let body = {
         let text = String::from_utf8_lossy(&bytes).trim().to_string();
         let message = if status.is_server_error() {
             format!("internal error; quote request id {request_id} when reporting it")
@@ -240,14 +240,19 @@ async fn json_errors(request: Request, next: Next) -> Response {
             Value::Null
         };
         doc::error_body(code_for(status), &message, details)
-    });
+    };
     let mut response = (status, Json(body)).into_response();
-    for (name, value) in parts.headers.iter() {
+    copy_headers(&parts.headers, response.headers_mut());
+    response
+}
+
+/// Headers of a replaced reply (allow, www-authenticate, ...) without its body's framing.
+fn copy_headers(from: &axum::http::HeaderMap, to: &mut axum::http::HeaderMap) {
+    for (name, value) in from {
         if name != header::CONTENT_TYPE && name != header::CONTENT_LENGTH {
-            response.headers_mut().insert(name.clone(), value.clone());
+            to.insert(name.clone(), value.clone());
         }
     }
-    response
 }
 
 fn panic_reply(panic: Box<dyn std::any::Any + Send + 'static>) -> Response<Body> {
