@@ -204,7 +204,9 @@ async fn json_errors(request: Request, next: Next) -> Response {
         return response;
     }
     let (parts, body) = response.into_parts();
-    let bytes = axum::body::to_bytes(body, 64 * 1024).await.unwrap_or_default();
+    let bytes = axum::body::to_bytes(body, 64 * 1024)
+        .await
+        .unwrap_or_default();
     if is_json {
         // A JSON server error: ours gets the request id; any other (the readiness document
         // of a 503) passes unchanged.
