@@ -49,6 +49,8 @@ pub struct Shared {
     pub alerts_config: crate::config::AlertsConfig,
     /// Experiments defined over the API, and the archive. Lock order: catalog, then shards.
     catalog: Mutex<crate::catalog::Catalog>,
+    /// Serialises [`Shared::save_dirty`] (taken before the shards' lock).
+    save_lock: Mutex<()>,
 }
 
 impl Shared {
@@ -75,6 +77,7 @@ impl Shared {
             catalog: Mutex::new(crate::catalog::Catalog::in_memory(
                 config.experiments.iter().map(|e| e.id.clone()),
             )),
+            save_lock: Mutex::new(()),
         }
     }
 
@@ -107,6 +110,9 @@ impl Shared {
         let Some(store) = &self.store else {
             return true;
         };
+        // One save at a time: two overlapping saves of a shard could store the older image
+        // last, after the newer one had already trimmed the HTTP write-ahead log.
+        let _one_at_a_time = self.save_lock.lock().unwrap_or_else(|p| p.into_inner());
         let images: Vec<(String, crate::state::shards::ShardImage)> = {
             let mut shards = self.lock_shards();
             shards

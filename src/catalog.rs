@@ -448,7 +448,24 @@ pub fn put(shared: &Shared, id: &str, mut body: Value) -> Result<PutOutcome, Cat
     }
     drop(shards);
     *catalog = next;
+    drop(catalog);
+    if outcome.archived.is_some() {
+        save_soon(shared);
+    }
     Ok(outcome)
+}
+
+/// Store the HTTP shard now, so its write-ahead log stops holding events of the archived
+/// generation sooner than the next snapshot would: after a crash those would be replayed into
+/// the new generation (stored state of an older generation itself is never restored into a
+/// newer one). Kafka shards are left to the consumer, which must deliver dead letters before
+/// it stores an offset past them.
+fn save_soon(shared: &Shared) {
+    if !shared.save_dirty(|id| id == crate::http::HTTP_SHARD) {
+        tracing::warn!(
+            "some shards could not be saved after an archive; the next snapshot retries"
+        );
+    }
 }
 
 /// `DELETE /v1/experiments/{id}`: archive an API experiment; returns the archive number.
@@ -472,6 +489,8 @@ pub fn delete(shared: &Shared, id: &str) -> Result<u32, CatalogError> {
     shards.undefine(id);
     drop(shards);
     *catalog = next;
+    drop(catalog);
+    save_soon(shared);
     Ok(number)
 }
 

@@ -193,14 +193,14 @@ async fn json_errors(request: Request, next: Next) -> Response {
     if !(status.is_client_error() || status.is_server_error()) {
         return response;
     }
-    let is_json = response
-        .headers()
-        .get(header::CONTENT_TYPE)
-        .is_some_and(|v| v.as_bytes().starts_with(b"application/json"));
+    let ctype = response.headers().get(header::CONTENT_TYPE);
+    let is_json = ctype.is_some_and(|v| v.as_bytes().starts_with(b"application/json"));
+    // Pages for people (HTML) keep their own error pages; axum's rejections are plain text.
+    let is_page = ctype.is_some_and(|v| v.as_bytes().starts_with(b"text/html"));
     if status.is_server_error() {
         tracing::error!(request_id, %method, path, status = status.as_u16(), "request failed");
     }
-    if is_json && !status.is_server_error() {
+    if is_page || (is_json && !status.is_server_error()) {
         return response;
     }
     let (parts, body) = response.into_parts();

@@ -86,9 +86,15 @@ impl Shard {
         let mut mismatches = Vec::new();
         for e in image.experiments {
             let Some(def) = defs.iter().find(|d| d.state_key() == e.id) else {
+                let base = e.id.split('~').next().unwrap_or_default();
+                let reason = if defs.iter().any(|d| d.id == base) {
+                    "it belongs to an earlier generation of the experiment (restarted or re-created over the API; its totals are in the archive)"
+                } else {
+                    "the experiment is no longer configured"
+                };
                 mismatches.push(ImageMismatch {
                     id: e.id.clone(),
-                    reason: "the experiment is no longer configured".into(),
+                    reason: reason.into(),
                 });
                 continue;
             };

@@ -437,3 +437,38 @@ fn reordering_or_reprioring_a_running_experiment_is_refused() {
     assert!(engine.remove("crumb-checkout").is_some());
     assert!(engine.experiment("crumb-checkout").is_none());
 }
+
+/// Stored state of an older generation is not restored into a newer one with the same id.
+#[test]
+fn stored_state_of_an_earlier_generation_is_not_restored() {
+    let mut old = bakery();
+    old.generation = 1;
+    let mut shard = shards::Shard::new(&[Arc::new(old.clone())]);
+    shard.apply(&exposure("control", "a")).unwrap();
+    let image = shard.image();
+    assert_eq!(image.experiments[0].id, "crumb-checkout~1");
+    let mut new = old.clone();
+    new.generation = 2;
+    let (restored, mismatches) = shards::Shard::from_image(&[Arc::new(new)], image.clone());
+    assert!(restored
+        .engine
+        .experiment("crumb-checkout")
+        .unwrap()
+        .snapshot()
+        .is_empty());
+    assert!(
+        mismatches[0].reason.contains("earlier generation"),
+        "{}",
+        mismatches[0]
+    );
+    let (same, none) = shards::Shard::from_image(&[Arc::new(old)], image);
+    assert!(none.is_empty());
+    assert_eq!(
+        same.engine
+            .experiment("crumb-checkout")
+            .unwrap()
+            .snapshot()
+            .units,
+        [1, 0]
+    );
+}
