@@ -238,6 +238,8 @@ impl Catalog {
             let generation = e["generation"].as_u64().unwrap_or(0) as u32;
             let def = define(&id, &e["definition"], generation)
                 .map_err(|err| corrupt(format!("experiment `{id}`: {err}")))?;
+            let last = catalog.generations.entry(id.clone()).or_insert(0);
+            *last = (*last).max(generation);
             if catalog.file_ids.contains(&id) {
                 warnings.push(format!(
                     "experiment `{id}` is defined both in the config file and over the API; the config file's definition is used (the API one stays stored, unused)"

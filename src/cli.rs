@@ -198,6 +198,9 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
 fn load_config(path: &std::path::Path) -> anyhow::Result<Config> {
     let config =
         Config::load(path, &config::process_env()).map_err(|e| UsageError(e.to_string()))?;
+    // Caught here too, so `check-config` reports it before a deployment does.
+    crate::http::guard::check_exposure(&config.http, config.http.addr)
+        .map_err(|e| UsageError(format!("{}: {e}", path.display())))?;
     if let Some(kafka) = &config.kafka {
         crate::kafka::check_properties(kafka)
             .map_err(|m| UsageError(format!("{}: {m}", path.display())))?;
@@ -207,7 +210,6 @@ fn load_config(path: &std::path::Path) -> anyhow::Result<Config> {
 
 fn serve(path: &std::path::Path) -> anyhow::Result<()> {
     let config = load_config(path)?;
-    crate::http::guard::check_exposure(&config.http, config.http.addr)?;
     app::prepare_store(&config)?;
     let grace = config.shutdown_grace;
     let rt = runtime()?;

@@ -298,10 +298,19 @@ fn without_a_token_only_loopback_is_served() {
         .env_remove("POSTERIORD_API_TOKENS")
         .output()
         .unwrap();
-    assert!(!out.status.success());
+    assert_eq!(out.status.code(), Some(2), "a configuration error");
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(err.contains("refusing to listen on 0.0.0.0"), "{err}");
     assert!(err.contains("POSTERIORD_API_TOKENS"), "{err}");
+    // check-config says so before a deployment does.
+    let out = Command::new(common::bin())
+        .args(["check-config"])
+        .arg(&path)
+        .env_remove("POSTERIORD_API_TOKENS")
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("refusing to listen"));
     // Short tokens are refused with the key named and the token not shown.
     let out = Command::new(common::bin())
         .args(["check-config"])
