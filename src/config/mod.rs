@@ -370,6 +370,18 @@ impl Ctx<'_> {
             .protect_reads
             .as_ref()
             .is_some_and(|p| *p.get_ref());
+        if let Some(p) = raw.http.protect_reads.as_ref().filter(|p| *p.get_ref()) {
+            let env_tokens = env
+                .iter()
+                .any(|(k, v)| k == "POSTERIORD_API_TOKENS" && !v.trim().is_empty());
+            if tokens.is_empty() && !env_tokens {
+                return Err(self.err(
+                    p.span(),
+                    "http.protect_reads",
+                    "protecting reads needs at least one token (http.token_file or POSTERIORD_API_TOKENS)",
+                ));
+            }
+        }
         let request_timeout = match &raw.http.request_timeout_secs {
             None => std::time::Duration::from_secs(DEFAULT_REQUEST_TIMEOUT_SECS),
             Some(v) => match u64::try_from(*v.get_ref()) {

@@ -145,8 +145,28 @@ impl Shards {
         self.shards.get(id)
     }
 
-    /// Put a (restored) shard in place.
-    pub fn insert(&mut self, id: ShardId, shard: Shard) {
+    /// Put a (restored) shard in place. It was built from the definitions of a moment ago,
+    /// outside the lock; experiments defined or removed since are brought in line here, so
+    /// its events are never refused for an experiment that exists now.
+    pub fn insert(&mut self, id: ShardId, mut shard: Shard) {
+        let stale: Vec<String> = shard
+            .engine
+            .experiments()
+            .map(|e| e.def().id.clone())
+            .filter(|id| !self.defs.iter().any(|d| d.id == *id))
+            .collect();
+        for gone in stale {
+            shard.engine.remove(&gone);
+        }
+        for def in &self.defs {
+            let current = shard
+                .engine
+                .experiment(&def.id)
+                .is_some_and(|e| Arc::ptr_eq(e.def(), def));
+            if !current {
+                shard.engine.define(Arc::clone(def));
+            }
+        }
         self.shards.insert(id, shard);
     }
 

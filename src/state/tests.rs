@@ -472,3 +472,22 @@ fn stored_state_of_an_earlier_generation_is_not_restored() {
         [1, 0]
     );
 }
+
+/// A shard restored outside the lock while an experiment was defined or removed is brought in
+/// line with the definitions when it is put in place.
+#[test]
+fn an_inserted_shard_follows_the_current_definitions() {
+    let mut shards = shards::Shards::new([bakery()]);
+    let stale = shards::Shard::new(shards.defs());
+    let mut orchard = bakery();
+    orchard.id = "orchard-seed-tray".into();
+    orchard.generation = 1;
+    shards.define(orchard);
+    assert!(shards.undefine("crumb-checkout"));
+    shards.insert("kafka/exp-events/0".into(), stale);
+    let shard = shards.shard_mut("kafka/exp-events/0");
+    assert!(shard.engine.experiment("crumb-checkout").is_none());
+    let mut e = exposure("control", "a");
+    e.experiment = Cow::Borrowed("orchard-seed-tray");
+    assert_eq!(shard.apply(&e).unwrap(), Outcome::Applied);
+}
