@@ -706,6 +706,7 @@ fn schemathesis_finds_no_server_error_and_no_schema_violation() {
         "addr = \"127.0.0.1:0\"\nprotect_reads = true",
     );
     let svc = Service::start_with_env(&config, &[("POSTERIORD_API_TOKENS", TOKEN_A)]);
+    let work = tempfile::tempdir().unwrap();
     // Through Python rather than the `schemathesis` script, which pip may put off PATH.
     let out = Command::new("python3")
         .args([
@@ -725,6 +726,8 @@ fn schemathesis_finds_no_server_error_and_no_schema_violation() {
         ])
         .arg(format!("Authorization: Bearer {TOKEN_A}"))
         .env("NO_COLOR", "1")
+        // schemathesis keeps a cache in its working directory; not in the repository.
+        .current_dir(work.path())
         .output()
         .expect("schemathesis is installed by tests/run.sh");
     let report = String::from_utf8_lossy(&out.stdout);

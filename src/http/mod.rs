@@ -45,7 +45,10 @@ pub fn router(shared: Arc<Shared>, http: &crate::config::HttpConfig, auth: guard
         .route("/readyz", get(readyz))
         .route("/metrics", get(metrics))
         .route("/v1/openapi.json", get(openapi))
-        // Reads.
+        // Experiments: reads, and definitions at run time (PUT, DELETE). Further read routes
+        // (the dashboard's pages, `/v1/experiments/{id}/history`) belong in this table too:
+        // as GET routes they inherit `protect_reads`, the timeout and the JSON errors, and
+        // tests/api.rs asks for each to be described in openapi.json.
         .route("/v1/experiments", get(list_experiments))
         .route(
             "/v1/experiments/{id}",
@@ -55,7 +58,7 @@ pub fn router(shared: Arc<Shared>, http: &crate::config::HttpConfig, auth: guard
                 .delete(define::delete_experiment),
         )
         .route("/v1/alerts", get(list_alerts))
-        // Writes.
+        // Writes that are not definitions.
         .route("/v1/events", post(ingest))
         .route("/v1/alerts/{id}/ack", post(ack_alert))
         .fallback(not_found)
