@@ -400,14 +400,10 @@ pub fn put(shared: &Shared, id: &str, mut body: Value) -> Result<PutOutcome, Cat
         added_metrics: Vec::new(),
     };
     match &old {
-        Some(old) if !restart => {
-            if running {
-                if let Some(reason) = old.incompatibility(&def) {
-                    return Err(CatalogError::NeedsRestart {
-                        id: id.to_string(),
-                        reason,
-                    });
-                }
+        Some(old) if !restart => match old.incompatibility(&def) {
+            // Appends and rule changes keep the generation (so instances that receive the
+            // same bodies agree on it) and the state.
+            None => {
                 outcome.added_variants = def.variants[old.variants.len()..]
                     .iter()
                     .map(|v| v.name.clone())
@@ -417,12 +413,17 @@ pub fn put(shared: &Shared, id: &str, mut body: Value) -> Result<PutOutcome, Cat
                     .map(|m| m.name.clone())
                     .collect();
                 def.generation = old.generation;
-            } else {
-                // Nothing counted yet: any change is safe, and a fresh generation keeps
-                // stray stored state of the old shape out.
-                def.generation = last + 1;
             }
-        }
+            Some(reason) if running => {
+                return Err(CatalogError::NeedsRestart {
+                    id: id.to_string(),
+                    reason,
+                })
+            }
+            // Nothing counted yet: any change is safe, and a fresh generation keeps stored
+            // state of the old shape out.
+            Some(_) => def.generation = last + 1,
+        },
         Some(_) => {
             if let Some(s) = snapshot.filter(|s| !s.is_empty()) {
                 outcome.archived = Some(next.push_archive(s, "restarted", now));
