@@ -51,7 +51,13 @@ pub struct Shared {
     catalog: Mutex<crate::catalog::Catalog>,
     /// Serialises [`Shared::save_dirty`] (taken before the shards' lock).
     save_lock: Mutex<()>,
+    /// Publishes the catalog of API experiments to the other instances (set once the Kafka
+    /// changelog is reachable).
+    catalog_publisher: std::sync::OnceLock<CatalogPublisher>,
 }
+
+/// Sends an instance's catalog (its id, the catalog's JSON) to the other instances.
+pub type CatalogPublisher = Box<dyn Fn(&str, &[u8]) + Send + Sync>;
 
 impl Shared {
     /// Fresh shared state for `config`.
@@ -78,7 +84,18 @@ impl Shared {
                 config.experiments.iter().map(|e| e.id.clone()),
             )),
             save_lock: Mutex::new(()),
+            catalog_publisher: std::sync::OnceLock::new(),
         }
+    }
+
+    /// Where catalog changes are published (once; later calls are ignored).
+    pub fn set_catalog_publisher(&self, publisher: CatalogPublisher) {
+        let _ = self.catalog_publisher.set(publisher);
+    }
+
+    /// The catalog publisher, once the changelog is reachable.
+    pub fn catalog_publisher(&self) -> Option<&CatalogPublisher> {
+        self.catalog_publisher.get()
     }
 
     /// The catalog of API experiments (taken before the shards when both are needed).

@@ -9,8 +9,9 @@
 //! as ingest can tell. Config-file experiments are never stored here; on an id clash the
 //! file's definition wins.
 //!
-//! With several instances (Kafka), definitions are kept per instance: a `PUT` on one is not
-//! seen by the others (docs/api.md says so).
+//! With several instances (Kafka), each publishes its catalog (without archives) on the
+//! changelog topic after every change and adopts the others' per experiment, the newer
+//! definition winning and a deletion winning over older definitions (see [`adopt`]).
 
 use std::collections::{BTreeMap, BTreeSet};
 use std::path::{Path, PathBuf};
@@ -105,6 +106,15 @@ pub struct Catalog {
     /// Last generation used per id; survives deletion so a re-created experiment never picks
     /// up stored state of an older one.
     generations: BTreeMap<String, u32>,
+    /// When each id was last deleted (µs): a definition from another instance that is older
+    /// than the deletion does not bring it back.
+    deleted: BTreeMap<String, i64>,
+    /// This instance's name on the changelog (random, kept with the catalog).
+    instance: String,
+}
+
+fn new_instance_id() -> String {
+    format!("{:016x}", rand::random::<u64>())
 }
 
 /// What a `PUT` did.
@@ -195,6 +205,7 @@ impl Catalog {
     pub fn in_memory(file_ids: impl IntoIterator<Item = String>) -> Catalog {
         Catalog {
             file_ids: file_ids.into_iter().collect(),
+            instance: new_instance_id(),
             ..Catalog::default()
         }
     }
@@ -226,11 +237,19 @@ impl Catalog {
         }
         let mut defs = Vec::new();
         let mut warnings = Vec::new();
+        if let Some(i) = doc["instance"].as_str() {
+            catalog.instance = i.to_string();
+        }
         if let Some(g) = doc["generations"].as_object() {
             for (id, n) in g {
                 catalog
                     .generations
                     .insert(id.clone(), n.as_u64().unwrap_or(0) as u32);
+            }
+        }
+        if let Some(d) = doc["deleted"].as_object() {
+            for (id, at) in d {
+                catalog.deleted.insert(id.clone(), at.as_i64().unwrap_or(0));
             }
         }
         for e in doc["experiments"].as_array().into_iter().flatten() {
@@ -303,7 +322,19 @@ impl Catalog {
                 "totals": totals_json(&a.snapshot),
             })).collect::<Vec<_>>(),
             "generations": self.generations,
+            "deleted": self.deleted,
+            "instance": self.instance,
         })
+    }
+
+    /// What other instances are sent: definitions, deletions and generations (archives hold
+    /// this instance's totals and stay here).
+    fn wire(&self) -> Value {
+        let mut v = self.to_json();
+        if let Some(m) = v.as_object_mut() {
+            m.remove("archived");
+        }
+        v
     }
 
     fn save(&self) -> Result<(), StoreError> {
@@ -455,6 +486,7 @@ pub fn put(shared: &Shared, id: &str, mut body: Value) -> Result<PutOutcome, Cat
     if outcome.archived.is_some() {
         save_soon(shared);
     }
+    publish(shared);
     Ok(outcome)
 }
 
@@ -488,18 +520,201 @@ pub fn delete(shared: &Shared, id: &str) -> Result<u32, CatalogError> {
     let mut next = catalog.clone();
     let number = next.push_archive(snapshot, "deleted", now);
     next.active.remove(id);
+    next.deleted.insert(id.to_string(), now);
     next.save()?;
     shards.undefine(id);
     drop(shards);
     *catalog = next;
     drop(catalog);
     save_soon(shared);
+    publish(shared);
     Ok(number)
+}
+
+/// Send the catalog to the other instances (with Kafka; waits for delivery).
+pub fn publish(shared: &Shared) {
+    let Some(publisher) = shared.catalog_publisher() else {
+        return;
+    };
+    let (instance, wire) = {
+        let c = shared.lock_catalog();
+        if c.active.is_empty() && c.deleted.is_empty() {
+            // Nothing was ever defined here: nothing for others to learn.
+            return;
+        }
+        (c.instance.clone(), c.wire())
+    };
+    let bytes = serde_json::to_vec(&wire).expect("JSON values serialize");
+    if bytes.len() > crate::changelog::MAX_CATALOG_BYTES {
+        tracing::error!(
+            bytes = bytes.len(),
+            "the experiment catalog is too large to publish; other instances do not see its changes"
+        );
+        return;
+    }
+    publisher(&instance, &bytes);
+}
+
+/// One experiment as another instance sent it.
+struct RemoteEntry {
+    id: String,
+    entry: Entry,
+}
+
+/// Adopt what another instance published (`bytes`): per id, the newer of its definition and
+/// ours wins (by `updated_at`), and a deletion wins over older definitions. State this
+/// instance counted under a definition that is replaced by another generation, or deleted,
+/// is archived here first. Our own publications come back too and change nothing.
+pub fn adopt(shared: &Shared, bytes: &[u8]) {
+    let Ok(doc) = serde_json::from_slice::<Value>(bytes) else {
+        tracing::warn!("ignoring an unreadable experiment catalog on the changelog");
+        return;
+    };
+    if doc["version"].as_u64() != Some(FORMAT_VERSION) {
+        tracing::warn!(version = %doc["version"], "ignoring an experiment catalog of an unknown version");
+        return;
+    }
+    let remote: Vec<RemoteEntry> = doc["experiments"]
+        .as_array()
+        .into_iter()
+        .flatten()
+        .filter_map(|e| {
+            Some(RemoteEntry {
+                id: e["id"].as_str()?.to_string(),
+                entry: Entry {
+                    generation: e["generation"].as_u64()? as u32,
+                    definition: e["definition"].clone(),
+                    created_at: e["created_at"].as_i64().unwrap_or(0),
+                    updated_at: e["updated_at"].as_i64()?,
+                },
+            })
+        })
+        .collect();
+    let now = crate::app::now_micros();
+    let mut catalog = shared.lock_catalog();
+    let mut shards = shared.lock_shards();
+    let mut next = catalog.clone();
+    let mut changed = false;
+    if let Some(g) = doc["generations"].as_object() {
+        for (id, n) in g {
+            let n = n.as_u64().unwrap_or(0) as u32;
+            let last = next.generations.entry(id.clone()).or_insert(0);
+            if n > *last {
+                *last = n;
+                changed = true;
+            }
+        }
+    }
+    for r in remote {
+        let newer = match next.active.get(&r.id) {
+            Some(l) => r.entry.updated_at > l.updated_at,
+            None => next
+                .deleted
+                .get(&r.id)
+                .is_none_or(|&d| r.entry.updated_at > d),
+        };
+        if !newer {
+            continue;
+        }
+        let def = match define(&r.id, &r.entry.definition, r.entry.generation) {
+            Ok(d) => d,
+            Err(e) => {
+                tracing::warn!(experiment = %r.id, error = %e, "ignoring another instance's definition");
+                continue;
+            }
+        };
+        changed = true;
+        let shadowed = next.file_ids.contains(&r.id);
+        if !shadowed {
+            let local_gen = next.active.get(&r.id).map(|l| l.generation);
+            if local_gen.is_some_and(|g| g != def.generation) {
+                if let Some(s) = shards.snapshot(&r.id).filter(|s| !s.is_empty()) {
+                    next.push_archive(s, "restarted", now);
+                }
+            }
+            tracing::info!(experiment = %r.id, generation = def.generation, "experiment defined on another instance");
+            for (shard, m) in shards.define(def) {
+                tracing::error!(%shard, "{m}; that experiment starts empty in this shard");
+            }
+        }
+        next.active.insert(r.id, r.entry);
+    }
+    for (id, at) in doc["deleted"].as_object().into_iter().flatten() {
+        let at = at.as_i64().unwrap_or(0);
+        if next.deleted.get(id).is_some_and(|&d| d >= at) {
+            continue;
+        }
+        next.deleted.insert(id.clone(), at);
+        changed = true;
+        if next.active.get(id).is_some_and(|l| l.updated_at < at) {
+            if !next.file_ids.contains(id) {
+                if let Some(s) = shards.snapshot(id) {
+                    next.push_archive(s, "deleted", now);
+                }
+                shards.undefine(id);
+                tracing::info!(experiment = %id, "experiment deleted on another instance");
+            }
+            next.active.remove(id);
+        }
+    }
+    if !changed {
+        return;
+    }
+    if let Err(e) = next.save() {
+        tracing::error!(error = %e, "cannot store the experiment catalog adopted from another instance; it holds until the next start");
+    }
+    drop(shards);
+    *catalog = next;
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn shared() -> Shared {
+        Shared::new(&crate::config::Config::parse("", "t.toml", &[]).unwrap())
+    }
+
+    fn wire(s: &Shared) -> Vec<u8> {
+        serde_json::to_vec(&s.lock_catalog().wire()).unwrap()
+    }
+
+    /// Per id the newer definition wins, a deletion wins over older definitions, and
+    /// adopting one's own catalog again changes nothing.
+    #[test]
+    fn catalogs_merge_newest_first_and_deletions_stick() {
+        let (a, b) = (shared(), shared());
+        let body = json!({"variants": [{"name": "control"}, {"name": "tray"}],
+                          "metric": [{"name": "plant", "kind": "conversion"}]});
+        put(&a, "orchard-seed-tray", body.clone()).unwrap();
+        let first = wire(&a);
+        adopt(&b, &first);
+        let def = b
+            .lock_shards()
+            .defs()
+            .iter()
+            .find(|d| d.id == "orchard-seed-tray")
+            .cloned();
+        assert_eq!(def.unwrap().generation, 1);
+        adopt(&b, &wire(&b));
+        assert!(b.lock_catalog().is_api("orchard-seed-tray"));
+        delete(&a, "orchard-seed-tray").unwrap();
+        adopt(&b, &wire(&a));
+        assert!(!b.lock_shards().has_experiment("orchard-seed-tray"));
+        // The older definition arriving late does not bring it back.
+        adopt(&b, &first);
+        assert!(!b.lock_shards().has_experiment("orchard-seed-tray"));
+        // A newer definition does, under a newer generation.
+        put(&a, "orchard-seed-tray", body).unwrap();
+        adopt(&b, &wire(&a));
+        let def = b
+            .lock_shards()
+            .defs()
+            .iter()
+            .find(|d| d.id == "orchard-seed-tray")
+            .cloned();
+        assert_eq!(def.unwrap().generation, 2);
+    }
 
     #[test]
     fn totals_survive_their_json_form() {

@@ -749,3 +749,114 @@ fn schemathesis_finds_no_server_error_and_no_schema_violation() {
     assert!(!svc.log_text().contains(TOKEN_A), "a token reached the log");
     println!("{tail}");
 }
+
+fn kafka_rejects(svc: &Service) -> u64 {
+    let (_, text) = svc.get_text("/metrics");
+    text.lines()
+        .filter(|l| l.starts_with("posteriord_events_rejected_total{") && l.contains("kafka"))
+        .map(|l| l.rsplit(' ').next().unwrap().parse::<u64>().unwrap())
+        .sum()
+}
+
+/// Two instances in one consumer group (real broker): experiments defined over the API on
+/// one reach the other through the changelog, so their events are counted on every partition
+/// and none is refused; a third instance that starts later learns them before consuming; a
+/// deletion travels the same way and archives the state where it is held.
+#[test]
+fn definitions_travel_between_instances_on_the_changelog() {
+    use common::kafka::{brokers, produce, unique};
+    let brokers = brokers();
+    let topic = unique("api-events");
+    let group = unique("api-group");
+    let scratch = tempfile::tempdir().unwrap();
+    let seed = [exposure("crumb-checkout-copy", "control", "s-0").to_string()];
+    assert_eq!(produce(&brokers, &topic, 4, &seed, scratch.path()), 1);
+    let experiments = CONFIG.split("[[experiment]]").nth(1).unwrap();
+    let config = format!(
+        r#"[http]
+addr = "127.0.0.1:0"
+[store]
+snapshot_interval_ms = 300
+[kafka]
+brokers = "{brokers}"
+topics = ["{topic}"]
+group = "{group}"
+changelog_interval_ms = 300
+[kafka.properties]
+"session.timeout.ms" = 6000
+"heartbeat.interval.ms" = 1000
+[[experiment]]{experiments}"#
+    );
+    let dir = |i: usize| scratch.path().join(format!("state-{i}"));
+    let a = Service::start_in(&config, Some(&dir(0)), &[]);
+    let b = Service::start_in(&config, Some(&dir(1)), &[]);
+    for s in [&a, &b] {
+        common::wait_for(Duration::from_secs(60), "readiness", || {
+            (s.get("/readyz").0 == 200).then_some(())
+        });
+    }
+    let ids: Vec<String> = (0..4).map(|i| format!("orchard-tray-{i}")).collect();
+    let mut api_a = Api::new(a, None);
+    for id in &ids {
+        let r = api_a.call(
+            "PUT",
+            "/v1/experiments/{id}",
+            &format!("/v1/experiments/{id}"),
+            Some(seed_tray(&["control", "tray"], &[("plant", "conversion")]).to_string()),
+        );
+        assert_eq!(r.status, 201, "{}", r.body);
+    }
+    for id in &ids {
+        common::wait_for(
+            Duration::from_secs(30),
+            "the definition on the other instance",
+            || (b.get(&format!("/v1/experiments/{id}")).0 == 200).then_some(()),
+        );
+    }
+    // Events keyed by experiment id spread the four experiments over the partitions.
+    let lines: Vec<String> = ids
+        .iter()
+        .flat_map(|id| {
+            (0..10).map(move |u| {
+                let v = if u % 2 == 0 { "control" } else { "tray" };
+                exposure(id, v, &format!("g-{u}")).to_string()
+            })
+        })
+        .collect();
+    assert_eq!(produce(&brokers, &topic, 4, &lines, scratch.path()), 40);
+    for s in [&api_a.svc, &b] {
+        for id in &ids {
+            common::wait_for(Duration::from_secs(60), "every event counted", || {
+                let (_, d) = s.get(&format!("/v1/experiments/{id}"));
+                (d["variants"][0]["units"] == 5 && d["variants"][1]["units"] == 5).then_some(())
+            });
+        }
+        assert_eq!(kafka_rejects(s), 0, "no event refused");
+    }
+    // A later instance learns the definitions before it consumes anything.
+    let c = Service::start_in(&config, Some(&dir(2)), &[]);
+    common::wait_for(
+        Duration::from_secs(60),
+        "the third instance's catalog",
+        || (c.get(&format!("/v1/experiments/{}", ids[0])).0 == 200).then_some(()),
+    );
+    // A deletion on B reaches A, which archives what it held.
+    let r = client()
+        .delete(b.url(&format!("/v1/experiments/{}", ids[3])))
+        .send()
+        .unwrap();
+    assert_eq!(r.status().as_u16(), 200);
+    common::wait_for(
+        Duration::from_secs(30),
+        "the deletion on the other instance",
+        || (api_a.svc.get(&format!("/v1/experiments/{}", ids[3])).0 == 404).then_some(()),
+    );
+    let (_, archived) = api_a.svc.get("/v1/experiments?archived=true");
+    assert!(archived["experiments"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|e| e["id"] == ids[3].as_str()));
+    assert_eq!(kafka_rejects(&c), 0);
+    api_a.check_schemas();
+}
