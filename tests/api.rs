@@ -1,5 +1,6 @@
 //! The HTTP API over real HTTP against the real binary: bearer tokens, the one error shape,
-//! limits and timeouts, experiments defined at run time (and kept across a restart), and
+//! limits and timeouts, experiments defined at run time (kept across a restart, carried to
+//! other instances by the changelog on a real broker), and
 //! the OpenAPI document — every route described (checked against the router's source), every
 //! recorded reply validated against its schema by the independent Python `jsonschema`
 //! package, and schemathesis (PyPI) fuzzing a running instance.
