@@ -12,7 +12,7 @@
 
 use std::alloc::{GlobalAlloc, Layout, System};
 use std::borrow::Cow;
-use std::io::{BufRead, Read, Write};
+use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::sync::atomic::{AtomicUsize, Ordering};

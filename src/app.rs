@@ -50,7 +50,17 @@ pub struct Shared {
     /// Decision quantities over time, recorded at each evaluation (bounded; stored with a
     /// store).
     pub history: crate::http::history::Recorder,
+    /// Experiments defined over the API, and the archive. Lock order: catalog, then shards.
+    catalog: Mutex<crate::catalog::Catalog>,
+    /// Serialises [`Shared::save_dirty`] (taken before the shards' lock).
+    save_lock: Mutex<()>,
+    /// Publishes the catalog of API experiments to the other instances (set once the Kafka
+    /// changelog is reachable).
+    catalog_publisher: std::sync::OnceLock<CatalogPublisher>,
 }
+
+/// Sends an instance's catalog (its id, the catalog's JSON) to the other instances.
+pub type CatalogPublisher = Box<dyn Fn(&str, &[u8]) + Send + Sync>;
 
 impl Shared {
     /// Fresh shared state for `config`.
@@ -74,7 +84,27 @@ impl Shared {
             alert_file: None,
             alerts_config: config.alerts.clone(),
             history: crate::http::history::Recorder::in_memory(),
+            catalog: Mutex::new(crate::catalog::Catalog::in_memory(
+                config.experiments.iter().map(|e| e.id.clone()),
+            )),
+            save_lock: Mutex::new(()),
+            catalog_publisher: std::sync::OnceLock::new(),
         }
+    }
+
+    /// Where catalog changes are published (once; later calls are ignored).
+    pub fn set_catalog_publisher(&self, publisher: CatalogPublisher) {
+        let _ = self.catalog_publisher.set(publisher);
+    }
+
+    /// The catalog publisher, once the changelog is reachable.
+    pub fn catalog_publisher(&self) -> Option<&CatalogPublisher> {
+        self.catalog_publisher.get()
+    }
+
+    /// The catalog of API experiments (taken before the shards when both are needed).
+    pub fn lock_catalog(&self) -> MutexGuard<'_, crate::catalog::Catalog> {
+        self.catalog.lock().unwrap_or_else(|p| p.into_inner())
     }
 
     /// Whether any partition is being restored.
@@ -101,6 +131,9 @@ impl Shared {
         let Some(store) = &self.store else {
             return true;
         };
+        // One save at a time: two overlapping saves of a shard could store the older image
+        // last, after the newer one had already trimmed the HTTP write-ahead log.
+        let _one_at_a_time = self.save_lock.lock().unwrap_or_else(|p| p.into_inner());
         let images: Vec<(String, crate::state::shards::ShardImage)> = {
             let mut shards = self.lock_shards();
             shards
@@ -501,6 +534,23 @@ pub async fn run(
         shared.history =
             crate::http::history::Recorder::restore(&config.store.dir, &config.experiments)
                 .context("cannot open the stored history (store.dir)")?;
+        // API experiments join before any stored state is read, so their state restores.
+        let (catalog, defs, warnings) = crate::catalog::Catalog::load(
+            &config.store.dir,
+            config.experiments.iter().map(|e| e.id.clone()),
+        )
+        .context("cannot read the experiments defined over the API")?;
+        for w in warnings {
+            tracing::warn!("{w}");
+        }
+        if !defs.is_empty() {
+            tracing::info!(experiments = defs.len(), "experiments defined over the API");
+        }
+        let shards = shared.shards.get_mut().unwrap_or_else(|p| p.into_inner());
+        for def in defs {
+            shards.define(def);
+        }
+        shared.catalog = Mutex::new(catalog);
     }
     let shared = Arc::new(shared);
     // Events posted over HTTP are kept in their own shard: stored on the snapshot cadence,
@@ -555,7 +605,8 @@ pub async fn run(
             shutdown.clone(),
         ));
     }
-    let router = crate::http::router(Arc::clone(&shared), config.http.max_body_bytes);
+    let auth = crate::http::guard::Auth::new(&config.http, listener.local_addr()?)?;
+    let router = crate::http::router(Arc::clone(&shared), &config.http, auth);
     let served = crate::http::serve(listener, router, shutdown.clone()).await;
     // If the server stopped on its own (an accept error), the other tasks must stop too.
     shutdown.cancel();

@@ -67,6 +67,19 @@ pub enum ChangelogError {
     },
 }
 
+/// Key prefix of the catalogs of experiments defined over the API: each instance publishes
+/// its catalog under `posteriord-catalog/<instance>` on changelog partition 0, and compaction
+/// keeps the newest per instance; readers merge them all. Without `@`/`#`, such a key never
+/// parses as a shard chunk key.
+pub const CATALOG_KEY: &str = "posteriord-catalog";
+
+fn is_catalog_key(key: &[u8]) -> bool {
+    key.starts_with(CATALOG_KEY.as_bytes())
+}
+
+/// Largest catalog message, below the common 1 MB message limit.
+pub const MAX_CATALOG_BYTES: usize = 900 * 1024;
+
 fn key(shard: &str, generation: i64, chunk: u32) -> String {
     format!("{shard}@{generation:020}#{chunk}")
 }
@@ -98,10 +111,19 @@ impl Generation {
 #[derive(Debug, Default)]
 pub struct PartitionContents {
     shards: HashMap<String, BTreeMap<i64, Generation>>,
+    /// The newest catalog message of each instance that published one.
+    pub catalogs: BTreeMap<Vec<u8>, Vec<u8>>,
 }
 
 impl PartitionContents {
     fn apply(&mut self, key: &[u8], value: Option<&[u8]>) {
+        if is_catalog_key(key) {
+            match value {
+                Some(v) => self.catalogs.insert(key.to_vec(), v.to_vec()),
+                None => self.catalogs.remove(key),
+            };
+            return;
+        }
         let Some((shard, generation, chunk)) = std::str::from_utf8(key).ok().and_then(parse_key)
         else {
             return;
@@ -270,6 +292,18 @@ impl Changelog {
         Ok(())
     }
 
+    /// Publish `instance`'s catalog of API experiments (`bytes`, its JSON) and wait for
+    /// delivery.
+    pub fn publish_catalog(&self, instance: &str, bytes: &[u8]) -> Result<(), ChangelogError> {
+        let err = |source| ChangelogError::Kafka {
+            topic: self.topic.clone(),
+            source,
+        };
+        let key = format!("{CATALOG_KEY}/{instance}");
+        self.send(&key, Some(bytes), 0).map_err(err)?;
+        self.producer.flush(PUBLISH_TIMEOUT).map_err(err)
+    }
+
     fn send(&self, key: &str, value: Option<&[u8]>, partition: i32) -> Result<(), KafkaError> {
         let mut record: BaseRecord<'_, str, [u8]> =
             BaseRecord::to(&self.topic).key(key).partition(partition);
@@ -413,6 +447,12 @@ pub fn follow(
             continue;
         };
         let Some(k) = m.key() else { continue };
+        if is_catalog_key(k) {
+            if let Some(bytes) = m.payload() {
+                crate::catalog::adopt(shared, bytes);
+            }
+            continue;
+        }
         let Some((shard, generation, _)) = std::str::from_utf8(k).ok().and_then(parse_key) else {
             continue;
         };

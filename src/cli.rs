@@ -143,8 +143,17 @@ async fn cancel_on_signal(token: CancellationToken) {
 fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> anyhow::Result<()> {
     let config = Config {
         http: HttpConfig {
-            addr,
-            max_body_bytes: config::DEFAULT_MAX_BODY_BYTES,
+            // The demo accepts tokens like `serve` does, so it can be shown beyond loopback.
+            tokens: config::ApiTokens(
+                std::env::var("POSTERIORD_API_TOKENS")
+                    .unwrap_or_default()
+                    .split(',')
+                    .map(str::trim)
+                    .filter(|t| !t.is_empty())
+                    .map(String::from)
+                    .collect(),
+            ),
+            ..HttpConfig::on(addr)
         },
         kafka: None,
         store: StoreConfig {
@@ -191,6 +200,9 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
 fn load_config(path: &std::path::Path) -> anyhow::Result<Config> {
     let config =
         Config::load(path, &config::process_env()).map_err(|e| UsageError(e.to_string()))?;
+    // Caught here too, so `check-config` reports it before a deployment does.
+    crate::http::guard::check_exposure(&config.http, config.http.addr)
+        .map_err(|e| UsageError(format!("{}: {e}", path.display())))?;
     if let Some(kafka) = &config.kafka {
         crate::kafka::check_properties(kafka)
             .map_err(|m| UsageError(format!("{}: {m}", path.display())))?;

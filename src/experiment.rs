@@ -18,6 +18,10 @@ pub const MAX_METRICS: usize = 64;
 pub struct ExperimentDef {
     /// Stable identifier used in events, URLs and metric labels.
     pub id: String,
+    /// How many times an experiment with this id was restarted or re-created at run time (0
+    /// for config-file experiments). Stored state is keyed by it, so state kept from an older
+    /// generation never lands in a newer one with the same id.
+    pub generation: u32,
     /// Index into `variants` of the arm every other arm is compared against.
     pub control: usize,
     /// The arms, in configuration order (the order the API reports them in).
@@ -127,6 +131,58 @@ impl ExperimentDef {
     /// Index of the metric called `name`, if any.
     pub fn metric_index(&self, name: &str) -> Option<usize> {
         self.metrics.iter().position(|m| m.name == name)
+    }
+
+    /// The key stored state is filed under: the id for generation 0, else `id~generation`
+    /// (`~` cannot occur in an id, so the two never collide).
+    pub fn state_key(&self) -> String {
+        if self.generation == 0 {
+            self.id.clone()
+        } else {
+            format!("{}~{}", self.id, self.generation)
+        }
+    }
+
+    /// Why state counted under `self` cannot carry over to `new` (same id), if it cannot.
+    ///
+    /// State carries over when `new` keeps every variant and metric of `self` in the same
+    /// order (unit slots store variant indices and conversion-flag positions) with the same
+    /// kind and priors (a changed prior would silently re-read every count already made), and
+    /// only appends variants or metrics. Weights, control and rules may change freely.
+    pub fn incompatibility(&self, new: &ExperimentDef) -> Option<String> {
+        if new.variants.len() < self.variants.len() {
+            return Some("variants cannot be removed from a running experiment".into());
+        }
+        for (i, (a, b)) in self.variants.iter().zip(&new.variants).enumerate() {
+            if a.name != b.name {
+                return Some(format!(
+                    "variant #{i} was `{}` and is now `{}`; variants of a running experiment keep their order and only new ones may be appended",
+                    a.name, b.name
+                ));
+            }
+        }
+        if new.metrics.len() < self.metrics.len() {
+            return Some("metrics cannot be removed from a running experiment".into());
+        }
+        for (i, (a, b)) in self.metrics.iter().zip(&new.metrics).enumerate() {
+            if a.name != b.name {
+                return Some(format!(
+                    "metric #{i} was `{}` and is now `{}`; metrics of a running experiment keep their order and only new ones may be appended",
+                    a.name, b.name
+                ));
+            }
+            if a.kind != b.kind {
+                return Some(format!("metric `{}` changes its kind or exposure", a.name));
+            }
+            if a.prior != b.prior {
+                return Some(format!("metric `{}` changes its prior", a.name));
+            }
+            let old_priors = (0..self.variants.len()).map(|v| a.prior_for(v));
+            if !old_priors.eq((0..self.variants.len()).map(|v| b.prior_for(v))) {
+                return Some(format!("metric `{}` changes a variant prior", a.name));
+            }
+        }
+        None
     }
 }
 

@@ -518,7 +518,8 @@ mod tests {
 
     fn def(variants: &[&str]) -> Arc<ExperimentDef> {
         Arc::new(ExperimentDef {
-            id: "orchard-seed-packets".into(),
+            id: "orchard-bulb-packets".into(),
+            generation: 0,
             control: 0,
             variants: variants
                 .iter()

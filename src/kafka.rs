@@ -519,7 +519,27 @@ pub fn start(
             match handle.block_on(Changelog::open(&kafka_cfg, &kafka_cfg.changelog_topic, partitions)) {
                 Ok(c) => {
                     tracing::info!(topic = c.topic(), partitions = c.n_partitions(), "changelog ready");
+                    // Experiments defined over the API on other instances, before any event
+                    // is consumed (an unknown experiment's events would be refused).
+                    match c.read_partition(0) {
+                        Ok(contents) => {
+                            for bytes in contents.catalogs.values() {
+                                crate::catalog::adopt(&shared, bytes);
+                            }
+                        }
+                        Err(e) => tracing::error!(error = %e, "cannot read the experiment catalog from the changelog; using the local one"),
+                    }
                     let _ = changelog.set(c);
+                    let published = Arc::clone(&changelog);
+                    shared.set_catalog_publisher(Box::new(move |instance, bytes| {
+                        if let Some(c) = published.get() {
+                            if let Err(e) = c.publish_catalog(instance, bytes) {
+                                tracing::error!(error = %e, "cannot publish the experiment catalog; other instances learn of the change at its next publication");
+                            }
+                        }
+                    }));
+                    // Ours may hold changes made while the changelog was out of reach.
+                    crate::catalog::publish(&shared);
                 }
                 Err(e) => {
                     if !logged {

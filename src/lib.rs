@@ -12,6 +12,7 @@
 
 pub mod alerting;
 pub mod app;
+pub mod catalog;
 pub mod changelog;
 pub mod cli;
 pub mod compare;

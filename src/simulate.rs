@@ -96,6 +96,7 @@ pub fn demo_scenarios() -> Vec<Scenario> {
         Scenario {
             def: ExperimentDef {
                 id: "crumb-checkout-copy".into(),
+                generation: 0,
                 control: 0,
                 variants: variants(&[("control", 0.5), ("short-copy", 0.5)]),
                 metrics: vec![
@@ -119,6 +120,7 @@ pub fn demo_scenarios() -> Vec<Scenario> {
         Scenario {
             def: ExperimentDef {
                 id: "crumb-delivery-banner".into(),
+                generation: 0,
                 control: 0,
                 variants: variants(&[
                     ("control", 0.34),
@@ -134,6 +136,7 @@ pub fn demo_scenarios() -> Vec<Scenario> {
         Scenario {
             def: ExperimentDef {
                 id: "orchard-new-renderer".into(),
+                generation: 0,
                 control: 0,
                 variants: variants(&[("control", 0.5), ("new-renderer", 0.5)]),
                 metrics: vec![
@@ -157,6 +160,7 @@ pub fn demo_scenarios() -> Vec<Scenario> {
         Scenario {
             def: ExperimentDef {
                 id: "orchard-watering-reminder".into(),
+                generation: 0,
                 control: 0,
                 variants: variants(&[("control", 0.5), ("evening-reminder", 0.5)]),
                 metrics: vec![metric("plant-logged", MetricKind::Conversion, UNIFORM, 2)],

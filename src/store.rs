@@ -85,21 +85,7 @@ impl Store {
 
     /// Atomically replace the stored state of shard `id` with `image`.
     pub fn save(&self, id: &str, image: &ShardImage) -> Result<(), StoreError> {
-        let path = self.path(id);
-        let tmp = path.with_extension("state.tmp");
-        {
-            let f = File::create(&tmp).map_err(io_err(&tmp))?;
-            let f = write_image(image, io::BufWriter::with_capacity(1 << 20, f))
-                .and_then(|w| w.into_inner().map_err(io::IntoInnerError::into_error))
-                .map_err(io_err(&tmp))?;
-            f.sync_all().map_err(io_err(&tmp))?;
-        }
-        fs::rename(&tmp, &path).map_err(io_err(&path))?;
-        // The rename is durable only once the directory entry is.
-        File::open(&self.dir)
-            .and_then(|d| d.sync_all())
-            .map_err(io_err(&self.dir))?;
-        Ok(())
+        write_atomic_with(&self.path(id), |w| write_image(image, w).map(|_| ()))
     }
 
     /// The stored state of shard `id`, if any, rebuilt over `defs`.
@@ -123,6 +109,41 @@ impl Store {
         let (shard, mismatches) = Shard::from_image(defs, image);
         Ok(Some(Loaded { shard, mismatches }))
     }
+}
+
+/// Replace the file at `path` with `bytes` atomically: write a temporary file beside it,
+/// fsync, rename over, fsync the directory. After a crash the file holds the old or the new
+/// bytes, never a mix.
+pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<(), StoreError> {
+    write_atomic_with(path, |w| w.write_all(bytes))
+}
+
+/// [`write_atomic`] with the content streamed by `write` through a buffer, so a large state
+/// is never held twice in memory (encoded and live).
+fn write_atomic_with(
+    path: &Path,
+    write: impl FnOnce(&mut io::BufWriter<File>) -> io::Result<()>,
+) -> Result<(), StoreError> {
+    let mut tmp = path.as_os_str().to_owned();
+    tmp.push(".tmp");
+    let tmp = PathBuf::from(tmp);
+    {
+        let f = File::create(&tmp).map_err(io_err(&tmp))?;
+        let mut w = io::BufWriter::with_capacity(1 << 20, f);
+        write(&mut w).map_err(io_err(&tmp))?;
+        let f = w
+            .into_inner()
+            .map_err(io::IntoInnerError::into_error)
+            .map_err(io_err(&tmp))?;
+        f.sync_all().map_err(io_err(&tmp))?;
+    }
+    fs::rename(&tmp, path).map_err(io_err(path))?;
+    // The rename is durable only once the directory entry is.
+    let dir = path.parent().unwrap_or(Path::new("."));
+    File::open(dir)
+        .and_then(|d| d.sync_all())
+        .map_err(io_err(dir))?;
+    Ok(())
 }
 
 /// One logged event: its sequence number and encoded bytes.

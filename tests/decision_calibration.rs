@@ -20,6 +20,7 @@ use rand_distr::{Binomial, Distribution};
 fn def() -> Arc<ExperimentDef> {
     Arc::new(ExperimentDef {
         id: "crumb-reviews-widget".into(),
+        generation: 0,
         control: 0,
         variants: ["control", "widget"]
             .iter()

@@ -80,11 +80,12 @@ fn check_config(toml: &str, what: &str) {
     let path = dir.path().join("posteriord.toml");
     std::fs::write(&path, toml).unwrap();
     // check-config sees the same environment as serve; the documented SASL examples take
-    // their password from it.
+    // their password from it, and the kit's API token comes from it too.
     let out = Command::new(common::bin())
         .arg("check-config")
         .arg(&path)
         .env("POSTERIORD_KAFKA_PROP_SASL_PASSWORD", "test-only")
+        .env("POSTERIORD_API_TOKENS", "deploy-test-only-token-0123")
         .output()
         .unwrap();
     assert!(

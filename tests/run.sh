@@ -19,6 +19,8 @@ CONFLUENT_KAFKA_VERSION=2.16.1
 MPMATH_VERSION=1.3.0
 SCIPY_VERSION=1.17.1
 PYYAML_VERSION=6.0.3
+SCHEMATHESIS_VERSION=4.32.5
+JSONSCHEMA_VERSION=4.26.0
 CARGO_FUZZ_VERSION=0.13.2
 
 step() { printf '\n==> %s\n' "$*"; }
@@ -43,6 +45,10 @@ pip_install confluent_kafka "confluent-kafka==$CONFLUENT_KAFKA_VERSION"
 pip_install mpmath "mpmath==$MPMATH_VERSION"
 pip_install scipy "scipy==$SCIPY_VERSION"
 pip_install yaml "PyYAML==$PYYAML_VERSION"
+# tests/api.rs: schemathesis fuzzes the OpenAPI document of a running instance; jsonschema
+# (also one of its dependencies) checks the replies the API tests recorded.
+pip_install schemathesis "schemathesis==$SCHEMATHESIS_VERSION"
+pip_install jsonschema "jsonschema==$JSONSCHEMA_VERSION"
 
 # tests/deploy.rs: promtool (Debian's prometheus package) and systemd-analyze.
 APT_UPDATED=""

@@ -4,7 +4,10 @@
 //! Every error names the key and, for file values, the line, so that `check-config` can point
 //! an operator at the exact spot.
 
+mod json;
 mod raw;
+
+pub use json::{experiment_from_json, BODY_ORIGIN};
 
 use std::collections::BTreeMap;
 use std::fmt;
@@ -127,6 +130,57 @@ pub struct HttpConfig {
     pub addr: SocketAddr,
     /// Largest accepted request body.
     pub max_body_bytes: usize,
+    /// Bearer tokens that authorise writes (and reads with `protect_reads`): the lines of
+    /// `http.token_file` plus `POSTERIORD_API_TOKENS`.
+    pub tokens: ApiTokens,
+    /// Whether reads need a token too.
+    pub protect_reads: bool,
+    /// Longest a request may take, body included, before it is answered 408.
+    pub request_timeout: std::time::Duration,
+}
+
+impl HttpConfig {
+    /// Defaults on `addr`: no token, open reads (see `DEFAULT_REQUEST_TIMEOUT_SECS`).
+    pub fn on(addr: SocketAddr) -> HttpConfig {
+        HttpConfig {
+            addr,
+            max_body_bytes: DEFAULT_MAX_BODY_BYTES,
+            tokens: ApiTokens::default(),
+            protect_reads: false,
+            request_timeout: std::time::Duration::from_secs(DEFAULT_REQUEST_TIMEOUT_SECS),
+        }
+    }
+}
+
+/// Default request timeout: generous for a 16 MiB event batch on a slow link.
+pub const DEFAULT_REQUEST_TIMEOUT_SECS: u64 = 30;
+
+/// Shortest accepted API token: 16 characters keeps guessing out of reach for any
+/// random token (common practice is 32 random bytes, hex or base64).
+pub const MIN_TOKEN_LEN: usize = 16;
+
+/// API bearer tokens; `Debug` never shows them.
+#[derive(Clone, Default, PartialEq)]
+pub struct ApiTokens(pub Vec<String>);
+
+impl std::fmt::Debug for ApiTokens {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "ApiTokens(<{} redacted>)", self.0.len())
+    }
+}
+
+/// Why a token is unusable, or `None`. Tokens travel in a header: printable ASCII only.
+fn check_token(t: &str) -> Option<String> {
+    if t.len() < MIN_TOKEN_LEN {
+        return Some(format!(
+            "a token has {} characters; use at least {MIN_TOKEN_LEN} (e.g. 32 random bytes in hex)",
+            t.len()
+        ));
+    }
+    if !t.bytes().all(|b| b.is_ascii_graphic()) {
+        return Some("a token may hold only printable ASCII without spaces".into());
+    }
+    None
 }
 
 /// `[kafka]`.
@@ -284,6 +338,63 @@ impl Ctx<'_> {
             None => DEFAULT_MAX_BODY_BYTES,
             Some(v) => self.positive_size(&v, "http.max_body_bytes")?,
         };
+        let mut tokens = Vec::new();
+        if let Some(path) = &raw.http.token_file {
+            let text = std::fs::read_to_string(path.get_ref()).map_err(|e| {
+                self.err(
+                    path.span(),
+                    "http.token_file",
+                    format!("cannot read {:?}: {e}", path.get_ref()),
+                )
+            })?;
+            // One token per line; blank lines and `#` comments are skipped.
+            for t in text.lines().map(str::trim) {
+                if t.is_empty() || t.starts_with('#') {
+                    continue;
+                }
+                if let Some(m) = check_token(t) {
+                    return Err(self.err(
+                        path.span(),
+                        "http.token_file",
+                        format!("{m} (the token itself is not shown)"),
+                    ));
+                }
+                tokens.push(t.to_string());
+            }
+            if tokens.is_empty() {
+                return Err(self.err(path.span(), "http.token_file", "holds no token"));
+            }
+        }
+        let protect_reads = raw
+            .http
+            .protect_reads
+            .as_ref()
+            .is_some_and(|p| *p.get_ref());
+        if let Some(p) = raw.http.protect_reads.as_ref().filter(|p| *p.get_ref()) {
+            let env_tokens = env
+                .iter()
+                .any(|(k, v)| k == "POSTERIORD_API_TOKENS" && !v.trim().is_empty());
+            if tokens.is_empty() && !env_tokens {
+                return Err(self.err(
+                    p.span(),
+                    "http.protect_reads",
+                    "protecting reads needs at least one token (http.token_file or POSTERIORD_API_TOKENS)",
+                ));
+            }
+        }
+        let request_timeout = match &raw.http.request_timeout_secs {
+            None => std::time::Duration::from_secs(DEFAULT_REQUEST_TIMEOUT_SECS),
+            Some(v) => match u64::try_from(*v.get_ref()) {
+                Ok(n) if (1..=3600).contains(&n) => std::time::Duration::from_secs(n),
+                _ => {
+                    return Err(self.err(
+                        v.span(),
+                        "http.request_timeout_secs",
+                        "must be between 1 and 3600 seconds",
+                    ))
+                }
+            },
+        };
         let kafka = raw.kafka.map(|k| self.kafka(k)).transpose()?;
         let snapshot_interval = match &raw.store.snapshot_interval_ms {
             None => std::time::Duration::from_millis(DEFAULT_SNAPSHOT_INTERVAL_MS),
@@ -417,6 +528,9 @@ impl Ctx<'_> {
             http: HttpConfig {
                 addr,
                 max_body_bytes,
+                tokens: ApiTokens(tokens),
+                protect_reads,
+                request_timeout,
             },
             kafka,
             store,
@@ -686,6 +800,7 @@ impl Ctx<'_> {
         )?;
         Ok(ExperimentDef {
             id,
+            generation: 0,
             control,
             variants,
             metrics,
@@ -1003,6 +1118,23 @@ fn apply_env(config: &mut Config, env: &[(String, String)]) -> Result<(), Config
                 format!("expected IP:PORT, got {v:?}"),
             )
         })?;
+    }
+    if let Some(v) = get("POSTERIORD_API_TOKENS") {
+        for t in v.split(',').map(str::trim).filter(|t| !t.is_empty()) {
+            if let Some(m) = check_token(t) {
+                return Err(env_err(
+                    "POSTERIORD_API_TOKENS",
+                    format!("{m} (the token itself is not shown)"),
+                ));
+            }
+            config.http.tokens.0.push(t.to_string());
+        }
+    }
+    if config.http.protect_reads && config.http.tokens.0.is_empty() {
+        return Err(env_err(
+            "http.protect_reads",
+            "protecting reads needs at least one token (http.token_file or POSTERIORD_API_TOKENS)",
+        ));
     }
     if let Some(v) = get("POSTERIORD_STORE_DIR") {
         if v.trim().is_empty() {

@@ -57,6 +57,9 @@ pub(super) struct RawAlertsKafka {
 pub(super) struct RawHttp {
     pub addr: Option<Spanned<String>>,
     pub max_body_bytes: Option<Spanned<i64>>,
+    pub token_file: Option<Spanned<String>>,
+    pub protect_reads: Option<Spanned<bool>>,
+    pub request_timeout_secs: Option<Spanned<i64>>,
 }
 
 #[derive(Debug, Deserialize)]

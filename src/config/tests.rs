@@ -276,3 +276,46 @@ fn rules_parse_with_defaults_and_name_bad_keys() {
     );
     assert_eq!(error(&bad).key, "experiment[0].primary");
 }
+
+#[test]
+fn api_tokens_come_from_the_file_and_the_environment_and_never_show() {
+    let dir = tempfile::tempdir().unwrap();
+    let file = dir.path().join("tokens");
+    std::fs::write(&file, "# Crumb & Co ops\ncrumb-ops-7c1f9e2a4b6d8e0f\n\n").unwrap();
+    let text = format!(
+        "[http]\ntoken_file = {:?}\nprotect_reads = true\nrequest_timeout_secs = 5\n",
+        file.display().to_string()
+    );
+    let env = [(
+        "POSTERIORD_API_TOKENS".to_string(),
+        " orchard-ci-3a5b7c9d1e2f4a6b ,".to_string(),
+    )];
+    let c = Config::parse(&text, "t.toml", &env).unwrap();
+    assert_eq!(
+        c.http.tokens.0,
+        ["crumb-ops-7c1f9e2a4b6d8e0f", "orchard-ci-3a5b7c9d1e2f4a6b"]
+    );
+    assert!(c.http.protect_reads);
+    assert_eq!(c.http.request_timeout, std::time::Duration::from_secs(5));
+    assert!(
+        !format!("{c:?}").contains("crumb-ops"),
+        "Debug shows no token"
+    );
+
+    std::fs::write(&file, "rye\n").unwrap();
+    let e = Config::parse(&text, "t.toml", &env).unwrap_err();
+    assert_eq!((e.key.as_str(), e.line), ("http.token_file", Some(2)));
+    assert!(!e.to_string().contains("rye"), "{e}");
+
+    let e = error("[http]\nprotect_reads = true\n");
+    assert_eq!((e.key.as_str(), e.line), ("http.protect_reads", Some(2)));
+    let e = error("[http]\nrequest_timeout_secs = 0\n");
+    assert_eq!(e.key, "http.request_timeout_secs");
+    let e = Config::parse(
+        "",
+        "t.toml",
+        &[("POSTERIORD_API_TOKENS".into(), "short".into())],
+    )
+    .unwrap_err();
+    assert_eq!(e.key, "POSTERIORD_API_TOKENS");
+}

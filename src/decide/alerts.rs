@@ -222,6 +222,7 @@ mod tests {
     fn def() -> ExperimentDef {
         ExperimentDef {
             id: "orchard-renderer".into(),
+            generation: 0,
             control: 0,
             variants: ["control", "new"]
                 .iter()

@@ -24,6 +24,7 @@ fn def(
 ) -> ExperimentDef {
     ExperimentDef {
         id: "crumb-checkout".into(),
+        generation: 0,
         control: 0,
         variants: ["control", "short-copy", "long-copy"]
             .iter()

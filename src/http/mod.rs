@@ -1,16 +1,20 @@
-//! The HTTP API (axum): event ingest, experiment documents, health, readiness and metrics.
+//! The HTTP API (axum): event ingest, experiment documents and definitions, alerts, health,
+//! readiness, metrics and the OpenAPI description.
 //!
 //! Handlers copy what they need out of the engine under its lock and do all derived work
 //! (quadrature, JSON) outside it, on the blocking pool, so reads never stall ingest for long.
+//! Every route sits behind `guard` (tokens, timeout, panic capture, JSON errors).
 
 pub mod dashboard;
+pub mod define;
 pub mod doc;
+pub mod guard;
 pub mod history;
 
 use std::sync::Arc;
 
 use axum::body::Bytes;
-use axum::extract::{DefaultBodyLimit, Path, State};
+use axum::extract::{DefaultBodyLimit, Path, Query, State};
 use axum::http::{header, StatusCode};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
@@ -27,22 +31,48 @@ use crate::summary::{summarize, ExperimentSummary, DEFAULT_LEVEL};
 /// Shard of events posted over HTTP.
 pub const HTTP_SHARD: &str = "http";
 
-/// Build the router over `shared`.
-pub fn router(shared: Arc<Shared>, max_body_bytes: usize) -> Router {
-    Router::new()
+/// The OpenAPI 3.1 description of every route, kept by hand beside the handlers (a test
+/// checks that it describes every route below and that real replies fit its schemas).
+pub const OPENAPI: &str = include_str!("openapi.json");
+
+/// Build the router over `shared`, guarded by `auth` (see [`guard::guard`]).
+///
+/// Every route is registered here, in one table: `GET`/`HEAD` routes are reads (open, or
+/// token-protected with `http.protect_reads`), every other method is a write and needs a
+/// token; both kinds get the same timeout, panic capture and JSON errors.
+pub fn router(shared: Arc<Shared>, http: &crate::config::HttpConfig, auth: guard::Auth) -> Router {
+    let routes = Router::new()
+        // Operations: probes (never token-protected) and the Prometheus scrape.
         .route("/healthz", get(healthz))
         .route("/readyz", get(readyz))
         .route("/metrics", get(metrics))
-        .route("/v1/events", post(ingest))
+        .route("/v1/openapi.json", get(openapi))
+        // Experiments: reads, and definitions at run time (PUT, DELETE). Further read routes
+        // (the dashboard's pages, `/v1/experiments/{id}/history`) belong in this table too:
+        // as GET routes they inherit `protect_reads`, the timeout and the JSON errors, and
+        // tests/api.rs asks for each to be described in openapi.json.
         .route("/v1/experiments", get(list_experiments))
-        .route("/v1/experiments/{id}", get(get_experiment))
+        .route(
+            "/v1/experiments/{id}",
+            get(get_experiment)
+                .put(define::put_experiment)
+                .layer(DefaultBodyLimit::max(define::MAX_DEFINITION_BYTES))
+                .delete(define::delete_experiment),
+        )
         .route("/v1/alerts", get(list_alerts))
+        // Writes that are not definitions.
+        .route("/v1/events", post(ingest))
         .route("/v1/alerts/{id}/ack", post(ack_alert))
         // History of decision quantities and the HTML dashboard.
         .merge(dashboard::routes())
         .fallback(not_found)
-        .layer(DefaultBodyLimit::max(max_body_bytes))
-        .with_state(shared)
+        .layer(DefaultBodyLimit::max(http.max_body_bytes))
+        .with_state(shared);
+    guard::guard(routes, http, auth)
+}
+
+async fn openapi() -> Response {
+    ([(header::CONTENT_TYPE, "application/json")], OPENAPI).into_response()
 }
 
 /// Serve `router` on `listener` until `shutdown` fires, then finish in-flight requests.
@@ -57,7 +87,7 @@ pub async fn serve(
 }
 
 fn error(status: StatusCode, code: &str, message: &str) -> Response {
-    (status, Json(doc::error_body(code, message, Value::Null))).into_response()
+    guard::error(status, code, message, Value::Null)
 }
 
 async fn not_found() -> Response {
@@ -221,13 +251,42 @@ async fn ack_alert(State(shared): State<Arc<Shared>>, Path(id): Path<String>) ->
     }
 }
 
-async fn list_experiments(State(shared): State<Arc<Shared>>) -> Json<Value> {
+async fn list_experiments(
+    State(shared): State<Arc<Shared>>,
+    Query(q): Query<define::ArchiveQuery>,
+) -> Json<Value> {
+    if q.archived {
+        return Json(define::list_archived(&shared));
+    }
+    let catalog = shared.lock_catalog();
     let snapshots = shared.lock_shards().snapshots();
-    let entries: Vec<Value> = snapshots.iter().map(doc::experiment_entry).collect();
+    let entries: Vec<Value> = snapshots
+        .iter()
+        .map(|s| {
+            let source = if catalog.is_api(&s.def.id) {
+                "api"
+            } else {
+                "config"
+            };
+            define::entry(s, source)
+        })
+        .collect();
     Json(json!({ "experiments": entries }))
 }
 
-async fn get_experiment(State(shared): State<Arc<Shared>>, Path(id): Path<String>) -> Response {
+async fn get_experiment(
+    State(shared): State<Arc<Shared>>,
+    Path(id): Path<String>,
+    Query(q): Query<define::ArchiveQuery>,
+) -> Response {
+    if q.archived {
+        return define::get_archived(&shared, &id, q.archive).await;
+    }
+    let source = if shared.lock_catalog().is_api(&id) {
+        "api"
+    } else {
+        "config"
+    };
     let snapshot = shared.lock_shards().snapshot(&id);
     let Some(snapshot) = snapshot else {
         return error(
@@ -236,7 +295,15 @@ async fn get_experiment(State(shared): State<Arc<Shared>>, Path(id): Path<String
             &format!("no experiment `{id}`"),
         );
     };
-    match blocking(move || doc::experiment_document(&summarize(snapshot, DEFAULT_LEVEL))).await {
+    let generation = snapshot.def.generation;
+    match blocking(move || {
+        let mut d = doc::experiment_document(&summarize(snapshot, DEFAULT_LEVEL));
+        d["source"] = json!(source);
+        d["generation"] = json!(generation);
+        d
+    })
+    .await
+    {
         Ok(body) => Json(body).into_response(),
         Err(response) => response,
     }

@@ -100,7 +100,7 @@ impl ExperimentState {
     /// The complete state as an image.
     pub fn image(&self) -> ExperimentImage {
         ExperimentImage {
-            id: self.def.id.clone(),
+            id: self.def.state_key(),
             variants: self.def.variants.iter().map(|v| v.name.clone()).collect(),
             metrics: self
                 .def
@@ -124,9 +124,11 @@ impl ExperimentState {
 
     /// Rebuild the state of `def` from `image`.
     ///
-    /// Variants and metrics must match by name, kind and order: unit slots store variant
-    /// indices and conversion-flag positions, so a reordered definition would silently move
-    /// units between arms.
+    /// The image's variants and metrics must be those of `def` by name, kind and order, or a
+    /// prefix of them (the definition gained variants or metrics since the image was taken;
+    /// see [`ExperimentState::redefine`]): unit slots store variant indices and
+    /// conversion-flag positions, so a reordered definition would silently move units
+    /// between arms.
     pub fn from_image(
         def: Arc<ExperimentDef>,
         image: ExperimentImage,
@@ -137,7 +139,9 @@ impl ExperimentState {
             reason,
         };
         let variants: Vec<&str> = def.variants.iter().map(|v| v.name.as_str()).collect();
-        if image.variants != variants {
+        if image.variants.len() > variants.len()
+            || image.variants[..] != variants[..image.variants.len()]
+        {
             return Err(mismatch(format!(
                 "variants were {:?}, are now {:?}",
                 image.variants, variants
@@ -148,19 +152,21 @@ impl ExperimentState {
             .iter()
             .map(|m| (m.name.clone(), m.kind))
             .collect();
-        if image.metrics != metrics {
+        if image.metrics.len() > metrics.len()
+            || image.metrics[..] != metrics[..image.metrics.len()]
+        {
             return Err(mismatch(format!(
                 "metrics were {:?}, are now {:?}",
                 image.metrics, metrics
             )));
         }
-        let n = variants.len();
+        let n = image.variants.len();
         let shapes_ok = image.variant_units.len() == n
-            && image.totals.len() == metrics.len()
+            && image.totals.len() == image.metrics.len()
             && image
                 .totals
                 .iter()
-                .zip(&metrics)
+                .zip(&image.metrics)
                 .all(|(t, (_, kind))| match (t, kind) {
                     (MetricTotals::Conversion(v), MetricKind::Conversion) => v.len() == n,
                     (MetricTotals::Defect(v), MetricKind::DefectRate(_)) => v.len() == n,
@@ -198,6 +204,7 @@ impl ExperimentState {
         state.outcomes = image.outcomes;
         state.last_event_time = image.last_event_time;
         state.first_event_time = image.first_event_time;
+        state.pad_to_def();
         Ok(state)
     }
 }

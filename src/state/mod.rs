@@ -220,6 +220,59 @@ impl ExperimentState {
         &self.def
     }
 
+    /// Carry this state over to `def`, a redefinition that keeps every variant and metric in
+    /// order and may append more (checked by `ExperimentDef::incompatibility` before).
+    ///
+    /// A metric appended to a running experiment counts every unit exposed so far as a trial
+    /// (conversion) or as exposure (`exposure = "units"`), because those units were exposed;
+    /// conversions and defects from before it existed were not recorded, so its early rate
+    /// leans low — docs/api.md carries that caution.
+    pub fn redefine(&mut self, def: Arc<ExperimentDef>) -> Result<(), image::ImageMismatch> {
+        let image = self.image();
+        let mut state = ExperimentState::from_image(Arc::clone(&def), image)?;
+        std::mem::swap(self, &mut state);
+        Ok(())
+    }
+
+    /// Pad variant and metric totals, restored for a prefix of the definition, to its full
+    /// shape (see [`ExperimentState::redefine`] for what appended metrics start from).
+    fn pad_to_def(&mut self) {
+        let n = self.def.variants.len();
+        self.variant_units.resize(n, 0);
+        for t in &mut self.metrics {
+            match t {
+                MetricTotals::Conversion(v) => v.resize(n, ConversionTotals::default()),
+                MetricTotals::Defect(v) => v.resize(n, DefectTotals::default()),
+            }
+        }
+        for m in &self.def.metrics[self.metrics.len()..] {
+            self.metrics.push(match m.kind {
+                MetricKind::Conversion => MetricTotals::Conversion(
+                    self.variant_units
+                        .iter()
+                        .map(|&u| ConversionTotals {
+                            trials: u,
+                            successes: 0,
+                        })
+                        .collect(),
+                ),
+                MetricKind::DefectRate(basis) => MetricTotals::Defect(
+                    self.variant_units
+                        .iter()
+                        .map(|&u| DefectTotals {
+                            count: 0,
+                            exposure: if basis == ExposureBasis::Units {
+                                u as f64
+                            } else {
+                                0.0
+                            },
+                        })
+                        .collect(),
+                ),
+            });
+        }
+    }
+
     /// Number of distinct units tracked.
     pub fn n_units(&self) -> usize {
         self.units.len()
@@ -547,17 +600,23 @@ impl Engine {
     /// An engine over shared definitions (one set of definitions serves every shard).
     pub fn with_defs(defs: impl IntoIterator<Item = Arc<ExperimentDef>>) -> Engine {
         let mut engine = Engine::default();
-        for def in defs {
-            let idx = engine.experiments.len();
-            match engine.index.entry(key_hash(&def.id)) {
+        engine.experiments = defs.into_iter().map(ExperimentState::new).collect();
+        engine.reindex();
+        engine
+    }
+
+    /// Rebuild the index after the set of experiments changed (rare: definitions at run time).
+    fn reindex(&mut self) {
+        self.index.clear();
+        self.collided.clear();
+        for (idx, e) in self.experiments.iter().enumerate() {
+            match self.index.entry(key_hash(&e.def.id)) {
                 std::collections::hash_map::Entry::Vacant(v) => {
                     v.insert(idx);
                 }
-                std::collections::hash_map::Entry::Occupied(_) => engine.collided.push(idx),
+                std::collections::hash_map::Entry::Occupied(_) => self.collided.push(idx),
             }
-            engine.experiments.push(ExperimentState::new(def));
         }
-        engine
     }
 
     /// Position of experiment `id`.
@@ -579,6 +638,35 @@ impl Engine {
         if let Some(idx) = self.position(&state.def.id) {
             self.experiments[idx] = state;
         }
+    }
+
+    /// Watch `def` too, or redefine the experiment of that id: a new generation starts empty,
+    /// the same generation carries its state over (see [`ExperimentState::redefine`]; when
+    /// that is refused the experiment starts empty and the reason is returned).
+    pub fn define(&mut self, def: Arc<ExperimentDef>) -> Option<image::ImageMismatch> {
+        let Some(idx) = self.position(&def.id) else {
+            self.experiments.push(ExperimentState::new(def));
+            self.reindex();
+            return None;
+        };
+        let state = &mut self.experiments[idx];
+        if state.def.generation == def.generation {
+            if let Err(m) = state.redefine(Arc::clone(&def)) {
+                *state = ExperimentState::new(def);
+                return Some(m);
+            }
+        } else {
+            *state = ExperimentState::new(def);
+        }
+        None
+    }
+
+    /// Stop watching experiment `id`; returns its state, if it was watched.
+    pub fn remove(&mut self, id: &str) -> Option<ExperimentState> {
+        let idx = self.position(id)?;
+        let state = self.experiments.remove(idx);
+        self.reindex();
+        Some(state)
     }
 
     /// Apply one decoded event.

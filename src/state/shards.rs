@@ -92,10 +92,16 @@ impl Shard {
         shard.next_offset = image.next_offset;
         let mut mismatches = Vec::new();
         for e in image.experiments {
-            let Some(def) = defs.iter().find(|d| d.id == e.id) else {
+            let Some(def) = defs.iter().find(|d| d.state_key() == e.id) else {
+                let base = e.id.split('~').next().unwrap_or_default();
+                let reason = if defs.iter().any(|d| d.id == base) {
+                    "it belongs to an earlier generation of the experiment (restarted or re-created over the API; its totals are in the archive)"
+                } else {
+                    "the experiment is no longer configured"
+                };
                 mismatches.push(ImageMismatch {
                     id: e.id.clone(),
-                    reason: "the experiment is no longer configured".into(),
+                    reason: reason.into(),
                 });
                 continue;
             };
@@ -146,8 +152,28 @@ impl Shards {
         self.shards.get(id)
     }
 
-    /// Put a (restored) shard in place.
-    pub fn insert(&mut self, id: ShardId, shard: Shard) {
+    /// Put a (restored) shard in place. It was built from the definitions of a moment ago,
+    /// outside the lock; experiments defined or removed since are brought in line here, so
+    /// its events are never refused for an experiment that exists now.
+    pub fn insert(&mut self, id: ShardId, mut shard: Shard) {
+        let stale: Vec<String> = shard
+            .engine
+            .experiments()
+            .map(|e| e.def().id.clone())
+            .filter(|id| !self.defs.iter().any(|d| d.id == *id))
+            .collect();
+        for gone in stale {
+            shard.engine.remove(&gone);
+        }
+        for def in &self.defs {
+            let current = shard
+                .engine
+                .experiment(&def.id)
+                .is_some_and(|e| Arc::ptr_eq(e.def(), def));
+            if !current {
+                shard.engine.define(Arc::clone(def));
+            }
+        }
         self.shards.insert(id, shard);
     }
 
@@ -161,6 +187,43 @@ impl Shards {
         self.shards.keys().cloned().collect()
     }
 
+    /// Watch `def` in every shard, or redefine the experiment of that id (see
+    /// [`Engine::define`]); returns the shards where state could not carry over, with why.
+    pub fn define(&mut self, def: ExperimentDef) -> Vec<(ShardId, ImageMismatch)> {
+        let def = Arc::new(def);
+        match self.defs.iter_mut().find(|d| d.id == def.id) {
+            Some(d) => *d = Arc::clone(&def),
+            None => self.defs.push(Arc::clone(&def)),
+        }
+        let mut refused = Vec::new();
+        for (id, shard) in &mut self.shards {
+            if let Some(m) = shard.engine.define(Arc::clone(&def)) {
+                refused.push((id.clone(), m));
+            }
+            shard.dirty = true;
+        }
+        // Remote totals were taken under the old shape; the follower refreshes them.
+        for (_, snaps) in self.remote.values_mut() {
+            snaps.retain(|s| s.def.id != def.id);
+        }
+        refused
+    }
+
+    /// Stop watching experiment `id` in every shard; `false` if it was not watched.
+    pub fn undefine(&mut self, id: &str) -> bool {
+        let before = self.defs.len();
+        self.defs.retain(|d| d.id != id);
+        for shard in self.shards.values_mut() {
+            if shard.engine.remove(id).is_some() {
+                shard.dirty = true;
+            }
+        }
+        for (_, snaps) in self.remote.values_mut() {
+            snaps.retain(|s| s.def.id != id);
+        }
+        self.defs.len() != before
+    }
+
     /// Whether experiment `id` is configured.
     pub fn has_experiment(&self, id: &str) -> bool {
         self.defs.iter().any(|d| d.id == id)
@@ -172,7 +235,7 @@ impl Shards {
             .experiments
             .iter()
             .filter_map(|e| {
-                let def = self.defs.iter().find(|d| d.id == e.id)?;
+                let def = self.defs.iter().find(|d| d.state_key() == e.id)?;
                 e.totals_snapshot(def)
             })
             .collect();

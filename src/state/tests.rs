@@ -17,6 +17,7 @@ fn bakery() -> ExperimentDef {
     };
     ExperimentDef {
         id: "crumb-checkout".into(),
+        generation: 0,
         control: 0,
         variants: vec![
             VariantDef {
@@ -347,4 +348,146 @@ fn successes_never_exceed_trials_whatever_the_order() {
         }
         assert!(snap.units.iter().sum::<u64>() <= 2);
     }
+}
+
+/// A redefinition that appends a variant and a conversion metric keeps every count, starts
+/// the new metric with one trial per already-exposed unit, and keeps successes ≤ trials when
+/// old units convert on it.
+#[test]
+fn appending_variants_and_metrics_keeps_the_state() {
+    let old = bakery();
+    let mut new = bakery();
+    new.variants.push(VariantDef {
+        name: "long-copy".into(),
+        weight: 0.5,
+    });
+    let mut added = new.metrics[0].clone();
+    added.name = "newsletter".into();
+    new.metrics.push(added);
+    for m in &mut new.metrics {
+        m.variant_priors.push(None);
+    }
+    assert_eq!(old.incompatibility(&new), None);
+    let mut engine = Engine::new([old.clone()]);
+    for (v, u) in [("control", "a"), ("short-copy", "b"), ("short-copy", "c")] {
+        engine.apply(&exposure(v, u)).unwrap();
+    }
+    engine.apply(&conversion("purchase", "b")).unwrap();
+    assert!(engine.define(Arc::new(new)).is_none());
+    let s = engine.experiment("crumb-checkout").unwrap().snapshot();
+    assert_eq!(s.units, vec![1, 2, 0]);
+    let MetricTotals::Conversion(p) = &s.metrics[0] else {
+        panic!("purchase is a conversion metric")
+    };
+    assert_eq!((p[1].trials, p[1].successes, p[2].trials), (2, 1, 0));
+    let MetricTotals::Defect(d) = &s.metrics[1] else {
+        panic!("payment-error is a defect metric")
+    };
+    assert_eq!(
+        d.iter().map(|t| t.exposure).collect::<Vec<_>>(),
+        [1.0, 2.0, 0.0]
+    );
+    engine.apply(&conversion("newsletter", "c")).unwrap();
+    engine.apply(&exposure("long-copy", "d")).unwrap();
+    let s = engine.experiment("crumb-checkout").unwrap().snapshot();
+    let MetricTotals::Conversion(n) = &s.metrics[3] else {
+        panic!("newsletter is a conversion metric")
+    };
+    assert_eq!(
+        n.iter()
+            .map(|t| (t.trials, t.successes))
+            .collect::<Vec<_>>(),
+        [(1, 0), (2, 1), (1, 0)]
+    );
+}
+
+#[test]
+fn reordering_or_reprioring_a_running_experiment_is_refused() {
+    let old = bakery();
+    let mut swapped = bakery();
+    swapped.variants.swap(0, 1);
+    assert!(old
+        .incompatibility(&swapped)
+        .unwrap()
+        .contains("variant #0"));
+    let mut reprior = bakery();
+    reprior.metrics[0].prior = Prior::Beta {
+        alpha: 2.0,
+        beta: 8.0,
+    };
+    assert!(old.incompatibility(&reprior).unwrap().contains("prior"));
+    let mut fewer = bakery();
+    fewer.metrics.pop();
+    assert!(old.incompatibility(&fewer).is_some());
+    // A new generation starts empty even with the same shape.
+    let mut engine = Engine::new([old.clone()]);
+    engine.apply(&exposure("control", "a")).unwrap();
+    let mut next = old.clone();
+    next.generation = 1;
+    engine.define(Arc::new(next));
+    assert!(engine
+        .experiment("crumb-checkout")
+        .unwrap()
+        .snapshot()
+        .is_empty());
+    assert_eq!(
+        engine.experiment("crumb-checkout").unwrap().image().id,
+        "crumb-checkout~1"
+    );
+    assert!(engine.remove("crumb-checkout").is_some());
+    assert!(engine.experiment("crumb-checkout").is_none());
+}
+
+/// Stored state of an older generation is not restored into a newer one with the same id.
+#[test]
+fn stored_state_of_an_earlier_generation_is_not_restored() {
+    let mut old = bakery();
+    old.generation = 1;
+    let mut shard = shards::Shard::new(&[Arc::new(old.clone())]);
+    shard.apply(&exposure("control", "a")).unwrap();
+    let image = shard.image();
+    assert_eq!(image.experiments[0].id, "crumb-checkout~1");
+    let mut new = old.clone();
+    new.generation = 2;
+    let (restored, mismatches) = shards::Shard::from_image(&[Arc::new(new)], image.clone());
+    assert!(restored
+        .engine
+        .experiment("crumb-checkout")
+        .unwrap()
+        .snapshot()
+        .is_empty());
+    assert!(
+        mismatches[0].reason.contains("earlier generation"),
+        "{}",
+        mismatches[0]
+    );
+    let (same, none) = shards::Shard::from_image(&[Arc::new(old)], image);
+    assert!(none.is_empty());
+    assert_eq!(
+        same.engine
+            .experiment("crumb-checkout")
+            .unwrap()
+            .snapshot()
+            .units,
+        [1, 0]
+    );
+}
+
+/// A shard restored outside the lock while an experiment was defined or removed is brought in
+/// line with the definitions when it is put in place.
+#[test]
+fn an_inserted_shard_follows_the_current_definitions() {
+    let mut shards = shards::Shards::new([bakery()]);
+    let stale = shards::Shard::new(shards.defs());
+    let mut orchard = bakery();
+    orchard.id = "orchard-seed-tray".into();
+    orchard.generation = 1;
+    shards.define(orchard);
+    assert!(shards.undefine("crumb-checkout"));
+    shards.insert("kafka/exp-events/0".into(), stale);
+    let shard = shards.shard_mut("kafka/exp-events/0");
+    assert!(shard.engine.experiment("crumb-checkout").is_none());
+    let mut e = exposure("control", "a");
+    e.experiment = Cow::Borrowed("orchard-seed-tray");
+    assert_eq!(shard.apply(&e).unwrap(), Outcome::Applied);
 }
