@@ -1189,7 +1189,8 @@ fn evaluation_target() -> Vec<Row> {
     for _ in 0..3 {
         let t = CpuTimer::start();
         for _ in 0..rounds {
-            let s = posteriord::summary::summarize(snap.clone(), posteriord::summary::DEFAULT_LEVEL);
+            let s =
+                posteriord::summary::summarize(snap.clone(), posteriord::summary::DEFAULT_LEVEL);
             std::hint::black_box(posteriord::decide::evaluate(&s));
         }
         full.push(t.secs() / rounds as f64);

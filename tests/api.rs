@@ -180,7 +180,7 @@ fn writes_need_a_token_and_reads_are_open_by_default() {
     let r = api.call_as(
         "PUT",
         "/v1/experiments/{id}",
-        "/v1/experiments/orchard-seed-tray",
+        "/v1/experiments/orchard-sprout-tray",
         Some(seed_tray(&["control", "tray"], &[("plant", "conversion")]).to_string()),
         None,
     );
@@ -188,7 +188,7 @@ fn writes_need_a_token_and_reads_are_open_by_default() {
     let r = api.call_as(
         "DELETE",
         "/v1/experiments/{id}",
-        "/v1/experiments/orchard-seed-tray",
+        "/v1/experiments/orchard-sprout-tray",
         None,
         None,
     );
@@ -403,7 +403,10 @@ fn experiments_defined_at_run_time_persist_extend_restart_and_archive() {
     let state = tempfile::tempdir().unwrap();
     let svc = Service::start_in(CONFIG, Some(state.path()), &[]);
     let mut api = Api::new(svc, None);
-    let (route, path) = ("/v1/experiments/{id}", "/v1/experiments/orchard-seed-tray");
+    let (route, path) = (
+        "/v1/experiments/{id}",
+        "/v1/experiments/orchard-sprout-tray",
+    );
     let put = |api: &mut Api, body: Value| api.call("PUT", route, path, Some(body.to_string()));
 
     let r = put(
@@ -414,10 +417,10 @@ fn experiments_defined_at_run_time_persist_extend_restart_and_archive() {
     assert_eq!(r.body["created"], true);
     assert_eq!(r.body["experiment"]["source"], "api");
     let events: Vec<Value> = vec![
-        exposure("orchard-seed-tray", "control", "g-1"),
-        exposure("orchard-seed-tray", "tray", "g-2"),
-        exposure("orchard-seed-tray", "tray", "g-3"),
-        conversion("orchard-seed-tray", "plant", "g-2"),
+        exposure("orchard-sprout-tray", "control", "g-1"),
+        exposure("orchard-sprout-tray", "tray", "g-2"),
+        exposure("orchard-sprout-tray", "tray", "g-3"),
+        conversion("orchard-sprout-tray", "plant", "g-2"),
     ];
     let r = api.call(
         "POST",
@@ -592,15 +595,18 @@ fn a_crash_after_a_restart_never_brings_the_old_state_back() {
     let state = tempfile::tempdir().unwrap();
     let config = format!("{CONFIG}\n[store]\nsnapshot_interval_ms = 200\n");
     let mut api = Api::new(Service::start_in(&config, Some(state.path()), &[]), None);
-    let (route, path) = ("/v1/experiments/{id}", "/v1/experiments/orchard-seed-tray");
+    let (route, path) = (
+        "/v1/experiments/{id}",
+        "/v1/experiments/orchard-sprout-tray",
+    );
     let body = seed_tray(&["control", "tray"], &[("plant", "conversion")]);
     assert_eq!(
         api.call("PUT", route, path, Some(body.to_string())).status,
         201
     );
     let events = json!([
-        exposure("orchard-seed-tray", "control", "g-1"),
-        exposure("orchard-seed-tray", "tray", "g-2"),
+        exposure("orchard-sprout-tray", "control", "g-1"),
+        exposure("orchard-sprout-tray", "tray", "g-2"),
     ]);
     let r = api.call("POST", "/v1/events", "/v1/events", Some(events.to_string()));
     assert_eq!(r.body["applied"], 2);
@@ -637,8 +643,19 @@ fn a_crash_after_a_restart_never_brings_the_old_state_back() {
 #[test]
 fn the_openapi_document_describes_every_route() {
     let mut src = String::new();
-    for f in std::fs::read_dir(root().join("src/http")).unwrap() {
-        let p = f.unwrap().path();
+    let mut files = Vec::new();
+    let mut dirs = vec![root().join("src/http")];
+    while let Some(dir) = dirs.pop() {
+        for f in std::fs::read_dir(dir).unwrap() {
+            let p = f.unwrap().path();
+            if p.is_dir() {
+                dirs.push(p);
+            } else {
+                files.push(p);
+            }
+        }
+    }
+    for p in files {
         if p.extension().is_some_and(|e| e == "rs") {
             // Each file's routes end at its fallback or at its end; unit tests do not count.
             let text = std::fs::read_to_string(&p).unwrap();

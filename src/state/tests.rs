@@ -480,7 +480,7 @@ fn an_inserted_shard_follows_the_current_definitions() {
     let mut shards = shards::Shards::new([bakery()]);
     let stale = shards::Shard::new(shards.defs());
     let mut orchard = bakery();
-    orchard.id = "orchard-seed-tray".into();
+    orchard.id = "orchard-sprout-tray".into();
     orchard.generation = 1;
     shards.define(orchard);
     assert!(shards.undefine("crumb-checkout"));
@@ -488,6 +488,6 @@ fn an_inserted_shard_follows_the_current_definitions() {
     let shard = shards.shard_mut("kafka/exp-events/0");
     assert!(shard.engine.experiment("crumb-checkout").is_none());
     let mut e = exposure("control", "a");
-    e.experiment = Cow::Borrowed("orchard-seed-tray");
+    e.experiment = Cow::Borrowed("orchard-sprout-tray");
     assert_eq!(shard.apply(&e).unwrap(), Outcome::Applied);
 }
