@@ -50,6 +50,8 @@ pub struct Shared {
     /// Decision quantities over time, recorded at each evaluation (bounded; stored with a
     /// store).
     pub history: crate::http::history::Recorder,
+    /// Summaries shared by the readers (at most `http::cache::MAX_AGE` old).
+    pub summaries: crate::http::cache::SummaryCache,
     /// Experiments defined over the API, and the archive. Lock order: catalog, then shards.
     catalog: Mutex<crate::catalog::Catalog>,
     /// Serialises [`Shared::save_dirty`] (taken before the shards' lock).
@@ -84,6 +86,7 @@ impl Shared {
             alert_file: None,
             alerts_config: config.alerts.clone(),
             history: crate::http::history::Recorder::in_memory(),
+            summaries: Default::default(),
             catalog: Mutex::new(crate::catalog::Catalog::in_memory(
                 config.experiments.iter().map(|e| e.id.clone()),
             )),

@@ -5,6 +5,7 @@
 //! (quadrature, JSON) outside it, on the blocking pool, so reads never stall ingest for long.
 //! Every route sits behind `guard` (tokens, timeout, panic capture, JSON errors).
 
+pub mod cache;
 pub mod dashboard;
 pub mod define;
 pub mod doc;
@@ -26,7 +27,7 @@ use tokio_util::sync::CancellationToken;
 use crate::app::Shared;
 use crate::decode::split_body;
 use crate::event::Outcome;
-use crate::summary::{summarize, ExperimentSummary, DEFAULT_LEVEL};
+use crate::summary::ExperimentSummary;
 
 /// Shard of events posted over HTTP.
 pub const HTTP_SHARD: &str = "http";
@@ -297,7 +298,7 @@ async fn get_experiment(
     };
     let generation = snapshot.def.generation;
     match blocking(move || {
-        let mut d = doc::experiment_document(&summarize(snapshot, DEFAULT_LEVEL));
+        let mut d = doc::experiment_document(&shared.summaries.summary(snapshot));
         d["source"] = json!(source);
         d["generation"] = json!(generation);
         d
@@ -309,7 +310,7 @@ async fn get_experiment(
     }
 }
 
-fn refresh_gauges(shared: &Shared, summaries: &[ExperimentSummary]) {
+fn refresh_gauges(shared: &Shared, summaries: &[Arc<ExperimentSummary>]) {
     let m = &shared.metrics;
     for s in summaries {
         let def = &s.snapshot.def;
@@ -344,9 +345,9 @@ fn refresh_gauges(shared: &Shared, summaries: &[ExperimentSummary]) {
 async fn metrics(State(shared): State<Arc<Shared>>) -> Response {
     let snapshots = shared.lock_shards().snapshots();
     let text = blocking(move || {
-        let summaries: Vec<ExperimentSummary> = snapshots
+        let summaries: Vec<Arc<ExperimentSummary>> = snapshots
             .into_iter()
-            .map(|s| summarize(s, DEFAULT_LEVEL))
+            .map(|s| shared.summaries.summary(s))
             .collect();
         refresh_gauges(&shared, &summaries);
         shared.metrics.encode()

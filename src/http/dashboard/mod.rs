@@ -18,7 +18,6 @@ use axum::Router;
 
 use crate::app::Shared;
 use crate::decide::alerts::AlertState;
-use crate::summary::{summarize, DEFAULT_LEVEL};
 
 /// The dashboard's routes and the history route (merged into the API router).
 pub fn routes() -> Router<Arc<Shared>> {
@@ -77,7 +76,7 @@ async fn list(State(shared): State<Arc<Shared>>, Query(part): Query<Part>) -> Re
         let entries: Vec<page::ListEntry> = snapshots
             .into_iter()
             .map(|s| {
-                let summary = summarize(s, DEFAULT_LEVEL);
+                let summary = (*shared.summaries.summary(s)).clone();
                 let findings = crate::decide::evaluate(&summary);
                 let open_alerts = open
                     .iter()
@@ -135,7 +134,7 @@ async fn experiment(
         .collect();
     let now = crate::app::now_micros();
     let rendered = super::blocking(move || {
-        let summary = summarize(snapshot, DEFAULT_LEVEL);
+        let summary = (*shared.summaries.summary(snapshot)).clone();
         let findings = crate::decide::evaluate(&summary);
         page::experiment_main(&page::ExperimentView {
             summary,

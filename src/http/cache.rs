@@ -1,0 +1,107 @@
+//! Summaries shared by the readers (experiment documents, dashboard pages, `/metrics`), so
+//! that concurrent reads of a busy experiment do not each repeat its quadrature.
+//!
+//! A cached summary is reused when the experiment's totals are unchanged, or when it is
+//! younger than [`MAX_AGE`] (then the reader sees totals at most that old, consistently: a
+//! summary always carries the snapshot it was computed from). Under steady ingest this bounds
+//! the quadrature to one run per experiment per `MAX_AGE`, whatever the read rate.
+
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use crate::state::ExperimentSnapshot;
+use crate::summary::{summarize, ExperimentSummary, DEFAULT_LEVEL};
+
+/// Oldest summary a reader may be served while its experiment keeps changing.
+pub const MAX_AGE: Duration = Duration::from_secs(1);
+
+struct Entry {
+    summary: Arc<ExperimentSummary>,
+    at: Instant,
+}
+
+/// Latest summary per experiment id.
+#[derive(Default)]
+pub struct SummaryCache {
+    entries: Mutex<HashMap<String, Entry>>,
+}
+
+impl SummaryCache {
+    /// The summary of `snapshot` at the API's credible level, from the cache when allowed.
+    /// Runs the quadrature (outside the cache's lock) only when needed.
+    pub fn summary(&self, snapshot: ExperimentSnapshot) -> Arc<ExperimentSummary> {
+        let id = snapshot.def.id.clone();
+        if let Some(hit) = self.lookup(&id, &snapshot) {
+            return hit;
+        }
+        let summary = Arc::new(summarize(snapshot, DEFAULT_LEVEL));
+        self.lock().insert(
+            id,
+            Entry {
+                summary: Arc::clone(&summary),
+                at: Instant::now(),
+            },
+        );
+        summary
+    }
+
+    fn lookup(&self, id: &str, snapshot: &ExperimentSnapshot) -> Option<Arc<ExperimentSummary>> {
+        let entries = self.lock();
+        let e = entries.get(id)?;
+        let cached = &e.summary.snapshot;
+        // A redefinition (new generation, new variants or metrics) never reuses a summary.
+        let same_def = Arc::ptr_eq(&cached.def, &snapshot.def) || cached.def == snapshot.def;
+        (same_def && (cached == snapshot || e.at.elapsed() < MAX_AGE))
+            .then(|| Arc::clone(&e.summary))
+    }
+
+    fn lock(&self) -> std::sync::MutexGuard<'_, HashMap<String, Entry>> {
+        self.entries.lock().unwrap_or_else(|p| p.into_inner())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::simulate::demo_experiments;
+    use crate::state::Engine;
+
+    fn snapshot_after(n_units: usize) -> ExperimentSnapshot {
+        let defs = demo_experiments();
+        let id = defs[0].id.clone();
+        let variant = defs[0].variants[0].name.clone();
+        let mut engine = Engine::new(defs);
+        for i in 0..n_units {
+            let unit = format!("u{i}");
+            let event = crate::event::Event {
+                experiment: id.as_str().into(),
+                id: None,
+                time: None,
+                body: crate::event::EventBody::Exposure {
+                    variant: variant.as_str().into(),
+                    unit: unit.as_str().into(),
+                },
+            };
+            engine.apply(&event).unwrap();
+        }
+        engine.experiment(&id).unwrap().snapshot()
+    }
+
+    #[test]
+    fn unchanged_totals_reuse_and_changed_ones_recompute_once_stale() {
+        let cache = SummaryCache::default();
+        let first = cache.summary(snapshot_after(10));
+        let again = cache.summary(snapshot_after(10));
+        assert!(Arc::ptr_eq(&first, &again), "same totals: reused");
+        // Changed totals within MAX_AGE: the recent summary is served (with its own totals).
+        let young = cache.summary(snapshot_after(11));
+        assert!(Arc::ptr_eq(&first, &young));
+        assert_eq!(young.snapshot.units.iter().sum::<u64>(), 10);
+        // Once older than MAX_AGE, changed totals are summarised afresh.
+        cache.lock().get_mut(&first.snapshot.def.id).unwrap().at -= MAX_AGE;
+        let fresh = cache.summary(snapshot_after(11));
+        assert!(!Arc::ptr_eq(&first, &fresh));
+        assert_eq!(fresh.snapshot.units.iter().sum::<u64>(), 11);
+    }
+}
