@@ -599,8 +599,10 @@ impl Engine {
 
     /// An engine over shared definitions (one set of definitions serves every shard).
     pub fn with_defs(defs: impl IntoIterator<Item = Arc<ExperimentDef>>) -> Engine {
-        let mut engine = Engine::default();
-        engine.experiments = defs.into_iter().map(ExperimentState::new).collect();
+        let mut engine = Engine {
+            experiments: defs.into_iter().map(ExperimentState::new).collect(),
+            ..Engine::default()
+        };
         engine.reindex();
         engine
     }
