@@ -24,13 +24,15 @@ use crate::event::Micros;
 use crate::summary::ExperimentSummary;
 
 /// Arm-points (one arm's numbers at one evaluation) each experiment may keep across all its
-/// metrics; at 112 bytes an arm-point this is under 1 MiB per experiment, except where
-/// [`MIN_CAPACITY`] overrides it for very wide experiments.
-pub const ARM_POINT_BUDGET: usize = 8192;
+/// metrics; at 112 bytes an arm-point this is about 230 KiB per experiment once full, except
+/// where [`MIN_CAPACITY`] overrides it for very wide experiments. Sized so that a deployment
+/// watching thousands of experiments keeps its history in a few hundred MiB to a few GiB
+/// (docs/operations.md, Sizing), while a chart still gets up to 256 points per series.
+pub const ARM_POINT_BUDGET: usize = 2048;
 /// Fewest points a series keeps, however many arms and metrics the experiment has.
 pub const MIN_CAPACITY: usize = 32;
 /// Most points a series keeps.
-pub const MAX_CAPACITY: usize = 512;
+pub const MAX_CAPACITY: usize = 256;
 /// Rule transitions kept per experiment (the oldest are dropped first).
 pub const MAX_TRANSITIONS: usize = 256;
 
@@ -460,7 +462,7 @@ mod tests {
     #[test]
     fn capacity_follows_the_budget_within_its_bounds() {
         assert_eq!(capacity(1, 2), MAX_CAPACITY);
-        assert_eq!(capacity(4, 8), 256);
+        assert_eq!(capacity(4, 8), 64);
         assert_eq!(capacity(24, 64), MIN_CAPACITY);
         for m in 1..=24 {
             for v in 2..=64 {
@@ -472,8 +474,8 @@ mod tests {
     }
 
     #[test]
-    fn the_budget_is_under_a_mebibyte() {
-        assert!(std::mem::size_of::<ArmPoint>() * ARM_POINT_BUDGET < 1 << 20);
+    fn the_budget_is_a_quarter_mebibyte() {
+        assert!(std::mem::size_of::<ArmPoint>() * ARM_POINT_BUDGET <= 1 << 18);
     }
 
     fn point(at: Micros) -> Point {
