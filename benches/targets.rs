@@ -1024,9 +1024,27 @@ fn ours_consume(
         std::thread::sleep(Duration::from_millis(100));
     }
     let secs = t.elapsed().as_secs_f64();
+    let cpu = process_cpu_secs(server.child.id());
     let report = wrk.map(stop_wrk);
     server.stop();
+    if !load {
+        println!(
+            "  posteriord used {cpu:.2} CPU-s for {n} events ({:.0} µs per event, {:.2} cores at this rate)",
+            cpu / n as f64 * 1e6,
+            cpu / secs
+        );
+    }
     (secs, report)
+}
+
+/// User + system CPU seconds of process `pid` so far (from /proc; clock ticks of 1/100 s).
+fn process_cpu_secs(pid: u32) -> f64 {
+    let stat = std::fs::read_to_string(format!("/proc/{pid}/stat")).unwrap_or_default();
+    // Fields after the parenthesised command name: state is field 3, utime 14, stime 15.
+    let rest = stat.rsplit_once(')').map_or("", |(_, r)| r);
+    let fields: Vec<&str> = rest.split_whitespace().collect();
+    let ticks = |i: usize| fields.get(i).and_then(|v| v.parse::<f64>().ok()).unwrap_or(0.0);
+    (ticks(11) + ticks(12)) / 100.0
 }
 
 fn start_wrk(work: &Path, port: u16) -> Child {
