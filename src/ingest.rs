@@ -6,7 +6,9 @@ use std::sync::Mutex;
 use crate::decode::decode_event;
 use crate::event::{Event, Outcome, Reject};
 use crate::metrics::{Metrics, Source};
+use crate::decide::cadence::Cadence;
 use crate::state::shards::Shards;
+use crate::state::ExperimentSnapshot;
 
 /// One encoded event and where it goes.
 #[derive(Debug, Clone, Copy)]
@@ -25,6 +27,9 @@ pub struct BatchReport {
     /// One entry per input item; `None` for an item skipped because its offset was already
     /// applied (a redelivery after a seek).
     pub results: Vec<Option<Result<Outcome, Reject>>>,
+    /// Snapshots of experiments that became due for evaluation, each taken at the event that
+    /// made it due, in input order (only with a cadence).
+    pub due: Vec<ExperimentSnapshot>,
 }
 
 impl BatchReport {
@@ -69,6 +74,21 @@ pub fn apply_batch(
     items: &[Item<'_>],
     max_event_bytes: usize,
 ) -> BatchReport {
+    apply_batch_due(shards, metrics, source, items, max_event_bytes, None)
+}
+
+/// [`apply_batch`], and with a `cadence` also the snapshots of experiments that became due
+/// for evaluation (taken under the same lock, at the event that made them due), so decisions
+/// are a function of the event order alone.
+pub fn apply_batch_due(
+    shards: &Mutex<Shards>,
+    metrics: &Metrics,
+    source: Source,
+    items: &[Item<'_>],
+    max_event_bytes: usize,
+    cadence: Option<&Cadence>,
+) -> BatchReport {
+    let mut due = Vec::new();
     let decoded: Vec<Result<Event<'_>, Reject>> = items
         .iter()
         .map(|item| decode_event(item.bytes, max_event_bytes))
@@ -89,11 +109,23 @@ pub fn apply_batch(
                     shard.next_offset = Some(offset + 1);
                     shard.dirty = true;
                 }
-                Some(decoded.and_then(|event| shard.apply(&event)))
+                let event = match decoded {
+                    Ok(event) => event,
+                    Err(reject) => return Some(Err(reject)),
+                };
+                let Some(cadence) = cadence else {
+                    return Some(shard.apply(&event));
+                };
+                let (result, snap) = shard.apply_due(&event, cadence);
+                if let Some(mut snap) = snap {
+                    shards.merge_others(item.shard, &mut snap);
+                    due.push(snap);
+                }
+                Some(result)
             })
             .collect()
     };
-    let report = BatchReport { results };
+    let report = BatchReport { results, due };
     for outcome in Outcome::ALL {
         metrics.count_outcome(source, outcome, report.count(outcome));
     }
