@@ -47,7 +47,14 @@ impl Clock {
     /// case the clock restarts from this event.
     #[inline]
     pub fn tick(&mut self, cadence: &Cadence, time: Option<Micros>) -> bool {
-        self.events += 1;
+        self.tick_many(cadence, 1, time)
+    }
+
+    /// Count `n` valid events at once, the latest at `time` (aggregated simulation steps in
+    /// `plan`); due at most once per call.
+    #[inline]
+    pub fn tick_many(&mut self, cadence: &Cadence, n: u64, time: Option<Micros>) -> bool {
+        self.events += n;
         if let Some(t) = time {
             self.latest = Some(self.latest.map_or(t, |l| l.max(t)));
         }
