@@ -823,3 +823,93 @@ pub fn svg(opts: &PlanOptions, results: &[ScenarioResult]) -> Result<String, Str
     }
     Ok(out)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::experiment::{ExperimentRules, MetricDef, MetricRules, Prior, VariantDef};
+
+    fn def() -> ExperimentDef {
+        ExperimentDef {
+            id: "orchard-tour".into(),
+            control: 0,
+            variants: ["control", "tour"]
+                .iter()
+                .map(|n| VariantDef {
+                    name: n.to_string(),
+                    weight: 0.5,
+                })
+                .collect(),
+            metrics: vec![MetricDef {
+                name: "first-planting".into(),
+                kind: MetricKind::Conversion,
+                prior: Prior::Beta {
+                    alpha: 1.0,
+                    beta: 1.0,
+                },
+                variant_priors: vec![None, None],
+                rules: MetricRules::default(),
+            }],
+            rules: ExperimentRules::default(),
+        }
+    }
+
+    #[test]
+    fn effects_and_baselines_parse_with_their_errors_named() {
+        let d = def();
+        let e = parse_effect(&d, "tour=+5%").unwrap();
+        assert_eq!((e.variant, e.metric), (1, 0));
+        assert!((e.relative - 0.05).abs() < 1e-15);
+        assert!((parse_effect(&d, "tour:first-planting=-0.1").unwrap().relative + 0.1).abs() < 1e-15);
+        for (bad, says) in [
+            ("tour", "expected VARIANT=+X%"),
+            ("hedge=+5%", "no variant `hedge`"),
+            ("control=+5%", "is the control"),
+            ("tour:height=+5%", "no metric `height`"),
+            ("tour=lots", "not a number"),
+            ("tour=-150%", "above -100%"),
+        ] {
+            let msg = parse_effect(&d, bad).unwrap_err().to_string();
+            assert!(msg.contains(says), "{bad}: {msg}");
+        }
+        assert_eq!(parse_baselines(&d, &["first-planting=0.2".into()]).unwrap(), vec![0.2]);
+        let msg = parse_baselines(&d, &[]).unwrap_err().to_string();
+        assert!(msg.contains("--baseline first-planting=RATE"), "{msg}");
+        let msg = parse_baselines(&d, &["first-planting=1.5".into()]).unwrap_err().to_string();
+        assert!(msg.contains("(0, 1)"), "{msg}");
+    }
+
+    #[test]
+    fn the_recommendation_is_the_loosest_value_meeting_the_target() {
+        let pts = |v: &[(f64, f64)]| -> Vec<SweepPoint> {
+            v.iter()
+                .map(|&(value, error_share)| SweepPoint {
+                    value,
+                    error_share,
+                    standard_error: 0.0,
+                })
+                .collect()
+        };
+        let ship = pts(&[(0.004, 0.2), (0.002, 0.08), (0.001, 0.03), (0.0005, 0.01)]);
+        assert_eq!(recommend(&ship, SweepKind::ThresholdOfCaring, 0.05), Some(0.001));
+        assert_eq!(recommend(&ship, SweepKind::ThresholdOfCaring, 0.001), None);
+        let harm = pts(&[(0.95, 0.3), (0.99, 0.08), (0.999, 0.01)]);
+        assert_eq!(recommend(&harm, SweepKind::HarmProbability, 0.1), Some(0.99));
+    }
+
+    #[test]
+    fn per_run_seeds_differ_between_runs_and_scenarios() {
+        let seeds: std::collections::HashSet<u64> = (0..3)
+            .flat_map(|s| (0..1000).map(move |r| run_seed(7, s, r)))
+            .collect();
+        assert_eq!(seeds.len(), 3000);
+    }
+
+    #[test]
+    fn quantiles_are_nearest_rank() {
+        let mut xs = vec![5.0, 1.0, 4.0, 2.0, 3.0];
+        assert_eq!(quantile(&mut xs, 0.5), Some(3.0));
+        assert_eq!(quantile(&mut xs, 0.9), Some(5.0));
+        assert_eq!(quantile(&mut [], 0.5), None);
+    }
+}
