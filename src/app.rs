@@ -18,8 +18,8 @@ use crate::decide::cadence::Cadence;
 use crate::metrics::Metrics;
 use crate::metrics::Source;
 use crate::simulate::SimulateOptions;
-use crate::state::ExperimentSnapshot;
 use crate::state::shards::Shards;
+use crate::state::ExperimentSnapshot;
 use crate::store::{Store, Wal};
 
 /// State shared by every task of the service.
@@ -385,7 +385,11 @@ fn refresh_alert_gauges(shared: &Shared) {
 /// The evaluator: a dedicated thread that takes the snapshots queued by the ingest path, in
 /// order, and evaluates them, so quadrature never runs on the ingest path. On shutdown it
 /// evaluates what is already queued, then returns.
-fn evaluator(shared: Arc<Shared>, queue: Receiver<ExperimentSnapshot>, shutdown: CancellationToken) {
+fn evaluator(
+    shared: Arc<Shared>,
+    queue: Receiver<ExperimentSnapshot>,
+    shutdown: CancellationToken,
+) {
     use std::sync::mpsc::RecvTimeoutError;
     loop {
         match queue.recv_timeout(std::time::Duration::from_millis(100)) {

@@ -390,15 +390,24 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
         return Err(bad("--sims must be at least 1".into()));
     }
     if !(args.units_per_day.is_finite() && args.units_per_day >= 1.0) {
-        return Err(bad(format!("--units-per-day must be at least 1, got {}", args.units_per_day)));
+        return Err(bad(format!(
+            "--units-per-day must be at least 1, got {}",
+            args.units_per_day
+        )));
     }
     if !(args.days.is_finite() && args.days > 0.0 && args.days <= 3650.0) {
-        return Err(bad(format!("--days must be in (0, 3650], got {}", args.days)));
+        return Err(bad(format!(
+            "--days must be in (0, 3650], got {}",
+            args.days
+        )));
     }
     if args.step_secs == 0 {
         return Err(bad("--step-secs must be at least 1".into()));
     }
-    for (flag, t) in [("--target-false-ship", args.target_false_ship), ("--target-false-harm", args.target_false_harm)] {
+    for (flag, t) in [
+        ("--target-false-ship", args.target_false_ship),
+        ("--target-false-harm", args.target_false_harm),
+    ] {
         if let Some(t) = t {
             if !(t > 0.0 && t < 1.0) {
                 return Err(bad(format!("{flag} must be a share in (0, 1), got {t}")));
@@ -444,15 +453,20 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
         threads,
     };
     let sweeps: Vec<(SweepKind, f64)> = [
-        args.target_false_ship.map(|t| (SweepKind::ThresholdOfCaring, t)),
-        args.target_false_harm.map(|t| (SweepKind::HarmProbability, t)),
+        args.target_false_ship
+            .map(|t| (SweepKind::ThresholdOfCaring, t)),
+        args.target_false_harm
+            .map(|t| (SweepKind::HarmProbability, t)),
     ]
     .into_iter()
     .flatten()
     .collect();
     let mut total = (opts.scenarios.len() * opts.sims) as u64;
     for (kind, _) in &sweeps {
-        total += (plan::sweep_values(&opts.def, *kind).map_err(|e| bad(e.to_string()))?.len() * opts.sims) as u64;
+        total += (plan::sweep_values(&opts.def, *kind)
+            .map_err(|e| bad(e.to_string()))?
+            .len()
+            * opts.sims) as u64;
     }
     let bar = progress_bar(total, "simulating");
     let started = std::time::Instant::now();
@@ -461,7 +475,7 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
     let mut sweep_docs = Vec::new();
     let mut sweep_text = String::new();
     for (kind, target) in &sweeps {
-        let points = plan::sweep(&opts, *kind, &bar).map_err(|e| bad(e.to_string()))?;
+        let points = plan::sweep(&opts, *kind, *target, &bar).map_err(|e| bad(e.to_string()))?;
         let best = plan::recommend(&points, *kind, *target);
         let (what, error) = match kind {
             SweepKind::ThresholdOfCaring => ("threshold_of_caring", "false_ship"),
@@ -476,7 +490,10 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             "recommended": best,
         }));
         use std::fmt::Write;
-        let _ = writeln!(sweep_text, "sweep of {what}: A/A {error} share per value (target ≤ {target})");
+        let _ = writeln!(
+            sweep_text,
+            "sweep of {what}: A/A {error} share per value (target ≤ {target})"
+        );
         for p in &points {
             let _ = writeln!(
                 sweep_text,
@@ -484,13 +501,21 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
                 p.value,
                 p.error_share,
                 p.standard_error,
-                if Some(p.value) == best { "   ← loosest meeting the target" } else { "" }
+                if Some(p.value) == best {
+                    "   ← loosest meeting the target"
+                } else {
+                    ""
+                }
             );
         }
         let _ = writeln!(
             sweep_text,
             "  recommended {what}: {}\n",
-            best.map_or("none of the values tried meets the target; plan more units or fewer looks".to_string(), |b| format!("{b:.6e}"))
+            best.map_or(
+                "none of the values tried meets the target; plan more units or fewer looks"
+                    .to_string(),
+                |b| format!("{b:.6e}")
+            )
         );
     }
     bar.finish_and_clear();
@@ -511,7 +536,8 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
         );
     }
     if let Some(path) = &args.svg {
-        let svg = plan::svg(&opts, &results).map_err(|e| anyhow::anyhow!("cannot draw the plot: {e}"))?;
+        let svg =
+            plan::svg(&opts, &results).map_err(|e| anyhow::anyhow!("cannot draw the plot: {e}"))?;
         std::fs::write(path, svg).with_context(|| format!("cannot write {}", path.display()))?;
     }
     let def = &opts.def;
@@ -562,7 +588,10 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
 
 fn replay(config: &std::path::Path, events: &[String], json: bool) -> anyhow::Result<()> {
     let config = load_config(config)?;
-    let inputs: Vec<crate::replay::Input> = events.iter().map(|e| crate::replay::Input::parse(e)).collect();
+    let inputs: Vec<crate::replay::Input> = events
+        .iter()
+        .map(|e| crate::replay::Input::parse(e))
+        .collect();
     let size: u64 = inputs
         .iter()
         .map(|i| match i {
@@ -572,13 +601,19 @@ fn replay(config: &std::path::Path, events: &[String], json: bool) -> anyhow::Re
         .sum();
     let bar = progress_bar(size, "replaying");
     bar.set_style(
-        indicatif::ProgressStyle::with_template("replaying {bar:40} {bytes}/{total_bytes} ({bytes_per_sec}, eta {eta})")
-            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+        indicatif::ProgressStyle::with_template(
+            "replaying {bar:40} {bytes}/{total_bytes} ({bytes_per_sec}, eta {eta})",
+        )
+        .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
     );
-    let report = crate::replay::replay(&config, &inputs, &bar).map_err(|e| UsageError(e.to_string()))?;
+    let report =
+        crate::replay::replay(&config, &inputs, &bar).map_err(|e| UsageError(e.to_string()))?;
     bar.finish_and_clear();
     if json {
-        println!("{}", serde_json::to_string_pretty(&crate::replay::to_json(&report))?);
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&crate::replay::to_json(&report))?
+        );
     } else {
         print!("{}", crate::replay::to_text(&report));
     }

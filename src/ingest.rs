@@ -3,10 +3,10 @@
 
 use std::sync::Mutex;
 
+use crate::decide::cadence::Cadence;
 use crate::decode::decode_event;
 use crate::event::{Event, Outcome, Reject};
 use crate::metrics::{Metrics, Source};
-use crate::decide::cadence::Cadence;
 use crate::state::shards::Shards;
 use crate::state::ExperimentSnapshot;
 

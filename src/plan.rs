@@ -20,7 +20,9 @@ use crate::decide::cadence::{evaluate_snapshot, Cadence, Clock};
 use crate::decide::Rule;
 use crate::event::{Micros, Outcome};
 use crate::experiment::{ExperimentDef, MetricKind};
-use crate::state::{ConversionTotals, DefectTotals, ExperimentSnapshot, MetricTotals, OutcomeCounts};
+use crate::state::{
+    ConversionTotals, DefectTotals, ExperimentSnapshot, MetricTotals, OutcomeCounts,
+};
 
 const HOUR: Micros = 3_600_000_000;
 const DAY: Micros = 24 * HOUR;
@@ -180,16 +182,21 @@ pub struct ScenarioResult {
 /// Parse `variant=+x%` or `variant:metric=-x%` (also `x` as a fraction without `%`); the
 /// metric defaults to the primary one.
 pub fn parse_effect(def: &ExperimentDef, text: &str) -> Result<Effect, PlanError> {
-    let (who, amount) = text
-        .split_once('=')
-        .ok_or_else(|| usage(format!("--effect `{text}`: expected VARIANT=+X% or VARIANT:METRIC=+X%")))?;
+    let (who, amount) = text.split_once('=').ok_or_else(|| {
+        usage(format!(
+            "--effect `{text}`: expected VARIANT=+X% or VARIANT:METRIC=+X%"
+        ))
+    })?;
     let (variant, metric) = match who.split_once(':') {
         Some((v, m)) => (v, Some(m)),
         None => (who, None),
     };
-    let v = def
-        .variant_index(variant)
-        .ok_or_else(|| usage(format!("--effect `{text}`: experiment `{}` has no variant `{variant}`", def.id)))?;
+    let v = def.variant_index(variant).ok_or_else(|| {
+        usage(format!(
+            "--effect `{text}`: experiment `{}` has no variant `{variant}`",
+            def.id
+        ))
+    })?;
     if v == def.control {
         return Err(usage(format!(
             "--effect `{text}`: `{variant}` is the control; give effects of the other variants"
@@ -197,16 +204,23 @@ pub fn parse_effect(def: &ExperimentDef, text: &str) -> Result<Effect, PlanError
     }
     let m = match metric {
         None => def.rules.primary,
-        Some(m) => def
-            .metric_index(m)
-            .ok_or_else(|| usage(format!("--effect `{text}`: experiment `{}` has no metric `{m}`", def.id)))?,
+        Some(m) => def.metric_index(m).ok_or_else(|| {
+            usage(format!(
+                "--effect `{text}`: experiment `{}` has no metric `{m}`",
+                def.id
+            ))
+        })?,
     };
     let amount = amount.trim();
     let relative = match amount.strip_suffix('%') {
         Some(p) => p.trim().parse::<f64>().map(|x| x / 100.0),
         None => amount.parse::<f64>(),
     }
-    .map_err(|_| usage(format!("--effect `{text}`: `{amount}` is not a number like +5% or -0.02")))?;
+    .map_err(|_| {
+        usage(format!(
+            "--effect `{text}`: `{amount}` is not a number like +5% or -0.02"
+        ))
+    })?;
     if !(relative.is_finite() && relative > -1.0) {
         return Err(usage(format!(
             "--effect `{text}`: the relative effect must be above -100%"
@@ -226,9 +240,12 @@ pub fn parse_baselines(def: &ExperimentDef, given: &[String]) -> Result<Vec<f64>
         let (name, rate) = text
             .split_once('=')
             .ok_or_else(|| usage(format!("--baseline `{text}`: expected METRIC=RATE")))?;
-        let m = def
-            .metric_index(name)
-            .ok_or_else(|| usage(format!("--baseline `{text}`: experiment `{}` has no metric `{name}`", def.id)))?;
+        let m = def.metric_index(name).ok_or_else(|| {
+            usage(format!(
+                "--baseline `{text}`: experiment `{}` has no metric `{name}`",
+                def.id
+            ))
+        })?;
         let r: f64 = rate
             .trim()
             .parse()
@@ -302,10 +319,14 @@ pub fn simulate_run(
     let k = def.variants.len();
     let rates = true_rates(opts, scenario);
     let p = def.rules.primary;
-    let best = rates[p]
-        .iter()
-        .copied()
-        .fold(f64::NEG_INFINITY, if higher_is_better(def, p) { f64::max } else { f64::min });
+    let best = rates[p].iter().copied().fold(
+        f64::NEG_INFINITY,
+        if higher_is_better(def, p) {
+            f64::max
+        } else {
+            f64::min
+        },
+    );
     let regret = |arm: usize| (best - rates[p][arm]).abs();
     let mut rng = StdRng::seed_from_u64(run_seed(opts.seed, scenario_index, run));
     let mut book = AlertBook::new(opts.hold_down);
@@ -329,7 +350,9 @@ pub fn simulate_run(
         .metrics
         .iter()
         .map(|m| match m.kind {
-            MetricKind::Conversion => MetricTotals::Conversion(vec![ConversionTotals::default(); k]),
+            MetricKind::Conversion => {
+                MetricTotals::Conversion(vec![ConversionTotals::default(); k])
+            }
             MetricKind::DefectRate(_) => MetricTotals::Defect(vec![DefectTotals::default(); k]),
         })
         .collect();
@@ -376,7 +399,9 @@ pub fn simulate_run(
                         let n = new_units[v];
                         let mean = n as f64 * rates[m][v];
                         let c = if mean > 0.0 {
-                            Poisson::new(mean).map(|d| d.sample(&mut rng) as u64).unwrap_or(0)
+                            Poisson::new(mean)
+                                .map(|d| d.sample(&mut rng) as u64)
+                                .unwrap_or(0)
                         } else {
                             0
                         };
@@ -435,7 +460,12 @@ pub fn simulate_run(
     }
 }
 
-fn account(timing: &mut Timing, start: std::time::Instant, evaluating: std::time::Duration, looks: u64) {
+fn account(
+    timing: &mut Timing,
+    start: std::time::Instant,
+    evaluating: std::time::Duration,
+    looks: u64,
+) {
     let total = start.elapsed();
     timing.evaluating_ns += evaluating.as_nanos();
     timing.simulating_ns += total.saturating_sub(evaluating).as_nanos();
@@ -448,7 +478,11 @@ fn higher_is_better(def: &ExperimentDef, metric: usize) -> bool {
 
 /// The decision an evaluation's alert changes amount to, and the arm kept: harm first (the
 /// team stops the variant), then ship, equivalence and inconclusive.
-fn classify(def: &ExperimentDef, rates: &[Vec<f64>], changes: &[AlertChange]) -> Option<(Ending, usize)> {
+fn classify(
+    def: &ExperimentDef,
+    rates: &[Vec<f64>],
+    changes: &[AlertChange],
+) -> Option<(Ending, usize)> {
     let opened: Vec<&crate::decide::alerts::Alert> = changes
         .iter()
         .filter_map(|c| match c {
@@ -471,7 +505,14 @@ fn classify(def: &ExperimentDef, rates: &[Vec<f64>], changes: &[AlertChange]) ->
         } else {
             rates[p][v] < rates[p][control]
         };
-        return Some((if better { Ending::TrueShip } else { Ending::FalseShip }, v));
+        return Some((
+            if better {
+                Ending::TrueShip
+            } else {
+                Ending::FalseShip
+            },
+            v,
+        ));
     }
     if opened.iter().any(|a| a.key.rule == Rule::Equivalent) {
         return Some((Ending::Equivalent, control));
@@ -525,9 +566,11 @@ pub fn run(opts: &PlanOptions, progress: &dyn Progress) -> (Vec<ScenarioResult>,
             });
         }
     });
-    let mut ends = slots
-        .into_iter()
-        .map(|m| m.into_inner().unwrap_or_else(|p| p.into_inner()).expect("every job ran"));
+    let mut ends = slots.into_iter().map(|m| {
+        m.into_inner()
+            .unwrap_or_else(|p| p.into_inner())
+            .expect("every job ran")
+    });
     let results = opts
         .scenarios
         .iter()
@@ -536,7 +579,10 @@ pub fn run(opts: &PlanOptions, progress: &dyn Progress) -> (Vec<ScenarioResult>,
             runs: ends.by_ref().take(opts.sims).collect(),
         })
         .collect();
-    (results, timing.into_inner().unwrap_or_else(|p| p.into_inner()))
+    (
+        results,
+        timing.into_inner().unwrap_or_else(|p| p.into_inner()),
+    )
 }
 
 /// Share of runs with `ending`.
@@ -625,8 +671,8 @@ pub fn share_over_time(opts: &PlanOptions, result: &ScenarioResult) -> Vec<(f64,
             let t = (day * DAY as f64) as Micros;
             let mut shares = [0.0; 6];
             for r in &result.runs {
-                let decided = r.elapsed <= t
-                    && (r.ending != Ending::Inconclusive || day >= opts.days);
+                let decided =
+                    r.elapsed <= t && (r.ending != Ending::Inconclusive || day >= opts.days);
                 if decided {
                     let i = Ending::ALL.iter().position(|e| *e == r.ending).unwrap_or(0);
                     shares[i] += 1.0 / n;
@@ -697,8 +743,8 @@ pub struct SweepPoint {
     pub standard_error: f64,
 }
 
-/// The values a sweep tries, tightest last: thresholds of caring from 1/8 to 8 times the
-/// configured one (half-octave steps); harm probabilities from 0.9 to 0.9999.
+/// The values a sweep may try, loosest first: thresholds of caring from 8 times the configured
+/// one down to 1/512 of it in half-octave steps; harm probabilities from 0.9 to 0.99999.
 pub fn sweep_values(def: &ExperimentDef, kind: SweepKind) -> Result<Vec<f64>, PlanError> {
     match kind {
         SweepKind::ThresholdOfCaring => {
@@ -709,17 +755,24 @@ pub fn sweep_values(def: &ExperimentDef, kind: SweepKind) -> Result<Vec<f64>, Pl
                     def.metrics[p].name
                 ))
             })?;
-            Ok((0..=12).rev().map(|i| t * 2f64.powf((i as f64 - 6.0) / 2.0)).collect())
+            Ok((0..=24)
+                .map(|i| 8.0 * t * 2f64.powf(-(i as f64) / 2.0))
+                .collect())
         }
-        SweepKind::HarmProbability => Ok(vec![0.9, 0.95, 0.975, 0.99, 0.995, 0.999, 0.9995, 0.9999]),
+        SweepKind::HarmProbability => Ok(vec![
+            0.9, 0.95, 0.975, 0.99, 0.995, 0.999, 0.9995, 0.9999, 0.99999,
+        ]),
     }
 }
 
-/// Run the A/A scenario once per sweep value (same random streams for every value, so the
-/// comparison between values is not blurred by different draws).
+/// Run the A/A scenario for each sweep value, loosest first, until one meets `target`
+/// (tighter values only make the error rarer, up to Monte Carlo noise); the same random
+/// streams serve every value, so the comparison between values is not blurred by different
+/// draws.
 pub fn sweep(
     opts: &PlanOptions,
     kind: SweepKind,
+    target: f64,
     progress: &dyn Progress,
 ) -> Result<Vec<SweepPoint>, PlanError> {
     let values = sweep_values(&opts.def, kind)?;
@@ -747,17 +800,20 @@ pub fn sweep(
             ..opts.clone()
         };
         let (results, _) = run(&o, progress);
-        let target = match kind {
+        let error = match kind {
             SweepKind::ThresholdOfCaring => Ending::FalseShip,
             SweepKind::HarmProbability => Ending::Harm,
         };
-        let s = share(&results[0], target);
+        let s = share(&results[0], error);
         let n = results[0].runs.len().max(1) as f64;
         points.push(SweepPoint {
             value,
             error_share: s,
             standard_error: (s * (1.0 - s) / n).sqrt(),
         });
+        if s <= target {
+            break;
+        }
     }
     Ok(points)
 }
@@ -765,10 +821,17 @@ pub fn sweep(
 /// The loosest value meeting `target`: the largest threshold of caring, or the smallest harm
 /// probability, whose A/A error share is at most `target`.
 pub fn recommend(points: &[SweepPoint], kind: SweepKind, target: f64) -> Option<f64> {
-    let ok = points.iter().filter(|p| p.error_share <= target).map(|p| p.value);
+    let ok = points
+        .iter()
+        .filter(|p| p.error_share <= target)
+        .map(|p| p.value);
     match kind {
-        SweepKind::ThresholdOfCaring => ok.fold(None, |a: Option<f64>, v| Some(a.map_or(v, |a| a.max(v)))),
-        SweepKind::HarmProbability => ok.fold(None, |a: Option<f64>, v| Some(a.map_or(v, |a| a.min(v)))),
+        SweepKind::ThresholdOfCaring => {
+            ok.fold(None, |a: Option<f64>, v| Some(a.map_or(v, |a| a.max(v))))
+        }
+        SweepKind::HarmProbability => {
+            ok.fold(None, |a: Option<f64>, v| Some(a.map_or(v, |a| a.min(v))))
+        }
     }
 }
 
@@ -860,7 +923,14 @@ mod tests {
         let e = parse_effect(&d, "tour=+5%").unwrap();
         assert_eq!((e.variant, e.metric), (1, 0));
         assert!((e.relative - 0.05).abs() < 1e-15);
-        assert!((parse_effect(&d, "tour:first-planting=-0.1").unwrap().relative + 0.1).abs() < 1e-15);
+        assert!(
+            (parse_effect(&d, "tour:first-planting=-0.1")
+                .unwrap()
+                .relative
+                + 0.1)
+                .abs()
+                < 1e-15
+        );
         for (bad, says) in [
             ("tour", "expected VARIANT=+X%"),
             ("hedge=+5%", "no variant `hedge`"),
@@ -872,10 +942,15 @@ mod tests {
             let msg = parse_effect(&d, bad).unwrap_err().to_string();
             assert!(msg.contains(says), "{bad}: {msg}");
         }
-        assert_eq!(parse_baselines(&d, &["first-planting=0.2".into()]).unwrap(), vec![0.2]);
+        assert_eq!(
+            parse_baselines(&d, &["first-planting=0.2".into()]).unwrap(),
+            vec![0.2]
+        );
         let msg = parse_baselines(&d, &[]).unwrap_err().to_string();
         assert!(msg.contains("--baseline first-planting=RATE"), "{msg}");
-        let msg = parse_baselines(&d, &["first-planting=1.5".into()]).unwrap_err().to_string();
+        let msg = parse_baselines(&d, &["first-planting=1.5".into()])
+            .unwrap_err()
+            .to_string();
         assert!(msg.contains("(0, 1)"), "{msg}");
     }
 
@@ -891,10 +966,16 @@ mod tests {
                 .collect()
         };
         let ship = pts(&[(0.004, 0.2), (0.002, 0.08), (0.001, 0.03), (0.0005, 0.01)]);
-        assert_eq!(recommend(&ship, SweepKind::ThresholdOfCaring, 0.05), Some(0.001));
+        assert_eq!(
+            recommend(&ship, SweepKind::ThresholdOfCaring, 0.05),
+            Some(0.001)
+        );
         assert_eq!(recommend(&ship, SweepKind::ThresholdOfCaring, 0.001), None);
         let harm = pts(&[(0.95, 0.3), (0.99, 0.08), (0.999, 0.01)]);
-        assert_eq!(recommend(&harm, SweepKind::HarmProbability, 0.1), Some(0.99));
+        assert_eq!(
+            recommend(&harm, SweepKind::HarmProbability, 0.1),
+            Some(0.99)
+        );
     }
 
     #[test]

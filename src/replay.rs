@@ -147,7 +147,9 @@ pub fn replay(
     let max_event_bytes = config
         .kafka
         .as_ref()
-        .map_or(crate::decode::DEFAULT_MAX_EVENT_BYTES, |k| k.max_event_bytes);
+        .map_or(crate::decode::DEFAULT_MAX_EVENT_BYTES, |k| {
+            k.max_event_bytes
+        });
     let mut report = ReplayReport {
         lines: 0,
         outcomes: [0; Outcome::ALL.len()],
@@ -323,7 +325,11 @@ pub fn to_text(report: &ReplayReport) -> String {
         report.lines, report.bad, report.evaluations
     );
     for b in &report.bad_lines {
-        let _ = writeln!(out, "  bad line {}:{}: {} ({})", b.input, b.line, b.message, b.reason);
+        let _ = writeln!(
+            out,
+            "  bad line {}:{}: {} ({})",
+            b.input, b.line, b.message, b.reason
+        );
     }
     if report.bad > report.bad_lines.len() as u64 {
         let _ = writeln!(
@@ -348,8 +354,16 @@ pub fn to_text(report: &ReplayReport) -> String {
             crate::http::doc::time_text(at).unwrap_or_else(|| at.to_string()),
             a.key.rule.as_str(),
             a.key.experiment,
-            a.key.metric.as_deref().map(|m| format!(" / {m}")).unwrap_or_default(),
-            a.key.variant.as_deref().map(|v| format!(" / {v}")).unwrap_or_default(),
+            a.key
+                .metric
+                .as_deref()
+                .map(|m| format!(" / {m}"))
+                .unwrap_or_default(),
+            a.key
+                .variant
+                .as_deref()
+                .map(|v| format!(" / {v}"))
+                .unwrap_or_default(),
             d.input,
             d.line,
             a.finding.test,

@@ -162,7 +162,10 @@ fn a_sweep_recommends_the_loosest_threshold_meeting_the_target_and_an_svg_is_dra
         // Every tried value looser than the recommendation misses the target; the
         // recommendation itself meets it.
         if v > rec {
-            assert!(s > 0.1, "{v} is looser than {rec} and meets the target ({s})");
+            assert!(
+                s > 0.1,
+                "{v} is looser than {rec} and meets the target ({s})"
+            );
         }
         if v == rec {
             assert!(s <= 0.1);
@@ -180,7 +183,14 @@ fn bad_options_are_refused_with_a_reason() {
             .arg("plan")
             .arg("--config")
             .arg(here("tests/plan/one-look.toml"))
-            .args(["--experiment", "orchard-onboarding", "--units-per-day", "400", "--days", "5"])
+            .args([
+                "--experiment",
+                "orchard-onboarding",
+                "--units-per-day",
+                "400",
+                "--days",
+                "5",
+            ])
             .args(args)
             .output()
             .unwrap()

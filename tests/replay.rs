@@ -43,7 +43,11 @@ harm = { probability = 0.99 }
 /// not JSON, and an event for an unknown variant.
 fn stream(seed: u64, units: usize) -> Vec<String> {
     let mut rng = StdRng::seed_from_u64(seed);
-    let arms = [("control", 0.10), ("short-copy", 0.05), ("big-button", 0.15)];
+    let arms = [
+        ("control", 0.10),
+        ("short-copy", 0.05),
+        ("big-button", 0.15),
+    ];
     let start = 1_780_000_000i64; // 2026-05-28, seconds
     let at = |s: i64| {
         time::OffsetDateTime::from_unix_timestamp(s)
@@ -155,7 +159,12 @@ group = "{group}"
         },
     );
     let (_, live) = service.get("/v1/alerts");
-    let live: Vec<Value> = live["alerts"].as_array().unwrap().iter().map(comparable).collect();
+    let live: Vec<Value> = live["alerts"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(comparable)
+        .collect();
 
     let file = scratch.path().join("recorded.ndjson");
     std::fs::write(&file, lines.join("\n") + "\n").unwrap();
@@ -196,7 +205,11 @@ group = "{group}"
 fn bad_and_truncated_lines_are_reported_with_their_line_numbers() {
     let dir = tempfile::tempdir().unwrap();
     let config = dir.path().join("posteriord.toml");
-    std::fs::write(&config, format!("[http]\naddr = \"127.0.0.1:0\"\n{EXPERIMENT}")).unwrap();
+    std::fs::write(
+        &config,
+        format!("[http]\naddr = \"127.0.0.1:0\"\n{EXPERIMENT}"),
+    )
+    .unwrap();
     let mut lines = stream(6, 300);
     let clean = lines.len();
     lines.insert(10, "{\"type\":\"exposure\",".into()); // line 11
@@ -212,7 +225,10 @@ fn bad_and_truncated_lines_are_reported_with_their_line_numbers() {
     let last = lines.len() as u64 + 1;
     // The stream's own bad lines (none below 300 units) plus the two made here.
     assert_eq!(numbers, vec![11, last], "{errors:?}");
-    assert!(errors.iter().all(|e| e["reason"] == "invalid_json"), "{errors:?}");
+    assert!(
+        errors.iter().all(|e| e["reason"] == "invalid_json"),
+        "{errors:?}"
+    );
     assert_eq!(doc["input"]["bad_lines"], 2);
     assert_eq!(doc["input"]["lines"], last);
     assert_eq!(doc["input"]["events"], clean as u64);
@@ -226,7 +242,12 @@ fn bad_and_truncated_lines_are_reported_with_their_line_numbers() {
         .stdout(Stdio::piped())
         .spawn()
         .unwrap();
-    child.stdin.take().unwrap().write_all(text.as_bytes()).unwrap();
+    child
+        .stdin
+        .take()
+        .unwrap()
+        .write_all(text.as_bytes())
+        .unwrap();
     let out = child.wait_with_output().unwrap();
     assert!(out.status.success());
     let shown = String::from_utf8_lossy(&out.stdout);
