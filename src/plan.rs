@@ -659,7 +659,7 @@ pub fn scenario_json(opts: &PlanOptions, result: &ScenarioResult) -> Value {
 }
 
 /// For each whole day of the plan (and its end), the share of runs that had reached each
-/// decision by then; runs still open count as inconclusive only at the end.
+/// decision by then; runs without a decision count as inconclusive at the end.
 pub fn share_over_time(opts: &PlanOptions, result: &ScenarioResult) -> Vec<(f64, [f64; 6])> {
     let n = result.runs.len().max(1) as f64;
     let mut days: Vec<f64> = (1..=opts.days.floor() as u64).map(|d| d as f64).collect();
@@ -671,9 +671,9 @@ pub fn share_over_time(opts: &PlanOptions, result: &ScenarioResult) -> Vec<(f64,
             let t = (day * DAY as f64) as Micros;
             let mut shares = [0.0; 6];
             for r in &result.runs {
-                let decided =
-                    r.elapsed <= t && (r.ending != Ending::Inconclusive || day >= opts.days);
-                if decided {
+                // Runs still open at the end have elapsed == the plan's length, so they
+                // count only at the last point.
+                if r.elapsed <= t {
                     let i = Ending::ALL.iter().position(|e| *e == r.ending).unwrap_or(0);
                     shares[i] += 1.0 / n;
                 }
@@ -865,9 +865,14 @@ pub fn svg(opts: &PlanOptions, results: &[ScenarioResult]) -> Result<String, Str
             let series = share_over_time(opts, result);
             for (i, ending) in Ending::ALL.iter().enumerate() {
                 let color = colors[i];
-                let points: Vec<(f64, f64)> = std::iter::once((0.0, 0.0))
-                    .chain(series.iter().map(|(d, s)| (*d, s[i])))
-                    .collect();
+                // Steps, not ramps: the shares are known at the end of each day only.
+                let mut points = vec![(0.0, 0.0)];
+                let mut last = 0.0;
+                for (d, s) in &series {
+                    points.push((*d, last));
+                    points.push((*d, s[i]));
+                    last = s[i];
+                }
                 chart
                     .draw_series(LineSeries::new(points, color.stroke_width(2)))
                     .map_err(|e| e.to_string())?
