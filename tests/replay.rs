@@ -36,11 +36,24 @@ kind = "conversion"
 min_units = 300
 ship = { threshold_of_caring = 0.002 }
 harm = { probability = 0.99 }
+
+[[experiment]]
+id = "orchard-reminders"
+control = "control"
+variants = [ { name = "control", weight = 0.5 }, { name = "nudge", weight = 0.5 } ]
+[[experiment.metric]]
+name = "watering"
+kind = "conversion"
+[experiment.metric.rules]
+min_units = 100
+harm = { probability = 0.95 }
 "#;
 
 /// A recorded stream: `units` shoppers one second apart (event time), each exposed and
 /// perhaps converting a few seconds later, with some dirt: repeats, orphans, a line that is
-/// not JSON, and an event for an unknown variant.
+/// not JSON, and an event for an unknown variant. Interleaved with it, Pocket Orchard's
+/// reminder test (invented), whose `nudge` looks harmful at first and then recovers, so its
+/// harm alert opens, eases and closes after the hold-down of event time.
 fn stream(seed: u64, units: usize) -> Vec<String> {
     let mut rng = StdRng::seed_from_u64(seed);
     let arms = [
@@ -77,6 +90,26 @@ fn stream(seed: u64, units: usize) -> Vec<String> {
                 r#"{{"type":"conversion","experiment":"crumb-checkout","metric":"purchase","unit":"ghost-{i}","time":"{}"}}"#,
                 at(t)
             ));
+        }
+        if i % 2 == 0 {
+            let j = i / 2;
+            let (arm, rate) = if rng.random_bool(0.5) {
+                ("control", 0.3)
+            } else if j < 400 {
+                ("nudge", 0.1)
+            } else {
+                ("nudge", 0.6)
+            };
+            lines.push(format!(
+                r#"{{"type":"exposure","experiment":"orchard-reminders","variant":"{arm}","unit":"gardener-{j}","time":"{}"}}"#,
+                at(t)
+            ));
+            if rng.random_bool(rate) {
+                lines.push(format!(
+                    r#"{{"type":"conversion","experiment":"orchard-reminders","metric":"watering","unit":"gardener-{j}","time":"{}"}}"#,
+                    at(t)
+                ));
+            }
         }
         if i == 2500 {
             lines.push("this line is not an event".into());
@@ -187,6 +220,10 @@ group = "{group}"
     assert!(
         rules.contains(&"harm") && rules.contains(&"ship"),
         "the stream should raise harm and record a ship decision: {rules:?}"
+    );
+    assert!(
+        offline.iter().any(|a| a["state"] == "closed"),
+        "the stream should close an alert after its hold-down: {offline:?}"
     );
     assert_eq!(live.len(), offline.len(), "alert counts differ");
     for (l, o) in live.iter().zip(&offline) {
