@@ -228,7 +228,8 @@ impl Shards {
     /// shards' totals (local, then remote ones not held here) and the input positions, as
     /// [`Shards::snapshot`] would merge them. Costs one lookup per shard, not per experiment.
     pub fn merge_others(&self, from: &str, snap: &mut ExperimentSnapshot) {
-        let id = snap.def.id.clone();
+        let def = Arc::clone(&snap.def);
+        let id = def.id.as_str();
         let mut positions = Vec::new();
         for (shard_id, shard) in &self.shards {
             if shard_id == from {
@@ -237,7 +238,7 @@ impl Shards {
                 }
                 continue;
             }
-            if let Some(e) = shard.engine.experiment(&id) {
+            if let Some(e) = shard.engine.experiment(id) {
                 let other = e.snapshot();
                 if !other.is_empty() {
                     snap.merge(&other);
