@@ -235,17 +235,15 @@ pub fn replay(
                     None => {}
                 }
             }
-            // Due snapshots are in input order; the line of each is not tracked per snapshot,
-            // so decisions name the snapshot's input position instead.
+            // Due snapshots are in input order; each carries the replay shard's position just
+            // past the event that made it due, which maps back to that event's line.
+            let batch_start = offset - items.len() as i64;
             for snapshot in batch.due {
                 let line = snapshot
                     .positions
                     .iter()
                     .find(|(s, _)| s == REPLAY_SHARD)
-                    .and_then(|(_, next)| {
-                        let index = (*next - 1 - (offset - items.len() as i64)) as usize;
-                        numbers.get(index).copied()
-                    })
+                    .and_then(|(_, next)| numbers.get((*next - 1 - batch_start) as usize).copied())
                     .unwrap_or(0);
                 report.evaluations += 1;
                 let evaluation = evaluate_snapshot(&mut report.book, snapshot);
@@ -321,8 +319,11 @@ pub fn to_text(report: &ReplayReport) -> String {
     let applied = report.outcomes[0];
     let _ = writeln!(
         out,
-        "replayed {} lines: {events} valid events ({applied} applied), {} bad lines skipped, {} evaluations",
-        report.lines, report.bad, report.evaluations
+        "replayed {} lines: {events} valid events ({applied} applied), {} bad line{} skipped, {} evaluations",
+        report.lines,
+        report.bad,
+        if report.bad == 1 { "" } else { "s" },
+        report.evaluations
     );
     for b in &report.bad_lines {
         let _ = writeln!(
