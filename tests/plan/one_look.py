@@ -7,10 +7,11 @@
 # loss is below the threshold of caring T. With two arms, loss_v - loss_c = E[θc] - E[θv]
 # (E[(c-v)+] - E[(v-c)+] = E[c-v]), so the variant is chosen exactly when its posterior mean
 # is larger, and shipped when moreover loss_v = E[(θc-θv)+] < T. Harm: P(θv < θc) >= q.
-# For a fixed control count x_c both conditions hold for all x_v at or above a cut-off
-# (loss_v falls and P(θv < θc) rises monotonically in x_v), found by bisection; the answer is
+# For a fixed control count x_c each condition holds on one side of a cut-off in x_v
+# (loss_v falls and P(θv < θc) falls monotonically as x_v grows), found by a local search
+# from the previous control count's cut-off; the answer is
 #   Σ_xc Binom(x_c; n_c, p) · P(X_v ≥ cutoff(x_c)),
-# an exact sum over the binomial outcomes with one 1-D quadrature per bisection step:
+# an exact sum over the binomial outcomes with one 1-D quadrature per search step:
 #   E[(θc-θv)+] = ∫ f_v(y) [ m_c (1 - I_y(a_c+1, b_c)) - y (1 - I_y(a_c, b_c)) ] dy,
 #   P(θv < θc)  = ∫ f_v(y) (1 - I_y(a_c, b_c)) dy,
 # with f_v the variant's Beta posterior density and I the regularized incomplete beta.
@@ -39,18 +40,15 @@ def p_worse(a_c, b_c, a_v, b_v):
     return expect(a_v, b_v, lambda y: 1 - betainc(a_c, b_c, y))
 
 
-def cutoff(pred, n_v):
-    """Smallest x_v in [0, n_v] with pred(x_v) true (pred monotone), or n_v + 1."""
-    if not pred(n_v):
-        return n_v + 1
-    lo, hi = -1, n_v  # pred(lo) false (virtually), pred(hi) true
-    while hi - lo > 1:
-        mid = (lo + hi) // 2
-        if pred(mid):
-            hi = mid
-        else:
-            lo = mid
-    return hi
+def cutoff(pred, n_v, start):
+    """Smallest x_v in [0, n_v] with pred(x_v) true (pred monotone), or n_v + 1, searched
+    from `start`: the cut-off moves little from one control count to the next."""
+    c = min(max(start, 0), n_v + 1)
+    while c <= n_v and not pred(c):
+        c += 1
+    while c > 0 and pred(c - 1):
+        c -= 1
+    return c
 
 
 def main():
@@ -62,6 +60,7 @@ def main():
     lo, hi = int(ctrl.ppf(1e-12)), int(ctrl.isf(1e-12))
     ship = 0.0
     harm = 0.0
+    ship_cut = harm_cut = int(p * n_v)
     for x_c in range(lo, hi + 1):
         w = ctrl.pmf(x_c)
         a_c, b_c = alpha + x_c, beta + n_c - x_c
@@ -76,8 +75,10 @@ def main():
             a_v, b_v = alpha + x_v, beta + n_v - x_v
             return p_worse(a_c, b_c, a_v, b_v) < q
 
-        ship += w * var.sf(cutoff(ships, n_v) - 1)
-        harm += w * var.cdf(cutoff(not_harmed, n_v) - 1)
+        ship_cut = cutoff(ships, n_v, ship_cut)
+        harm_cut = cutoff(not_harmed, n_v, harm_cut)
+        ship += w * var.sf(ship_cut - 1)
+        harm += w * var.cdf(harm_cut - 1)
     json.dump({"false_ship": ship, "harm": harm}, sys.stdout)
 
 
