@@ -1043,7 +1043,12 @@ fn process_cpu_secs(pid: u32) -> f64 {
     // Fields after the parenthesised command name: state is field 3, utime 14, stime 15.
     let rest = stat.rsplit_once(')').map_or("", |(_, r)| r);
     let fields: Vec<&str> = rest.split_whitespace().collect();
-    let ticks = |i: usize| fields.get(i).and_then(|v| v.parse::<f64>().ok()).unwrap_or(0.0);
+    let ticks = |i: usize| {
+        fields
+            .get(i)
+            .and_then(|v| v.parse::<f64>().ok())
+            .unwrap_or(0.0)
+    };
     (ticks(11) + ticks(12)) / 100.0
 }
 

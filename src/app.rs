@@ -3,6 +3,7 @@
 
 use std::net::SocketAddr;
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::sync::mpsc::{Receiver, Sender};
 use std::sync::{Arc, Mutex, MutexGuard};
 
 use anyhow::Context;
@@ -13,10 +14,12 @@ use tokio_util::task::TaskTracker;
 use crate::alerting::{AlertFile, Delivery};
 use crate::config::Config;
 use crate::decide::alerts::{AlertBook, AlertChange};
+use crate::decide::cadence::Cadence;
 use crate::metrics::Metrics;
 use crate::metrics::Source;
 use crate::simulate::SimulateOptions;
 use crate::state::shards::Shards;
+use crate::state::ExperimentSnapshot;
 use crate::store::{Store, Wal};
 
 /// State shared by every task of the service.
@@ -59,6 +62,12 @@ pub struct Shared {
     /// Publishes the catalog of API experiments to the other instances (set once the Kafka
     /// changelog is reachable).
     catalog_publisher: std::sync::OnceLock<CatalogPublisher>,
+    /// When experiments are due for evaluation, by event time and count.
+    pub cadence: Cadence,
+    /// Snapshots of due experiments, to the evaluator.
+    due: Sender<ExperimentSnapshot>,
+    /// The evaluator's end of `due`, taken once by [`run`].
+    evaluation_queue: Mutex<Option<Receiver<ExperimentSnapshot>>>,
 }
 
 /// Sends an instance's catalog (its id, the catalog's JSON) to the other instances.
@@ -67,7 +76,14 @@ pub type CatalogPublisher = Box<dyn Fn(&str, &[u8]) + Send + Sync>;
 impl Shared {
     /// Fresh shared state for `config`.
     pub fn new(config: &Config) -> Shared {
+        let (due, queue) = std::sync::mpsc::channel();
         Shared {
+            cadence: Cadence::new(
+                config.alerts.evaluate_every.as_micros() as i64,
+                config.alerts.evaluate_every_events,
+            ),
+            due,
+            evaluation_queue: Mutex::new(Some(queue)),
             shards: Mutex::new(Shards::new(config.experiments.iter().cloned())),
             metrics: Metrics::new(),
             max_event_bytes: config
@@ -108,6 +124,32 @@ impl Shared {
     /// The catalog of API experiments (taken before the shards when both are needed).
     pub fn lock_catalog(&self) -> MutexGuard<'_, crate::catalog::Catalog> {
         self.catalog.lock().unwrap_or_else(|p| p.into_inner())
+    }
+
+    /// Decode and apply a batch from `source` (see [`crate::ingest::apply_batch`]) and queue
+    /// the experiments it made due for evaluation, in input order.
+    pub fn apply(
+        &self,
+        source: Source,
+        items: &[crate::ingest::Item<'_>],
+    ) -> crate::ingest::BatchReport {
+        let mut report = crate::ingest::apply_batch_due(
+            &self.shards,
+            &self.metrics,
+            source,
+            items,
+            self.max_event_bytes,
+            Some(&self.cadence),
+        );
+        for snapshot in report.due.drain(..) {
+            self.metrics
+                .evaluations
+                .with_label_values(&["queued"])
+                .inc();
+            // Fails only when the evaluator has stopped (shutdown); the state is kept anyway.
+            let _ = self.due.send(snapshot);
+        }
+        report
     }
 
     /// Whether any partition is being restored.
@@ -213,24 +255,12 @@ impl Shared {
                 .collect()
         };
         let Some(wal) = &self.http_wal else {
-            return Ok(crate::ingest::apply_batch(
-                &self.shards,
-                &self.metrics,
-                Source::Http,
-                &batch(None),
-                self.max_event_bytes,
-            ));
+            return Ok(self.apply(Source::Http, &batch(None)));
         };
         let mut wal = wal.lock().unwrap_or_else(|p| p.into_inner());
         let first = self.lock_shards().shard_mut(http).next_offset.unwrap_or(0);
         wal.append(first as u64, items)?;
-        Ok(crate::ingest::apply_batch(
-            &self.shards,
-            &self.metrics,
-            Source::Http,
-            &batch(Some(first)),
-            self.max_event_bytes,
-        ))
+        Ok(self.apply(Source::Http, &batch(Some(first))))
     }
 
     /// Re-apply logged HTTP events that the stored HTTP shard does not hold yet.
@@ -258,13 +288,7 @@ impl Shared {
             })
             .collect();
         if !items.is_empty() {
-            crate::ingest::apply_batch(
-                &self.shards,
-                &self.metrics,
-                Source::Http,
-                &items,
-                self.max_event_bytes,
-            );
+            self.apply(Source::Http, &items);
             tracing::info!(
                 events = items.len(),
                 "replayed events posted over HTTP from the write-ahead log"
@@ -332,95 +356,65 @@ pub fn now_micros() -> i64 {
     (time::OffsetDateTime::now_utc().unix_timestamp_nanos() / 1_000) as i64
 }
 
-/// When each experiment was last evaluated, to evaluate every T seconds or N events per
-/// experiment, whichever comes first.
-pub struct Cadence {
-    every: std::time::Duration,
-    every_events: u64,
-    last: std::collections::HashMap<String, (std::time::Instant, u64)>,
-}
-
-impl Cadence {
-    /// A cadence of `every` or `every_events`.
-    pub fn new(every: std::time::Duration, every_events: u64) -> Cadence {
-        Cadence {
-            every,
-            every_events,
-            last: Default::default(),
-        }
+/// Evaluate one due experiment (its snapshot as of the event that made it due) and fold the
+/// findings into the alert book with that event's time as "now"; each change is recorded with
+/// its deliveries, then logged as one structured line (the log sink) and counted.
+pub fn evaluate_due(shared: &Shared, snapshot: ExperimentSnapshot) {
+    // Quadrature runs outside the alerts lock; only the fold takes it.
+    let mut evaluation = crate::decide::cadence::assess(snapshot);
+    crate::http::history::record(
+        shared,
+        &evaluation.summary,
+        &evaluation.findings,
+        evaluation.at,
+    );
+    {
+        let mut book = shared.alerts.lock().unwrap_or_else(|p| p.into_inner());
+        evaluation.fold_into(&mut book);
     }
-
-    /// Whether `id`, which has seen `events` valid events, is due; marks it evaluated if so.
-    fn due(&mut self, id: &str, events: u64) -> bool {
-        let now = std::time::Instant::now();
-        let due = match self.last.get(id) {
-            None => true,
-            Some((at, seen)) => {
-                now.duration_since(*at) >= self.every
-                    || events.saturating_sub(*seen) >= self.every_events
-            }
-        };
-        if due {
-            self.last.insert(id.to_string(), (now, events));
-        }
-        due
+    shared
+        .metrics
+        .evaluations
+        .with_label_values(&["done"])
+        .inc();
+    let changes = evaluation.changes;
+    if changes.is_empty() {
+        return;
     }
-}
-
-/// Evaluate the experiments that `cadence` says are due and fold the findings into the alert
-/// book; each change is logged as one structured line (the log sink) and counted.
-pub fn evaluate_due(shared: &Shared, cadence: &mut Cadence) {
-    let snapshots: Vec<_> = shared
-        .lock_shards()
-        .snapshots()
-        .into_iter()
-        .filter(|s| cadence.due(&s.def.id, s.outcomes.0.iter().sum()))
-        .collect();
+    // Delivery stamps are operational, so they use the wall clock.
     let now = now_micros();
-    // Experiments no longer configured keep their alerts; nothing to evaluate for them.
-    for snapshot in snapshots {
-        let def = Arc::clone(&snapshot.def);
-        let summary = crate::summary::summarize_for_decisions(snapshot);
-        let findings = crate::decide::evaluate(&summary);
-        crate::http::history::record(shared, &summary, &findings, now);
-        let changes = shared
-            .alerts
-            .lock()
-            .unwrap_or_else(|p| p.into_inner())
-            .update(&def, &findings, now);
-        if changes.is_empty() {
-            continue;
-        }
-        // Recorded durably, with their deliveries, before anything is announced.
-        let deliveries = crate::alerting::deliveries_for(&changes, &shared.alerts_config, now);
-        shared.lock_outbox().extend(deliveries);
-        shared.save_alerts();
-        for change in changes {
-            let (kind, alert) = match &change {
-                AlertChange::Opened(a) => ("opened", a),
-                AlertChange::Closed(a) => ("closed", a),
-            };
-            shared
-                .metrics
-                .alert_changes
-                .with_label_values(&[alert.key.rule.as_str(), kind])
-                .inc();
-            tracing::warn!(
-                alert_id = %alert.id,
-                change = kind,
-                state = alert.state.as_str(),
-                experiment = %alert.key.experiment,
-                metric = alert.key.metric.as_deref().unwrap_or(""),
-                variant = alert.key.variant.as_deref().unwrap_or(""),
-                rule = alert.key.rule.as_str(),
-                value = alert.finding.value,
-                threshold = alert.finding.threshold,
-                caution = crate::http::doc::CAUTION_SHORT,
-                "{}",
-                alert.finding.message
-            );
-        }
+    // Recorded durably, with their deliveries, before anything is announced.
+    let deliveries = crate::alerting::deliveries_for(&changes, &shared.alerts_config, now);
+    shared.lock_outbox().extend(deliveries);
+    shared.save_alerts();
+    for change in changes {
+        let (kind, alert) = match &change {
+            AlertChange::Opened(a) => ("opened", a),
+            AlertChange::Closed(a) => ("closed", a),
+        };
+        shared
+            .metrics
+            .alert_changes
+            .with_label_values(&[alert.key.rule.as_str(), kind])
+            .inc();
+        tracing::warn!(
+            alert_id = %alert.id,
+            change = kind,
+            state = alert.state.as_str(),
+            experiment = %alert.key.experiment,
+            metric = alert.key.metric.as_deref().unwrap_or(""),
+            variant = alert.key.variant.as_deref().unwrap_or(""),
+            rule = alert.key.rule.as_str(),
+            value = alert.finding.value,
+            threshold = alert.finding.threshold,
+            caution = crate::http::doc::CAUTION_SHORT,
+            "{}",
+            alert.finding.message
+        );
     }
+}
+
+fn refresh_alert_gauges(shared: &Shared) {
     let book = shared.alerts.lock().unwrap_or_else(|p| p.into_inner());
     shared.metrics.alerts.reset();
     for a in book.alerts() {
@@ -432,29 +426,33 @@ pub fn evaluate_due(shared: &Shared, cadence: &mut Cadence) {
     }
 }
 
-/// Evaluate the rules on their cadence until shutdown: every experiment every `every`, or
-/// sooner once `every_events` events reached it.
-async fn evaluate_loop(
+/// The evaluator: a dedicated thread that takes the snapshots queued by the ingest path, in
+/// order, and evaluates them, so quadrature never runs on the ingest path. On shutdown it
+/// evaluates what is already queued, then returns.
+fn evaluator(
     shared: Arc<Shared>,
-    every: std::time::Duration,
-    every_events: u64,
+    queue: Receiver<ExperimentSnapshot>,
     shutdown: CancellationToken,
 ) {
-    let cadence = Arc::new(Mutex::new(Cadence::new(every, every_events)));
-    // Checking is cheap (counters only); evaluation happens only for due experiments.
-    let mut tick = tokio::time::interval(every.min(std::time::Duration::from_secs(1)));
+    use std::sync::mpsc::RecvTimeoutError;
     loop {
-        tokio::select! {
-            _ = shutdown.cancelled() => break,
-            _ = tick.tick() => {}
-        }
-        let s = Arc::clone(&shared);
-        let c = Arc::clone(&cadence);
-        let run = move || evaluate_due(&s, &mut c.lock().unwrap_or_else(|p| p.into_inner()));
-        if let Err(e) = tokio::task::spawn_blocking(run).await {
-            tracing::error!(error = %e, "rule evaluation failed");
+        match queue.recv_timeout(std::time::Duration::from_millis(100)) {
+            Ok(snapshot) => {
+                evaluate_due(&shared, snapshot);
+                while let Ok(snapshot) = queue.try_recv() {
+                    evaluate_due(&shared, snapshot);
+                }
+                refresh_alert_gauges(&shared);
+            }
+            Err(RecvTimeoutError::Timeout) if shutdown.is_cancelled() => break,
+            Err(RecvTimeoutError::Timeout) => {}
+            Err(RecvTimeoutError::Disconnected) => break,
         }
     }
+    while let Ok(snapshot) = queue.try_recv() {
+        evaluate_due(&shared, snapshot);
+    }
+    refresh_alert_gauges(&shared);
 }
 
 /// Store the HTTP shard on the snapshot cadence and once more at shutdown.
@@ -584,12 +582,16 @@ pub async fn run(
             shutdown.clone(),
         ));
     }
-    tracker.spawn(evaluate_loop(
-        Arc::clone(&shared),
-        config.alerts.evaluate_every,
-        config.alerts.evaluate_every_events,
-        shutdown.clone(),
-    ));
+    let queue = shared
+        .evaluation_queue
+        .lock()
+        .unwrap_or_else(|p| p.into_inner())
+        .take()
+        .context("the evaluator was already started")?;
+    {
+        let (s, token) = (Arc::clone(&shared), shutdown.clone());
+        tracker.spawn_blocking(move || evaluator(s, queue, token));
+    }
     if shared.store.is_some() {
         tracker.spawn(save_http_shard(
             Arc::clone(&shared),

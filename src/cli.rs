@@ -61,6 +61,78 @@ pub enum Command {
         #[arg(long, value_enum, default_value_t = CompareFormat::Json)]
         format: CompareFormat,
     },
+    /// Simulate what an experiment's stopping rules will decide with its traffic, before launch.
+    Plan(PlanArgs),
+    /// Feed recorded NDJSON events through the service's pipeline and print every decision.
+    Replay {
+        /// The TOML config file (experiments and `[alerts]` cadence).
+        #[arg(long)]
+        config: PathBuf,
+        /// NDJSON event files, in order; `-` is standard input.
+        #[arg(required = true)]
+        events: Vec<String>,
+        /// JSON for machines instead of text.
+        #[arg(long)]
+        json: bool,
+    },
+}
+
+/// Options of `plan`.
+#[derive(Debug, clap::Args)]
+pub struct PlanArgs {
+    /// The TOML config file.
+    #[arg(long)]
+    pub config: PathBuf,
+    /// The experiment to plan.
+    #[arg(long)]
+    pub experiment: String,
+    /// Simulated experiments per scenario.
+    #[arg(long, default_value_t = 1000)]
+    pub sims: usize,
+    /// Random seed (same seed, same output bytes).
+    #[arg(long, default_value_t = 1)]
+    pub seed: u64,
+    /// Units entering the experiment per day, all variants together.
+    #[arg(long)]
+    pub units_per_day: f64,
+    /// Planned duration in days.
+    #[arg(long)]
+    pub days: f64,
+    /// Baseline rate of a metric, `METRIC=RATE` (conversion probability, or defects per unit);
+    /// every metric needs one.
+    #[arg(long = "baseline")]
+    pub baselines: Vec<String>,
+    /// A scenario with a true relative effect, `VARIANT=+X%` (primary metric) or
+    /// `VARIANT:METRIC=-X%`; the A/A scenario always runs first.
+    #[arg(long = "effect")]
+    pub effects: Vec<String>,
+    /// Look once, at the end of the planned days (no early stopping).
+    #[arg(long)]
+    pub single_look: bool,
+    /// Simulation step in seconds: traffic is aggregated per step and the configured cadence
+    /// is checked at each step's end.
+    #[arg(long, default_value_t = 3600)]
+    pub step_secs: u64,
+    /// Sweep the threshold of caring and recommend the loosest one whose A/A false-ship share
+    /// is at most this.
+    #[arg(long)]
+    pub target_false_ship: Option<f64>,
+    /// Sweep the harm probability and recommend the loosest one whose A/A harm-alert share is
+    /// at most this.
+    #[arg(long)]
+    pub target_false_harm: Option<f64>,
+    /// JSON for machines instead of a table.
+    #[arg(long)]
+    pub json: bool,
+    /// Also write an SVG plot of decision shares over time to this file.
+    #[arg(long)]
+    pub svg: Option<PathBuf>,
+    /// Worker threads (default: the available cores); results do not depend on it.
+    #[arg(long)]
+    pub threads: Option<usize>,
+    /// Print throughput and where the time went to standard error.
+    #[arg(long)]
+    pub bench: bool,
 }
 
 /// Output format of `compare`.
@@ -104,6 +176,12 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Serve { config } => serve(&config),
         Command::CheckConfig { file } => check_config(&file),
         Command::Compare { file, format } => compare(file, format),
+        Command::Plan(args) => plan(args),
+        Command::Replay {
+            config,
+            events,
+            json,
+        } => replay(&config, &events, json),
     }
 }
 
@@ -283,6 +361,275 @@ fn compare(file: Option<PathBuf>, format: CompareFormat) -> anyhow::Result<()> {
     print!("{output}");
     if !output.ends_with('\n') {
         println!();
+    }
+    Ok(())
+}
+
+fn progress_bar(len: u64, what: &str) -> indicatif::ProgressBar {
+    let bar = indicatif::ProgressBar::with_draw_target(
+        Some(len),
+        indicatif::ProgressDrawTarget::stderr(),
+    );
+    let style = indicatif::ProgressStyle::with_template(&format!(
+        "{what} {{bar:40}} {{pos}}/{{len}} ({{per_sec}}, eta {{eta}})"
+    ))
+    .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar());
+    bar.set_style(style);
+    bar
+}
+
+fn plan(args: PlanArgs) -> anyhow::Result<()> {
+    use crate::plan::{self, PlanOptions, Scenario, SweepKind};
+    let bad = |m: String| anyhow::Error::from(UsageError(m));
+    let config = load_config(&args.config)?;
+    let def = config
+        .experiments
+        .iter()
+        .find(|e| e.id == args.experiment)
+        .cloned()
+        .ok_or_else(|| {
+            bad(format!(
+                "{}: no experiment `{}` (configured: {})",
+                args.config.display(),
+                args.experiment,
+                config
+                    .experiments
+                    .iter()
+                    .map(|e| e.id.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ))
+        })?;
+    if args.sims == 0 {
+        return Err(bad("--sims must be at least 1".into()));
+    }
+    if !(args.units_per_day.is_finite() && args.units_per_day >= 1.0) {
+        return Err(bad(format!(
+            "--units-per-day must be at least 1, got {}",
+            args.units_per_day
+        )));
+    }
+    if !(args.days.is_finite() && args.days > 0.0 && args.days <= 3650.0) {
+        return Err(bad(format!(
+            "--days must be in (0, 3650], got {}",
+            args.days
+        )));
+    }
+    if args.step_secs == 0 {
+        return Err(bad("--step-secs must be at least 1".into()));
+    }
+    for (flag, t) in [
+        ("--target-false-ship", args.target_false_ship),
+        ("--target-false-harm", args.target_false_harm),
+    ] {
+        if let Some(t) = t {
+            if !(t > 0.0 && t < 1.0) {
+                return Err(bad(format!("{flag} must be a share in (0, 1), got {t}")));
+            }
+        }
+    }
+    let baselines = plan::parse_baselines(&def, &args.baselines).map_err(|e| bad(e.to_string()))?;
+    let mut scenarios = vec![Scenario {
+        name: "A/A".into(),
+        effects: Vec::new(),
+    }];
+    for text in &args.effects {
+        let effect = plan::parse_effect(&def, text).map_err(|e| bad(e.to_string()))?;
+        scenarios.push(Scenario {
+            name: text.clone(),
+            effects: vec![effect],
+        });
+    }
+    let step = (args.step_secs as i64) * 1_000_000;
+    let every = config.alerts.evaluate_every.as_micros() as i64;
+    if every < step && !args.single_look {
+        eprintln!(
+            "posteriord plan: the configured cadence (alerts.evaluate_every_secs = {} s) is finer than the simulation step ({} s); the rules are looked at once per step, which slightly understates the effect of looking often",
+            every / 1_000_000,
+            args.step_secs
+        );
+    }
+    let threads = args
+        .threads
+        .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()));
+    let opts = PlanOptions {
+        def: std::sync::Arc::new(def),
+        cadence: crate::decide::cadence::Cadence::new(every, config.alerts.evaluate_every_events),
+        hold_down: config.alerts.hold_down.as_micros() as i64,
+        sims: args.sims,
+        seed: args.seed,
+        units_per_day: args.units_per_day,
+        days: args.days,
+        step,
+        single_look: args.single_look,
+        baselines,
+        scenarios,
+        threads,
+    };
+    let sweeps: Vec<(SweepKind, f64)> = [
+        args.target_false_ship
+            .map(|t| (SweepKind::ThresholdOfCaring, t)),
+        args.target_false_harm
+            .map(|t| (SweepKind::HarmProbability, t)),
+    ]
+    .into_iter()
+    .flatten()
+    .collect();
+    let mut total = (opts.scenarios.len() * opts.sims) as u64;
+    for (kind, _) in &sweeps {
+        total += (plan::sweep_values(&opts.def, *kind)
+            .map_err(|e| bad(e.to_string()))?
+            .len()
+            * opts.sims) as u64;
+    }
+    let bar = progress_bar(total, "simulating");
+    let started = std::time::Instant::now();
+    let (results, timing) = plan::run(&opts, &bar);
+    let wall = started.elapsed();
+    let mut sweep_docs = Vec::new();
+    let mut sweep_text = String::new();
+    for (kind, target) in &sweeps {
+        let points = plan::sweep(&opts, *kind, *target, &bar).map_err(|e| bad(e.to_string()))?;
+        let best = plan::recommend(&points, *kind, *target);
+        let (what, error) = match kind {
+            SweepKind::ThresholdOfCaring => ("threshold_of_caring", "false_ship"),
+            SweepKind::HarmProbability => ("harm_probability", "harm"),
+        };
+        sweep_docs.push(serde_json::json!({
+            "parameter": what,
+            "target": {"error": error, "share": target},
+            "points": points.iter().map(|p| serde_json::json!({
+                "value": p.value, "aa_error_share": p.error_share, "mc_standard_error": p.standard_error,
+            })).collect::<Vec<_>>(),
+            "recommended": best,
+        }));
+        use std::fmt::Write;
+        let _ = writeln!(
+            sweep_text,
+            "sweep of {what}: A/A {error} share per value (target ≤ {target})"
+        );
+        for p in &points {
+            let _ = writeln!(
+                sweep_text,
+                "  {what} = {:<12.6e} {error} {:.4} ± {:.4}{}",
+                p.value,
+                p.error_share,
+                p.standard_error,
+                if Some(p.value) == best {
+                    "   ← loosest meeting the target"
+                } else {
+                    ""
+                }
+            );
+        }
+        let _ = writeln!(
+            sweep_text,
+            "  recommended {what}: {}\n",
+            best.map_or(
+                "none of the values tried meets the target; plan more units or fewer looks"
+                    .to_string(),
+                |b| format!("{b:.6e}")
+            )
+        );
+    }
+    bar.finish_and_clear();
+    if args.bench {
+        let eval = timing.evaluating_ns as f64;
+        let sim = timing.simulating_ns as f64;
+        eprintln!(
+            "bench: {} simulations in {:.2} s wall on {} threads = {:.1} sims/s ({:.1} sims/s per thread); {} looks, {:.2} µs per look (thread time); evaluation {:.1}% of thread time, simulation {:.1}%",
+            opts.scenarios.len() * opts.sims,
+            wall.as_secs_f64(),
+            threads,
+            (opts.scenarios.len() * opts.sims) as f64 / wall.as_secs_f64(),
+            (opts.scenarios.len() * opts.sims) as f64 / ((eval + sim) / 1e9),
+            timing.looks,
+            (eval + sim) / 1e3 / timing.looks.max(1) as f64,
+            100.0 * eval / (eval + sim).max(1.0),
+            100.0 * sim / (eval + sim).max(1.0),
+        );
+    }
+    if let Some(path) = &args.svg {
+        let svg =
+            plan::svg(&opts, &results).map_err(|e| anyhow::anyhow!("cannot draw the plot: {e}"))?;
+        std::fs::write(path, svg).with_context(|| format!("cannot write {}", path.display()))?;
+    }
+    let def = &opts.def;
+    if args.json {
+        let doc = serde_json::json!({
+            "experiment": def.id,
+            "primary_metric": def.metrics[def.rules.primary].name,
+            "sims": opts.sims,
+            "seed": opts.seed,
+            "units_per_day": opts.units_per_day,
+            "days": opts.days,
+            "step_secs": args.step_secs,
+            "single_look": opts.single_look,
+            "cadence": {"evaluate_every_secs": every / 1_000_000, "evaluate_every_events": opts.cadence.every_events},
+            "baselines": def.metrics.iter().zip(&opts.baselines).map(|(m, b)| serde_json::json!({"metric": m.name, "rate": b})).collect::<Vec<_>>(),
+            "scenarios": results.iter().map(|r| plan::scenario_json(&opts, r)).collect::<Vec<_>>(),
+            "sweeps": sweep_docs,
+            "caution": crate::http::doc::CAUTION,
+        });
+        println!("{}", serde_json::to_string_pretty(&doc)?);
+    } else {
+        println!(
+            "plan for `{}`: {} runs per scenario, {} units/day for {} days, {} (seed {})\n",
+            def.id,
+            opts.sims,
+            opts.units_per_day,
+            opts.days,
+            if opts.single_look {
+                "one look at the end".to_string()
+            } else {
+                format!(
+                    "looks every {} s of event time or {} events (checked every {} s)",
+                    every / 1_000_000,
+                    opts.cadence.every_events,
+                    args.step_secs
+                )
+            },
+            opts.seed
+        );
+        for r in &results {
+            println!("{}", plan::scenario_table(&opts, r));
+        }
+        print!("{sweep_text}");
+        println!("{}", crate::http::doc::CAUTION);
+    }
+    Ok(())
+}
+
+fn replay(config: &std::path::Path, events: &[String], json: bool) -> anyhow::Result<()> {
+    let config = load_config(config)?;
+    let inputs: Vec<crate::replay::Input> = events
+        .iter()
+        .map(|e| crate::replay::Input::parse(e))
+        .collect();
+    let size: u64 = inputs
+        .iter()
+        .map(|i| match i {
+            crate::replay::Input::File(p) => std::fs::metadata(p).map_or(0, |m| m.len()),
+            crate::replay::Input::Stdin => 0,
+        })
+        .sum();
+    let bar = progress_bar(size, "replaying");
+    bar.set_style(
+        indicatif::ProgressStyle::with_template(
+            "replaying {bar:40} {bytes}/{total_bytes} ({bytes_per_sec}, eta {eta})",
+        )
+        .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    let report =
+        crate::replay::replay(&config, &inputs, &bar).map_err(|e| UsageError(e.to_string()))?;
+    bar.finish_and_clear();
+    if json {
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&crate::replay::to_json(&report))?
+        );
+    } else {
+        print!("{}", crate::replay::to_text(&report));
     }
     Ok(())
 }

@@ -3,10 +3,12 @@
 
 use std::sync::Mutex;
 
+use crate::decide::cadence::Cadence;
 use crate::decode::decode_event;
 use crate::event::{Event, Outcome, Reject};
 use crate::metrics::{Metrics, Source};
 use crate::state::shards::Shards;
+use crate::state::ExperimentSnapshot;
 
 /// How many events ahead of the one being applied to prefetch (enough to cover a memory
 /// access at ~100-300 ns per event; measured in benches/targets.rs).
@@ -29,6 +31,9 @@ pub struct BatchReport {
     /// One entry per input item; `None` for an item skipped because its offset was already
     /// applied (a redelivery after a seek).
     pub results: Vec<Option<Result<Outcome, Reject>>>,
+    /// Snapshots of experiments that became due for evaluation, each taken at the event that
+    /// made it due, in input order (only with a cadence).
+    pub due: Vec<ExperimentSnapshot>,
 }
 
 impl BatchReport {
@@ -73,6 +78,21 @@ pub fn apply_batch(
     items: &[Item<'_>],
     max_event_bytes: usize,
 ) -> BatchReport {
+    apply_batch_due(shards, metrics, source, items, max_event_bytes, None)
+}
+
+/// [`apply_batch`], and with a `cadence` also the snapshots of experiments that became due
+/// for evaluation (taken under the same lock, at the event that made them due), so decisions
+/// are a function of the event order alone.
+pub fn apply_batch_due(
+    shards: &Mutex<Shards>,
+    metrics: &Metrics,
+    source: Source,
+    items: &[Item<'_>],
+    max_event_bytes: usize,
+    cadence: Option<&Cadence>,
+) -> BatchReport {
+    let mut due = Vec::new();
     // `Option` so that each event can be taken out in turn while later ones are still read.
     let mut decoded: Vec<Option<Result<Event<'_>, Reject>>> = items
         .iter()
@@ -83,6 +103,7 @@ pub fn apply_batch(
             .lock()
             .unwrap_or_else(|poisoned| poisoned.into_inner());
         let mut results = Vec::with_capacity(items.len());
+        let mut run_due = Vec::new();
         let mut i = 0;
         while i < items.len() {
             // Sources hand over runs of one shard (a Kafka poll is mostly one partition):
@@ -111,13 +132,34 @@ pub fn apply_batch(
                     shard.next_offset = Some(offset + 1);
                     shard.dirty = true;
                 }
-                results.push(Some(decoded.and_then(|event| shard.apply(&event))));
+                let event = match decoded {
+                    Ok(event) => event,
+                    Err(reject) => {
+                        results.push(Some(Err(reject)));
+                        continue;
+                    }
+                };
+                let Some(cadence) = cadence else {
+                    results.push(Some(shard.apply(&event)));
+                    continue;
+                };
+                let (result, snap) = shard.apply_due(&event, cadence);
+                if let Some(snap) = snap {
+                    run_due.push(snap);
+                }
+                results.push(Some(result));
+            }
+            // The other shards did not change during this run, so adding their totals now
+            // gives the same snapshot as at the due event.
+            for mut snap in run_due.drain(..) {
+                shards.merge_others(name, &mut snap);
+                due.push(snap);
             }
             i = run_end;
         }
         results
     };
-    let report = BatchReport { results };
+    let report = BatchReport { results, due };
     for outcome in Outcome::ALL {
         metrics.count_outcome(source, outcome, report.count(outcome));
     }

@@ -731,13 +731,7 @@ fn apply_messages(
             bytes: m.payload().unwrap_or_default(),
         })
         .collect();
-    let report = crate::ingest::apply_batch(
-        &shared.shards,
-        &shared.metrics,
-        Source::Kafka,
-        &items,
-        shared.max_event_bytes,
-    );
+    let report = shared.apply(Source::Kafka, &items);
     for (i, reject) in report.rejects() {
         let m = &batch[i];
         tracing::debug!(

@@ -26,6 +26,8 @@ pub mod http;
 pub mod ingest;
 pub mod kafka;
 pub mod metrics;
+pub mod plan;
+pub mod replay;
 pub mod simulate;
 pub mod state;
 pub mod stats;

@@ -63,6 +63,8 @@ pub struct Metrics {
     pub alert_changes: IntCounterVec,
     /// Alert delivery attempts by sink kind and result.
     pub alert_deliveries: IntCounterVec,
+    /// Rule evaluations by stage: `queued` by the ingest path, `done` by the evaluator.
+    pub evaluations: IntCounterVec,
     /// Posterior mean per experiment, metric and variant.
     pub posterior_mean: GaugeVec,
     /// Lower end of the 95% equal-tailed credible interval.
@@ -200,7 +202,17 @@ impl Metrics {
             "Alert delivery attempts by sink (webhook, kafka) and result (ok, error).",
             &["sink", "result"],
         );
+        let evaluations = counter_vec(
+            &registry,
+            "posteriord_evaluations_total",
+            "Rule evaluations by stage: queued (an experiment became due) and done.",
+            &["stage"],
+        );
+        for stage in ["queued", "done"] {
+            evaluations.with_label_values(&[stage]);
+        }
         let m = Metrics {
+            evaluations,
             alert_deliveries,
             alerts,
             alert_changes,

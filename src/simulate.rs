@@ -359,13 +359,7 @@ pub async fn run(options: SimulateOptions, shared: Arc<Shared>, shutdown: Cancel
         carry -= units as f64;
         let lines = generator.tick(units);
         let items = items(&lines);
-        crate::ingest::apply_batch(
-            &shared.shards,
-            &shared.metrics,
-            Source::Simulator,
-            &items,
-            shared.max_event_bytes,
-        );
+        shared.apply(Source::Simulator, &items);
     }
     tracing::info!("simulator stopped");
 }

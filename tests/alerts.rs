@@ -70,7 +70,10 @@ fn config(port: u16, extra: &str) -> String {
 addr = "127.0.0.1:0"
 {extra}
 [alerts]
+# Every event of harmful_events() has the same time, so the event count drives evaluation:
+# 1512 is their number, so the rules are evaluated once, on all of them.
 evaluate_every_secs = 1
+evaluate_every_events = 1512
 [[alerts.webhook]]
 url = "http://127.0.0.1:{port}/hooks/experiments"
 secret_env = "CRUMB_HOOK_SECRET"

@@ -72,7 +72,8 @@ pub const DEFAULT_SHUTDOWN_GRACE_SECS: u64 = 30;
 pub struct AlertsConfig {
     /// How long a finding must stay away before its alert closes.
     pub hold_down: std::time::Duration,
-    /// How often every experiment's rules are evaluated.
+    /// How often an experiment's rules are evaluated, in event time (the events' own
+    /// timestamps, not the wall clock).
     pub evaluate_every: std::time::Duration,
     /// An experiment is also evaluated once this many events reached it since its last
     /// evaluation (whichever comes first; never per event).

@@ -10,6 +10,7 @@
 //! rules are reported first and suspend shipping.
 
 pub mod alerts;
+pub mod cadence;
 
 use crate::event::Outcome;
 use crate::experiment::{ExperimentDef, MetricKind};

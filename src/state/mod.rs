@@ -171,6 +171,9 @@ pub struct ExperimentState {
     outcomes: OutcomeCounts,
     last_event_time: Option<Micros>,
     first_event_time: Option<Micros>,
+    /// Where the experiment is in its evaluation cadence (not stored: a restored experiment
+    /// restarts its cadence).
+    clock: crate::decide::cadence::Clock,
 }
 
 impl ExperimentState {
@@ -212,6 +215,7 @@ impl ExperimentState {
             outcomes: OutcomeCounts::default(),
             last_event_time: None,
             first_event_time: None,
+            clock: Default::default(),
         }
     }
 
@@ -688,6 +692,23 @@ impl Engine {
         if let Some(idx) = self.position(&event.experiment) {
             self.experiments[idx].prefetch(event);
         }
+    }
+
+    /// Apply one decoded event and, when it is valid and makes its experiment due under
+    /// `cadence`, return the experiment's snapshot as of this event. O(1) and allocation-free
+    /// unless due (the snapshot copies totals, never the unit table).
+    pub fn apply_due(
+        &mut self,
+        event: &Event<'_>,
+        cadence: &crate::decide::cadence::Cadence,
+    ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
+        let Some(idx) = self.position(&event.experiment) else {
+            return (self.apply(event), None);
+        };
+        let e = &mut self.experiments[idx];
+        let r = e.apply(event);
+        let due = r.is_ok() && e.clock.tick(cadence, event.time);
+        (r, due.then(|| e.snapshot()))
     }
 
     /// The experiment called `id`.

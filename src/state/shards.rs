@@ -57,6 +57,20 @@ impl Shard {
         }
         r
     }
+
+    /// [`Shard::apply`], also returning the experiment's snapshot when the event makes it due
+    /// under `cadence` (see [`Engine::apply_due`]).
+    pub fn apply_due(
+        &mut self,
+        event: &Event<'_>,
+        cadence: &crate::decide::cadence::Cadence,
+    ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
+        let (r, due) = self.engine.apply_due(event, cadence);
+        if r.is_ok() {
+            self.dirty = true;
+        }
+        (r, due)
+    }
 }
 
 /// The complete state of one shard as plain data, for the store.
@@ -278,5 +292,43 @@ impl Shards {
             .iter()
             .filter_map(|d| self.snapshot(&d.id))
             .collect()
+    }
+
+    /// Complete `snap`, experiment `snap.def.id` as shard `from` holds it, with the other
+    /// shards' totals (local, then remote ones not held here) and the input positions, as
+    /// [`Shards::snapshot`] would merge them. Costs one lookup per shard, not per experiment.
+    pub fn merge_others(&self, from: &str, snap: &mut ExperimentSnapshot) {
+        let def = Arc::clone(&snap.def);
+        let id = def.id.as_str();
+        let mut positions = Vec::new();
+        for (shard_id, shard) in &self.shards {
+            if shard_id == from {
+                if let Some(next) = shard.next_offset {
+                    positions.push((shard_id.clone(), next));
+                }
+                continue;
+            }
+            if let Some(e) = shard.engine.experiment(id) {
+                let other = e.snapshot();
+                if !other.is_empty() {
+                    snap.merge(&other);
+                    if let Some(next) = shard.next_offset {
+                        positions.push((shard_id.clone(), next));
+                    }
+                }
+            }
+        }
+        for (shard_id, (next, snaps)) in &self.remote {
+            if self.shards.contains_key(shard_id) {
+                continue;
+            }
+            for other in snaps.iter().filter(|s| s.def.id == id) {
+                snap.merge(other);
+                if let Some(next) = next {
+                    positions.push((shard_id.clone(), *next));
+                }
+            }
+        }
+        snap.positions = positions;
     }
 }

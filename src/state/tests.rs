@@ -491,3 +491,47 @@ fn an_inserted_shard_follows_the_current_definitions() {
     e.experiment = Cow::Borrowed("orchard-sprout-tray");
     assert_eq!(shard.apply(&e).unwrap(), Outcome::Applied);
 }
+
+#[test]
+fn a_due_event_yields_the_snapshot_as_of_that_event_and_rejects_do_not_count() {
+    use crate::decide::cadence::Cadence;
+    let mut engine = Engine::new([bakery()]);
+    let cadence = Cadence::new(i64::MAX, 3);
+    let names = ["u1", "u2", "u3", "u4", "u5", "u6"];
+    let mut due = Vec::new();
+    for (i, unit) in names.iter().enumerate() {
+        let (r, snap) = engine.apply_due(&exposure("control", unit), &cadence);
+        assert_eq!(r, Ok(Outcome::Applied));
+        if let Some(s) = snap {
+            due.push((i, s.units[0]));
+        }
+        // An invalid event changes nothing and does not advance the cadence.
+        let (r, snap) = engine.apply_due(&exposure("no-such-arm", unit), &cadence);
+        assert!(r.is_err() && snap.is_none());
+    }
+    assert_eq!(due, vec![(2, 3), (5, 6)]);
+}
+
+#[test]
+fn a_due_snapshot_merged_from_one_shard_equals_the_merged_snapshot() {
+    let mut shards = shards::Shards::new([bakery()]);
+    shards
+        .shard_mut("kafka/t/0")
+        .apply(&exposure("control", "a"))
+        .unwrap();
+    shards.shard_mut("kafka/t/0").next_offset = Some(1);
+    shards
+        .shard_mut("http")
+        .apply(&exposure("short-copy", "b"))
+        .unwrap();
+    let mut snap = shards
+        .shard("kafka/t/0")
+        .unwrap()
+        .engine
+        .experiment("crumb-checkout")
+        .unwrap()
+        .snapshot();
+    shards.merge_others("kafka/t/0", &mut snap);
+    assert_eq!(snap, shards.snapshot("crumb-checkout").unwrap());
+    assert_eq!(snap.units, vec![1, 1]);
+}

@@ -1,0 +1,171 @@
+//! When an experiment is due for evaluation, decided by the events themselves (their own time
+//! and their count), and the one evaluation step every caller runs: summarize → evaluate →
+//! alert book. Pure: no clock is read, so the same event order gives the same decisions live,
+//! in `replay` and in `plan`.
+
+use super::alerts::{AlertBook, AlertChange};
+use super::Finding;
+use crate::event::Micros;
+use crate::state::ExperimentSnapshot;
+use crate::summary::ExperimentSummary;
+
+/// How often experiments are evaluated: every `every` of event time, or once `every_events`
+/// valid events reached the experiment since its last evaluation, whichever comes first.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Cadence {
+    /// Event-time interval (µs).
+    pub every: Micros,
+    /// Event-count interval.
+    pub every_events: u64,
+}
+
+impl Cadence {
+    /// A cadence of `every` (µs of event time) or `every_events` events.
+    pub fn new(every: Micros, every_events: u64) -> Cadence {
+        Cadence {
+            every: every.max(1),
+            every_events: every_events.max(1),
+        }
+    }
+}
+
+/// One experiment's position in its cadence. Copy-sized and allocation-free, because it is
+/// advanced for every valid event on the ingest path.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct Clock {
+    /// Event time of the last evaluation (or of the first timed event, which starts the clock).
+    last: Option<Micros>,
+    /// Latest event time seen. Event times can arrive out of order; the clock follows the
+    /// largest, so hold-downs and durations never run backwards.
+    latest: Option<Micros>,
+    /// Valid events since the last evaluation.
+    events: u64,
+}
+
+impl Clock {
+    /// Count one valid event with time `time`; `true` when the experiment is due now, in which
+    /// case the clock restarts from this event.
+    #[inline]
+    pub fn tick(&mut self, cadence: &Cadence, time: Option<Micros>) -> bool {
+        self.tick_many(cadence, 1, time)
+    }
+
+    /// Count `n` valid events at once, the latest at `time` (aggregated simulation steps in
+    /// `plan`); due at most once per call.
+    #[inline]
+    pub fn tick_many(&mut self, cadence: &Cadence, n: u64, time: Option<Micros>) -> bool {
+        self.events += n;
+        if let Some(t) = time {
+            self.latest = Some(self.latest.map_or(t, |l| l.max(t)));
+        }
+        let by_time = match (self.last, self.latest) {
+            (Some(last), Some(now)) => now - last >= cadence.every,
+            (None, Some(now)) => {
+                self.last = Some(now);
+                false
+            }
+            _ => false,
+        };
+        if by_time || self.events >= cadence.every_events {
+            self.events = 0;
+            self.last = self.latest;
+            true
+        } else {
+            false
+        }
+    }
+}
+
+/// The result of one evaluation: what a reader (history, dashboards, the alert sinks) needs.
+#[derive(Debug)]
+pub struct Evaluation {
+    /// The summary the rules were evaluated on.
+    pub summary: ExperimentSummary,
+    /// The rules that held.
+    pub findings: Vec<Finding>,
+    /// Alert openings and closings this evaluation caused.
+    pub changes: Vec<AlertChange>,
+    /// Event time the evaluation stands for ("now" of the alert book).
+    pub at: Micros,
+}
+
+/// The event time an evaluation of `snapshot` stands for: the latest event time in it (0 for
+/// data without times, where only the event count drives the cadence).
+pub fn evaluation_time(snapshot: &ExperimentSnapshot) -> Micros {
+    snapshot.last_event_time.unwrap_or(0)
+}
+
+/// Summarize `snapshot` and evaluate the rules, at the snapshot's event time; no alert
+/// changes yet (see [`Evaluation::fold_into`]).
+pub fn assess(snapshot: ExperimentSnapshot) -> Evaluation {
+    let at = evaluation_time(&snapshot);
+    // Only what the rules read (and the primary metric's lift, for the history): the
+    // probabilities are those of the full summary, bit for bit, at a lower cost.
+    let summary = crate::summary::summarize_for_decisions(snapshot);
+    let findings = super::evaluate(&summary);
+    Evaluation {
+        summary,
+        findings,
+        changes: Vec::new(),
+        at,
+    }
+}
+
+impl Evaluation {
+    /// Fold the findings into `book` with the evaluation's event time as "now".
+    pub fn fold_into(&mut self, book: &mut AlertBook) {
+        self.changes = book.update(&self.summary.snapshot.def, &self.findings, self.at);
+    }
+}
+
+/// Summarize `snapshot`, evaluate the rules and fold the findings into `book`, with the
+/// snapshot's event time as "now". The one evaluation step: the live evaluator (in two halves,
+/// to keep the alert lock short), `replay` and `plan` all run it, so they cannot disagree.
+pub fn evaluate_snapshot(book: &mut AlertBook, snapshot: ExperimentSnapshot) -> Evaluation {
+    let mut evaluation = assess(snapshot);
+    evaluation.fold_into(book);
+    evaluation
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const S: Micros = 1_000_000;
+
+    #[test]
+    fn due_by_event_time_or_by_count_whichever_first() {
+        let c = Cadence::new(10 * S, 5);
+        let mut clock = Clock::default();
+        // The first timed event starts the clock.
+        assert!(!clock.tick(&c, Some(100 * S)));
+        assert!(!clock.tick(&c, Some(105 * S)));
+        // Ten seconds of event time since the start.
+        assert!(clock.tick(&c, Some(110 * S)));
+        // Then five events within less time.
+        for t in 111..115 {
+            assert!(!clock.tick(&c, Some(t * S)), "{t}");
+        }
+        assert!(clock.tick(&c, Some(115 * S)));
+    }
+
+    #[test]
+    fn late_events_do_not_move_the_clock_back() {
+        let c = Cadence::new(10 * S, 1000);
+        let mut clock = Clock::default();
+        assert!(!clock.tick(&c, Some(100 * S)));
+        assert!(!clock.tick(&c, Some(50 * S)));
+        assert!(!clock.tick(&c, Some(109 * S)));
+        assert!(clock.tick(&c, Some(110 * S)));
+    }
+
+    #[test]
+    fn untimed_events_are_counted_only() {
+        let c = Cadence::new(S, 3);
+        let mut clock = Clock::default();
+        assert!(!clock.tick(&c, None));
+        assert!(!clock.tick(&c, None));
+        assert!(clock.tick(&c, None));
+        assert!(!clock.tick(&c, None));
+    }
+}

@@ -1,0 +1,1002 @@
+//! `posteriord plan`: what an experiment's stopping rules will do with its traffic, before
+//! launch. Simulates many experiments under scenarios (A/A, and each true effect asked for),
+//! aggregating traffic per look, and runs every look through the service's own evaluation
+//! step (summarize → evaluate → alert book, on the configured event-time cadence). Reports how
+//! often each decision is reached, how fast, and the loss the decisions incur; optionally
+//! sweeps a threshold to meet a target error rate. Deterministic for a seed, whatever the
+//! number of threads: each simulated experiment has its own random stream derived from the
+//! seed and its index.
+
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::{Arc, Mutex};
+
+use rand::rngs::StdRng;
+use rand::SeedableRng;
+use rand_distr::{Binomial, Distribution, Poisson};
+use serde_json::{json, Value};
+
+use crate::decide::alerts::{AlertBook, AlertChange};
+use crate::decide::cadence::{evaluate_snapshot, Cadence, Clock};
+use crate::decide::Rule;
+use crate::event::{Micros, Outcome};
+use crate::experiment::{ExperimentDef, MetricKind};
+use crate::state::{
+    ConversionTotals, DefectTotals, ExperimentSnapshot, MetricTotals, OutcomeCounts,
+};
+
+const HOUR: Micros = 3_600_000_000;
+const DAY: Micros = 24 * HOUR;
+/// Simulated experiments start at 2026-01-05T00:00:00Z (any fixed time would do; a fixed one
+/// keeps output bytes identical between runs).
+const START: Micros = 1_767_571_200_000_000;
+
+/// Why a plan cannot run.
+#[derive(Debug, thiserror::Error)]
+pub enum PlanError {
+    /// Bad options.
+    #[error("{0}")]
+    Usage(String),
+}
+
+fn usage(s: impl Into<String>) -> PlanError {
+    PlanError::Usage(s.into())
+}
+
+/// A true effect: the variant's rate on the metric is the baseline times (1 + relative).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Effect {
+    /// Variant index.
+    pub variant: usize,
+    /// Metric index.
+    pub metric: usize,
+    /// Relative effect, e.g. 0.05 for +5%.
+    pub relative: f64,
+}
+
+/// A scenario: the A/A case (no effects) or one effect.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Scenario {
+    /// As written on the command line, or "A/A".
+    pub name: String,
+    /// True effects.
+    pub effects: Vec<Effect>,
+}
+
+/// What to simulate.
+#[derive(Debug, Clone)]
+pub struct PlanOptions {
+    /// The experiment as configured.
+    pub def: Arc<ExperimentDef>,
+    /// The evaluation cadence of the service.
+    pub cadence: Cadence,
+    /// The alert hold-down of the service (µs).
+    pub hold_down: Micros,
+    /// Simulated experiments per scenario.
+    pub sims: usize,
+    /// Random seed.
+    pub seed: u64,
+    /// Units entering the experiment per day (all arms).
+    pub units_per_day: f64,
+    /// Planned duration.
+    pub days: f64,
+    /// Simulation step (µs): traffic is aggregated per step and the cadence is checked at
+    /// each step's end, so the rules are looked at most once per step.
+    pub step: Micros,
+    /// Look only once, at the end (no early stopping).
+    pub single_look: bool,
+    /// Baseline rate per metric (conversion probability, or defects per unit).
+    pub baselines: Vec<f64>,
+    /// The scenarios, A/A first.
+    pub scenarios: Vec<Scenario>,
+    /// Worker threads (results do not depend on it).
+    pub threads: usize,
+}
+
+/// How a simulated experiment ended.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Ending {
+    /// A variant that is not better than the control on the primary metric was shipped.
+    FalseShip,
+    /// A variant that is better than the control on the primary metric was shipped.
+    TrueShip,
+    /// The ship rule chose the control.
+    ControlShipped,
+    /// A harm alert opened (the team stops the variant).
+    Harm,
+    /// Every variant was found practically equivalent to the control.
+    Equivalent,
+    /// No decision within the planned days (or the `inconclusive` rule fired).
+    Inconclusive,
+}
+
+impl Ending {
+    /// Every ending, in reporting order.
+    pub const ALL: [Ending; 6] = [
+        Ending::FalseShip,
+        Ending::TrueShip,
+        Ending::ControlShipped,
+        Ending::Harm,
+        Ending::Equivalent,
+        Ending::Inconclusive,
+    ];
+
+    /// Stable name.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Ending::FalseShip => "false_ship",
+            Ending::TrueShip => "true_ship",
+            Ending::ControlShipped => "control_shipped",
+            Ending::Harm => "harm",
+            Ending::Equivalent => "equivalent",
+            Ending::Inconclusive => "inconclusive",
+        }
+    }
+
+    fn label(self) -> &'static str {
+        match self {
+            Ending::FalseShip => "false ship",
+            Ending::TrueShip => "true ship",
+            Ending::ControlShipped => "control shipped",
+            Ending::Harm => "harm alert",
+            Ending::Equivalent => "equivalent",
+            Ending::Inconclusive => "inconclusive",
+        }
+    }
+}
+
+/// One simulated experiment's end.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct RunEnd {
+    /// How it ended.
+    pub ending: Ending,
+    /// Event time from start to the decision (the whole plan when inconclusive).
+    pub elapsed: Micros,
+    /// Units exposed by then (all arms).
+    pub units: u64,
+    /// True loss of the arm kept, on the primary metric (best true rate minus the kept arm's).
+    pub loss: f64,
+    /// Looks evaluated.
+    pub looks: u64,
+}
+
+/// Time spent, for `--bench`.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct Timing {
+    /// Nanoseconds in the evaluation step (summarize, evaluate, alert book).
+    pub evaluating_ns: u128,
+    /// Nanoseconds everywhere else in the simulation (draws, snapshots, bookkeeping).
+    pub simulating_ns: u128,
+    /// Looks evaluated.
+    pub looks: u64,
+}
+
+/// The ends of every run of one scenario, in run order.
+#[derive(Debug, Clone)]
+pub struct ScenarioResult {
+    /// The scenario.
+    pub scenario: Scenario,
+    /// One end per run.
+    pub runs: Vec<RunEnd>,
+}
+
+/// Parse `variant=+x%` or `variant:metric=-x%` (also `x` as a fraction without `%`); the
+/// metric defaults to the primary one.
+pub fn parse_effect(def: &ExperimentDef, text: &str) -> Result<Effect, PlanError> {
+    let (who, amount) = text.split_once('=').ok_or_else(|| {
+        usage(format!(
+            "--effect `{text}`: expected VARIANT=+X% or VARIANT:METRIC=+X%"
+        ))
+    })?;
+    let (variant, metric) = match who.split_once(':') {
+        Some((v, m)) => (v, Some(m)),
+        None => (who, None),
+    };
+    let v = def.variant_index(variant).ok_or_else(|| {
+        usage(format!(
+            "--effect `{text}`: experiment `{}` has no variant `{variant}`",
+            def.id
+        ))
+    })?;
+    if v == def.control {
+        return Err(usage(format!(
+            "--effect `{text}`: `{variant}` is the control; give effects of the other variants"
+        )));
+    }
+    let m = match metric {
+        None => def.rules.primary,
+        Some(m) => def.metric_index(m).ok_or_else(|| {
+            usage(format!(
+                "--effect `{text}`: experiment `{}` has no metric `{m}`",
+                def.id
+            ))
+        })?,
+    };
+    let amount = amount.trim();
+    let relative = match amount.strip_suffix('%') {
+        Some(p) => p.trim().parse::<f64>().map(|x| x / 100.0),
+        None => amount.parse::<f64>(),
+    }
+    .map_err(|_| {
+        usage(format!(
+            "--effect `{text}`: `{amount}` is not a number like +5% or -0.02"
+        ))
+    })?;
+    if !(relative.is_finite() && relative > -1.0) {
+        return Err(usage(format!(
+            "--effect `{text}`: the relative effect must be above -100%"
+        )));
+    }
+    Ok(Effect {
+        variant: v,
+        metric: m,
+        relative,
+    })
+}
+
+/// Parse the `--baseline metric=rate` list into one rate per metric; every metric needs one.
+pub fn parse_baselines(def: &ExperimentDef, given: &[String]) -> Result<Vec<f64>, PlanError> {
+    let mut rates: Vec<Option<f64>> = vec![None; def.metrics.len()];
+    for text in given {
+        let (name, rate) = text
+            .split_once('=')
+            .ok_or_else(|| usage(format!("--baseline `{text}`: expected METRIC=RATE")))?;
+        let m = def.metric_index(name).ok_or_else(|| {
+            usage(format!(
+                "--baseline `{text}`: experiment `{}` has no metric `{name}`",
+                def.id
+            ))
+        })?;
+        let r: f64 = rate
+            .trim()
+            .parse()
+            .map_err(|_| usage(format!("--baseline `{text}`: `{rate}` is not a number")))?;
+        let ok = match def.metrics[m].kind {
+            MetricKind::Conversion => r > 0.0 && r < 1.0,
+            MetricKind::DefectRate(_) => r > 0.0 && r.is_finite(),
+        };
+        if !ok {
+            return Err(usage(format!(
+                "--baseline `{text}`: a conversion rate must be in (0, 1), a defect rate positive"
+            )));
+        }
+        rates[m] = Some(r);
+    }
+    rates
+        .iter()
+        .enumerate()
+        .map(|(m, r)| {
+            r.ok_or_else(|| {
+                usage(format!(
+                    "metric `{}` needs a baseline: --baseline {}=RATE",
+                    def.metrics[m].name, def.metrics[m].name
+                ))
+            })
+        })
+        .collect()
+}
+
+/// SplitMix64: derives independent per-run seeds from (seed, scenario, run), so results do
+/// not depend on which thread runs which simulation.
+fn mix(mut z: u64) -> u64 {
+    z = z.wrapping_add(0x9E37_79B9_7F4A_7C15);
+    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+    z ^ (z >> 31)
+}
+
+fn run_seed(seed: u64, scenario: usize, run: usize) -> u64 {
+    mix(mix(mix(seed) ^ scenario as u64) ^ run as u64)
+}
+
+/// True rate of every (metric, variant) under `scenario`.
+fn true_rates(opts: &PlanOptions, scenario: &Scenario) -> Vec<Vec<f64>> {
+    let k = opts.def.variants.len();
+    let mut rates: Vec<Vec<f64>> = opts.baselines.iter().map(|&b| vec![b; k]).collect();
+    for e in &scenario.effects {
+        rates[e.metric][e.variant] *= 1.0 + e.relative;
+    }
+    for (m, metric) in opts.def.metrics.iter().enumerate() {
+        if metric.kind == MetricKind::Conversion {
+            for r in &mut rates[m] {
+                *r = r.clamp(0.0, 1.0);
+            }
+        }
+    }
+    rates
+}
+
+/// Simulate one experiment under `scenario` with its own random stream.
+pub fn simulate_run(
+    opts: &PlanOptions,
+    scenario_index: usize,
+    run: usize,
+    timing: &mut Timing,
+) -> RunEnd {
+    let t_start = std::time::Instant::now();
+    let mut evaluating = std::time::Duration::ZERO;
+    let scenario = &opts.scenarios[scenario_index];
+    let def = &opts.def;
+    let k = def.variants.len();
+    let rates = true_rates(opts, scenario);
+    let p = def.rules.primary;
+    let best = rates[p].iter().copied().fold(
+        f64::NEG_INFINITY,
+        if higher_is_better(def, p) {
+            f64::max
+        } else {
+            f64::min
+        },
+    );
+    let regret = |arm: usize| (best - rates[p][arm]).abs();
+    let mut rng = StdRng::seed_from_u64(run_seed(opts.seed, scenario_index, run));
+    let mut book = AlertBook::new(opts.hold_down);
+    let mut clock = Clock::default();
+    let applied = Outcome::ALL
+        .iter()
+        .position(|o| *o == Outcome::Applied)
+        .unwrap_or(0);
+    let horizon = (opts.days * DAY as f64) as Micros;
+    let steps = ((horizon + opts.step - 1) / opts.step).max(1);
+    let cum_weights: Vec<f64> = def
+        .variants
+        .iter()
+        .scan(0.0, |acc, v| {
+            *acc += v.weight;
+            Some(*acc)
+        })
+        .collect();
+    let mut units = vec![0u64; k];
+    let mut metrics: Vec<MetricTotals> = def
+        .metrics
+        .iter()
+        .map(|m| match m.kind {
+            MetricKind::Conversion => {
+                MetricTotals::Conversion(vec![ConversionTotals::default(); k])
+            }
+            MetricKind::DefectRate(_) => MetricTotals::Defect(vec![DefectTotals::default(); k]),
+        })
+        .collect();
+    let mut events: u64 = 0;
+    let mut looks = 0u64;
+    let mut new_units = vec![0u64; k];
+    for step in 1..=steps {
+        let now = (step * opts.step).min(horizon);
+        // Steady traffic, split by the weights exactly (cumulative rounding keeps totals
+        // exact); sample-ratio mismatch is therefore not simulated.
+        let total = (opts.units_per_day * now as f64 / DAY as f64).floor() as u64;
+        let mut before = 0u64;
+        for (v, cw) in cum_weights.iter().enumerate() {
+            let upto = if v + 1 == k {
+                total
+            } else {
+                (total as f64 * cw).floor() as u64
+            };
+            let arm_total = upto - before;
+            before = upto;
+            new_units[v] = arm_total - units[v];
+            units[v] = arm_total;
+        }
+        let mut step_events: u64 = new_units.iter().sum();
+        for (m, totals) in metrics.iter_mut().enumerate() {
+            match totals {
+                MetricTotals::Conversion(t) => {
+                    for v in 0..k {
+                        let n = new_units[v];
+                        let s = if n == 0 {
+                            0
+                        } else {
+                            Binomial::new(n, rates[m][v])
+                                .map(|d| d.sample(&mut rng))
+                                .unwrap_or(0)
+                        };
+                        t[v].trials += n;
+                        t[v].successes += s;
+                        step_events += s;
+                    }
+                }
+                MetricTotals::Defect(t) => {
+                    for v in 0..k {
+                        let n = new_units[v];
+                        let mean = n as f64 * rates[m][v];
+                        let c = if mean > 0.0 {
+                            Poisson::new(mean)
+                                .map(|d| d.sample(&mut rng) as u64)
+                                .unwrap_or(0)
+                        } else {
+                            0
+                        };
+                        t[v].count += c;
+                        // One unit of exposure per exposed unit, for either exposure basis.
+                        t[v].exposure += n as f64;
+                        step_events += c;
+                    }
+                }
+            }
+        }
+        events += step_events;
+        let due = if opts.single_look {
+            step == steps
+        } else {
+            clock.tick_many(&opts.cadence, step_events, Some(START + now))
+        };
+        if !due {
+            continue;
+        }
+        let mut outcomes = OutcomeCounts::default();
+        outcomes.0[applied] = events;
+        let snapshot = ExperimentSnapshot {
+            def: Arc::clone(def),
+            units: units.clone(),
+            metrics: metrics.clone(),
+            outcomes,
+            last_event_time: Some(START + now),
+            first_event_time: Some(START),
+            positions: Vec::new(),
+        };
+        looks += 1;
+        let t_eval = std::time::Instant::now();
+        let evaluation = evaluate_snapshot(&mut book, snapshot);
+        evaluating += t_eval.elapsed();
+        let total_units: u64 = units.iter().sum();
+        if let Some((ending, kept)) = classify(def, &rates, &evaluation.changes) {
+            let end = RunEnd {
+                ending,
+                elapsed: now,
+                units: total_units,
+                loss: regret(kept),
+                looks,
+            };
+            account(timing, t_start, evaluating, looks);
+            return end;
+        }
+    }
+    account(timing, t_start, evaluating, looks);
+    RunEnd {
+        ending: Ending::Inconclusive,
+        elapsed: horizon,
+        units: units.iter().sum(),
+        loss: regret(def.control),
+        looks,
+    }
+}
+
+fn account(
+    timing: &mut Timing,
+    start: std::time::Instant,
+    evaluating: std::time::Duration,
+    looks: u64,
+) {
+    let total = start.elapsed();
+    timing.evaluating_ns += evaluating.as_nanos();
+    timing.simulating_ns += total.saturating_sub(evaluating).as_nanos();
+    timing.looks += looks;
+}
+
+fn higher_is_better(def: &ExperimentDef, metric: usize) -> bool {
+    def.metrics[metric].kind == MetricKind::Conversion
+}
+
+/// The decision an evaluation's alert changes amount to, and the arm kept: harm first (the
+/// team stops the variant), then ship, equivalence and inconclusive.
+fn classify(
+    def: &ExperimentDef,
+    rates: &[Vec<f64>],
+    changes: &[AlertChange],
+) -> Option<(Ending, usize)> {
+    let opened: Vec<&crate::decide::alerts::Alert> = changes
+        .iter()
+        .filter_map(|c| match c {
+            AlertChange::Opened(a) => Some(a),
+            AlertChange::Closed(_) => None,
+        })
+        .collect();
+    let p = def.rules.primary;
+    let control = def.control;
+    if opened.iter().any(|a| a.key.rule == Rule::Harm) {
+        return Some((Ending::Harm, control));
+    }
+    if let Some(a) = opened.iter().find(|a| a.key.rule == Rule::Ship) {
+        let v = a.finding.variant.unwrap_or(control);
+        if v == control {
+            return Some((Ending::ControlShipped, control));
+        }
+        let better = if higher_is_better(def, p) {
+            rates[p][v] > rates[p][control]
+        } else {
+            rates[p][v] < rates[p][control]
+        };
+        return Some((
+            if better {
+                Ending::TrueShip
+            } else {
+                Ending::FalseShip
+            },
+            v,
+        ));
+    }
+    if opened.iter().any(|a| a.key.rule == Rule::Equivalent) {
+        return Some((Ending::Equivalent, control));
+    }
+    if opened.iter().any(|a| a.key.rule == Rule::Inconclusive) {
+        return Some((Ending::Inconclusive, control));
+    }
+    None
+}
+
+/// Observes progress, in finished simulations.
+pub trait Progress: Sync {
+    /// One more simulation finished.
+    fn advance(&self);
+}
+
+impl Progress for () {
+    fn advance(&self) {}
+}
+
+impl Progress for indicatif::ProgressBar {
+    fn advance(&self) {
+        self.inc(1);
+    }
+}
+
+/// Run every scenario of `opts` on `opts.threads` threads; results are in run order, so they
+/// do not depend on the thread count.
+pub fn run(opts: &PlanOptions, progress: &dyn Progress) -> (Vec<ScenarioResult>, Timing) {
+    let jobs: Vec<(usize, usize)> = (0..opts.scenarios.len())
+        .flat_map(|s| (0..opts.sims).map(move |r| (s, r)))
+        .collect();
+    let next = AtomicUsize::new(0);
+    let slots: Vec<Mutex<Option<RunEnd>>> = jobs.iter().map(|_| Mutex::new(None)).collect();
+    let timing = Mutex::new(Timing::default());
+    std::thread::scope(|scope| {
+        for _ in 0..opts.threads.max(1) {
+            scope.spawn(|| {
+                let mut local = Timing::default();
+                loop {
+                    let i = next.fetch_add(1, Ordering::Relaxed);
+                    let Some(&(s, r)) = jobs.get(i) else { break };
+                    let end = simulate_run(opts, s, r, &mut local);
+                    *slots[i].lock().unwrap_or_else(|p| p.into_inner()) = Some(end);
+                    progress.advance();
+                }
+                let mut t = timing.lock().unwrap_or_else(|p| p.into_inner());
+                t.evaluating_ns += local.evaluating_ns;
+                t.simulating_ns += local.simulating_ns;
+                t.looks += local.looks;
+            });
+        }
+    });
+    let mut ends = slots.into_iter().map(|m| {
+        m.into_inner()
+            .unwrap_or_else(|p| p.into_inner())
+            .expect("every job ran")
+    });
+    let results = opts
+        .scenarios
+        .iter()
+        .map(|sc| ScenarioResult {
+            scenario: sc.clone(),
+            runs: ends.by_ref().take(opts.sims).collect(),
+        })
+        .collect();
+    (
+        results,
+        timing.into_inner().unwrap_or_else(|p| p.into_inner()),
+    )
+}
+
+/// Share of runs with `ending`.
+pub fn share(result: &ScenarioResult, ending: Ending) -> f64 {
+    if result.runs.is_empty() {
+        return 0.0;
+    }
+    result.runs.iter().filter(|r| r.ending == ending).count() as f64 / result.runs.len() as f64
+}
+
+/// The `q` quantile (nearest rank, 0 < q ≤ 1) of `xs`.
+fn quantile(xs: &mut [f64], q: f64) -> Option<f64> {
+    if xs.is_empty() {
+        return None;
+    }
+    xs.sort_by(|a, b| a.total_cmp(b));
+    let rank = ((q * xs.len() as f64).ceil() as usize).clamp(1, xs.len());
+    Some(xs[rank - 1])
+}
+
+fn round_to(x: f64, digits: i32) -> f64 {
+    let f = 10f64.powi(digits);
+    (x * f).round() / f
+}
+
+/// The JSON of one scenario's result.
+pub fn scenario_json(opts: &PlanOptions, result: &ScenarioResult) -> Value {
+    let n = result.runs.len() as f64;
+    let mut outcomes = serde_json::Map::new();
+    for ending in Ending::ALL {
+        let of: Vec<&RunEnd> = result.runs.iter().filter(|r| r.ending == ending).collect();
+        let s = of.len() as f64 / n.max(1.0);
+        let mut days: Vec<f64> = of.iter().map(|r| r.elapsed as f64 / DAY as f64).collect();
+        let mut units: Vec<f64> = of.iter().map(|r| r.units as f64).collect();
+        outcomes.insert(
+            ending.as_str().into(),
+            json!({
+                "runs": of.len(),
+                "share": s,
+                "mc_standard_error": (s * (1.0 - s) / n.max(1.0)).sqrt(),
+                "days_to_decision": {
+                    "median": quantile(&mut days.clone(), 0.5).map(|x| round_to(x, 4)),
+                    "p90": quantile(&mut days, 0.9).map(|x| round_to(x, 4)),
+                },
+                "units_to_decision": {
+                    "median": quantile(&mut units.clone(), 0.5),
+                    "p90": quantile(&mut units, 0.9),
+                },
+            }),
+        );
+    }
+    let def = &opts.def;
+    let loss: f64 = result.runs.iter().map(|r| r.loss).sum::<f64>() / n.max(1.0);
+    json!({
+        "scenario": result.scenario.name,
+        "effects": result.scenario.effects.iter().map(|e| json!({
+            "variant": def.variants[e.variant].name,
+            "metric": def.metrics[e.metric].name,
+            "relative": e.relative,
+        })).collect::<Vec<_>>(),
+        "runs": result.runs.len(),
+        "outcomes": outcomes,
+        "expected_loss_incurred": loss,
+        "mean_looks": result.runs.iter().map(|r| r.looks as f64).sum::<f64>() / n.max(1.0),
+        "share_over_time": share_over_time(opts, result).into_iter().map(|(day, shares)| {
+            let mut m = serde_json::Map::new();
+            m.insert("day".into(), json!(day));
+            for (e, s) in Ending::ALL.iter().zip(shares) {
+                m.insert(e.as_str().into(), json!(s));
+            }
+            Value::Object(m)
+        }).collect::<Vec<_>>(),
+    })
+}
+
+/// For each whole day of the plan (and its end), the share of runs that had reached each
+/// decision by then; runs without a decision count as inconclusive at the end.
+pub fn share_over_time(opts: &PlanOptions, result: &ScenarioResult) -> Vec<(f64, [f64; 6])> {
+    let n = result.runs.len().max(1) as f64;
+    let mut days: Vec<f64> = (1..=opts.days.floor() as u64).map(|d| d as f64).collect();
+    if days.last().is_none_or(|d| *d < opts.days) {
+        days.push(opts.days);
+    }
+    days.into_iter()
+        .map(|day| {
+            let t = (day * DAY as f64) as Micros;
+            let mut shares = [0.0; 6];
+            for r in &result.runs {
+                // Runs still open at the end have elapsed == the plan's length, so they
+                // count only at the last point.
+                if r.elapsed <= t {
+                    let i = Ending::ALL.iter().position(|e| *e == r.ending).unwrap_or(0);
+                    shares[i] += 1.0 / n;
+                }
+            }
+            (day, shares)
+        })
+        .collect()
+}
+
+/// A table of one scenario's result, for a person.
+pub fn scenario_table(opts: &PlanOptions, result: &ScenarioResult) -> String {
+    use std::fmt::Write;
+    let v = scenario_json(opts, result);
+    let mut out = String::new();
+    let _ = writeln!(
+        out,
+        "scenario {} — {} runs",
+        result.scenario.name,
+        result.runs.len()
+    );
+    let _ = writeln!(
+        out,
+        "  {:<16} {:>7} {:>8}  {:>10} {:>10}  {:>11} {:>11}",
+        "decision", "share", "± MC se", "median d", "p90 d", "median units", "p90 units"
+    );
+    let num = |x: &Value, d: usize| x.as_f64().map_or("—".to_string(), |x| format!("{x:.d$}"));
+    for e in Ending::ALL {
+        let o = &v["outcomes"][e.as_str()];
+        let _ = writeln!(
+            out,
+            "  {:<16} {:>7.4} {:>8.4}  {:>10} {:>10}  {:>11} {:>11}",
+            e.label(),
+            o["share"].as_f64().unwrap_or(0.0),
+            o["mc_standard_error"].as_f64().unwrap_or(0.0),
+            num(&o["days_to_decision"]["median"], 2),
+            num(&o["days_to_decision"]["p90"], 2),
+            num(&o["units_to_decision"]["median"], 0),
+            num(&o["units_to_decision"]["p90"], 0),
+        );
+    }
+    let _ = writeln!(
+        out,
+        "  expected loss incurred: {:.3e} (in `{}` rate units; best true arm minus the arm kept)",
+        v["expected_loss_incurred"].as_f64().unwrap_or(0.0),
+        opts.def.metrics[opts.def.rules.primary].name
+    );
+    out
+}
+
+/// What a sweep varies.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SweepKind {
+    /// The primary metric's threshold of caring (target: A/A false ship share).
+    ThresholdOfCaring,
+    /// The harm probability on every metric (target: A/A harm alert share).
+    HarmProbability,
+}
+
+/// One point of a sweep.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SweepPoint {
+    /// The value tried.
+    pub value: f64,
+    /// A/A share of the targeted error at that value.
+    pub error_share: f64,
+    /// Its Monte Carlo standard error.
+    pub standard_error: f64,
+}
+
+/// The values a sweep may try, loosest first: thresholds of caring from 8 times the configured
+/// one down to 1/512 of it in half-octave steps; harm probabilities from 0.9 to 0.99999.
+pub fn sweep_values(def: &ExperimentDef, kind: SweepKind) -> Result<Vec<f64>, PlanError> {
+    match kind {
+        SweepKind::ThresholdOfCaring => {
+            let p = def.rules.primary;
+            let t = def.metrics[p].rules.ship.map(|s| s.threshold_of_caring).ok_or_else(|| {
+                usage(format!(
+                    "--target-false-ship needs a ship rule on the primary metric `{}` (rules.ship.threshold_of_caring) to sweep around",
+                    def.metrics[p].name
+                ))
+            })?;
+            Ok((0..=24)
+                .map(|i| 8.0 * t * 2f64.powf(-(i as f64) / 2.0))
+                .collect())
+        }
+        SweepKind::HarmProbability => Ok(vec![
+            0.9, 0.95, 0.975, 0.99, 0.995, 0.999, 0.9995, 0.9999, 0.99999,
+        ]),
+    }
+}
+
+/// Run the A/A scenario for each sweep value, loosest first, until one meets `target`
+/// (tighter values only make the error rarer, up to Monte Carlo noise); the same random
+/// streams serve every value, so the comparison between values is not blurred by different
+/// draws.
+pub fn sweep(
+    opts: &PlanOptions,
+    kind: SweepKind,
+    target: f64,
+    progress: &dyn Progress,
+) -> Result<Vec<SweepPoint>, PlanError> {
+    let values = sweep_values(&opts.def, kind)?;
+    let mut points = Vec::new();
+    for value in values {
+        let mut def = (*opts.def).clone();
+        match kind {
+            SweepKind::ThresholdOfCaring => {
+                let p = def.rules.primary;
+                if let Some(s) = &mut def.metrics[p].rules.ship {
+                    s.threshold_of_caring = value;
+                }
+            }
+            SweepKind::HarmProbability => {
+                for m in &mut def.metrics {
+                    if let Some(h) = &mut m.rules.harm {
+                        h.probability = value;
+                    }
+                }
+            }
+        }
+        let o = PlanOptions {
+            def: Arc::new(def),
+            scenarios: vec![opts.scenarios[0].clone()],
+            ..opts.clone()
+        };
+        let (results, _) = run(&o, progress);
+        let error = match kind {
+            SweepKind::ThresholdOfCaring => Ending::FalseShip,
+            SweepKind::HarmProbability => Ending::Harm,
+        };
+        let s = share(&results[0], error);
+        let n = results[0].runs.len().max(1) as f64;
+        points.push(SweepPoint {
+            value,
+            error_share: s,
+            standard_error: (s * (1.0 - s) / n).sqrt(),
+        });
+        if s <= target {
+            break;
+        }
+    }
+    Ok(points)
+}
+
+/// The loosest value meeting `target`: the largest threshold of caring, or the smallest harm
+/// probability, whose A/A error share is at most `target`.
+pub fn recommend(points: &[SweepPoint], kind: SweepKind, target: f64) -> Option<f64> {
+    let ok = points
+        .iter()
+        .filter(|p| p.error_share <= target)
+        .map(|p| p.value);
+    match kind {
+        SweepKind::ThresholdOfCaring => {
+            ok.fold(None, |a: Option<f64>, v| Some(a.map_or(v, |a| a.max(v))))
+        }
+        SweepKind::HarmProbability => {
+            ok.fold(None, |a: Option<f64>, v| Some(a.map_or(v, |a| a.min(v))))
+        }
+    }
+}
+
+/// An SVG plot of the share of runs decided over time, one panel per scenario.
+pub fn svg(opts: &PlanOptions, results: &[ScenarioResult]) -> Result<String, String> {
+    use plotters::prelude::*;
+    let mut out = String::new();
+    {
+        let height = 300 * results.len().max(1) as u32;
+        let root = SVGBackend::with_string(&mut out, (720, height)).into_drawing_area();
+        root.fill(&WHITE).map_err(|e| e.to_string())?;
+        let panels = root.split_evenly((results.len().max(1), 1));
+        let colors = [RED, GREEN, BLUE, MAGENTA, CYAN, BLACK];
+        for (panel, result) in panels.iter().zip(results) {
+            let mut chart = ChartBuilder::on(panel)
+                .caption(
+                    format!("{} — share of runs decided by day", result.scenario.name),
+                    ("sans-serif", 16),
+                )
+                .margin(10)
+                .x_label_area_size(30)
+                .y_label_area_size(40)
+                .build_cartesian_2d(0f64..opts.days, 0f64..1f64)
+                .map_err(|e| e.to_string())?;
+            chart
+                .configure_mesh()
+                .x_desc("days")
+                .y_desc("share")
+                .draw()
+                .map_err(|e| e.to_string())?;
+            let series = share_over_time(opts, result);
+            for (i, ending) in Ending::ALL.iter().enumerate() {
+                let color = colors[i];
+                // Steps, not ramps: the shares are known at the end of each day only.
+                let mut points = vec![(0.0, 0.0)];
+                let mut last = 0.0;
+                for (d, s) in &series {
+                    points.push((*d, last));
+                    points.push((*d, s[i]));
+                    last = s[i];
+                }
+                chart
+                    .draw_series(LineSeries::new(points, color.stroke_width(2)))
+                    .map_err(|e| e.to_string())?
+                    .label(ending.label())
+                    .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 16, y)], color));
+            }
+            chart
+                .configure_series_labels()
+                .background_style(WHITE.mix(0.8))
+                .border_style(BLACK)
+                .position(SeriesLabelPosition::UpperLeft)
+                .draw()
+                .map_err(|e| e.to_string())?;
+        }
+        root.present().map_err(|e| e.to_string())?;
+    }
+    Ok(out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::experiment::{ExperimentRules, MetricDef, MetricRules, Prior, VariantDef};
+
+    fn def() -> ExperimentDef {
+        ExperimentDef {
+            generation: 0,
+            id: "orchard-tour".into(),
+            control: 0,
+            variants: ["control", "tour"]
+                .iter()
+                .map(|n| VariantDef {
+                    name: n.to_string(),
+                    weight: 0.5,
+                })
+                .collect(),
+            metrics: vec![MetricDef {
+                name: "first-planting".into(),
+                kind: MetricKind::Conversion,
+                prior: Prior::Beta {
+                    alpha: 1.0,
+                    beta: 1.0,
+                },
+                variant_priors: vec![None, None],
+                rules: MetricRules::default(),
+            }],
+            rules: ExperimentRules::default(),
+        }
+    }
+
+    #[test]
+    fn effects_and_baselines_parse_with_their_errors_named() {
+        let d = def();
+        let e = parse_effect(&d, "tour=+5%").unwrap();
+        assert_eq!((e.variant, e.metric), (1, 0));
+        assert!((e.relative - 0.05).abs() < 1e-15);
+        assert!(
+            (parse_effect(&d, "tour:first-planting=-0.1")
+                .unwrap()
+                .relative
+                + 0.1)
+                .abs()
+                < 1e-15
+        );
+        for (bad, says) in [
+            ("tour", "expected VARIANT=+X%"),
+            ("hedge=+5%", "no variant `hedge`"),
+            ("control=+5%", "is the control"),
+            ("tour:height=+5%", "no metric `height`"),
+            ("tour=lots", "not a number"),
+            ("tour=-150%", "above -100%"),
+        ] {
+            let msg = parse_effect(&d, bad).unwrap_err().to_string();
+            assert!(msg.contains(says), "{bad}: {msg}");
+        }
+        assert_eq!(
+            parse_baselines(&d, &["first-planting=0.2".into()]).unwrap(),
+            vec![0.2]
+        );
+        let msg = parse_baselines(&d, &[]).unwrap_err().to_string();
+        assert!(msg.contains("--baseline first-planting=RATE"), "{msg}");
+        let msg = parse_baselines(&d, &["first-planting=1.5".into()])
+            .unwrap_err()
+            .to_string();
+        assert!(msg.contains("(0, 1)"), "{msg}");
+    }
+
+    #[test]
+    fn the_recommendation_is_the_loosest_value_meeting_the_target() {
+        let pts = |v: &[(f64, f64)]| -> Vec<SweepPoint> {
+            v.iter()
+                .map(|&(value, error_share)| SweepPoint {
+                    value,
+                    error_share,
+                    standard_error: 0.0,
+                })
+                .collect()
+        };
+        let ship = pts(&[(0.004, 0.2), (0.002, 0.08), (0.001, 0.03), (0.0005, 0.01)]);
+        assert_eq!(
+            recommend(&ship, SweepKind::ThresholdOfCaring, 0.05),
+            Some(0.001)
+        );
+        assert_eq!(recommend(&ship, SweepKind::ThresholdOfCaring, 0.001), None);
+        let harm = pts(&[(0.95, 0.3), (0.99, 0.08), (0.999, 0.01)]);
+        assert_eq!(
+            recommend(&harm, SweepKind::HarmProbability, 0.1),
+            Some(0.99)
+        );
+    }
+
+    #[test]
+    fn per_run_seeds_differ_between_runs_and_scenarios() {
+        let seeds: std::collections::HashSet<u64> = (0..3)
+            .flat_map(|s| (0..1000).map(move |r| run_seed(7, s, r)))
+            .collect();
+        assert_eq!(seeds.len(), 3000);
+    }
+
+    #[test]
+    fn quantiles_are_nearest_rank() {
+        let mut xs = vec![5.0, 1.0, 4.0, 2.0, 3.0];
+        assert_eq!(quantile(&mut xs, 0.5), Some(3.0));
+        assert_eq!(quantile(&mut xs, 0.9), Some(5.0));
+        assert_eq!(quantile(&mut [], 0.5), None);
+    }
+}

@@ -1,0 +1,397 @@
+//! `posteriord replay`: feed recorded NDJSON events through the service's own pipeline
+//! (decode → state → cadence → summarize → evaluate → alert book), synchronously and in file
+//! order, with the events' own times driving the cadence, hold-downs and durations. On a
+//! single-partition stream it decides exactly what the live service decided.
+
+use std::io::{BufRead, BufReader, Read};
+use std::path::PathBuf;
+use std::sync::Mutex;
+
+use serde_json::{json, Value};
+
+use crate::config::Config;
+use crate::decide::alerts::{AlertBook, AlertChange};
+use crate::decide::cadence::{evaluate_snapshot, Cadence};
+use crate::decide::Finding;
+use crate::event::Outcome;
+use crate::ingest::{apply_batch_due, Item};
+use crate::metrics::{Metrics, Source};
+use crate::state::shards::Shards;
+use crate::summary::ExperimentSummary;
+
+/// The shard replayed events are applied to.
+pub const REPLAY_SHARD: &str = "replay";
+
+/// Lines decoded and applied per batch: large enough to amortise the lock, small enough that
+/// the snapshot of a due experiment is still taken at the event that made it due (the ingest
+/// path does that per event regardless of batch size).
+const BATCH_LINES: usize = 4096;
+
+/// Listed bad lines are capped so a wholly wrong file does not flood the output; all are counted.
+pub const MAX_LISTED_BAD_LINES: usize = 1000;
+
+/// Where events come from.
+#[derive(Debug, Clone)]
+pub enum Input {
+    /// A file.
+    File(PathBuf),
+    /// Standard input (`-`).
+    Stdin,
+}
+
+impl Input {
+    /// `-` is standard input, anything else a path.
+    pub fn parse(arg: &str) -> Input {
+        if arg == "-" {
+            Input::Stdin
+        } else {
+            Input::File(PathBuf::from(arg))
+        }
+    }
+
+    /// How the input is named in reports.
+    pub fn name(&self) -> String {
+        match self {
+            Input::File(p) => p.display().to_string(),
+            Input::Stdin => "-".into(),
+        }
+    }
+}
+
+/// Why a replay could not run.
+#[derive(Debug, thiserror::Error)]
+pub enum ReplayError {
+    /// An input could not be opened or read.
+    #[error("cannot read {name}: {source}")]
+    Read {
+        /// The input.
+        name: String,
+        /// The I/O error.
+        source: std::io::Error,
+    },
+}
+
+/// A line that was not applied because it is not a valid event.
+#[derive(Debug, Clone, PartialEq)]
+pub struct BadLine {
+    /// Input name.
+    pub input: String,
+    /// 1-based line number within that input.
+    pub line: u64,
+    /// Stable reason name.
+    pub reason: &'static str,
+    /// What is wrong.
+    pub message: String,
+}
+
+/// One alert change, as it happened during the replay.
+#[derive(Debug, Clone)]
+pub struct Decision {
+    /// Input and 1-based line of the event that made the experiment due.
+    pub input: String,
+    /// Line number.
+    pub line: u64,
+    /// The change.
+    pub change: AlertChange,
+}
+
+/// Everything a replay found.
+#[derive(Debug)]
+pub struct ReplayReport {
+    /// Lines read (blank lines included).
+    pub lines: u64,
+    /// Valid events, by outcome (indexed like `Outcome::ALL`).
+    pub outcomes: [u64; Outcome::ALL.len()],
+    /// Bad lines counted.
+    pub bad: u64,
+    /// The first [`MAX_LISTED_BAD_LINES`] bad lines.
+    pub bad_lines: Vec<BadLine>,
+    /// Evaluations run.
+    pub evaluations: u64,
+    /// Every alert change, in order.
+    pub decisions: Vec<Decision>,
+    /// The alert book at the end.
+    pub book: AlertBook,
+    /// Each experiment's summary and the rules that hold at the end of the input.
+    pub experiments: Vec<(ExperimentSummary, Vec<Finding>)>,
+}
+
+/// Observes progress, in bytes read.
+pub trait Progress {
+    /// `n` more bytes were read.
+    fn advance(&self, n: u64);
+}
+
+impl Progress for () {
+    fn advance(&self, _: u64) {}
+}
+
+impl Progress for indicatif::ProgressBar {
+    fn advance(&self, n: u64) {
+        self.inc(n);
+    }
+}
+
+/// Replay `inputs`, in order, through the pipeline configured by `config`.
+pub fn replay(
+    config: &Config,
+    inputs: &[Input],
+    progress: &dyn Progress,
+) -> Result<ReplayReport, ReplayError> {
+    let shards = Mutex::new(Shards::new(config.experiments.iter().cloned()));
+    let metrics = Metrics::new();
+    let cadence = Cadence::new(
+        config.alerts.evaluate_every.as_micros() as i64,
+        config.alerts.evaluate_every_events,
+    );
+    let max_event_bytes = config
+        .kafka
+        .as_ref()
+        .map_or(crate::decode::DEFAULT_MAX_EVENT_BYTES, |k| {
+            k.max_event_bytes
+        });
+    let mut report = ReplayReport {
+        lines: 0,
+        outcomes: [0; Outcome::ALL.len()],
+        bad: 0,
+        bad_lines: Vec::new(),
+        evaluations: 0,
+        decisions: Vec::new(),
+        book: AlertBook::new(config.alerts.hold_down.as_micros() as i64),
+        experiments: Vec::new(),
+    };
+    let mut offset: i64 = 0;
+    for input in inputs {
+        let name = input.name();
+        let read_err = |source| ReplayError::Read {
+            name: name.clone(),
+            source,
+        };
+        let reader: Box<dyn Read> = match input {
+            Input::File(p) => Box::new(std::fs::File::open(p).map_err(read_err)?),
+            Input::Stdin => Box::new(std::io::stdin()),
+        };
+        let mut reader = BufReader::with_capacity(1 << 16, reader);
+        let mut line_no: u64 = 0;
+        loop {
+            // One batch: its lines and their line numbers.
+            let mut lines: Vec<Vec<u8>> = Vec::with_capacity(BATCH_LINES);
+            let mut numbers: Vec<u64> = Vec::with_capacity(BATCH_LINES);
+            let mut eof = false;
+            while lines.len() < BATCH_LINES {
+                let mut buf = Vec::new();
+                let n = reader.read_until(b'\n', &mut buf).map_err(read_err)?;
+                if n == 0 {
+                    eof = true;
+                    break;
+                }
+                progress.advance(n as u64);
+                line_no += 1;
+                report.lines += 1;
+                while buf.last().is_some_and(|b| *b == b'\n' || *b == b'\r') {
+                    buf.pop();
+                }
+                if buf.iter().all(|b| b.is_ascii_whitespace()) {
+                    continue;
+                }
+                lines.push(buf);
+                numbers.push(line_no);
+            }
+            let items: Vec<Item<'_>> = lines
+                .iter()
+                .enumerate()
+                .map(|(i, bytes)| Item {
+                    shard: REPLAY_SHARD,
+                    offset: Some(offset + i as i64),
+                    bytes,
+                })
+                .collect();
+            offset += items.len() as i64;
+            let batch = apply_batch_due(
+                &shards,
+                &metrics,
+                Source::Kafka,
+                &items,
+                max_event_bytes,
+                Some(&cadence),
+            );
+            for (i, result) in batch.results.iter().enumerate() {
+                match result {
+                    Some(Ok(o)) => {
+                        let k = Outcome::ALL.iter().position(|x| x == o).unwrap_or(0);
+                        report.outcomes[k] += 1;
+                    }
+                    Some(Err(reject)) => {
+                        report.bad += 1;
+                        if report.bad_lines.len() < MAX_LISTED_BAD_LINES {
+                            report.bad_lines.push(BadLine {
+                                input: name.clone(),
+                                line: numbers[i],
+                                reason: reject.reason.as_str(),
+                                message: reject.message.to_string(),
+                            });
+                        }
+                    }
+                    None => {}
+                }
+            }
+            // Due snapshots are in input order; each carries the replay shard's position just
+            // past the event that made it due, which maps back to that event's line.
+            let batch_start = offset - items.len() as i64;
+            for snapshot in batch.due {
+                let line = snapshot
+                    .positions
+                    .iter()
+                    .find(|(s, _)| s == REPLAY_SHARD)
+                    .and_then(|(_, next)| numbers.get((*next - 1 - batch_start) as usize).copied())
+                    .unwrap_or(0);
+                report.evaluations += 1;
+                let evaluation = evaluate_snapshot(&mut report.book, snapshot);
+                for change in evaluation.changes {
+                    report.decisions.push(Decision {
+                        input: name.clone(),
+                        line,
+                        change,
+                    });
+                }
+            }
+            if eof {
+                break;
+            }
+        }
+    }
+    let shards = shards.into_inner().unwrap_or_else(|p| p.into_inner());
+    report.experiments = shards
+        .snapshots()
+        .into_iter()
+        .map(|snap| {
+            let summary = crate::summary::summarize(snap, crate::summary::DEFAULT_LEVEL);
+            let findings = crate::decide::evaluate(&summary);
+            (summary, findings)
+        })
+        .collect();
+    Ok(report)
+}
+
+fn decision_doc(d: &Decision) -> Value {
+    let (change, alert) = match &d.change {
+        AlertChange::Opened(a) => ("opened", a),
+        AlertChange::Closed(a) => ("closed", a),
+    };
+    let mut doc = crate::http::doc::alert(alert);
+    if let Value::Object(m) = &mut doc {
+        m.insert("change".into(), json!(change));
+        m.insert("input".into(), json!(d.input));
+        m.insert("line".into(), json!(d.line));
+    }
+    doc
+}
+
+/// The report as JSON.
+pub fn to_json(report: &ReplayReport) -> Value {
+    let mut outcomes = serde_json::Map::new();
+    for (o, n) in Outcome::ALL.iter().zip(report.outcomes) {
+        outcomes.insert(o.as_str().into(), json!(n));
+    }
+    json!({
+        "input": {
+            "lines": report.lines,
+            "events": report.outcomes.iter().sum::<u64>(),
+            "outcomes": outcomes,
+            "bad_lines": report.bad,
+        },
+        "errors": report.bad_lines.iter().map(|b| json!({
+            "input": b.input, "line": b.line, "reason": b.reason, "message": b.message,
+        })).collect::<Vec<_>>(),
+        "evaluations": report.evaluations,
+        "decisions": report.decisions.iter().map(decision_doc).collect::<Vec<_>>(),
+        "alerts": report.book.alerts().iter().map(crate::http::doc::alert).collect::<Vec<_>>(),
+        "experiments": report.experiments.iter().map(|(s, _)| crate::http::doc::experiment_document(s)).collect::<Vec<_>>(),
+        "caution": crate::http::doc::CAUTION,
+    })
+}
+
+/// The report as text for a person.
+pub fn to_text(report: &ReplayReport) -> String {
+    use std::fmt::Write;
+    let mut out = String::new();
+    let events: u64 = report.outcomes.iter().sum();
+    let applied = report.outcomes[0];
+    let _ = writeln!(
+        out,
+        "replayed {} lines: {events} valid events ({applied} applied), {} bad line{} skipped, {} evaluations",
+        report.lines,
+        report.bad,
+        if report.bad == 1 { "" } else { "s" },
+        report.evaluations
+    );
+    for b in &report.bad_lines {
+        let _ = writeln!(
+            out,
+            "  bad line {}:{}: {} ({})",
+            b.input, b.line, b.message, b.reason
+        );
+    }
+    if report.bad > report.bad_lines.len() as u64 {
+        let _ = writeln!(
+            out,
+            "  … and {} more bad lines",
+            report.bad - report.bad_lines.len() as u64
+        );
+    }
+    let _ = writeln!(out, "\ndecisions ({}):", report.decisions.len());
+    for d in &report.decisions {
+        let (change, a) = match &d.change {
+            AlertChange::Opened(a) => ("opened", a),
+            AlertChange::Closed(a) => ("closed", a),
+        };
+        let at = match &d.change {
+            AlertChange::Opened(a) => a.opened_at,
+            AlertChange::Closed(a) => a.closed_at.unwrap_or(a.last_held_at),
+        };
+        let _ = writeln!(
+            out,
+            "  {} {change:<6} {:<12} {}{}{}  (at {}:{})\n      {} = {:.6} vs {} — {}",
+            crate::http::doc::time_text(at).unwrap_or_else(|| at.to_string()),
+            a.key.rule.as_str(),
+            a.key.experiment,
+            a.key
+                .metric
+                .as_deref()
+                .map(|m| format!(" / {m}"))
+                .unwrap_or_default(),
+            a.key
+                .variant
+                .as_deref()
+                .map(|v| format!(" / {v}"))
+                .unwrap_or_default(),
+            d.input,
+            d.line,
+            a.finding.test,
+            a.finding.value,
+            a.finding.threshold,
+            a.finding.message
+        );
+    }
+    let _ = writeln!(out, "\nfinal state:");
+    for (summary, findings) in &report.experiments {
+        let snap = &summary.snapshot;
+        let _ = writeln!(
+            out,
+            "  {}: units {:?}; rules holding now: {}",
+            snap.def.id,
+            snap.units,
+            if findings.is_empty() {
+                "none".to_string()
+            } else {
+                findings
+                    .iter()
+                    .map(|f| f.rule.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            }
+        );
+    }
+    let _ = writeln!(out, "\n{}", crate::http::doc::CAUTION);
+    out
+}
