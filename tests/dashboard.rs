@@ -353,16 +353,26 @@ fn the_demo_dashboard_shows_every_plot_in_a_real_browser() {
 }
 
 fn serve_config() -> String {
-    // Evaluate every second, so the test sees points appear promptly.
+    // Evaluate every second of event time, so each timed batch below makes a point.
     format!(
         "[http]\naddr = \"127.0.0.1:0\"\n[alerts]\nevaluate_every_secs = 1\n{}",
         common::TEST_EXPERIMENTS
     )
 }
 
-fn tally(variant: &str, trials: u64, successes: u64) -> String {
+/// A tally at `second` past 10:00 on an invented day. Evaluation follows event time, so the
+/// tests give their events times.
+fn tally(variant: &str, trials: u64, successes: u64, second: u32) -> String {
     format!(
-        r#"{{"type":"tally","experiment":"checkout-copy","metric":"purchase","variant":"{variant}","trials":{trials},"successes":{successes}}}"#
+        r#"{{"type":"tally","experiment":"checkout-copy","metric":"purchase","variant":"{variant}","trials":{trials},"successes":{successes},"time":"2026-06-01T10:00:{second:02}Z"}}"#
+    )
+}
+
+/// A clean report on the guardrail at `second` past 10:00: it changes no purchase count but
+/// advances the experiment's event time, which makes it due for evaluation.
+fn tick(second: u32) -> String {
+    format!(
+        r#"{{"type":"defect","experiment":"checkout-copy","metric":"payment-error","variant":"control","count":0,"time":"2026-06-01T10:00:{second:02}Z"}}"#
     )
 }
 
@@ -376,7 +386,12 @@ fn points(service: &Service) -> Vec<Value> {
 fn history_route_over_real_http() {
     let state = tempfile::tempdir().unwrap();
     let service = Service::start_in(&serve_config(), Some(state.path()), &[]);
-    let body = [tally("control", 1200, 130), tally("short-copy", 1180, 151)].join("\n");
+    let body = [
+        tally("control", 1200, 130, 0),
+        tally("short-copy", 1180, 151, 0),
+        tick(2),
+    ]
+    .join("\n");
     let (status, reply) = service.post("/v1/events", body);
     assert_eq!(status, 200, "{reply}");
     // The first point is the first evaluation with data (none is recorded before any event).
@@ -442,7 +457,7 @@ fn history_route_over_real_http() {
     );
 
     // New events: a new point, older ones unchanged.
-    let (status, _) = service.post("/v1/events", tally("control", 300, 40));
+    let (status, _) = service.post("/v1/events", tally("control", 300, 40, 3));
     assert_eq!(status, 200);
     let after = wait_for(Duration::from_secs(20), "a second point", || {
         let p = points(&service);
@@ -528,7 +543,12 @@ fn history_route_over_real_http() {
 fn the_plotted_intervals_are_the_api_numbers_in_a_real_browser() {
     chromium();
     let service = Service::start(&serve_config());
-    let body = [tally("control", 2400, 262), tally("short-copy", 2390, 301)].join("\n");
+    let body = [
+        tally("control", 2400, 262, 0),
+        tally("short-copy", 2390, 301, 0),
+        tick(2),
+    ]
+    .join("\n");
     let (status, reply) = service.post("/v1/events", body);
     assert_eq!(status, 200, "{reply}");
     wait_for(Duration::from_secs(20), "a recorded evaluation", || {
