@@ -16,7 +16,7 @@ use rand_distr::{Binomial, Distribution, Poisson};
 use serde_json::{json, Value};
 
 use crate::decide::alerts::{AlertBook, AlertChange};
-use crate::decide::cadence::{evaluate_snapshot, Cadence, Clock};
+use crate::decide::cadence::{assess_rules_only, Cadence, Clock};
 use crate::decide::Rule;
 use crate::event::{Micros, Outcome};
 use crate::experiment::{ExperimentDef, MetricKind};
@@ -435,7 +435,10 @@ pub fn simulate_run(
         };
         looks += 1;
         let t_eval = std::time::Instant::now();
-        let evaluation = evaluate_snapshot(&mut book, snapshot);
+        // The service's evaluation step without the lift quantiles, which only the history
+        // reads (the decisions are the same bit for bit: src/decide/tests.rs).
+        let mut evaluation = assess_rules_only(snapshot);
+        evaluation.fold_into(&mut book);
         evaluating += t_eval.elapsed();
         let total_units: u64 = units.iter().sum();
         if let Some((ending, kept)) = classify(def, &rates, &evaluation.changes) {

@@ -60,7 +60,7 @@ pub fn posteriors(def: &MetricDef, totals: &MetricTotals) -> Result<Arms, StatsE
 
 /// Summarise `snapshot` at credible level `level`.
 pub fn summarize(snapshot: ExperimentSnapshot, level: f64) -> ExperimentSummary {
-    summarize_with(snapshot, level, false)
+    summarize_with(snapshot, level, Detail::Full)
 }
 
 /// Summarise `snapshot` for the evaluator: lift interval and ROPE probability on the primary
@@ -69,14 +69,28 @@ pub fn summarize(snapshot: ExperimentSnapshot, level: f64) -> ExperimentSummary 
 /// its cost (benches/targets.rs), which adds up when thousands of experiments are
 /// re-evaluated on a cadence.
 pub fn summarize_for_decisions(snapshot: ExperimentSnapshot) -> ExperimentSummary {
-    summarize_with(snapshot, DEFAULT_LEVEL, true)
+    summarize_with(snapshot, DEFAULT_LEVEL, Detail::Evaluator)
 }
 
-fn summarize_with(
-    snapshot: ExperimentSnapshot,
-    level: f64,
-    decisions_only: bool,
-) -> ExperimentSummary {
+/// Summarise `snapshot` with only what the stopping rules read: no lift interval at all,
+/// the ROPE probability on the primary metric only. For `plan`, which runs thousands of
+/// simulated looks and keeps no history; its findings equal [`summarize`]'s bit for bit.
+pub fn summarize_rules_only(snapshot: ExperimentSnapshot) -> ExperimentSummary {
+    summarize_with(snapshot, DEFAULT_LEVEL, Detail::Rules)
+}
+
+/// How much of the summary to compute.
+#[derive(Clone, Copy, PartialEq, Eq)]
+enum Detail {
+    /// Everything (the API and the dashboard).
+    Full,
+    /// The rules' inputs plus the primary metric's lift (for the history).
+    Evaluator,
+    /// The rules' inputs only.
+    Rules,
+}
+
+fn summarize_with(snapshot: ExperimentSnapshot, level: f64, detail: Detail) -> ExperimentSummary {
     let def = &snapshot.def;
     let metrics = def
         .metrics
@@ -90,8 +104,9 @@ fn summarize_with(
                 level,
                 rope: m.rules.rope,
                 harm_margin: m.rules.harm.map_or(0.0, |h| h.margin),
-                lift_interval: !decisions_only || i == def.rules.primary,
-                equivalence: !decisions_only || i == def.rules.primary,
+                lift_interval: detail == Detail::Full
+                    || (detail == Detail::Evaluator && i == def.rules.primary),
+                equivalence: detail == Detail::Full || i == def.rules.primary,
             };
             let posteriors = posteriors(m, totals);
             let arms = match &posteriors {

@@ -120,7 +120,7 @@ impl Default for AlertsConfig {
 /// Default hold-down: five minutes without the finding before an alert closes.
 pub const DEFAULT_HOLD_DOWN_SECS: u64 = 300;
 /// Default evaluation cadence.
-pub const DEFAULT_EVALUATE_EVERY_SECS: u64 = 10;
+pub const DEFAULT_EVALUATE_EVERY_SECS: u64 = 60;
 /// Default event-count cadence.
 pub const DEFAULT_EVALUATE_EVERY_EVENTS: u64 = 10_000;
 

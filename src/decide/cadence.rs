@@ -98,10 +98,23 @@ pub fn evaluation_time(snapshot: &ExperimentSnapshot) -> Micros {
 /// Summarize `snapshot` and evaluate the rules, at the snapshot's event time; no alert
 /// changes yet (see [`Evaluation::fold_into`]).
 pub fn assess(snapshot: ExperimentSnapshot) -> Evaluation {
+    assess_with(snapshot, crate::summary::summarize_for_decisions)
+}
+
+/// [`assess`] with the rules' inputs only (no lift at all, so no history): for `plan`. The
+/// findings, and so the decisions, are the same bit for bit.
+pub fn assess_rules_only(snapshot: ExperimentSnapshot) -> Evaluation {
+    assess_with(snapshot, crate::summary::summarize_rules_only)
+}
+
+fn assess_with(
+    snapshot: ExperimentSnapshot,
+    summarize: fn(ExperimentSnapshot) -> ExperimentSummary,
+) -> Evaluation {
     let at = evaluation_time(&snapshot);
-    // Only what the rules read (and the primary metric's lift, for the history): the
+    // Only what the rules read (and, live, the primary metric's lift for the history): the
     // probabilities are those of the full summary, bit for bit, at a lower cost.
-    let summary = crate::summary::summarize_for_decisions(snapshot);
+    let summary = summarize(snapshot);
     let findings = super::evaluate(&summary);
     Evaluation {
         summary,

@@ -107,6 +107,8 @@ fn findings(
     // The evaluator's cheaper summary (no lift intervals; ROPE on the primary only) must
     // not change a single finding, bit for bit.
     let fast = evaluate(&crate::summary::summarize_for_decisions(snap.clone()));
+    let rules_only = evaluate(&crate::summary::summarize_rules_only(snap.clone()));
+    assert_eq!(format!("{rules_only:?}"), format!("{fast:?}"));
     let summary = summarize(snap, 0.95);
     let found = evaluate(&summary);
     assert_eq!(format!("{fast:?}"), format!("{found:?}"));
