@@ -90,6 +90,9 @@ const OCCUPIED: u32 = 1 << VARIANT_BITS;
 const MAX_LOAD_NUM: usize = 4;
 const MAX_LOAD_DEN: usize = 5;
 
+/// Tables below this many entries double when they grow; larger ones grow by 1.5×.
+const SMALL_TABLE: usize = 1 << 17;
+
 /// One table entry: 12 bytes, no padding (`packed(4)` keeps the u64 key at 4-byte alignment).
 #[derive(Clone, Copy, Default)]
 #[repr(C, packed(4))]
@@ -104,8 +107,9 @@ struct Entry {
 /// Written by hand because the memory budget (≤ 24 bytes per unit, at every size) is below what
 /// a general-purpose map can give: `std`'s map pads a (u64, u32) entry to 16 bytes, adds a
 /// control byte and doubles on growth, so right after growing it holds ~39 bytes per unit.
-/// Here entries are 12 bytes, the table grows by 1.5× at 80% load (so load never drops below
-/// 53% after the first few hundred units, i.e. ≤ 22.5 bytes per unit), positions use the
+/// Here entries are 12 bytes, a large table grows by 1.5× at 80% load (so its load never
+/// drops below 53%, i.e. ≤ 22.5 bytes per unit; tables under 2¹⁷ entries double, for speed,
+/// and hold at most ~1.5 MiB), positions use the
 /// multiply-shift range reduction (any capacity, not only powers of two), and Robin Hood
 /// linear probing keeps probe sequences short at that load. Units are never removed, so no
 /// deletion logic is needed.
@@ -293,7 +297,10 @@ impl UnitTable {
 
     fn grow(&mut self) {
         let cap = self.entries.len();
-        let new_cap = (cap + cap / 2).max(Self::capacity_for(self.len + 1));
+        // Small tables double (fewer rehashes while an experiment starts; at most 1.5 MiB
+        // each), large ones grow by half, which keeps them within the memory budget.
+        let factor = if cap < SMALL_TABLE { cap } else { cap / 2 };
+        let new_cap = (cap + factor).max(Self::capacity_for(self.len + 1));
         self.rehash(new_cap);
     }
 
@@ -452,7 +459,7 @@ mod tests {
         let mut table = UnitTable::default();
         let mut reference = std::collections::HashMap::new();
         let mut x: u64 = 0x9e37_79b9_7f4a_7c15;
-        for i in 0..200_000u64 {
+        for i in 0..400_000u64 {
             x ^= x << 13;
             x ^= x >> 7;
             x ^= x << 17;
@@ -472,7 +479,7 @@ mod tests {
             assert_eq!(table.get(key), reference.get(&key).copied());
             table.set(key, slot);
             reference.insert(key, slot);
-            if table.len() > 1_000 {
+            if table.heap_bytes() > SMALL_TABLE * 12 {
                 assert!(
                     table.heap_bytes() as f64 / table.len() as f64 <= 24.0,
                     "{} bytes for {} units",
