@@ -1286,7 +1286,7 @@ fn evaluation_target() -> Vec<Row> {
         (secs, sink.join().expect("sink thread"))
     };
     let (mut off, mut on, mut due) = (Vec::new(), Vec::new(), 0);
-    for _ in 0..3 {
+    for _ in 0..5 {
         off.push(run(None).0);
         let (secs, n) = run(Some(&cadence));
         on.push(secs);
