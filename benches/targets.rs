@@ -69,11 +69,32 @@ struct Row {
     met: Option<bool>,
 }
 
+/// Whether this is a smoke run: `cargo test --all-targets` (the README's test command) runs
+/// this binary without `--bench`, in a debug build; it then runs every target at a small
+/// scale, to show the harness works end to end, and its figures mean nothing.
+fn smoke() -> bool {
+    std::env::var_os("POSTERIORD_BENCH_SMOKE").is_some()
+}
+
+/// `full` for a benchmark run, `small` for a smoke run.
+fn sized(full: usize, small: usize) -> usize {
+    if smoke() {
+        small
+    } else {
+        full
+    }
+}
+
 fn main() {
     let args: Vec<String> = std::env::args().skip(1).collect();
     if let Some(i) = args.iter().position(|a| a == "--child") {
         child(&args[i + 1..]);
         return;
+    }
+    if !args.iter().any(|a| a == "--bench") {
+        // Children inherit it.
+        std::env::set_var("POSTERIORD_BENCH_SMOKE", "1");
+        println!("smoke run (no --bench): every target at a small scale; the figures mean nothing");
     }
     let wanted: Vec<&str> = args
         .iter()
@@ -95,6 +116,22 @@ fn main() {
     }
     if want("evaluation") {
         rows.extend(evaluation_target());
+    }
+    if smoke() {
+        for r in &rows {
+            assert!(
+                !r.ratio.contains("not run"),
+                "target `{}` did not run",
+                r.target
+            );
+        }
+        assert!(
+            rows.len() >= 12,
+            "every target reported ({} rows)",
+            rows.len()
+        );
+        println!("smoke run: all {} rows produced", rows.len());
+        return;
     }
     println!("\n== summary (ratios from this run; see docs/performance.md) ==");
     println!(
@@ -369,9 +406,9 @@ fn ingest_once(config: &Config, events: &[Vec<u8>]) -> u64 {
 }
 
 fn ingest_target() -> Vec<Row> {
-    const N: usize = 1_000_000;
-    println!("\n== ingest: {N} mixed events, 20 experiments × 4 variants, batches of 500 ==");
-    let events = workload_events(N, 20, 4);
+    let n = sized(1_000_000, 5_000);
+    println!("\n== ingest: {n} mixed events, 20 experiments × 4 variants, batches of 500 ==");
+    let events = workload_events(n, 20, 4);
     let bytes: usize = events.iter().map(Vec::len).sum();
     let config = workload_config(20, 4, "");
     let mut parse_any = Vec::new();
@@ -419,7 +456,7 @@ fn ingest_target() -> Vec<Row> {
         let applied = ingest_once(&config, &events);
         ours.push(t.secs());
         if round == 0 {
-            println!("  {applied} of {N} events applied (the rest: duplicates, orphans, crossovers, malformed)");
+            println!("  {applied} of {n} events applied (the rest: duplicates, orphans, crossovers, malformed)");
         }
     }
     let (any, value, typed, ours) = (
@@ -429,7 +466,7 @@ fn ingest_target() -> Vec<Row> {
         fastest(ours),
     );
     let mbs = |s: f64| format!("{:.0} MB/s", bytes as f64 / s / 1e6);
-    let evs = |s: f64| format!("{:.2} M ev/s", N as f64 / s / 1e6);
+    let evs = |s: f64| format!("{:.2} M ev/s", n as f64 / s / 1e6);
     println!(
         "  serde_json IgnoredAny (validate only): {} {}",
         mbs(any),
@@ -491,7 +528,7 @@ fn units_wanted() -> usize {
     std::env::var("POSTERIORD_BENCH_UNITS")
         .ok()
         .and_then(|v| v.parse().ok())
-        .unwrap_or(10_000_000)
+        .unwrap_or_else(|| sized(10_000_000, 20_000))
 }
 
 /// Runs in a child process: prints `RESULT key value` lines.
@@ -581,15 +618,15 @@ fn child_units(n: usize, store: Option<&Path>) {
 }
 
 fn child_variants() {
-    const EXPERIMENTS: usize = 10_000;
+    let experiments = sized(10_000, 200);
     const VARIANTS: usize = 4;
     let before = live_heap();
-    let config = workload_config(EXPERIMENTS, VARIANTS, "");
+    let config = workload_config(experiments, VARIANTS, "");
     let mut shards = Shards::new(config.experiments.iter().cloned());
     drop(config);
     // One unit per variant, so every experiment holds live totals.
     let shard = shards.shard_mut("bench-0");
-    for e in 0..EXPERIMENTS {
+    for e in 0..experiments {
         let id = format!("orchard-{e}");
         for v in 0..VARIANTS {
             let variant = format!("v{v}");
@@ -607,7 +644,7 @@ fn child_variants() {
         }
     }
     let heap = live_heap() - before;
-    println!("RESULT variants {}", EXPERIMENTS * VARIANTS);
+    println!("RESULT variants {}", experiments * VARIANTS);
     println!("RESULT heap_bytes {heap}");
     std::hint::black_box(&shards);
 }
@@ -697,41 +734,28 @@ fn free_port() -> u16 {
 
 /// Minimal HTTP/1.1 GET over a fresh connection: status code and body.
 fn http_get(port: u16, path: &str) -> Option<(u16, String)> {
-    let mut s = std::net::TcpStream::connect(("127.0.0.1", port)).ok()?;
-    s.set_read_timeout(Some(Duration::from_secs(30))).ok()?;
-    write!(
-        s,
-        "GET {path} HTTP/1.1\r\nHost: 127.0.0.1\r\nConnection: close\r\n\r\n"
-    )
-    .ok()?;
-    let mut text = String::new();
-    s.read_to_string(&mut text).ok()?;
-    let status = text.split_whitespace().nth(1)?.parse().ok()?;
-    let body = text
-        .split_once("\r\n\r\n")
-        .map_or("", |(_, b)| b)
-        .to_string();
-    Some((status, body))
+    http_request(port, "GET", path, None)
 }
 
-/// Minimal HTTP/1.1 POST of a JSON body: status code and body.
-fn http_post(port: u16, path: &str, body: &str) -> Option<(u16, String)> {
+/// Minimal HTTP/1.1 request over a fresh connection (a JSON body, if any): status and body.
+fn http_request(port: u16, method: &str, path: &str, body: Option<&str>) -> Option<(u16, String)> {
     let mut s = std::net::TcpStream::connect(("127.0.0.1", port)).ok()?;
     s.set_read_timeout(Some(Duration::from_secs(30))).ok()?;
+    let body = body.unwrap_or("");
     write!(
         s,
-        "POST {path} HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/json\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}",
+        "{method} {path} HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/json\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}",
         body.len()
     )
     .ok()?;
     let mut text = String::new();
     s.read_to_string(&mut text).ok()?;
     let status = text.split_whitespace().nth(1)?.parse().ok()?;
-    let body = text
+    let reply = text
         .split_once("\r\n\r\n")
         .map_or("", |(_, b)| b)
         .to_string();
-    Some((status, body))
+    Some((status, reply))
 }
 
 struct Server {
@@ -808,7 +832,7 @@ fn restart_target(work: &Path, store_dir: &Path, n: usize, store_bytes: f64) -> 
             // the state due for saving), let a save run, then read the process's RSS.
             let body = "{\"type\":\"exposure\",\"experiment\":\"orchard-0\",\"variant\":\"v1\",\"unit\":\"late-gardener\",\"time\":\"2026-06-01T08:00:00Z\"}";
             assert_eq!(
-                http_post(server.port, "/v1/events", body).map(|r| r.0),
+                http_request(server.port, "POST", "/v1/events", Some(body)).map(|r| r.0),
                 Some(200)
             );
             std::thread::sleep(Duration::from_secs(2));
@@ -875,7 +899,9 @@ impl Drop for Broker {
 }
 
 fn broker(work: &Path) -> Option<Broker> {
-    if let Ok(b) = std::env::var("POSTERIORD_BENCH_BROKERS") {
+    let named = std::env::var("POSTERIORD_BENCH_BROKERS")
+        .or_else(|_| std::env::var("POSTERIORD_TEST_BROKERS"));
+    if let Ok(b) = named {
         return Some(Broker {
             brokers: b,
             child: None,
@@ -1116,8 +1142,8 @@ fn wrk_summary(report: &str) -> String {
 }
 
 fn kafka_targets(work: &Path, kafka: bool, http: bool) -> Vec<Row> {
-    const N: usize = 200_000;
-    println!("\n== kafka: {N} events through the broker (one partition) ==");
+    let n = sized(200_000, 2_000);
+    println!("\n== kafka: {n} events through the broker (one partition) ==");
     let Some(b) = broker(work) else {
         println!("  no broker: set POSTERIORD_BENCH_BROKERS or put tansu on PATH");
         return vec![Row {
@@ -1131,13 +1157,13 @@ fn kafka_targets(work: &Path, kafka: bool, http: bool) -> Vec<Row> {
     };
     let topic = format!("bench-events-{}", std::process::id());
     create_topic(&b.brokers, &topic);
-    let events = workload_events(N, 20, 4);
+    let events = workload_events(n, 20, 4);
     let t = Instant::now();
     produce(&b.brokers, &topic, &events);
     println!(
         "  produced in {:.1} s ({:.0} ev/s)",
         t.elapsed().as_secs_f64(),
-        N as f64 / t.elapsed().as_secs_f64()
+        n as f64 / t.elapsed().as_secs_f64()
     );
     let mut rows = Vec::new();
     let mut run = 0;
@@ -1149,11 +1175,11 @@ fn kafka_targets(work: &Path, kafka: bool, http: bool) -> Vec<Row> {
         let mut bare = Vec::new();
         let mut ours = Vec::new();
         for _ in 0..2 {
-            bare.push(bare_consume(&b.brokers, &topic, &group("bare"), N));
-            ours.push(ours_consume(work, &b.brokers, &topic, &group("ours"), N, false).0);
+            bare.push(bare_consume(&b.brokers, &topic, &group("bare"), n));
+            ours.push(ours_consume(work, &b.brokers, &topic, &group("ours"), n, false).0);
         }
         let (bare, ours) = (median(bare), median(ours));
-        let rate = |s: f64| format!("{:.0} ev/s", N as f64 / s);
+        let rate = |s: f64| format!("{:.0} ev/s", n as f64 / s);
         println!(
             "  bare rdkafka loop: {} ; posteriord serve: {}",
             rate(bare),
@@ -1170,12 +1196,12 @@ fn kafka_targets(work: &Path, kafka: bool, http: bool) -> Vec<Row> {
     }
     if http {
         println!("\n== http: ingest from Kafka with and without paced GET load (wrk) ==");
-        let quiet = ours_consume(work, &b.brokers, &topic, &group("quiet"), N, false).0;
-        let (loaded, report) = ours_consume(work, &b.brokers, &topic, &group("loaded"), N, true);
+        let quiet = ours_consume(work, &b.brokers, &topic, &group("quiet"), n, false).0;
+        let (loaded, report) = ours_consume(work, &b.brokers, &topic, &group("loaded"), n, true);
         let summary = report
             .as_deref()
             .map_or("no wrk report".into(), wrk_summary);
-        let rate = |s: f64| format!("{:.0} ev/s", N as f64 / s);
+        let rate = |s: f64| format!("{:.0} ev/s", n as f64 / s);
         println!(
             "  no load: {}; under load: {}; reads: {summary}",
             rate(quiet),
@@ -1207,21 +1233,21 @@ fn kafka_targets(work: &Path, kafka: bool, http: bool) -> Vec<Row> {
 fn evaluation_target() -> Vec<Row> {
     use posteriord::config::{DEFAULT_EVALUATE_EVERY_EVENTS, DEFAULT_EVALUATE_EVERY_SECS};
     use posteriord::decide::cadence::{assess, Cadence};
-    const EXPERIMENTS: usize = 10_000;
-    const N: usize = 1_000_000;
+    let experiments = sized(10_000, 200);
+    let n = sized(1_000_000, 20_000);
     println!("\n== evaluation: 10 000 experiments × 4 variants (conversion + defect rate), default cadence ==");
 
     // (a) One evaluation, as the evaluator thread runs it.
     let config = workload_config(1, 4, "");
     let mut shards = Shards::new(config.experiments.iter().cloned());
     let shard = shards.shard_mut("bench-0");
-    for e in &workload_events(200_000, 1, 4) {
+    for e in &workload_events(sized(200_000, 5_000), 1, 4) {
         if let Ok(ev) = posteriord::decode::decode_event(e, 64 * 1024) {
             let _ = shard.apply(&ev);
         }
     }
     let snap = shards.snapshot("orchard-0").expect("configured");
-    let rounds = 300;
+    let rounds = sized(300, 3);
     let (mut full, mut lean) = (Vec::new(), Vec::new());
     for _ in 0..3 {
         let t = CpuTimer::start();
@@ -1247,8 +1273,8 @@ fn evaluation_target() -> Vec<Row> {
     // (b) The ingest path with the cadence on (per-event check, snapshots of due experiments
     // handed to a thread) against off. Events at 5 000 per second of event time, so every
     // experiment comes due several times in the stream (one snapshot per ~30 events).
-    let config = workload_config(EXPERIMENTS, 4, "");
-    let events = workload_events_at(N, EXPERIMENTS, 4, 5_000);
+    let config = workload_config(experiments, 4, "");
+    let events = workload_events_at(n, experiments, 4, 5_000);
     let cadence = Cadence::new(
         DEFAULT_EVALUATE_EVERY_SECS as i64 * 1_000_000,
         DEFAULT_EVALUATE_EVERY_EVENTS,
@@ -1295,9 +1321,9 @@ fn evaluation_target() -> Vec<Row> {
     let (off, on) = (fastest(off), fastest(on));
     println!(
         "  ingest path: off {:.2} M ev/s, cadence on {:.2} M ev/s ({due} due snapshots, one per {:.0} events)",
-        N as f64 / off / 1e6,
-        N as f64 / on / 1e6,
-        N as f64 / due.max(1) as f64
+        n as f64 / off / 1e6,
+        n as f64 / on / 1e6,
+        n as f64 / due.max(1) as f64
     );
 
     // (c) Steady state at full speed. Live, events arrive at the ingest rate R with their own
@@ -1307,10 +1333,10 @@ fn evaluation_target() -> Vec<Row> {
     // max(E/T, R/N_e) evaluations a second (E/T + R/N_e bounds it for any spread), each
     // costing `cost` on the evaluator thread. Charged to the ingest core, the throughput with
     // evaluation is 1 / (i_on + cost·evaluations/R) against 1 / i_off without.
-    let i_off = off / N as f64;
-    let i_on = on / N as f64;
+    let i_off = off / n as f64;
+    let i_on = on / n as f64;
     let r = 1.0 / i_off;
-    let by_time = EXPERIMENTS as f64 / DEFAULT_EVALUATE_EVERY_SECS as f64;
+    let by_time = experiments as f64 / DEFAULT_EVALUATE_EVERY_SECS as f64;
     let by_count = r / DEFAULT_EVALUATE_EVERY_EVENTS as f64;
     let even = by_time.max(by_count);
     let bound = by_time + by_count;

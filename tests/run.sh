@@ -64,6 +64,8 @@ apt_install promtool prometheus
 apt_install systemd-analyze systemd
 # tests/dashboard.rs: a real browser loads the demo's dashboard (headless).
 apt_install chromium chromium
+# benches/targets.rs (its smoke run is part of `cargo test --all-targets`): HTTP read load.
+apt_install wrk wrk
 
 WORK="$(mktemp -d -t posteriord-tests.XXXXXX)"
 BROKER_PID=""
