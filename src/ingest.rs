@@ -104,6 +104,8 @@ pub fn apply_batch_due(
             .unwrap_or_else(|poisoned| poisoned.into_inner());
         let mut results = Vec::with_capacity(items.len());
         let mut run_due = Vec::new();
+        // What was looked up ahead for each event (none for the first few of a run).
+        let mut prepared: Vec<Option<crate::state::Prepared>> = vec![None; items.len()];
         let mut i = 0;
         while i < items.len() {
             // Sources hand over runs of one shard (a Kafka poll is mostly one partition):
@@ -120,9 +122,10 @@ pub fn apply_batch_due(
                 // so without this nearly every new unit waits for memory.
                 if j + PREFETCH_AHEAD < run_end {
                     if let Some(Ok(event)) = &decoded[j + PREFETCH_AHEAD] {
-                        shard.prefetch(event);
+                        prepared[j + PREFETCH_AHEAD] = shard.prepare(event);
                     }
                 }
+                let prepared = prepared[j].take();
                 if let Some(offset) = items[j].offset {
                     if shard.next_offset.is_some_and(|next| offset < next) {
                         results.push(None);
@@ -145,10 +148,10 @@ pub fn apply_batch_due(
                     }
                 };
                 let Some(cadence) = cadence else {
-                    results.push(Some(shard.apply(event)));
+                    results.push(Some(shard.apply_prepared(event, prepared)));
                     continue;
                 };
-                let (result, snap) = shard.apply_due(event, cadence);
+                let (result, snap) = shard.apply_due(event, prepared, cadence);
                 if let Some(snap) = snap {
                     run_due.push(snap);
                 }

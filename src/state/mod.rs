@@ -295,9 +295,9 @@ impl ExperimentState {
         }
     }
 
-    /// Start loading the table entries `event` will touch (see [`UnitTable::prefetch`]).
+    /// The hashes of `event`'s unit and id, as the tables key them.
     #[inline]
-    pub fn prefetch(&self, event: &Event<'_>) {
+    fn hashes(event: &Event<'_>) -> Hashes {
         let unit = match &event.body {
             EventBody::Exposure { unit, .. } | EventBody::Conversion { unit, .. } => Some(unit),
             EventBody::Defect {
@@ -306,11 +306,20 @@ impl ExperimentState {
             } => Some(unit),
             _ => None,
         };
-        if let Some(unit) = unit {
-            self.units.prefetch(key_hash(unit));
+        Hashes {
+            unit: unit.map(|u| key_hash(u)),
+            id: event.id.as_deref().map(key_hash),
         }
-        if let Some(id) = &event.id {
-            self.seen_ids.prefetch(key_hash(id));
+    }
+
+    /// Start loading the table entries of `hashes` (see [`UnitTable::prefetch`]).
+    #[inline]
+    fn prefetch(&self, hashes: &Hashes) {
+        if let Some(h) = hashes.unit {
+            self.units.prefetch(h);
+        }
+        if let Some(h) = hashes.id {
+            self.seen_ids.prefetch(h);
         }
     }
 
@@ -319,8 +328,13 @@ impl ExperimentState {
     /// An invalid event changes nothing and does not consume its id, so a corrected resend
     /// with the same id still counts.
     pub fn apply(&mut self, event: &Event<'_>) -> Result<Outcome, Reject> {
-        let resolved = self.resolve(&event.body)?;
-        let id_hash = event.id.as_deref().map(key_hash);
+        self.apply_hashed(event, Self::hashes(event))
+    }
+
+    /// [`ExperimentState::apply`] with the event's hashes already computed.
+    fn apply_hashed(&mut self, event: &Event<'_>, hashes: Hashes) -> Result<Outcome, Reject> {
+        let resolved = self.resolve(&event.body, hashes.unit)?;
+        let id_hash = hashes.id;
         let outcome = match id_hash {
             Some(h) if self.seen_ids.contains(h) => Outcome::DuplicateId,
             _ => self.apply_resolved(resolved)?,
@@ -368,11 +382,13 @@ impl ExperimentState {
         )
     }
 
-    fn resolve(&self, body: &EventBody<'_>) -> Result<Resolved, Reject> {
+    /// `unit_hash` is `key_hash` of the body's unit, when the caller has it already.
+    fn resolve(&self, body: &EventBody<'_>, unit_hash: Option<u64>) -> Result<Resolved, Reject> {
+        let unit_key = |unit: &str| unit_hash.unwrap_or_else(|| key_hash(unit));
         match body {
             EventBody::Exposure { variant, unit } => Ok(Resolved::Exposure {
                 variant: self.variant(variant)?,
-                unit: key_hash(unit),
+                unit: unit_key(unit),
             }),
             EventBody::Conversion { metric, unit } => {
                 let metric = self.metric(metric)?;
@@ -382,7 +398,7 @@ impl ExperimentState {
                 Ok(Resolved::Conversion {
                     metric,
                     bit,
-                    unit: key_hash(unit),
+                    unit: unit_key(unit),
                 })
             }
             EventBody::Defect {
@@ -396,7 +412,7 @@ impl ExperimentState {
                 Ok(match target {
                     Target::Unit(unit) => Resolved::UnitDefect {
                         metric,
-                        unit: key_hash(unit),
+                        unit: unit_key(unit),
                         count: *count,
                         exposure,
                     },
@@ -585,6 +601,23 @@ fn overflow() -> Reject {
     )
 }
 
+/// The table keys of one event (unit and id hashes), computed once for both the prefetch and
+/// the update.
+#[derive(Debug, Clone, Copy, Default)]
+struct Hashes {
+    unit: Option<u64>,
+    id: Option<u64>,
+}
+
+/// An event looked up ahead of its turn: its experiment's position and its table keys, with
+/// the table entries already asked for ([`Engine::prepare`]). Valid only for the engine that
+/// made it, until that engine's set of experiments changes (callers hold the lock throughout).
+#[derive(Debug, Clone, Copy)]
+pub struct Prepared {
+    idx: usize,
+    hashes: Hashes,
+}
+
 /// All experiments posteriord watches, addressed by id.
 #[derive(Debug, Default)]
 pub struct Engine {
@@ -677,20 +710,45 @@ impl Engine {
 
     /// Apply one decoded event.
     pub fn apply(&mut self, event: &Event<'_>) -> Result<Outcome, Reject> {
-        let Some(idx) = self.position(&event.experiment) else {
+        self.apply_prepared(event, None)
+    }
+
+    /// Look `event` up a few events before applying it: find its experiment, hash its keys
+    /// and ask for the table entries it will touch, so that they are in cache by its turn.
+    /// `None` for an unknown experiment.
+    #[inline]
+    pub fn prepare(&self, event: &Event<'_>) -> Option<Prepared> {
+        let idx = self.position(&event.experiment)?;
+        let hashes = ExperimentState::hashes(event);
+        self.experiments[idx].prefetch(&hashes);
+        Some(Prepared { idx, hashes })
+    }
+
+    /// [`Engine::apply`], with `prepared` from [`Engine::prepare`] of this event, if any.
+    pub fn apply_prepared(
+        &mut self,
+        event: &Event<'_>,
+        prepared: Option<Prepared>,
+    ) -> Result<Outcome, Reject> {
+        let Some((idx, hashes)) = self.locate(event, prepared) else {
             return Err(Reject::new(
                 RejectReason::UnknownExperiment,
                 format!("no experiment `{}` is configured", event.experiment),
             ));
         };
-        self.experiments[idx].apply(event)
+        self.experiments[idx].apply_hashed(event, hashes)
     }
 
-    /// Start loading what applying `event` will touch; a no-op for unknown experiments.
-    #[inline]
-    pub fn prefetch(&self, event: &Event<'_>) {
-        if let Some(idx) = self.position(&event.experiment) {
-            self.experiments[idx].prefetch(event);
+    fn locate(&self, event: &Event<'_>, prepared: Option<Prepared>) -> Option<(usize, Hashes)> {
+        match prepared {
+            Some(p) => {
+                debug_assert_eq!(self.experiments[p.idx].def.id, event.experiment.as_ref());
+                Some((p.idx, p.hashes))
+            }
+            None => Some((
+                self.position(&event.experiment)?,
+                ExperimentState::hashes(event),
+            )),
         }
     }
 
@@ -702,11 +760,21 @@ impl Engine {
         event: &Event<'_>,
         cadence: &crate::decide::cadence::Cadence,
     ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
-        let Some(idx) = self.position(&event.experiment) else {
+        self.apply_due_prepared(event, None, cadence)
+    }
+
+    /// [`Engine::apply_due`], with `prepared` from [`Engine::prepare`] of this event, if any.
+    pub fn apply_due_prepared(
+        &mut self,
+        event: &Event<'_>,
+        prepared: Option<Prepared>,
+        cadence: &crate::decide::cadence::Cadence,
+    ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
+        let Some((idx, hashes)) = self.locate(event, prepared) else {
             return (self.apply(event), None);
         };
         let e = &mut self.experiments[idx];
-        let r = e.apply(event);
+        let r = e.apply_hashed(event, hashes);
         let due = r.is_ok() && e.clock.tick(cadence, event.time);
         (r, due.then(|| e.snapshot()))
     }

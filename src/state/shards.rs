@@ -42,16 +42,24 @@ impl Shard {
         }
     }
 
-    /// Apply one event and mark the shard dirty if it changed anything countable.
-    /// See [`crate::state::Engine::prefetch`].
+    /// See [`crate::state::Engine::prepare`].
     #[inline]
-    pub fn prefetch(&self, event: &Event<'_>) {
-        self.engine.prefetch(event);
+    pub fn prepare(&self, event: &Event<'_>) -> Option<crate::state::Prepared> {
+        self.engine.prepare(event)
     }
 
-    /// Apply one event to this shard's state.
+    /// Apply one event and mark the shard dirty if it changed anything countable.
     pub fn apply(&mut self, event: &Event<'_>) -> Result<Outcome, Reject> {
-        let r = self.engine.apply(event);
+        self.apply_prepared(event, None)
+    }
+
+    /// [`Shard::apply`] with `prepared` from [`Shard::prepare`] of this event, if any.
+    pub fn apply_prepared(
+        &mut self,
+        event: &Event<'_>,
+        prepared: Option<crate::state::Prepared>,
+    ) -> Result<Outcome, Reject> {
+        let r = self.engine.apply_prepared(event, prepared);
         if r.is_ok() {
             self.dirty = true;
         }
@@ -63,9 +71,10 @@ impl Shard {
     pub fn apply_due(
         &mut self,
         event: &Event<'_>,
+        prepared: Option<crate::state::Prepared>,
         cadence: &crate::decide::cadence::Cadence,
     ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
-        let (r, due) = self.engine.apply_due(event, cadence);
+        let (r, due) = self.engine.apply_due_prepared(event, prepared, cadence);
         if r.is_ok() {
             self.dirty = true;
         }
