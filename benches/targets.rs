@@ -1352,6 +1352,14 @@ fn evaluation_target() -> Vec<Row> {
     );
     vec![
         ratio_row(
+            "3 ingest, evaluation on (own thread) vs off",
+            format!("{:.2} M ev/s", n as f64 / off / 1e6),
+            format!("{:.2} M ev/s", n as f64 / on / 1e6),
+            off / on,
+            ">= 0.9x",
+            0.9,
+        ),
+        ratio_row(
             "3 ingest with evaluation (one core) vs without",
             format!("{:.2} M ev/s", r / 1e6),
             format!("{:.2} M ev/s", ratio * r / 1e6),
