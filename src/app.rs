@@ -101,7 +101,7 @@ impl Shared {
             outbox: Mutex::new(Vec::new()),
             alert_file: None,
             alerts_config: config.alerts.clone(),
-            history: crate::http::history::Recorder::in_memory(),
+            history: crate::http::history::Recorder::in_memory(config.history_arm_points),
             summaries: Default::default(),
             catalog: Mutex::new(crate::catalog::Catalog::in_memory(
                 config.experiments.iter().map(|e| e.id.clone()),
@@ -532,9 +532,12 @@ pub async fn run(
         shared.outbox = Mutex::new(pending);
         shared.alert_file = Some(file);
         shared.store = Some(store);
-        shared.history =
-            crate::http::history::Recorder::restore(&config.store.dir, &config.experiments)
-                .context("cannot open the stored history (store.dir)")?;
+        shared.history = crate::http::history::Recorder::restore(
+            &config.store.dir,
+            &config.experiments,
+            config.history_arm_points,
+        )
+        .context("cannot open the stored history (store.dir)")?;
         // API experiments join before any stored state is read, so their state restores.
         let (catalog, defs, warnings) = crate::catalog::Catalog::load(
             &config.store.dir,

@@ -245,6 +245,7 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
             ..Default::default()
         },
         shutdown_grace: Duration::from_secs(config::DEFAULT_SHUTDOWN_GRACE_SECS),
+        history_arm_points: config::DEFAULT_HISTORY_ARM_POINTS,
     };
     runtime()?.block_on(async move {
         let listener = app::bind(config.http.addr).await?;

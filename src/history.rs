@@ -40,7 +40,12 @@ pub const MAX_TRANSITIONS: usize = 256;
 /// `clamp(ARM_POINT_BUDGET / (metrics × variants), MIN_CAPACITY, MAX_CAPACITY)`, rounded down
 /// to an even number so the older half splits into pairs.
 pub fn capacity(metrics: usize, variants: usize) -> usize {
-    let per = ARM_POINT_BUDGET / (metrics * variants).max(1);
+    capacity_within(ARM_POINT_BUDGET, metrics, variants)
+}
+
+/// [`capacity`] under a budget of `budget` arm-points per experiment (`[history] arm_points`).
+pub fn capacity_within(budget: usize, metrics: usize, variants: usize) -> usize {
+    let per = budget / (metrics * variants).max(1);
     per.clamp(MIN_CAPACITY, MAX_CAPACITY) & !1
 }
 
@@ -146,8 +151,8 @@ pub struct ExperimentHistory {
 }
 
 impl ExperimentHistory {
-    fn new(metrics: Vec<String>, variants: Vec<String>) -> ExperimentHistory {
-        let capacity = capacity(metrics.len(), variants.len());
+    fn new(budget: usize, metrics: Vec<String>, variants: Vec<String>) -> ExperimentHistory {
+        let capacity = capacity_within(budget, metrics.len(), variants.len());
         ExperimentHistory {
             series: vec![Vec::new(); metrics.len()],
             metrics,
@@ -297,6 +302,14 @@ impl ExperimentHistory {
     /// capacity for its shape is thinned by the usual scheme, so a file written under larger
     /// limits still fits the bound.
     pub fn from_parts(p: HistoryParts) -> Result<ExperimentHistory, PartsError> {
+        Self::from_parts_within(ARM_POINT_BUDGET, p)
+    }
+
+    /// [`ExperimentHistory::from_parts`] under a budget of `budget` arm-points.
+    pub fn from_parts_within(
+        budget: usize,
+        p: HistoryParts,
+    ) -> Result<ExperimentHistory, PartsError> {
         if p.series.len() != p.metrics.len() {
             return Err(PartsError::Shape(format!(
                 "{} series for {} metrics",
@@ -319,7 +332,7 @@ impl ExperimentHistory {
                 return Err(PartsError::Shape("points are not in time order".into()));
             }
         }
-        let mut h = ExperimentHistory::new(p.metrics, p.variants);
+        let mut h = ExperimentHistory::new(budget, p.metrics, p.variants);
         let cap = h.capacity;
         for (slot, series) in h.series.iter_mut().zip(p.series) {
             for point in series {
@@ -365,20 +378,43 @@ fn merge_points(a: Point, b: Point) -> Point {
 }
 
 /// The histories of all experiments, by id.
-#[derive(Debug, Clone, Default)]
+#[derive(Debug, Clone)]
 pub struct History {
     experiments: HashMap<String, ExperimentHistory>,
+    /// Arm-points each experiment may keep.
+    budget: usize,
+}
+
+impl Default for History {
+    fn default() -> History {
+        History::with_budget(ARM_POINT_BUDGET)
+    }
 }
 
 impl History {
-    /// An empty history.
+    /// An empty history with the default budget.
     pub fn new() -> History {
         History::default()
     }
 
+    /// An empty history keeping at most `budget` arm-points per experiment (at least
+    /// [`MIN_CAPACITY`] points per series whatever the budget).
+    pub fn with_budget(budget: usize) -> History {
+        History {
+            experiments: HashMap::new(),
+            budget,
+        }
+    }
+
+    /// Arm-points each experiment may keep.
+    pub fn budget(&self) -> usize {
+        self.budget
+    }
+
     /// A history of `def`'s shape with nothing recorded.
-    pub fn empty_for(def: &crate::experiment::ExperimentDef) -> ExperimentHistory {
+    pub fn empty_for(&self, def: &crate::experiment::ExperimentDef) -> ExperimentHistory {
         ExperimentHistory::new(
+            self.budget,
             def.metrics.iter().map(|m| m.name.clone()).collect(),
             def.variants.iter().map(|v| v.name.clone()).collect(),
         )
@@ -402,13 +438,14 @@ impl History {
         let def = &snap.def;
         let metrics: Vec<String> = def.metrics.iter().map(|m| m.name.clone()).collect();
         let variants: Vec<String> = def.variants.iter().map(|v| v.name.clone()).collect();
+        let budget = self.budget;
         let h = self
             .experiments
             .entry(def.id.clone())
-            .or_insert_with(|| ExperimentHistory::new(metrics.clone(), variants.clone()));
+            .or_insert_with(|| ExperimentHistory::new(budget, metrics.clone(), variants.clone()));
         if h.metrics != metrics || h.variants != variants {
             // Points of another shape cannot be plotted against the new arms.
-            *h = ExperimentHistory::new(metrics, variants);
+            *h = ExperimentHistory::new(budget, metrics, variants);
         }
         h.record_transitions(findings, at);
         let events: u64 = snap.outcomes.0.iter().sum();
@@ -471,6 +508,15 @@ mod tests {
                 assert!(c * m * v <= ARM_POINT_BUDGET || c == MIN_CAPACITY);
             }
         }
+    }
+
+    #[test]
+    fn a_configured_budget_sets_the_capacity() {
+        assert_eq!(capacity_within(64, 1, 2), MIN_CAPACITY);
+        assert_eq!(capacity_within(8192, 1, 2), MAX_CAPACITY);
+        assert_eq!(capacity_within(1024, 2, 4), 128);
+        let h = History::with_budget(1024);
+        assert_eq!(h.empty_for(&def(&["a", "b", "c", "d"])).capacity(), 256);
     }
 
     #[test]

@@ -62,7 +62,13 @@ pub struct Config {
     pub alerts: AlertsConfig,
     /// Longest a SIGTERM drain may take before the process gives up and exits 1.
     pub shutdown_grace: std::time::Duration,
+    /// `[history] arm_points`: how many arm-points (one variant's numbers at one evaluation)
+    /// each experiment's history keeps across its metrics.
+    pub history_arm_points: usize,
 }
+
+/// Default `[history] arm_points`: about 230 KiB per experiment once full.
+pub const DEFAULT_HISTORY_ARM_POINTS: usize = crate::history::ARM_POINT_BUDGET;
 
 /// Default drain budget; the deploy kit gives 45 s before a forced kill.
 pub const DEFAULT_SHUTDOWN_GRACE_SECS: u64 = 30;
@@ -525,6 +531,19 @@ impl Ctx<'_> {
             "shutdown.grace_secs",
             DEFAULT_SHUTDOWN_GRACE_SECS,
         )?;
+        let history_arm_points = match &raw.history.arm_points {
+            None => DEFAULT_HISTORY_ARM_POINTS,
+            Some(v) => match usize::try_from(*v.get_ref()) {
+                Ok(n) if (64..=1 << 24).contains(&n) => n,
+                _ => {
+                    return Err(self.err(
+                        v.span(),
+                        "history.arm_points",
+                        "must be between 64 and 16777216 (arm-points kept per experiment; about 112 bytes each)",
+                    ))
+                }
+            },
+        };
         Ok(Config {
             http: HttpConfig {
                 addr,
@@ -538,6 +557,7 @@ impl Ctx<'_> {
             experiments,
             alerts,
             shutdown_grace,
+            history_arm_points,
         })
     }
 

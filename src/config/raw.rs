@@ -20,6 +20,14 @@ pub(super) struct RawConfig {
     pub alerts: RawAlerts,
     #[serde(default)]
     pub shutdown: RawShutdown,
+    #[serde(default)]
+    pub history: RawHistory,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawHistory {
+    pub arm_points: Option<Spanned<i64>>,
 }
 
 #[derive(Debug, Default, Deserialize)]

@@ -319,3 +319,17 @@ fn api_tokens_come_from_the_file_and_the_environment_and_never_show() {
     .unwrap_err();
     assert_eq!(e.key, "POSTERIORD_API_TOKENS");
 }
+
+#[test]
+fn the_history_budget_is_checked_with_its_key_and_line() {
+    assert_eq!(
+        parse(EXAMPLE).unwrap().history_arm_points,
+        DEFAULT_HISTORY_ARM_POINTS
+    );
+    let text = format!("{EXAMPLE}\n[history]\narm_points = 512\n");
+    assert_eq!(parse(&text).unwrap().history_arm_points, 512);
+    let text = format!("{EXAMPLE}\n[history]\narm_points = 10\n");
+    let err = error(&text);
+    assert_eq!(err.key, "history.arm_points", "{err}");
+    assert_eq!(err.line, Some(line_of(&text, "arm_points =")), "{err}");
+}

@@ -51,9 +51,9 @@ pub struct Recorder {
 
 impl Recorder {
     /// A history kept in memory only (the demo).
-    pub fn in_memory() -> Recorder {
+    pub fn in_memory(budget: usize) -> Recorder {
         Recorder {
-            history: Mutex::new(History::new()),
+            history: Mutex::new(History::with_budget(budget)),
             dir: None,
             pending: Mutex::new((Instant::now(), HashSet::new())),
         }
@@ -66,6 +66,7 @@ impl Recorder {
     pub fn restore(
         store_dir: &Path,
         configured: &[crate::experiment::ExperimentDef],
+        budget: usize,
     ) -> Result<Recorder, HistoryFileError> {
         let dir = store_dir.join("history");
         let io = |path: &Path| {
@@ -73,7 +74,7 @@ impl Recorder {
             move |source| HistoryFileError::Io { path, source }
         };
         std::fs::create_dir_all(&dir).map_err(io(&dir))?;
-        let mut history = History::new();
+        let mut history = History::with_budget(budget);
         for entry in std::fs::read_dir(&dir).map_err(io(&dir))? {
             let path = entry.map_err(io(&dir))?.path();
             let stem = path.file_stem().and_then(|s| s.to_str()).unwrap_or("");
@@ -83,7 +84,7 @@ impl Recorder {
                 continue;
             }
             let text = std::fs::read_to_string(&path).map_err(io(&path))?;
-            match decode(&text) {
+            match decode(&text, budget) {
                 Ok((id, h)) if id == stem => history.insert(id, h),
                 Ok((id, _)) => {
                     tracing::warn!(file = %path.display(), holds = %id, "a history file holds another experiment; ignored");
@@ -219,7 +220,7 @@ pub fn encode(id: &str, h: &ExperimentHistory) -> String {
 }
 
 /// Experiment id and history from file text.
-pub fn decode(text: &str) -> Result<(String, ExperimentHistory), String> {
+pub fn decode(text: &str, budget: usize) -> Result<(String, ExperimentHistory), String> {
     let doc: Value = serde_json::from_str(text).map_err(|e| e.to_string())?;
     if doc["version"] != 1 {
         return Err(format!("unknown history file version {}", doc["version"]));
@@ -329,7 +330,7 @@ pub fn decode(text: &str) -> Result<(String, ExperimentHistory), String> {
         holding,
         transitions,
     };
-    let h = ExperimentHistory::from_parts(parts).map_err(|e| e.to_string())?;
+    let h = ExperimentHistory::from_parts_within(budget, parts).map_err(|e| e.to_string())?;
     Ok((id, h))
 }
 
@@ -457,12 +458,7 @@ pub async fn get_history(
         match history.experiment(&id) {
             Some(h) if h.series(&metric).is_some() => document(&id, &def, h, &metric),
             // Not evaluated yet (or redefined since): an empty series of the right shape.
-            _ => document(
-                &id,
-                &def,
-                &crate::history::History::empty_for(&def),
-                &metric,
-            ),
+            _ => document(&id, &def, &history.empty_for(&def), &metric),
         }
     };
     axum::Json(body).into_response()
@@ -542,7 +538,7 @@ mod tests {
     fn the_file_format_round_trips_including_an_infinite_lift_mean() {
         let h = ExperimentHistory::from_parts(parts()).unwrap();
         let text = encode("crumb-checkout-copy", &h);
-        let (id, back) = decode(&text).unwrap();
+        let (id, back) = decode(&text, crate::history::ARM_POINT_BUDGET).unwrap();
         assert_eq!(id, "crumb-checkout-copy");
         assert_eq!(back.to_parts(), parts());
     }
@@ -551,10 +547,14 @@ mod tests {
     fn a_damaged_file_is_an_error_with_a_reason() {
         let h = ExperimentHistory::from_parts(parts()).unwrap();
         let text = encode("crumb-checkout-copy", &h);
-        assert!(decode(&text[..text.len() / 2]).is_err());
+        assert!(decode(&text[..text.len() / 2], crate::history::ARM_POINT_BUDGET).is_err());
         let wrong = text.replace("\"version\":1", "\"version\":9");
-        assert!(decode(&wrong).unwrap_err().contains("version"));
+        assert!(decode(&wrong, crate::history::ARM_POINT_BUDGET)
+            .unwrap_err()
+            .contains("version"));
         let short = text.replace("[1200,", "[");
-        assert!(decode(&short).unwrap_err().contains("fields"));
+        assert!(decode(&short, crate::history::ARM_POINT_BUDGET)
+            .unwrap_err()
+            .contains("fields"));
     }
 }
