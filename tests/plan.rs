@@ -2,7 +2,7 @@
 //! and harm rates match the exact rates of the rules computed independently with scipy
 //! (tests/plan/one_look.py, an exact sum over both arms' binomial outcomes); with repeated
 //! looks the false-ship rate rises (optional stopping: Armitage, McPherson & Rowe 1969;
-//! Sanborn & Hills 2014); output bytes are fixed by the seed, not by the thread count.
+//! Sanborn & Hills 2014); output bytes are fixed by `--seed`, not by the thread count.
 
 mod common;
 
