@@ -33,6 +33,9 @@ impl Source {
 /// several services in one process).
 pub struct Metrics {
     registry: Registry,
+    /// Held while the per-experiment gauges are rebuilt and encoded, so that concurrent
+    /// scrapes never see them half rebuilt.
+    pub scrape: std::sync::Mutex<()>,
     /// Valid events by source and outcome.
     pub events: IntCounterVec,
     /// Refused events by source and reason.
@@ -261,6 +264,7 @@ impl Metrics {
                 ARM,
             ),
             registry,
+            scrape: std::sync::Mutex::new(()),
             events,
             rejected,
             kafka_reachable,

@@ -529,8 +529,12 @@ fn experiments_defined_at_run_time_persist_extend_restart_and_archive() {
         Some(json!([exposure("orchard-mulch", "mulch", "g-9")]).to_string()),
     );
     assert_eq!(r.body["applied"], 1);
+    // Its gauges are scraped while it runs, and gone once it is archived.
+    let series = r#"experiment="orchard-sprout-tray""#;
+    assert!(api.svc.get_text("/metrics").1.contains(series));
     let r = api.call("DELETE", route, path, None);
     assert_eq!(r.status, 200, "{}", r.body);
+    assert!(!api.svc.get_text("/metrics").1.contains(series));
     assert_eq!(r.body["archived"]["archive"]["number"], 2);
     assert_error(
         &api.call("DELETE", route, path, None),

@@ -8,7 +8,7 @@ use crate::decode::Position;
 use crate::event::{Outcome, Reject};
 use crate::experiment::{ExperimentDef, ExposureBasis, MetricKind, Prior};
 use crate::state::{ExperimentSnapshot, MetricTotals};
-use crate::stats::{ArmSummary, Arms, Interval, SampleRatio, SRM_P_THRESHOLD};
+use crate::stats::{ArmSummary, Arms, Interval, SampleRatio};
 use crate::summary::ExperimentSummary;
 
 /// Shown with every experiment document: the numbers are only as good as the model and data.
@@ -99,7 +99,9 @@ pub fn experiment_entry(snap: &ExperimentSnapshot) -> Value {
     })
 }
 
-fn sample_ratio(s: &Option<Result<SampleRatio, crate::stats::StatsError>>) -> Value {
+/// The sample-ratio check against the experiment's own `srm_p` (the threshold its
+/// `sample_ratio` rule uses), so the document and the rules never disagree.
+fn sample_ratio(s: &Option<Result<SampleRatio, crate::stats::StatsError>>, srm_p: f64) -> Value {
     match s {
         None => Value::Null,
         Some(Err(e)) => json!({ "error": e.to_string() }),
@@ -107,8 +109,8 @@ fn sample_ratio(s: &Option<Result<SampleRatio, crate::stats::StatsError>>) -> Va
             "chi2": s.chi2,
             "df": s.df,
             "p_value": s.p_value,
-            "threshold": SRM_P_THRESHOLD,
-            "mismatch": s.p_value < SRM_P_THRESHOLD,
+            "threshold": srm_p,
+            "mismatch": s.p_value < srm_p,
         }),
     }
 }
@@ -200,7 +202,7 @@ pub fn experiment_document(summary: &ExperimentSummary) -> Value {
             "name": v.name, "weight": v.weight, "units": u,
         })).collect::<Vec<_>>(),
         "outcomes": outcomes(snap),
-        "sample_ratio": sample_ratio(&summary.sample_ratio),
+        "sample_ratio": sample_ratio(&summary.sample_ratio, summary.snapshot.def.rules.srm_p),
         "last_event_time": snap.last_event_time.and_then(time_text),
         "metrics": metrics,
         "decisions": decisions(summary),

@@ -310,8 +310,21 @@ async fn get_experiment(
     }
 }
 
+/// Rebuild the per-experiment gauges from `summaries`: cleared first, so an experiment that
+/// was deleted or redefined leaves no stale series behind. Callers hold `metrics.scrape`.
 fn refresh_gauges(shared: &Shared, summaries: &[Arc<ExperimentSummary>]) {
     let m = &shared.metrics;
+    m.variant_units.reset();
+    for g in [
+        &m.posterior_mean,
+        &m.interval_lower,
+        &m.interval_upper,
+        &m.prob_best,
+        &m.expected_loss,
+        &m.prob_beats_control,
+    ] {
+        g.reset();
+    }
     for s in summaries {
         let def = &s.snapshot.def;
         for (v, units) in def.variants.iter().zip(&s.snapshot.units) {
@@ -349,6 +362,11 @@ async fn metrics(State(shared): State<Arc<Shared>>) -> Response {
             .into_iter()
             .map(|s| shared.summaries.summary(s))
             .collect();
+        let _scrape = shared
+            .metrics
+            .scrape
+            .lock()
+            .unwrap_or_else(|p| p.into_inner());
         refresh_gauges(&shared, &summaries);
         shared.metrics.encode()
     })
