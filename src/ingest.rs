@@ -168,8 +168,17 @@ pub fn apply_batch_due(
         results
     };
     let report = BatchReport { results, due };
-    for outcome in Outcome::ALL {
-        metrics.count_outcome(source, outcome, report.count(outcome));
+    // One pass over the batch (most events are `applied`, the first outcome listed).
+    let mut counts = [0u64; Outcome::ALL.len()];
+    for r in &report.results {
+        if let Some(Ok(o)) = r {
+            if let Some(i) = Outcome::ALL.iter().position(|x| x == o) {
+                counts[i] += 1;
+            }
+        }
+    }
+    for (outcome, n) in Outcome::ALL.into_iter().zip(counts) {
+        metrics.count_outcome(source, outcome, n);
     }
     for (_, reject) in report.rejects() {
         metrics.count_reject(source, reject.reason);
