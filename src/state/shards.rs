@@ -268,50 +268,40 @@ impl Shards {
     /// Experiment `id` merged across all shards (local ones, then remote ones not held here);
     /// `None` if it is not configured.
     pub fn snapshot(&self, id: &str) -> Option<ExperimentSnapshot> {
-        let def = self.defs.iter().find(|d| d.id == id)?;
-        let mut merged = super::ExperimentState::new(Arc::clone(def)).snapshot();
-        for (shard_id, shard) in &self.shards {
-            if let Some(e) = shard.engine.experiment(id) {
-                let snap = e.snapshot();
-                if !snap.is_empty() {
-                    merged.merge(&snap);
-                    if let Some(next) = shard.next_offset {
-                        merged.positions.push((shard_id.clone(), next));
-                    }
-                }
-            }
-        }
-        for (shard_id, (next, snaps)) in &self.remote {
-            if self.shards.contains_key(shard_id) {
-                continue;
-            }
-            for snap in snaps.iter().filter(|s| s.def.id == id) {
-                merged.merge(snap);
-                if let Some(next) = next {
-                    merged.positions.push((shard_id.clone(), *next));
-                }
-            }
-        }
-        Some(merged)
-    }
-
-    /// Every experiment merged across shards, in configuration order.
-    pub fn snapshots(&self) -> Vec<ExperimentSnapshot> {
         self.defs
             .iter()
-            .filter_map(|d| self.snapshot(&d.id))
-            .collect()
+            .find(|d| d.id == id)
+            .map(|def| self.snapshot_of(def))
+    }
+
+    /// Every experiment merged across shards, in configuration order (one pass over the
+    /// definitions: each is looked up in the shards by hash, not searched for again).
+    pub fn snapshots(&self) -> Vec<ExperimentSnapshot> {
+        self.defs.iter().map(|d| self.snapshot_of(d)).collect()
+    }
+
+    fn snapshot_of(&self, def: &Arc<ExperimentDef>) -> ExperimentSnapshot {
+        let mut merged = super::ExperimentState::new(Arc::clone(def)).snapshot();
+        self.merge_shards(None, &mut merged);
+        merged
     }
 
     /// Complete `snap`, experiment `snap.def.id` as shard `from` holds it, with the other
     /// shards' totals (local, then remote ones not held here) and the input positions, as
     /// [`Shards::snapshot`] would merge them. Costs one lookup per shard, not per experiment.
     pub fn merge_others(&self, from: &str, snap: &mut ExperimentSnapshot) {
+        self.merge_shards(Some(from), snap);
+    }
+
+    /// Add to `snap` the totals of experiment `snap.def.id` in every shard but `held` (whose
+    /// totals `snap` already has), local shards first, then remote ones not held here; and set
+    /// the input positions the result reflects.
+    fn merge_shards(&self, held: Option<&str>, snap: &mut ExperimentSnapshot) {
         let def = Arc::clone(&snap.def);
         let id = def.id.as_str();
         let mut positions = Vec::new();
         for (shard_id, shard) in &self.shards {
-            if shard_id == from {
+            if Some(shard_id.as_str()) == held {
                 if let Some(next) = shard.next_offset {
                     positions.push((shard_id.clone(), next));
                 }
