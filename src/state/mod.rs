@@ -754,17 +754,9 @@ impl Engine {
 
     /// Apply one decoded event and, when it is valid and makes its experiment due under
     /// `cadence`, return the experiment's snapshot as of this event. O(1) and allocation-free
-    /// unless due (the snapshot copies totals, never the unit table).
+    /// unless due (the snapshot copies totals, never the unit table). `prepared` is what
+    /// [`Engine::prepare`] found for this event, if it was looked up ahead.
     pub fn apply_due(
-        &mut self,
-        event: &Event<'_>,
-        cadence: &crate::decide::cadence::Cadence,
-    ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
-        self.apply_due_prepared(event, None, cadence)
-    }
-
-    /// [`Engine::apply_due`], with `prepared` from [`Engine::prepare`] of this event, if any.
-    pub fn apply_due_prepared(
         &mut self,
         event: &Event<'_>,
         prepared: Option<Prepared>,

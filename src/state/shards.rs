@@ -74,7 +74,7 @@ impl Shard {
         prepared: Option<crate::state::Prepared>,
         cadence: &crate::decide::cadence::Cadence,
     ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
-        let (r, due) = self.engine.apply_due_prepared(event, prepared, cadence);
+        let (r, due) = self.engine.apply_due(event, prepared, cadence);
         if r.is_ok() {
             self.dirty = true;
         }

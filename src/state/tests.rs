@@ -500,13 +500,13 @@ fn a_due_event_yields_the_snapshot_as_of_that_event_and_rejects_do_not_count() {
     let names = ["u1", "u2", "u3", "u4", "u5", "u6"];
     let mut due = Vec::new();
     for (i, unit) in names.iter().enumerate() {
-        let (r, snap) = engine.apply_due(&exposure("control", unit), &cadence);
+        let (r, snap) = engine.apply_due(&exposure("control", unit), None, &cadence);
         assert_eq!(r, Ok(Outcome::Applied));
         if let Some(s) = snap {
             due.push((i, s.units[0]));
         }
         // An invalid event changes nothing and does not advance the cadence.
-        let (r, snap) = engine.apply_due(&exposure("no-such-arm", unit), &cadence);
+        let (r, snap) = engine.apply_due(&exposure("no-such-arm", unit), None, &cadence);
         assert!(r.is_err() && snap.is_none());
     }
     assert_eq!(due, vec![(2, 3), (5, 6)]);
