@@ -76,7 +76,7 @@ async fn list(State(shared): State<Arc<Shared>>, Query(part): Query<Part>) -> Re
         let entries: Vec<page::ListEntry> = snapshots
             .into_iter()
             .map(|s| {
-                let summary = (*shared.summaries.summary(s)).clone();
+                let summary = shared.summaries.summary(s);
                 let findings = crate::decide::evaluate(&summary);
                 let open_alerts = open
                     .iter()
@@ -134,7 +134,7 @@ async fn experiment(
         .collect();
     let now = crate::app::now_micros();
     let rendered = super::blocking(move || {
-        let summary = (*shared.summaries.summary(snapshot)).clone();
+        let summary = shared.summaries.summary(snapshot);
         let findings = crate::decide::evaluate(&summary);
         page::experiment_main(&page::ExperimentView {
             summary,

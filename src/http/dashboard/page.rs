@@ -199,8 +199,8 @@ fn rate(x: f64, higher_is_better: bool) -> String {
 
 /// One row of the experiment list.
 pub struct ListEntry {
-    /// The experiment now.
-    pub summary: ExperimentSummary,
+    /// The experiment now (shared with the other readers through the summary cache).
+    pub summary: std::sync::Arc<ExperimentSummary>,
     /// The rules that hold now.
     pub findings: Vec<Finding>,
     /// Alerts not closed.
@@ -249,7 +249,7 @@ pub fn list_main(entries: &[ListEntry]) -> String {
 /// Everything the experiment page shows.
 pub struct ExperimentView {
     /// The experiment now.
-    pub summary: ExperimentSummary,
+    pub summary: std::sync::Arc<ExperimentSummary>,
     /// The rules that hold now.
     pub findings: Vec<Finding>,
     /// Recorded evaluations (`None` before the first).
