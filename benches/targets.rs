@@ -21,7 +21,7 @@ use std::time::{Duration, Instant};
 
 use posteriord::config::Config;
 use posteriord::event::{Event, EventBody};
-use posteriord::ingest::{apply_batch, Item};
+use posteriord::ingest::Item;
 use posteriord::metrics::{Metrics, Source};
 use posteriord::state::shards::Shards;
 use posteriord::store::Store;
@@ -398,8 +398,19 @@ struct ParsedOnly<'a> {
 
 /// Decode and apply `events` into fresh state, in Kafka-sized batches; events applied.
 fn ingest_once(config: &Config, events: &[Vec<u8>]) -> u64 {
-    const BATCH: usize = 500;
     let shards = Mutex::new(Shards::new(config.experiments.iter().cloned()));
+    ingest_into(&shards, events, None, |_| {})
+}
+
+/// Decode and apply `events` into `shards` in Kafka-sized batches of one shard, as the
+/// consumer does, handing each due snapshot (with a `cadence`) to `on_due`; events applied.
+fn ingest_into(
+    shards: &Mutex<Shards>,
+    events: &[Vec<u8>],
+    cadence: Option<&posteriord::decide::cadence::Cadence>,
+    mut on_due: impl FnMut(posteriord::state::ExperimentSnapshot),
+) -> u64 {
+    const BATCH: usize = 500;
     let metrics = Metrics::new();
     let mut applied = 0u64;
     for (c, chunk) in events.chunks(BATCH).enumerate() {
@@ -412,8 +423,16 @@ fn ingest_once(config: &Config, events: &[Vec<u8>]) -> u64 {
                 bytes: b,
             })
             .collect();
-        let report = apply_batch(&shards, &metrics, Source::Kafka, &items, 64 * 1024);
+        let report = posteriord::ingest::apply_batch_due(
+            shards,
+            &metrics,
+            Source::Kafka,
+            &items,
+            64 * 1024,
+            cadence,
+        );
         applied += report.count(posteriord::event::Outcome::Applied);
+        report.due.into_iter().for_each(&mut on_due);
     }
     applied
 }
@@ -1285,32 +1304,12 @@ fn evaluation_target() -> Vec<Row> {
     );
     let run = |cadence: Option<&Cadence>| -> (f64, usize) {
         let shards = Mutex::new(Shards::new(config.experiments.iter().cloned()));
-        let metrics = Metrics::new();
         let (tx, rx) = std::sync::mpsc::channel();
         let sink = std::thread::spawn(move || rx.iter().count());
         let t = CpuTimer::start();
-        for (c, chunk) in events.chunks(500).enumerate() {
-            let items: Vec<Item<'_>> = chunk
-                .iter()
-                .enumerate()
-                .map(|(j, b)| Item {
-                    shard: "bench-0",
-                    offset: Some((c * 500 + j) as i64),
-                    bytes: b,
-                })
-                .collect();
-            let report = posteriord::ingest::apply_batch_due(
-                &shards,
-                &metrics,
-                Source::Kafka,
-                &items,
-                64 * 1024,
-                cadence,
-            );
-            for snapshot in report.due {
-                let _ = tx.send(snapshot);
-            }
-        }
+        ingest_into(&shards, &events, cadence, |snapshot| {
+            let _ = tx.send(snapshot);
+        });
         let secs = t.secs();
         drop(tx);
         (secs, sink.join().expect("sink thread"))

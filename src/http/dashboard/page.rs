@@ -499,13 +499,7 @@ fn density_plot(
             },
             fmt: if higher { Fmt::Percent } else { Fmt::Plain },
         },
-        y: Axis {
-            lo: 0.0,
-            hi: if ymax > 0.0 { ymax * 1.08 } else { 1.0 },
-            scale: Scale::Linear,
-            label: "density".into(),
-            fmt: Fmt::Plain,
-        },
+        y: density_axis(ymax),
         series,
         bands: vec![],
         marks: vec![],
@@ -513,6 +507,17 @@ fn density_plot(
         labels: Labels::Legend,
     }
     .render()
+}
+
+/// The vertical axis of a density plot whose highest curve reaches `ymax`.
+fn density_axis(ymax: f64) -> Axis {
+    Axis {
+        lo: 0.0,
+        hi: if ymax > 0.0 { ymax * 1.08 } else { 1.0 },
+        scale: Scale::Linear,
+        label: "density".into(),
+        fmt: Fmt::Plain,
+    }
 }
 
 fn lift_plot(
@@ -578,13 +583,7 @@ fn lift_plot(
                 label: format!("lift against {}", def.variants[c].name),
                 fmt: Fmt::SignedPercent,
             },
-            y: Axis {
-                lo: 0.0,
-                hi: if ymax > 0.0 { ymax * 1.08 } else { 1.0 },
-                scale: Scale::Linear,
-                label: "density".into(),
-                fmt: Fmt::Plain,
-            },
+            y: density_axis(ymax),
             series,
             bands: vec![Band {
                 lo: -rope,
