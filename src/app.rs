@@ -414,8 +414,15 @@ pub fn evaluate_due(shared: &Shared, snapshot: ExperimentSnapshot) {
     }
 }
 
+/// Rebuild the alert gauges from the book; under `metrics.scrape`, so that a scrape never
+/// sees them cleared and half refilled.
 fn refresh_alert_gauges(shared: &Shared) {
     let book = shared.alerts.lock().unwrap_or_else(|p| p.into_inner());
+    let _scrape = shared
+        .metrics
+        .scrape
+        .lock()
+        .unwrap_or_else(|p| p.into_inner());
     shared.metrics.alerts.reset();
     for a in book.alerts() {
         shared

@@ -33,8 +33,8 @@ impl Source {
 /// several services in one process).
 pub struct Metrics {
     registry: Registry,
-    /// Held while the per-experiment gauges are rebuilt and encoded, so that concurrent
-    /// scrapes never see them half rebuilt.
+    /// Held while gauges rebuilt from state (per experiment, per alert state) are cleared and
+    /// refilled, and while a scrape encodes, so that a scrape never sees them half rebuilt.
     pub scrape: std::sync::Mutex<()>,
     /// Valid events by source and outcome.
     pub events: IntCounterVec,
