@@ -773,11 +773,7 @@ fn schemathesis_finds_no_server_error_and_no_schema_violation() {
 }
 
 fn kafka_rejects(svc: &Service) -> u64 {
-    let (_, text) = svc.get_text("/metrics");
-    text.lines()
-        .filter(|l| l.starts_with("posteriord_events_rejected_total{") && l.contains("kafka"))
-        .map(|l| l.rsplit(' ').next().unwrap().parse::<u64>().unwrap())
-        .sum()
+    svc.metric_sum("posteriord_events_rejected_total", r#"source="kafka""#)
 }
 
 /// Two instances in one consumer group (real broker): experiments defined over the API on

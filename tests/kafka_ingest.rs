@@ -57,13 +57,11 @@ fn events_from_an_independent_producer_are_counted_exactly() {
         || (total_seen(&service) == first.len() as u64).then_some(()),
     );
     let (_, text) = service.get_text("/metrics");
-    let rejected: u64 = text
-        .lines()
-        .filter(|l| {
-            l.starts_with("posteriord_events_rejected_total{") && l.contains("source=\"kafka\"")
-        })
-        .map(|l| l.rsplit(' ').next().unwrap().parse::<u64>().unwrap())
-        .sum();
+    let rejected = common::metric_sum_in(
+        &text,
+        "posteriord_events_rejected_total",
+        r#"source="kafka""#,
+    );
     assert_eq!(rejected, poison.len() as u64, "{text}");
     assert!(text.contains("posteriord_kafka_reachable 1"), "{text}");
     let (status, ready) = service.get("/readyz");

@@ -149,13 +149,6 @@ fn comparable(alert: &Value) -> Value {
     a
 }
 
-fn metric_sum(text: &str, prefix: &str) -> u64 {
-    text.lines()
-        .filter(|l| l.starts_with(prefix))
-        .filter_map(|l| l.rsplit(' ').next()?.parse::<f64>().ok())
-        .sum::<f64>() as u64
-}
-
 #[test]
 fn replay_decides_exactly_what_the_live_service_decided() {
     let brokers = brokers();
@@ -186,8 +179,10 @@ group = "{group}"
         "every message applied and every due evaluation done",
         || {
             let (_, text) = service.get_text("/metrics");
-            let queued = metric_sum(&text, "posteriord_evaluations_total{stage=\"queued\"}");
-            let done = metric_sum(&text, "posteriord_evaluations_total{stage=\"done\"}");
+            let queued =
+                common::metric_sum_in(&text, "posteriord_evaluations_total", r#"stage="queued""#);
+            let done =
+                common::metric_sum_in(&text, "posteriord_evaluations_total", r#"stage="done""#);
             (text.contains(&offset_line) && queued == done && queued > 0).then_some(())
         },
     );
@@ -231,7 +226,7 @@ group = "{group}"
     }
     let (_, text) = service.get_text("/metrics");
     assert_eq!(
-        metric_sum(&text, "posteriord_evaluations_total{stage=\"done\"}"),
+        common::metric_sum_in(&text, "posteriord_evaluations_total", r#"stage="done""#),
         replayed["evaluations"].as_u64().unwrap(),
         "live and replay evaluated at different events"
     );

@@ -18,11 +18,7 @@ use common::{
 };
 
 fn kafka_events_applied(s: &Service) -> u64 {
-    let (_, text) = s.get_text("/metrics");
-    text.lines()
-        .filter(|l| l.starts_with("posteriord_events_total{") && l.contains("source=\"kafka\""))
-        .map(|l| l.rsplit(' ').next().unwrap().parse::<u64>().unwrap())
-        .sum()
+    s.metric_sum("posteriord_events_total", r#"source="kafka""#)
 }
 
 #[test]

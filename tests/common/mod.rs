@@ -81,6 +81,12 @@ impl Service {
         (r.status().as_u16(), r.text().unwrap())
     }
 
+    /// Sum of counter `name` over its series whose labels include `label` (e.g.
+    /// `source="kafka"`), read from a `/metrics` scrape.
+    pub fn metric_sum(&self, name: &str, label: &str) -> u64 {
+        metric_sum_in(&self.get_text("/metrics").1, name, label)
+    }
+
     pub fn post(&self, path: &str, body: impl Into<reqwest::blocking::Body>) -> (u16, Value) {
         let r = client()
             .post(self.url(path))
@@ -171,6 +177,16 @@ pub fn read_listen_line(child: &mut Child, log: &Path) -> String {
             std::fs::read_to_string(log).unwrap_or_default()
         ),
     }
+}
+
+/// Sum of integer counter `name` in the Prometheus text `text`, over its series whose labels
+/// include `label` (e.g. `stage="done"`).
+pub fn metric_sum_in(text: &str, name: &str, label: &str) -> u64 {
+    let prefix = format!("{name}{{");
+    text.lines()
+        .filter(|l| l.starts_with(&prefix) && l.contains(label))
+        .map(|l| l.rsplit(' ').next().unwrap().parse::<u64>().unwrap())
+        .sum()
 }
 
 /// Poll `f` until it returns `Some`, or panic after `timeout` with `what`.
