@@ -297,8 +297,15 @@ async fn get_experiment(
         );
     };
     let generation = snapshot.def.generation;
+    let evidence = shared
+        .alerts
+        .lock()
+        .unwrap_or_else(|p| p.into_inner())
+        .evidence()
+        .subset(&snapshot.def.state_key());
     match blocking(move || {
-        let mut d = doc::experiment_document(&shared.summaries.summary(snapshot));
+        let mut d =
+            doc::experiment_document_with(&shared.summaries.summary(snapshot), Some(&evidence));
         d["source"] = json!(source);
         d["generation"] = json!(generation);
         d

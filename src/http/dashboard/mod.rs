@@ -133,12 +133,21 @@ async fn experiment(
         .cloned()
         .collect();
     let now = crate::app::now_micros();
+    let evidence = shared
+        .alerts
+        .lock()
+        .unwrap_or_else(|p| p.into_inner())
+        .evidence()
+        .subset(&snapshot.def.state_key());
     let rendered = super::blocking(move || {
         let summary = shared.summaries.summary(snapshot);
-        let findings = crate::decide::evaluate(&summary);
+        let mut findings = crate::decide::evaluate(&summary);
+        crate::decide::add_evidence_findings(&summary, &evidence, &mut findings);
+        let standings = crate::decide::standing::standings(&summary, &findings, Some(&evidence));
         page::experiment_main(&page::ExperimentView {
             summary,
             findings,
+            standings,
             history,
             alerts,
             now,
