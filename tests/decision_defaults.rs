@@ -31,7 +31,7 @@ fn plan() -> Value {
     let (sims, step) = if soak() {
         ("1000", "3600")
     } else {
-        ("300", "21600")
+        ("200", "86400")
     };
     let out = Command::new(common::bin())
         .arg("plan")
