@@ -593,6 +593,9 @@ fn higher_is_better(def: &ExperimentDef, metric: usize) -> bool {
     def.metrics[metric].kind == MetricKind::Conversion
 }
 
+/// An ending, the arm kept, and for harm the (metric, variant) it was raised on.
+type Classified = (Ending, usize, Option<(usize, usize)>);
+
 /// The decision an evaluation's alert changes amount to, the arm kept, and for harm the
 /// (metric, variant) it was raised on: harm first (either harm rule; the team stops the
 /// variant), then ship, equivalence and inconclusive.
@@ -600,7 +603,7 @@ fn classify(
     def: &ExperimentDef,
     rates: &[Vec<f64>],
     changes: &[AlertChange],
-) -> Option<(Ending, usize, Option<(usize, usize)>)> {
+) -> Option<Classified> {
     let opened: Vec<&crate::decide::alerts::Alert> = changes
         .iter()
         .filter_map(|c| match c {

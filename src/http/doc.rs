@@ -288,7 +288,6 @@ fn decisions(summary: &ExperimentSummary, findings: &[crate::decide::Finding]) -
     let def = &summary.snapshot.def;
     let found: Vec<Value> = findings
         .iter()
-        .cloned()
         .map(|f| {
             json!({
                 "rule": f.rule.as_str(),
