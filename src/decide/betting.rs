@@ -74,6 +74,10 @@ pub struct HarmProcess {
     last: [ArmTotals; 2],
     /// Blocks folded in.
     blocks: u64,
+    /// Conversions that arrived in a block without new units of their arm (a unit converts
+    /// after the look that counted it): carried to the arm's next units, so that a late
+    /// conversion is counted once rather than lost.
+    pending: [f64; 2],
     /// ln of the e-process of "ratio = grid point" for every grid point; empty when the
     /// confidence sequence is not kept (`plan`).
     grid: Vec<f64>,
@@ -100,6 +104,7 @@ impl HarmProcess {
             log_max: 0.0,
             last: [ArmTotals::default(); 2],
             blocks: 0,
+            pending: [0.0; 2],
             grid: if with_interval {
                 vec![0.0; GRID_POINTS]
             } else {
@@ -140,9 +145,16 @@ impl HarmProcess {
             size: (now[i].size - self.last[i].size).max(0.0),
             events: (now[i].events - self.last[i].events).max(0.0),
         };
-        let (dc, dv) = (d(0), d(1));
+        let (mut dc, mut dv) = (d(0), d(1));
         if dc.size <= 0.0 && dv.size <= 0.0 && dc.events <= 0.0 && dv.events <= 0.0 {
             return;
+        }
+        if self.stream == Stream::Conversion {
+            for (i, x) in [&mut dc, &mut dv].into_iter().enumerate() {
+                let available = x.events + self.pending[i];
+                x.events = available.min(x.size);
+                self.pending[i] = available - x.events;
+            }
         }
         let past = self.last;
         let factor = match self.stream {
