@@ -134,8 +134,15 @@ fn demo_takes_its_address_from_posteriord_http_addr_like_serve() {
     let base = read_listen_line(&mut child, &log);
     let base = base.split("/v1/").next().unwrap().to_string();
     assert!(base.starts_with("http://127.0.0.1:"), "{base}");
-    assert!(!base.ends_with(":8080"), "the default address was used: {base}");
-    let status = client().get(format!("{base}/healthz")).send().unwrap().status();
+    assert!(
+        !base.ends_with(":8080"),
+        "the default address was used: {base}"
+    );
+    let status = client()
+        .get(format!("{base}/healthz"))
+        .send()
+        .unwrap()
+        .status();
     assert_eq!(status.as_u16(), 200);
     signal(child.id(), "TERM");
     let status = wait_exit(&mut child, Duration::from_secs(20)).expect("demo exits on SIGTERM");
@@ -150,7 +157,11 @@ fn demo_takes_its_address_from_posteriord_http_addr_like_serve() {
         .output()
         .unwrap();
     let stderr = String::from_utf8_lossy(&out.stderr);
-    assert_eq!(out.status.code(), Some(2), "0.0.0.0 without a token: {stderr}");
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "0.0.0.0 without a token: {stderr}"
+    );
     assert!(
         stderr.contains("refusing to listen on 0.0.0.0:0 without an API token"),
         "{stderr}"
