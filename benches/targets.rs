@@ -21,10 +21,10 @@ use std::time::{Duration, Instant};
 
 use posteriord::config::Config;
 use posteriord::event::{Event, EventBody};
-use posteriord::ingest::Item;
-use posteriord::metrics::{Metrics, Source};
+use posteriord::service::ingest::Item;
+use posteriord::service::metrics::{Metrics, Source};
+use posteriord::service::store::Store;
 use posteriord::state::shards::Shards;
-use posteriord::store::Store;
 
 /// Counts live heap bytes, so memory per unit is measured rather than estimated.
 struct Counting;
@@ -423,7 +423,7 @@ fn ingest_into(
                 bytes: b,
             })
             .collect();
-        let report = posteriord::ingest::apply_batch_due(
+        let report = posteriord::service::ingest::apply_batch_due(
             shards,
             &metrics,
             Source::Kafka,

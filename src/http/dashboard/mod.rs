@@ -16,11 +16,11 @@ use axum::response::{IntoResponse, Response};
 use axum::routing::get;
 use axum::Router;
 
-use crate::app::Shared;
 use crate::decide::alerts::AlertState;
+use crate::service::Service;
 
 /// The dashboard's routes and the history route (merged into the API router).
-pub fn routes() -> Router<Arc<Shared>> {
+pub fn routes() -> Router<Arc<Service>> {
     Router::new()
         .route("/", get(list))
         .route("/experiments/{id}", get(experiment))
@@ -61,22 +61,20 @@ fn wants_main(part: &Part) -> bool {
     part.part.as_deref() == Some("main")
 }
 
-async fn list(State(shared): State<Arc<Shared>>, Query(part): Query<Part>) -> Response {
-    let snapshots = shared.lock_shards().snapshots();
-    let open: Vec<String> = shared
-        .alerts
-        .lock()
-        .unwrap_or_else(|p| p.into_inner())
-        .alerts()
-        .iter()
-        .filter(|a| matches!(a.state, AlertState::Open | AlertState::Easing))
-        .map(|a| a.key.experiment.clone())
-        .collect();
+async fn list(State(service): State<Arc<Service>>, Query(part): Query<Part>) -> Response {
+    let snapshots = service.lock_shards().snapshots();
+    let open: Vec<String> = service.with_alerts(|book| {
+        book.alerts()
+            .iter()
+            .filter(|a| matches!(a.state, AlertState::Open | AlertState::Easing))
+            .map(|a| a.key.experiment.clone())
+            .collect()
+    });
     let rendered = super::blocking(move || {
         let entries: Vec<page::ListEntry> = snapshots
             .into_iter()
             .map(|s| {
-                let summary = shared.summaries.summary(s);
+                let summary = service.summary(s);
                 let findings = crate::decide::evaluate(&summary);
                 let open_alerts = open
                     .iter()
@@ -108,11 +106,11 @@ async fn list(State(shared): State<Arc<Shared>>, Query(part): Query<Part>) -> Re
 }
 
 async fn experiment(
-    State(shared): State<Arc<Shared>>,
+    State(service): State<Arc<Service>>,
     Path(id): Path<String>,
     Query(part): Query<Part>,
 ) -> Response {
-    let Some(snapshot) = shared.lock_shards().snapshot(&id) else {
+    let Some(snapshot) = service.lock_shards().snapshot(&id) else {
         let main = format!(
             r#"<h1>No experiment “{}”</h1><p><a href="/">All experiments</a></p>"#,
             page::escape(&id)
@@ -122,19 +120,17 @@ async fn experiment(
             page::layout("posteriord · not found", "not found", &main, "/"),
         );
     };
-    let history = shared.history.lock().experiment(&id).cloned();
-    let alerts: Vec<_> = shared
-        .alerts
-        .lock()
-        .unwrap_or_else(|p| p.into_inner())
-        .alerts()
-        .iter()
-        .filter(|a| a.key.experiment == id)
-        .cloned()
-        .collect();
-    let now = crate::app::now_micros();
+    let history = service.recorder().lock().experiment(&id).cloned();
+    let alerts: Vec<_> = service.with_alerts(|book| {
+        book.alerts()
+            .iter()
+            .filter(|a| a.key.experiment == id)
+            .cloned()
+            .collect()
+    });
+    let now = crate::service::now_micros();
     let rendered = super::blocking(move || {
-        let summary = shared.summaries.summary(snapshot);
+        let summary = service.summary(snapshot);
         let findings = crate::decide::evaluate(&summary);
         page::experiment_main(&page::ExperimentView {
             summary,

@@ -212,7 +212,7 @@ pub fn list_main(entries: &[ListEntry]) -> String {
     let mut s = String::new();
     s.push_str("<h1>Experiments</h1>");
     s.push_str(r#"<p class="caution">"#);
-    s.push_str(&escape(crate::http::doc::CAUTION));
+    s.push_str(&escape(crate::doc::CAUTION));
     s.push_str("</p>");
     s.push_str(r#"<table class="experiments" data-role="experiments"><thead><tr><th>experiment</th><th>state</th><th>units</th><th>primary metric</th><th>leading variant</th><th>P(best)</th><th>open alerts</th></tr></thead><tbody>"#);
     for e in entries {
@@ -277,7 +277,7 @@ pub fn experiment_main(v: &ExperimentView) -> String {
         chips(&glance(&v.summary, &v.findings))
     );
     s.push_str(r#"<p class="caution">"#);
-    s.push_str(&escape(crate::http::doc::CAUTION));
+    s.push_str(&escape(crate::doc::CAUTION));
     s.push_str("</p>");
     // Variants with their look, so every plot below reads the same way.
     s.push_str(r#"<table data-role="variants"><thead><tr><th>variant</th><th>planned</th><th>units</th></tr></thead><tbody>"#);
@@ -818,7 +818,7 @@ fn decisions_section(s: &mut String, v: &ExperimentView) {
     } else {
         s.push_str(r#"<table data-role="alerts"><thead><tr><th>alert</th><th>rule</th><th>metric</th><th>variant</th><th>state</th><th>opened</th><th>closed</th><th>message</th></tr></thead><tbody>"#);
         for a in &v.alerts {
-            let t = |m: i64| crate::http::doc::time_text(m).unwrap_or_default();
+            let t = |m: i64| crate::doc::time_text(m).unwrap_or_default();
             let _ = write!(
                 s,
                 r#"<tr data-rule="{}"><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>"#,
