@@ -407,7 +407,7 @@ fn ingest_once(config: &Config, events: &[Vec<u8>]) -> u64 {
 fn ingest_into(
     shards: &Mutex<Shards>,
     events: &[Vec<u8>],
-    cadence: Option<&posteriord::decide::cadence::Cadence>,
+    cadence: Option<&posteriord::state::cadence::Cadence>,
     mut on_due: impl FnMut(posteriord::state::ExperimentSnapshot),
 ) -> u64 {
     const BATCH: usize = 500;
@@ -1255,7 +1255,8 @@ fn kafka_targets(work: &Path, kafka: bool, http: bool) -> Vec<Row> {
 
 fn evaluation_target() -> Vec<Row> {
     use posteriord::config::{DEFAULT_EVALUATE_EVERY_EVENTS, DEFAULT_EVALUATE_EVERY_SECS};
-    use posteriord::decide::cadence::{assess, Cadence};
+    use posteriord::decide::evaluation::assess;
+    use posteriord::state::cadence::Cadence;
     let experiments = sized(10_000, 200);
     let n = sized(1_000_000, 20_000);
     println!("\n== evaluation: 10 000 experiments × 4 variants (conversion + defect rate), default cadence ==");

@@ -11,7 +11,7 @@ use serde_json::{json, Value};
 
 use crate::config::Config;
 use crate::decide::alerts::{AlertBook, AlertChange};
-use crate::decide::cadence::evaluate_snapshot;
+use crate::decide::evaluation::evaluate_snapshot;
 use crate::decide::Finding;
 use crate::event::Outcome;
 use crate::service::ingest::{apply_batch_due, Item};

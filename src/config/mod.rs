@@ -125,8 +125,8 @@ impl Default for AlertsConfig {
 
 impl AlertsConfig {
     /// The evaluation cadence these settings give (event time in µs, or a count).
-    pub fn cadence(&self) -> crate::decide::cadence::Cadence {
-        crate::decide::cadence::Cadence::new(
+    pub fn cadence(&self) -> crate::state::cadence::Cadence {
+        crate::state::cadence::Cadence::new(
             self.evaluate_every.as_micros() as i64,
             self.evaluate_every_events,
         )

@@ -47,7 +47,7 @@ impl Service {
     /// counted.
     fn evaluate_due(&self, snapshot: ExperimentSnapshot) {
         // Quadrature runs outside the desk's lock; only the fold takes it.
-        let mut evaluation = crate::decide::cadence::assess(snapshot);
+        let mut evaluation = crate::decide::evaluation::assess(snapshot);
         self.recorder
             .record(&evaluation.summary, &evaluation.findings, evaluation.at);
         let changes = {

@@ -4,9 +4,9 @@
 use std::sync::Mutex;
 
 use super::metrics::{Metrics, Source};
-use crate::decide::cadence::Cadence;
 use crate::decode::decode_event;
 use crate::event::{Event, Outcome, Reject};
+use crate::state::cadence::Cadence;
 use crate::state::shards::Shards;
 use crate::state::ExperimentSnapshot;
 

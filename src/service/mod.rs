@@ -27,8 +27,8 @@ use std::time::Duration;
 
 use crate::config::Config;
 use crate::decide::alerts::{Alert, AlertBook};
-use crate::decide::cadence::Cadence;
 use crate::event::Micros;
+use crate::state::cadence::Cadence;
 use crate::state::shards::{Shard, ShardImage, Shards, HTTP_SHARD};
 use crate::state::ExperimentSnapshot;
 use crate::summary::ExperimentSummary;

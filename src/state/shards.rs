@@ -114,7 +114,7 @@ impl Shard {
         &mut self,
         event: &Event<'_>,
         prepared: Option<crate::state::Prepared>,
-        cadence: &crate::decide::cadence::Cadence,
+        cadence: &super::cadence::Cadence,
     ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
         let (r, due) = self.engine.apply_due(event, prepared, cadence);
         if r.is_ok() {

@@ -494,7 +494,7 @@ fn an_inserted_shard_follows_the_current_definitions() {
 
 #[test]
 fn a_due_event_yields_the_snapshot_as_of_that_event_and_rejects_do_not_count() {
-    use crate::decide::cadence::Cadence;
+    use crate::state::cadence::Cadence;
     let mut engine = Engine::new([bakery()]);
     let cadence = Cadence::new(i64::MAX, 3);
     let names = ["u1", "u2", "u3", "u4", "u5", "u6"];

@@ -5,6 +5,7 @@
 //! the alerts, and the data-quality checks. `?part=main` returns only the main part, which the
 //! page's small inline script re-fetches every few seconds and swaps in.
 
+mod markup;
 pub mod page;
 pub mod svg;
 
@@ -38,7 +39,7 @@ struct Part {
 
 /// What the pages may do: their own inline style and script, fetches from this origin, and
 /// nothing else — no external resources, no forms, no framing by other sites. Everything
-/// interpolated into a page is escaped (`page::escape`), so the inline script is the only one.
+/// interpolated into a page is escaped (`markup::escape`), so the inline script is the only one.
 const CONTENT_SECURITY_POLICY: &str = "default-src 'none'; style-src 'unsafe-inline'; \
 script-src 'unsafe-inline'; connect-src 'self'; img-src 'self' data:; base-uri 'none'; \
 form-action 'none'; frame-ancestors 'none'";
@@ -113,7 +114,7 @@ async fn experiment(
     let Some(snapshot) = service.lock_shards().snapshot(&id) else {
         let main = format!(
             r#"<h1>No experiment “{}”</h1><p><a href="/">All experiments</a></p>"#,
-            page::escape(&id)
+            markup::escape(&id)
         );
         return html(
             StatusCode::NOT_FOUND,

@@ -10,6 +10,7 @@ use crate::history::{Change, ExperimentHistory};
 use crate::stats::{self, ArmSummary, Arms};
 use crate::summary::ExperimentSummary;
 
+use super::markup::escape;
 use super::svg::{self, Axis, Band, Fmt, IntervalBar, Labels, Lane, Mark, Plot, Scale, Series};
 
 /// Seconds between refreshes of the page's main part.
@@ -17,22 +18,6 @@ pub const REFRESH_SECS: u32 = 5;
 
 /// Points along each density curve.
 const CURVE_POINTS: usize = 241;
-
-/// Text made safe inside HTML element content and quoted attributes.
-pub fn escape(s: &str) -> String {
-    let mut out = String::with_capacity(s.len());
-    for c in s.chars() {
-        match c {
-            '&' => out.push_str("&amp;"),
-            '<' => out.push_str("&lt;"),
-            '>' => out.push_str("&gt;"),
-            '"' => out.push_str("&quot;"),
-            '\'' => out.push_str("&#39;"),
-            c => out.push(c),
-        }
-    }
-    out
-}
 
 const STYLE: &str = r#"
 :root { --paper:#f7f5f0; --card:#fffdf9; --ink:#1f2430; --soft:#5b6170; --rule:#dcd7cc; --accent:#0072B2; }
@@ -976,17 +961,4 @@ fn quality_section(s: &mut String, v: &ExperimentView) {
         );
     }
     s.push_str("</div>");
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn escape_neutralises_markup() {
-        assert_eq!(
-            escape(r#"<a href="x">&'"#),
-            "&lt;a href=&quot;x&quot;&gt;&amp;&#39;"
-        );
-    }
 }
