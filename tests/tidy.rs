@@ -80,12 +80,10 @@ fn table() -> Table {
 impl Table {
     /// Layer index (0 = top) and place within the layer of top-level module `name`.
     fn place(&self, name: &str) -> Option<(usize, usize)> {
-        self.layer.iter().enumerate().find_map(|(i, l)| {
-            l.modules
-                .iter()
-                .position(|m| m == name)
-                .map(|p| (i, p))
-        })
+        self.layer
+            .iter()
+            .enumerate()
+            .find_map(|(i, l)| l.modules.iter().position(|m| m == name).map(|p| (i, p)))
     }
 
     /// Why `from` (a module path such as `kafka::changelog`) may not name `to` (a path after
@@ -125,7 +123,10 @@ impl Table {
                     .iter()
                     .any(|(x, y)| *x == a && (to == y || to.starts_with(&format!("{y}::"))));
                 (!allowed).then(|| {
-                    format!("`{a}` names its peer `{b}`; layer {} keeps them apart", layer.name)
+                    format!(
+                        "`{a}` names its peer `{b}`; layer {} keeps them apart",
+                        layer.name
+                    )
                 })
             }
         }
@@ -258,7 +259,10 @@ fn breaches(table: &Table) -> Vec<String> {
         let code = code_of(&std::fs::read_to_string(&file).unwrap());
         // Unit tests may use dev-dependencies (an HTTP client to call the server under test);
         // what they import from the crate is held to the layers like any other code.
-        let production = code.split("#[cfg(test)]\nmod tests").next().unwrap_or_default();
+        let production = code
+            .split("#[cfg(test)]\nmod tests")
+            .next()
+            .unwrap_or_default();
         let shown = file.strip_prefix(root()).unwrap().display().to_string();
         for path in crate_paths(&code) {
             if let Some(why) = table.breach(&module, &path) {
@@ -309,7 +313,10 @@ fn the_table_names_every_module_once() {
             }
         }
     }
-    assert_eq!(listed, present, "src/layers.toml against the modules of src/");
+    assert_eq!(
+        listed, present,
+        "src/layers.toml against the modules of src/"
+    );
 }
 
 /// The checker itself, on planted text: it must see what the layers test relies on it to see.
@@ -329,11 +336,15 @@ fn the_checker_sees_planted_breaches() {
     // Up a layer, across apart peers, the one allowed pair, down a layer, and ordered peers.
     assert!(table.breach("state", "app::run").is_some());
     assert!(table.breach("http", "kafka::start").is_some());
-    assert!(table.breach("sinks", "kafka::client::producer_config").is_none());
+    assert!(table
+        .breach("sinks", "kafka::client::producer_config")
+        .is_none());
     assert!(table.breach("sinks", "kafka::changelog").is_some());
     assert!(table.breach("kafka", "service::Service").is_none());
     assert!(table.breach("state", "decide::evaluate").is_some());
-    assert!(table.breach("decide", "state::ExperimentSnapshot").is_none());
+    assert!(table
+        .breach("decide", "state::ExperimentSnapshot")
+        .is_none());
     // Crates: only the listed modules, whole words only.
     assert!(names_crate(&code, "tokio"));
     assert!(!names_crate("tokio_util::sync::CancellationToken", "tokio"));
