@@ -22,10 +22,10 @@ use std::time::{Duration, Instant};
 
 use posteriord::config::Config;
 use posteriord::event::{Event, EventBody};
-use posteriord::ingest::Item;
-use posteriord::metrics::{Metrics, Source};
+use posteriord::service::ingest::Item;
+use posteriord::service::metrics::{Metrics, Source};
+use posteriord::service::store::Store;
 use posteriord::state::shards::Shards;
-use posteriord::store::Store;
 
 /// Counts live heap bytes, so memory per unit is measured rather than estimated.
 struct Counting;
@@ -408,7 +408,7 @@ fn ingest_once(config: &Config, events: &[Vec<u8>]) -> u64 {
 fn ingest_into(
     shards: &Mutex<Shards>,
     events: &[Vec<u8>],
-    cadence: Option<&posteriord::decide::cadence::Cadence>,
+    cadence: Option<&posteriord::state::cadence::Cadence>,
     mut on_due: impl FnMut(posteriord::state::ExperimentSnapshot),
 ) -> u64 {
     const BATCH: usize = 500;
@@ -424,7 +424,7 @@ fn ingest_into(
                 bytes: b,
             })
             .collect();
-        let report = posteriord::ingest::apply_batch_due(
+        let report = posteriord::service::ingest::apply_batch_due(
             shards,
             &metrics,
             Source::Kafka,
@@ -1244,7 +1244,8 @@ fn kafka_targets(work: &Path, kafka: bool, http: bool) -> Vec<Row> {
 
 fn evaluation_target() -> Vec<Row> {
     use posteriord::config::{DEFAULT_EVALUATE_EVERY_EVENTS, DEFAULT_EVALUATE_EVERY_SECS};
-    use posteriord::decide::cadence::{assess, Cadence};
+    use posteriord::decide::evaluation::assess;
+    use posteriord::state::cadence::Cadence;
     let experiments = sized(10_000, 200);
     let n = sized(1_000_000, 20_000);
     println!("\n== evaluation: 10 000 experiments × 4 variants (conversion + defect rate), default cadence ==");
