@@ -55,6 +55,8 @@ pub struct Shared {
     pub history: crate::http::history::Recorder,
     /// Summaries shared by the readers (at most `http::cache::MAX_AGE` old).
     pub summaries: crate::http::cache::SummaryCache,
+    /// Where each experiment stands, refreshed in the background for the fleet lists.
+    pub fleet: crate::http::fleet::FleetIndex,
     /// Experiments defined over the API, and the archive. Lock order: catalog, then shards.
     catalog: Mutex<crate::catalog::Catalog>,
     /// Serialises [`Shared::save_dirty`] (taken before the shards' lock).
@@ -103,6 +105,7 @@ impl Shared {
             alerts_config: config.alerts.clone(),
             history: crate::http::history::Recorder::in_memory(config.history_arm_points),
             summaries: Default::default(),
+            fleet: Default::default(),
             catalog: Mutex::new(crate::catalog::Catalog::in_memory(
                 config.experiments.iter().map(|e| e.id.clone()),
             )),
@@ -602,6 +605,10 @@ pub async fn run(
         let (s, token) = (Arc::clone(&shared), shutdown.clone());
         tracker.spawn_blocking(move || evaluator(s, queue, token));
     }
+    tracker.spawn(crate::http::fleet::keep_fresh(
+        Arc::clone(&shared),
+        shutdown.clone(),
+    ));
     if shared.store.is_some() {
         tracker.spawn(save_http_shard(
             Arc::clone(&shared),

@@ -9,6 +9,7 @@ pub mod cache;
 pub mod dashboard;
 pub mod define;
 pub mod doc;
+pub mod fleet;
 pub mod guard;
 pub mod history;
 
@@ -52,7 +53,7 @@ pub fn router(shared: Arc<Shared>, http: &crate::config::HttpConfig, auth: guard
         // (the dashboard's pages, `/v1/experiments/{id}/history`) belong in this table too:
         // as GET routes they inherit `protect_reads`, the timeout and the JSON errors, and
         // tests/api.rs asks for each to be described in openapi.json.
-        .route("/v1/experiments", get(list_experiments))
+        .route("/v1/experiments", get(fleet::api::list_experiments))
         .route(
             "/v1/experiments/{id}",
             get(get_experiment)
@@ -60,7 +61,7 @@ pub fn router(shared: Arc<Shared>, http: &crate::config::HttpConfig, auth: guard
                 .layer(DefaultBodyLimit::max(define::MAX_DEFINITION_BYTES))
                 .delete(define::delete_experiment),
         )
-        .route("/v1/alerts", get(list_alerts))
+        .route("/v1/alerts", get(fleet::api::list_alerts))
         // Writes that are not definitions.
         .route("/v1/events", post(ingest))
         .route("/v1/alerts/{id}/ack", post(ack_alert))
@@ -194,44 +195,6 @@ async fn ingest(State(shared): State<Arc<Shared>>, body: Bytes) -> Response {
     }
 }
 
-/// Filters of `GET /v1/alerts`.
-#[derive(serde::Deserialize)]
-struct AlertFilter {
-    experiment: Option<String>,
-    state: Option<String>,
-}
-
-async fn list_alerts(
-    State(shared): State<Arc<Shared>>,
-    axum::extract::Query(filter): axum::extract::Query<AlertFilter>,
-) -> Response {
-    use crate::decide::alerts::AlertState;
-    if let Some(s) = &filter.state {
-        if AlertState::from_name(s).is_none() {
-            let names: Vec<&str> = AlertState::ALL.iter().map(|s| s.as_str()).collect();
-            return error(
-                StatusCode::BAD_REQUEST,
-                "bad_filter",
-                &format!("state must be one of {}", names.join(", ")),
-            );
-        }
-    }
-    let book = shared.alerts.lock().unwrap_or_else(|p| p.into_inner());
-    let alerts: Vec<Value> = book
-        .alerts()
-        .iter()
-        .filter(|a| {
-            filter
-                .experiment
-                .as_ref()
-                .is_none_or(|e| *e == a.key.experiment)
-        })
-        .filter(|a| filter.state.as_ref().is_none_or(|s| s == a.state.as_str()))
-        .map(doc::alert)
-        .collect();
-    Json(json!({ "alerts": alerts })).into_response()
-}
-
 async fn ack_alert(State(shared): State<Arc<Shared>>, Path(id): Path<String>) -> Response {
     let now = crate::app::now_micros();
     let body = {
@@ -250,29 +213,6 @@ async fn ack_alert(State(shared): State<Arc<Shared>>, Path(id): Path<String>) ->
             Json(body).into_response()
         }
     }
-}
-
-async fn list_experiments(
-    State(shared): State<Arc<Shared>>,
-    Query(q): Query<define::ArchiveQuery>,
-) -> Json<Value> {
-    if q.archived {
-        return Json(define::list_archived(&shared));
-    }
-    let catalog = shared.lock_catalog();
-    let snapshots = shared.lock_shards().snapshots();
-    let entries: Vec<Value> = snapshots
-        .iter()
-        .map(|s| {
-            let source = if catalog.is_api(&s.def.id) {
-                "api"
-            } else {
-                "config"
-            };
-            define::entry(s, source)
-        })
-        .collect();
-    Json(json!({ "experiments": entries }))
 }
 
 async fn get_experiment(
