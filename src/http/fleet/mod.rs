@@ -3,8 +3,8 @@
 //! and paged for the dashboard overview and the list routes.
 //!
 //! Requests never run quadrature: a background round ([`keep_fresh`]) keeps one verdict per
-//! experiment (its cached summary and the rules that hold on it), recomputed only for the
-//! experiments whose totals changed, at most once per [`super::cache::MAX_AGE`]. A request
+//! experiment (its summary and the rules that hold on it), recomputed only for the
+//! experiments whose totals changed, one round per [`REFRESH_EVERY`]. A request
 //! joins those verdicts with the live list of experiments (so a created or deleted experiment
 //! shows at once) and with the alert book.
 
@@ -23,7 +23,7 @@ use crate::decide::alerts::{Alert, AlertState};
 use crate::decide::{Finding, Rule};
 use crate::experiment::ExperimentDef;
 use crate::state::ExperimentSnapshot;
-use crate::summary::ExperimentSummary;
+use crate::summary::{summarize, ExperimentSummary, DEFAULT_LEVEL};
 
 use super::cache::SummaryCache;
 use query::Facts;
@@ -137,9 +137,14 @@ pub struct FleetIndex {
 }
 
 impl FleetIndex {
-    /// Bring the verdicts in line with `snapshots` (every experiment now): summarise (through
-    /// `summaries`, so the pages share the work) those whose totals changed, drop those of
-    /// experiments that are gone. Returns how many verdicts were recomputed.
+    /// Bring the verdicts in line with `snapshots` (every experiment now): summarise those
+    /// whose totals changed (reusing the readers' cached summary when it has exactly these
+    /// totals), drop those of experiments that are gone. Returns how many verdicts were
+    /// recomputed.
+    ///
+    /// A summary computed here is not put in `summaries`: there it would count as young and
+    /// be served to a reader who has just written an event, hiding that event for up to
+    /// [`super::cache::MAX_AGE`].
     pub fn refresh(&self, snapshots: Vec<ExperimentSnapshot>, summaries: &SummaryCache) -> usize {
         let present: HashSet<String> = snapshots.iter().map(|s| s.def.id.clone()).collect();
         let mut changed = 0;
@@ -148,11 +153,10 @@ impl FleetIndex {
             if old.as_ref().is_some_and(|v| v.summary.snapshot == snap) {
                 continue;
             }
-            // The quadrature (when the cache has nothing young enough) runs outside the lock.
-            let summary = summaries.summary(snap);
-            if old.is_some_and(|v| Arc::ptr_eq(&v.summary, &summary)) {
-                continue;
-            }
+            // The quadrature runs outside the lock.
+            let summary = summaries
+                .exact(&snap)
+                .unwrap_or_else(|| Arc::new(summarize(snap, DEFAULT_LEVEL)));
             let verdict = Arc::new(Verdict::new(summary));
             self.lock()
                 .insert(verdict.summary.snapshot.def.id.clone(), verdict);
@@ -388,7 +392,16 @@ mod tests {
         let n = snaps.len();
         assert!(n >= 2);
         let index = FleetIndex::default();
+        // A summary the readers already share is reused, and the background work adds
+        // nothing to their cache (it would look young there and hide newer events).
+        let shared = cache.summary(snaps[0].clone());
         assert_eq!(index.refresh(snaps.clone(), &cache), n);
+        assert!(snaps[1..].iter().all(|s| cache.exact(s).is_none()));
+        let first = index
+            .verdicts(&[Arc::clone(&snaps[0].def)])
+            .remove(0)
+            .unwrap();
+        assert!(Arc::ptr_eq(&first.summary, &shared));
         assert_eq!(index.refresh(snaps.clone(), &cache), 0, "nothing changed");
         let defs: Vec<_> = snaps.iter().map(|s| Arc::clone(&s.def)).collect();
         assert!(index.verdicts(&defs).iter().all(Option::is_some));
