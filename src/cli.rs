@@ -283,7 +283,7 @@ fn load_config(path: &std::path::Path) -> anyhow::Result<Config> {
     crate::http::guard::check_exposure(&config.http, config.http.addr)
         .map_err(|e| UsageError(format!("{}: {e}", path.display())))?;
     if let Some(kafka) = &config.kafka {
-        crate::kafka::check_properties(kafka)
+        crate::kafka::client::check_properties(kafka)
             .map_err(|m| UsageError(format!("{}: {m}", path.display())))?;
     }
     Ok(config)
@@ -455,8 +455,8 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
         .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()));
     let opts = PlanOptions {
         def: std::sync::Arc::new(def),
-        cadence: crate::decide::cadence::Cadence::new(every, config.alerts.evaluate_every_events),
-        hold_down: config.alerts.hold_down.as_micros() as i64,
+        cadence: config.alerts.cadence(),
+        hold_down: config.alerts.hold_down_micros(),
         sims: args.sims,
         seed: args.seed,
         units_per_day: args.units_per_day,
@@ -570,7 +570,7 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             "baselines": def.metrics.iter().zip(&opts.baselines).map(|(m, b)| serde_json::json!({"metric": m.name, "rate": b})).collect::<Vec<_>>(),
             "scenarios": results.iter().map(|r| plan::scenario_json(&opts, r)).collect::<Vec<_>>(),
             "sweeps": sweep_docs,
-            "caution": crate::http::doc::CAUTION,
+            "caution": crate::doc::CAUTION,
         });
         println!("{}", serde_json::to_string_pretty(&doc)?);
     } else {
@@ -596,7 +596,7 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             println!("{}", plan::scenario_table(&opts, r));
         }
         print!("{sweep_text}");
-        println!("{}", crate::http::doc::CAUTION);
+        println!("{}", crate::doc::CAUTION);
     }
     Ok(())
 }

@@ -6,6 +6,7 @@
 //! the alerts, and the data-quality checks. `?part=main` returns only the main part, which the
 //! page's small inline script re-fetches every few seconds and swaps in.
 
+mod markup;
 pub mod overview;
 pub mod page;
 pub mod svg;
@@ -18,10 +19,10 @@ use axum::response::{IntoResponse, Response};
 use axum::routing::get;
 use axum::Router;
 
-use crate::app::Shared;
+use crate::service::Service;
 
 /// The dashboard's routes and the history route (merged into the API router).
-pub fn routes() -> Router<Arc<Shared>> {
+pub fn routes() -> Router<Arc<Service>> {
     Router::new()
         .route("/", get(overview::overview))
         .route("/experiments/{id}", get(experiment))
@@ -40,7 +41,7 @@ struct Part {
 /// What the pages may do: their own inline style and script, fetches from this origin, forms
 /// that submit to this origin (the overview's search), and nothing else — no external
 /// resources, no framing by other sites. Everything
-/// interpolated into a page is escaped (`page::escape`), so the inline script is the only one.
+/// interpolated into a page is escaped (`markup::escape`), so the inline script is the only one.
 const CONTENT_SECURITY_POLICY: &str = "default-src 'none'; style-src 'unsafe-inline'; \
 script-src 'unsafe-inline'; connect-src 'self'; img-src 'self' data:; base-uri 'none'; \
 form-action 'self'; frame-ancestors 'none'";
@@ -64,33 +65,31 @@ fn wants_main(part: &Part) -> bool {
 }
 
 async fn experiment(
-    State(shared): State<Arc<Shared>>,
+    State(service): State<Arc<Service>>,
     Path(id): Path<String>,
     Query(part): Query<Part>,
 ) -> Response {
-    let Some(snapshot) = shared.lock_shards().snapshot(&id) else {
+    let Some(snapshot) = service.lock_shards().snapshot(&id) else {
         let main = format!(
             r#"<h1>No experiment “{}”</h1><p><a href="/">All experiments</a></p>"#,
-            page::escape(&id)
+            markup::escape(&id)
         );
         return html(
             StatusCode::NOT_FOUND,
             page::layout("posteriord · not found", "not found", &main, "/"),
         );
     };
-    let history = shared.history.lock().experiment(&id).cloned();
-    let alerts: Vec<_> = shared
-        .alerts
-        .lock()
-        .unwrap_or_else(|p| p.into_inner())
-        .alerts()
-        .iter()
-        .filter(|a| a.key.experiment == id)
-        .cloned()
-        .collect();
-    let now = crate::app::now_micros();
+    let history = service.recorder().lock().experiment(&id).cloned();
+    let alerts: Vec<_> = service.with_alerts(|book| {
+        book.alerts()
+            .iter()
+            .filter(|a| a.key.experiment == id)
+            .cloned()
+            .collect()
+    });
+    let now = crate::service::now_micros();
     let rendered = super::blocking(move || {
-        let summary = shared.summaries.summary(snapshot);
+        let summary = service.summary(snapshot);
         let findings = crate::decide::evaluate(&summary);
         page::experiment_main(&page::ExperimentView {
             summary,

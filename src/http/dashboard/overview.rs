@@ -12,12 +12,14 @@ use axum::extract::{Query, State};
 use axum::http::StatusCode;
 use axum::response::Response;
 
-use super::page::{escape, layout, REFRESH_SECS};
+use super::markup::escape;
+use super::page::{layout, REFRESH_SECS};
 use super::{html, wants_main, Part};
-use crate::app::Shared;
 use crate::decide::Rule;
+use crate::http::fleet::facts;
 use crate::http::fleet::query::{self, Filter, ListParams, Order, QueryError};
-use crate::http::fleet::{members, Counts, Member, Standing};
+use crate::service::fleet::{Counts, Member, Standing};
+use crate::service::Service;
 
 /// Experiments per page of the overview.
 pub const PAGE_SIZE: usize = 50;
@@ -82,7 +84,7 @@ struct Asked {
 
 /// `GET /`.
 pub async fn overview(
-    State(shared): State<Arc<Shared>>,
+    State(service): State<Arc<Service>>,
     Query(q): Query<OverviewQuery>,
 ) -> Response {
     let part = Part {
@@ -105,9 +107,9 @@ pub async fn overview(
             ),
         ),
         Ok(asked) => {
-            let now = crate::app::now_micros();
+            let now = crate::service::now_micros();
             match crate::http::blocking(move || {
-                let all = members(&shared);
+                let all = service.fleet();
                 main_part(&all, &asked, now)
             })
             .await
@@ -387,12 +389,12 @@ fn main_part(members: &[Member], asked: &Asked, now: i64) -> String {
     s.push_str(STYLE);
     s.push_str("<h1>Experiments</h1>");
     s.push_str(r#"<p class="caution">"#);
-    s.push_str(&escape(crate::http::doc::CAUTION));
+    s.push_str(&escape(crate::doc::CAUTION));
     s.push_str("</p>");
     counts_nav(&mut s, &counts, &asked.filter);
     form(&mut s, members, &asked.filter, asked.order);
     let skip = (asked.page - 1).saturating_mul(PAGE_SIZE);
-    let rows = members.iter().map(|m| (m.facts(), m)).collect();
+    let rows = members.iter().map(|m| (facts(m), m)).collect();
     let page = query::page(
         rows,
         &asked.filter,

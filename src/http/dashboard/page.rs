@@ -10,6 +10,7 @@ use crate::history::{Change, ExperimentHistory};
 use crate::stats::{self, ArmSummary, Arms};
 use crate::summary::ExperimentSummary;
 
+use super::markup::escape;
 use super::svg::{self, Axis, Band, Fmt, IntervalBar, Labels, Lane, Mark, Plot, Scale, Series};
 
 /// Seconds between refreshes of the page's main part.
@@ -17,22 +18,6 @@ pub const REFRESH_SECS: u32 = 5;
 
 /// Points along each density curve.
 const CURVE_POINTS: usize = 241;
-
-/// Text made safe inside HTML element content and quoted attributes.
-pub fn escape(s: &str) -> String {
-    let mut out = String::with_capacity(s.len());
-    for c in s.chars() {
-        match c {
-            '&' => out.push_str("&amp;"),
-            '<' => out.push_str("&lt;"),
-            '>' => out.push_str("&gt;"),
-            '"' => out.push_str("&quot;"),
-            '\'' => out.push_str("&#39;"),
-            c => out.push(c),
-        }
-    }
-    out
-}
 
 const STYLE: &str = r#"
 :root { --paper:#f7f5f0; --card:#fffdf9; --ink:#1f2430; --soft:#5b6170; --rule:#dcd7cc; --accent:#0072B2; }
@@ -231,7 +216,7 @@ pub fn experiment_main(v: &ExperimentView) -> String {
         chips(&glance(&v.summary, &v.findings))
     );
     s.push_str(r#"<p class="caution">"#);
-    s.push_str(&escape(crate::http::doc::CAUTION));
+    s.push_str(&escape(crate::doc::CAUTION));
     s.push_str("</p>");
     // Variants with their look, so every plot below reads the same way.
     s.push_str(r#"<table data-role="variants"><thead><tr><th>variant</th><th>planned</th><th>units</th></tr></thead><tbody>"#);
@@ -772,7 +757,7 @@ fn decisions_section(s: &mut String, v: &ExperimentView) {
     } else {
         s.push_str(r#"<table data-role="alerts"><thead><tr><th>alert</th><th>rule</th><th>metric</th><th>variant</th><th>state</th><th>opened</th><th>closed</th><th>message</th></tr></thead><tbody>"#);
         for a in &v.alerts {
-            let t = |m: i64| crate::http::doc::time_text(m).unwrap_or_default();
+            let t = |m: i64| crate::doc::time_text(m).unwrap_or_default();
             let _ = write!(
                 s,
                 r#"<tr data-rule="{}"><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>"#,
@@ -930,17 +915,4 @@ fn quality_section(s: &mut String, v: &ExperimentView) {
         );
     }
     s.push_str("</div>");
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn escape_neutralises_markup() {
-        assert_eq!(
-            escape(r#"<a href="x">&'"#),
-            "&lt;a href=&quot;x&quot;&gt;&amp;&#39;"
-        );
-    }
 }

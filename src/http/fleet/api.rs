@@ -8,12 +8,14 @@ use axum::response::{IntoResponse, Response};
 use axum::Json;
 use serde_json::{json, Value};
 
+use super::facts;
 use super::query::{self, Cursor, Key, ListParams, Order, QueryError};
-use super::{members, Member};
-use crate::app::Shared;
 use crate::decide::alerts::AlertState;
 use crate::decide::Rule;
-use crate::http::{define, doc, guard};
+use crate::doc;
+use crate::http::{define, guard};
+use crate::service::fleet::Member;
+use crate::service::Service;
 
 /// The query of `GET /v1/experiments`. (Spelled out rather than flattening [`ListParams`]:
 /// a flattened struct makes `serde_urlencoded` refuse typed fields such as `archived`.)
@@ -65,11 +67,11 @@ fn refused(e: &QueryError) -> Response {
 /// `GET /v1/experiments`: one page of running experiments, by id unless `sort` says
 /// otherwise; or, with `archived=true`, the whole archive.
 pub async fn list_experiments(
-    State(shared): State<Arc<Shared>>,
+    State(service): State<Arc<Service>>,
     Query(q): Query<ExperimentsQuery>,
 ) -> Response {
     if q.archived {
-        return Json(define::list_archived(&shared)).into_response();
+        return Json(define::list_archived(&service)).into_response();
     }
     let list = q.list();
     let asked = (|| {
@@ -86,10 +88,10 @@ pub async fn list_experiments(
         Ok(a) => a,
         Err(e) => return refused(&e),
     };
-    let all = members(&shared);
-    let rows = all.iter().map(|m| (m.facts(), m)).collect();
+    let all = service.fleet();
+    let rows = all.iter().map(|m| (facts(m), m)).collect();
     let page = query::page(rows, &filter, order, from.as_ref(), limit);
-    let entries = entries(&shared, &page.rows);
+    let entries = entries(&service, &page.rows);
     Json(json!({
         "experiments": entries,
         "matched": page.matched,
@@ -101,9 +103,9 @@ pub async fn list_experiments(
 
 /// The list lines of `page`, with live totals. An experiment deleted since the page was
 /// chosen is left out (the cursor still moves past it).
-fn entries(shared: &Shared, page: &[&Member]) -> Vec<Value> {
-    let catalog = shared.lock_catalog();
-    let shards = shared.lock_shards();
+fn entries(service: &Service, page: &[&Member]) -> Vec<Value> {
+    let catalog = service.lock_catalog();
+    let shards = service.lock_shards();
     page.iter()
         .filter_map(|m| {
             let snap = shards.snapshot(&m.def.id)?;
@@ -145,7 +147,7 @@ const ALERT_ORDER: &str = "opened";
 /// `GET /v1/alerts`: one page of alerts, oldest opening first. An alert's opening time and id
 /// never change, so a walk sees every alert that exists throughout exactly once.
 pub async fn list_alerts(
-    State(shared): State<Arc<Shared>>,
+    State(service): State<Arc<Service>>,
     Query(q): Query<AlertsQuery>,
 ) -> Response {
     let asked = (|| {
@@ -180,37 +182,39 @@ pub async fn list_alerts(
         Ok(a) => a,
         Err(e) => return refused(&e),
     };
-    let book = shared.alerts.lock().unwrap_or_else(|p| p.into_inner());
-    let mut kept: Vec<_> = book
-        .alerts()
-        .iter()
-        .filter(|a| q.experiment.as_ref().is_none_or(|e| *e == a.key.experiment))
-        .filter(|a| state.is_none_or(|s| s == a.state))
-        .filter(|a| rule.is_none_or(|r| r == a.key.rule))
-        .filter(|a| {
-            q.metric
-                .as_ref()
-                .is_none_or(|m| a.key.metric.as_ref() == Some(m))
-        })
-        .collect();
-    let matched = kept.len();
-    if let Some(c) = &from {
-        kept.retain(|a| (a.opened_at, a.id.as_str()) > (c.key.a, c.key.id.as_str()));
-    }
-    kept.sort_unstable_by(|x, y| (x.opened_at, &x.id).cmp(&(y.opened_at, &y.id)));
-    let next = (kept.len() > limit).then(|| {
-        let last = kept[limit - 1];
-        Cursor {
-            order: ALERT_ORDER,
-            key: Key {
-                a: last.opened_at,
-                b: 0,
-                id: last.id.clone(),
-            },
+    let (matched, next, alerts) = service.with_alerts(|book| {
+        let mut kept: Vec<_> = book
+            .alerts()
+            .iter()
+            .filter(|a| q.experiment.as_ref().is_none_or(|e| *e == a.key.experiment))
+            .filter(|a| state.is_none_or(|s| s == a.state))
+            .filter(|a| rule.is_none_or(|r| r == a.key.rule))
+            .filter(|a| {
+                q.metric
+                    .as_ref()
+                    .is_none_or(|m| a.key.metric.as_ref() == Some(m))
+            })
+            .collect();
+        let matched = kept.len();
+        if let Some(c) = &from {
+            kept.retain(|a| (a.opened_at, a.id.as_str()) > (c.key.a, c.key.id.as_str()));
         }
-        .encode()
+        kept.sort_unstable_by(|x, y| (x.opened_at, &x.id).cmp(&(y.opened_at, &y.id)));
+        let next = (kept.len() > limit).then(|| {
+            let last = kept[limit - 1];
+            Cursor {
+                order: ALERT_ORDER,
+                key: Key {
+                    a: last.opened_at,
+                    b: 0,
+                    id: last.id.clone(),
+                },
+            }
+            .encode()
+        });
+        let alerts: Vec<Value> = kept.iter().take(limit).map(|a| doc::alert(a)).collect();
+        (matched, next, alerts)
     });
-    let alerts: Vec<Value> = kept.iter().take(limit).map(|a| doc::alert(a)).collect();
     Json(json!({
         "alerts": alerts,
         "matched": matched,

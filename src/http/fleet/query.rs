@@ -9,9 +9,9 @@
 
 use std::cmp::Ordering;
 
-use super::Standing;
 use crate::decide::Rule;
 use crate::experiment::MetricDef;
+use crate::service::fleet::Standing;
 
 /// Rows per page when the request names no `limit`.
 pub const DEFAULT_LIMIT: usize = 100;

@@ -573,7 +573,7 @@ mod tests {
                 shard.apply(&c).unwrap();
             }
         }
-        shard.next_offset = Some(1234);
+        shard.advance(1233);
         shard
     }
 
@@ -585,7 +585,7 @@ mod tests {
         store.save("kafka/exp-events/3", &shard.image()).unwrap();
         let loaded = store.load("kafka/exp-events/3", &defs()).unwrap().unwrap();
         assert!(loaded.mismatches.is_empty());
-        assert_eq!(loaded.shard.next_offset, Some(1234));
+        assert_eq!(loaded.shard.next_offset(), Some(1234));
         let mut a = shard.image();
         let mut b = loaded.shard.image();
         for img in a.experiments.iter_mut().chain(b.experiments.iter_mut()) {
@@ -667,7 +667,7 @@ mod tests {
             mismatches[0]
         );
         assert!(shard
-            .engine
+            .engine()
             .experiment("crumb-checkout-copy")
             .unwrap()
             .snapshot()
