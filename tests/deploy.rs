@@ -96,10 +96,13 @@ fn check_config(toml: &str, what: &str) {
     println!("check-config ok: {what}");
 }
 
-/// Metric names `posteriord_*` that src/metrics.rs registers.
+/// Metric names `posteriord_*` that src/service/metrics.rs registers.
 fn code_metric_names() -> BTreeSet<String> {
-    let names = metric_names_in(&read("src/metrics.rs"));
-    assert!(names.len() >= 15, "found only {names:?} in src/metrics.rs");
+    let names = metric_names_in(&read("src/service/metrics.rs"));
+    assert!(
+        names.len() >= 15,
+        "found only {names:?} in src/service/metrics.rs"
+    );
     names
 }
 
