@@ -1,10 +1,11 @@
 //! The performance targets of docs/performance.md, each measured beside its baseline in the
 //! same run and printed as a ratio: ingest vs serde_json parse-only, memory per unit and per
 //! variant (counting allocator), restart time, Kafka end to end vs a bare rdkafka loop, ingest
-//! under HTTP read load (wrk), and the cost of rule evaluation.
+//! under HTTP read load (wrk), the cost of rule evaluation, and the fleet view at 5 000
+//! experiments (list page and overview in Chromium, `parts/fleet.rs`).
 //!
 //! Run all with `cargo bench --bench targets`, or some with
-//! `cargo bench --bench targets -- ingest memory restart kafka http evaluation`.
+//! `cargo bench --bench targets -- ingest memory restart kafka http evaluation fleet`.
 //! `POSTERIORD_BENCH_UNITS` sets the units of the memory/restart state (default 10 000 000);
 //! `POSTERIORD_BENCH_BROKERS` names a broker, else Apache Kafka is started on loopback with
 //! tests/kafka/broker.sh.
@@ -22,10 +23,13 @@ use std::time::{Duration, Instant};
 
 use posteriord::config::Config;
 use posteriord::event::{Event, EventBody};
-use posteriord::ingest::Item;
-use posteriord::metrics::{Metrics, Source};
+use posteriord::service::ingest::Item;
+use posteriord::service::metrics::{Metrics, Source};
+use posteriord::service::store::Store;
 use posteriord::state::shards::Shards;
-use posteriord::store::Store;
+
+#[path = "parts/fleet.rs"]
+mod fleet;
 
 /// Counts live heap bytes, so memory per unit is measured rather than estimated.
 struct Counting;
@@ -117,6 +121,9 @@ fn main() {
     }
     if want("evaluation") {
         rows.extend(evaluation_target());
+    }
+    if want("fleet") {
+        rows.extend(fleet::fleet_target(work.path()));
     }
     if smoke() {
         for r in &rows {
@@ -408,7 +415,7 @@ fn ingest_once(config: &Config, events: &[Vec<u8>]) -> u64 {
 fn ingest_into(
     shards: &Mutex<Shards>,
     events: &[Vec<u8>],
-    cadence: Option<&posteriord::decide::cadence::Cadence>,
+    cadence: Option<&posteriord::state::cadence::Cadence>,
     mut on_due: impl FnMut(posteriord::state::ExperimentSnapshot),
 ) -> u64 {
     const BATCH: usize = 500;
@@ -424,7 +431,7 @@ fn ingest_into(
                 bytes: b,
             })
             .collect();
-        let report = posteriord::ingest::apply_batch_due(
+        let report = posteriord::service::ingest::apply_batch_due(
             shards,
             &metrics,
             Source::Kafka,
@@ -1244,7 +1251,8 @@ fn kafka_targets(work: &Path, kafka: bool, http: bool) -> Vec<Row> {
 
 fn evaluation_target() -> Vec<Row> {
     use posteriord::config::{DEFAULT_EVALUATE_EVERY_EVENTS, DEFAULT_EVALUATE_EVERY_SECS};
-    use posteriord::decide::cadence::{assess, Cadence};
+    use posteriord::decide::evaluation::assess;
+    use posteriord::state::cadence::Cadence;
     let experiments = sized(10_000, 200);
     let n = sized(1_000_000, 20_000);
     println!("\n== evaluation: 10 000 experiments × 4 variants (conversion + defect rate), default cadence ==");

@@ -11,7 +11,7 @@
 
 pub mod alerts;
 pub mod betting;
-pub mod cadence;
+pub mod evaluation;
 pub mod standing;
 
 use crate::event::Outcome;
