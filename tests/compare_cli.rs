@@ -216,7 +216,7 @@ fn bad_input_gives_clear_messages() {
         (r#"{"metric":"conversion","variants":[{"name":"a","trials":10,"successes":1},{"name":"b","trials":10,"successes":1}]}"#.into(), "missing field `prior`"),
         (r#"{"metric":"conversion","prior":{"alpha":1,"beta":1},"control":"zzz","variants":[{"name":"a","trials":10,"successes":1},{"name":"b","trials":10,"successes":1}]}"#.into(), "control \"zzz\" is not one of the variants"),
         (r#"{"metric":"conversion","prior":{"alpha":1,"beta":1},"variants":[{"name":"a","trials":10,"successes":1},{"name":"a","trials":10,"successes":1}]}"#.into(), "appears twice"),
-        (r#"{"metric":"conversion","prior":{"alpha":1,"beta":1},"interval":1.5,"variants":[{"name":"a","trials":10,"successes":1},{"name":"b","trials":10,"successes":1}]}"#.into(), "strictly between 0 and 1"),
+        (r#"{"metric":"conversion","prior":{"alpha":1,"beta":1},"interval":1.5,"variants":[{"name":"a","trials":10,"successes":1},{"name":"b","trials":10,"successes":1}]}"#.into(), "must lie in (0, 1 - 1e-10]"),
         (r#"{"metric":"conversion","prior":{"alpha":1,"beta":1},"rope":-0.1,"variants":[{"name":"a","trials":10,"successes":1},{"name":"b","trials":10,"successes":1}]}"#.into(), "rope must be finite and non-negative"),
         (r#"{"metric":"conversion","prior":{"alpha":1,"beta":1},"variants":[{"name":"a","trials":-10,"successes":1},{"name":"b","trials":10,"successes":1}]}"#.into(), "invalid value: integer `-10`"),
         (r#"{"metric":"defect_rate","prior":{"shape":1,"rate":1},"variants":[{"name":"a","count":1,"exposure":-2},{"name":"b","count":1,"exposure":2}]}"#.into(), "exposure must be finite and non-negative"),
