@@ -913,4 +913,48 @@ mod tests {
             assert!((mass - 1.0).abs() < 1e-10, "{k:?}: mass {mass}");
         }
     }
+
+    use proptest::prelude::*;
+
+    /// Shapes evenly in log10 over the whole accepted range's prior part and counts up to
+    /// 1e9: an arm as `compare` may receive it.
+    fn arb_kernel() -> impl Strategy<Value = Kernel> {
+        let shape = prop_oneof![(-10.0f64..3.0).prop_map(|e| 10f64.powf(e)), Just(1e-10)];
+        let count = prop_oneof![Just(0.0), (0.0f64..9.0).prop_map(|e| 10f64.powf(e).round())];
+        prop_oneof![
+            (shape.clone(), shape.clone(), count.clone(), 0.0f64..=1.0).prop_map(|(a, b, n, f)| {
+                Kernel::beta(a + (n * f).round(), b + n - (n * f).round())
+            }),
+            (shape, -3.0f64..3.0, count, -3.0f64..12.0)
+                .prop_map(|(a, r, c, e)| Kernel::gamma(a + c, 10f64.powf(r) + 10f64.powf(e))),
+        ]
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 64, ..ProptestConfig::default() })]
+
+        /// Bounded work and memory for any accepted input (the worst case of
+        /// docs/performance.md): the panels and table entries of a 2..64-arm grid stay
+        /// below fixed bounds, so one summary's time and memory are bounded too (a table
+        /// entry is three f64: 1.2 M entries are 29 MB, under the 64 MB goal). Before the
+        /// panel rules were tied to slope rather than to one unit, 64 arms of
+        /// Beta(0.001, 0.001) hit the 50 000-panel guard after 1.4 GB.
+        #[test]
+        fn grid_work_is_bounded_for_every_accepted_input(
+            kernels in prop::collection::vec(arb_kernel(), 2..=64),
+        ) {
+            let same_family: Vec<Kernel> = kernels
+                .iter()
+                .copied()
+                .filter(|k| matches!(k, Kernel::BetaLogit { .. }) == matches!(kernels[0], Kernel::BetaLogit { .. }))
+                .collect();
+            prop_assume!(same_family.len() >= 2);
+            let g = Grid::new(&same_family);
+            prop_assert!(g.is_ok(), "{:?}", g.err());
+            let g = g.unwrap();
+            let entries: usize = g.arms.iter().map(|a| a.dens.len()).sum();
+            prop_assert!(g.n_panels() <= 8_000, "{} panels", g.n_panels());
+            prop_assert!(entries <= 1_200_000, "{entries} table entries");
+        }
+    }
 }
