@@ -1,12 +1,14 @@
 //! The performance targets of docs/performance.md, each measured beside its baseline in the
 //! same run and printed as a ratio: ingest vs serde_json parse-only, memory per unit and per
 //! variant (counting allocator), restart time, Kafka end to end vs a bare rdkafka loop, ingest
-//! under HTTP read load (wrk), and the cost of rule evaluation.
+//! under HTTP read load (wrk), the cost of rule evaluation, and the fleet view at 5 000
+//! experiments (list page and overview in Chromium, `parts/fleet.rs`).
 //!
 //! Run all with `cargo bench --bench targets`, or some with
-//! `cargo bench --bench targets -- ingest memory restart kafka http evaluation`.
+//! `cargo bench --bench targets -- ingest memory restart kafka http evaluation fleet`.
 //! `POSTERIORD_BENCH_UNITS` sets the units of the memory/restart state (default 10 000 000);
-//! `POSTERIORD_BENCH_BROKERS` names a broker, else `tansu` from PATH is started on loopback.
+//! `POSTERIORD_BENCH_BROKERS` names a broker, else Apache Kafka is started on loopback with
+//! tests/kafka/broker.sh.
 //! The memory figures come from a child process (this binary with `--child`), so that what
 //! other targets allocated does not count.
 
@@ -21,10 +23,13 @@ use std::time::{Duration, Instant};
 
 use posteriord::config::Config;
 use posteriord::event::{Event, EventBody};
-use posteriord::ingest::Item;
-use posteriord::metrics::{Metrics, Source};
+use posteriord::service::ingest::Item;
+use posteriord::service::metrics::{Metrics, Source};
+use posteriord::service::store::Store;
 use posteriord::state::shards::Shards;
-use posteriord::store::Store;
+
+#[path = "parts/fleet.rs"]
+mod fleet;
 
 /// Counts live heap bytes, so memory per unit is measured rather than estimated.
 struct Counting;
@@ -116,6 +121,9 @@ fn main() {
     }
     if want("evaluation") {
         rows.extend(evaluation_target());
+    }
+    if want("fleet") {
+        rows.extend(fleet::fleet_target(work.path()));
     }
     if smoke() {
         for r in &rows {
@@ -407,7 +415,7 @@ fn ingest_once(config: &Config, events: &[Vec<u8>]) -> u64 {
 fn ingest_into(
     shards: &Mutex<Shards>,
     events: &[Vec<u8>],
-    cadence: Option<&posteriord::decide::cadence::Cadence>,
+    cadence: Option<&posteriord::state::cadence::Cadence>,
     mut on_due: impl FnMut(posteriord::state::ExperimentSnapshot),
 ) -> u64 {
     const BATCH: usize = 500;
@@ -423,7 +431,7 @@ fn ingest_into(
                 bytes: b,
             })
             .collect();
-        let report = posteriord::ingest::apply_batch_due(
+        let report = posteriord::service::ingest::apply_batch_due(
             shards,
             &metrics,
             Source::Kafka,
@@ -909,14 +917,18 @@ fn restart_target(work: &Path, store_dir: &Path, n: usize, store_bytes: f64) -> 
 
 struct Broker {
     brokers: String,
-    child: Option<Child>,
+    /// The data folder of a broker this bench started (tests/kafka/broker.sh), stopped on drop.
+    started: Option<PathBuf>,
+}
+
+fn broker_script() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/kafka/broker.sh")
 }
 
 impl Drop for Broker {
     fn drop(&mut self) {
-        if let Some(c) = &mut self.child {
-            let _ = c.kill();
-            let _ = c.wait();
+        if let Some(dir) = &self.started {
+            let _ = Command::new(broker_script()).arg("stop").arg(dir).status();
         }
     }
 }
@@ -927,39 +939,23 @@ fn broker(work: &Path) -> Option<Broker> {
     if let Ok(b) = named {
         return Some(Broker {
             brokers: b,
-            child: None,
+            started: None,
         });
     }
-    let dir = work.join("tansu");
-    std::fs::create_dir_all(&dir).ok()?;
-    let port = free_port();
-    let url = format!("tcp://127.0.0.1:{port}");
-    let log = std::fs::File::create(dir.join("tansu.log")).ok()?;
-    let child = Command::new("tansu")
-        .args([
-            "broker",
-            "--listener-url",
-            &url,
-            "--advertised-listener-url",
-            &url,
-        ])
-        .args(["--storage-engine", "sqlite://tansu.db"])
-        .current_dir(&dir)
-        .stdout(Stdio::null())
-        .stderr(log)
-        .spawn()
+    // A one-node Apache Kafka of our own (needs java; the jars are fetched once and cached).
+    let dir = work.join("kafka");
+    let out = Command::new(broker_script())
+        .arg("start")
+        .arg(&dir)
+        .arg("1")
+        .stderr(Stdio::inherit())
+        .output()
         .ok()?;
-    let t = Instant::now();
-    while std::net::TcpStream::connect(("127.0.0.1", port)).is_err() {
-        if t.elapsed() > Duration::from_secs(20) {
-            return None;
-        }
-        std::thread::sleep(Duration::from_millis(100));
-    }
-    Some(Broker {
-        brokers: format!("127.0.0.1:{port}"),
-        child: Some(child),
-    })
+    let broker = Broker {
+        brokers: String::from_utf8_lossy(&out.stdout).trim().to_string(),
+        started: Some(dir),
+    };
+    out.status.success().then_some(broker)
 }
 
 fn create_topic(brokers: &str, topic: &str) {
@@ -1168,7 +1164,7 @@ fn kafka_targets(work: &Path, kafka: bool, http: bool) -> Vec<Row> {
     let n = sized(200_000, 2_000);
     println!("\n== kafka: {n} events through the broker (one partition) ==");
     let Some(b) = broker(work) else {
-        println!("  no broker: set POSTERIORD_BENCH_BROKERS or put tansu on PATH");
+        println!("  no broker: set POSTERIORD_BENCH_BROKERS, or install java so tests/kafka/broker.sh can start one");
         return vec![Row {
             target: "2 kafka end to end",
             baseline: "-".into(),
@@ -1255,7 +1251,8 @@ fn kafka_targets(work: &Path, kafka: bool, http: bool) -> Vec<Row> {
 
 fn evaluation_target() -> Vec<Row> {
     use posteriord::config::{DEFAULT_EVALUATE_EVERY_EVENTS, DEFAULT_EVALUATE_EVERY_SECS};
-    use posteriord::decide::cadence::{assess, Cadence};
+    use posteriord::decide::evaluation::assess;
+    use posteriord::state::cadence::Cadence;
     let experiments = sized(10_000, 200);
     let n = sized(1_000_000, 20_000);
     println!("\n== evaluation: 10 000 experiments × 4 variants (conversion + defect rate), default cadence ==");

@@ -29,8 +29,9 @@ pub struct Cli {
 pub enum Command {
     /// Serve simulated traffic for invented experiments (no Kafka needed).
     Demo {
-        /// Address of the HTTP API.
-        #[arg(long, default_value = config::DEFAULT_HTTP_ADDR)]
+        /// Address of the HTTP API; without --addr, `POSTERIORD_HTTP_ADDR` as for `serve`
+        /// (the container image sets it to 0.0.0.0:8080).
+        #[arg(long, env = "POSTERIORD_HTTP_ADDR", default_value = config::DEFAULT_HTTP_ADDR)]
         addr: SocketAddr,
         /// Stop after this many seconds (default: run until Ctrl-C or SIGTERM).
         #[arg(long)]
@@ -247,6 +248,9 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
         shutdown_grace: Duration::from_secs(config::DEFAULT_SHUTDOWN_GRACE_SECS),
         history_arm_points: config::DEFAULT_HISTORY_ARM_POINTS,
     };
+    // Refused before anything starts, as `serve` does in load_config.
+    crate::http::guard::check_exposure(&config.http, config.http.addr)
+        .map_err(|e| UsageError(e.to_string()))?;
     runtime()?.block_on(async move {
         let listener = app::bind(config.http.addr).await?;
         let bound = listener.local_addr()?;
@@ -283,7 +287,7 @@ fn load_config(path: &std::path::Path) -> anyhow::Result<Config> {
     crate::http::guard::check_exposure(&config.http, config.http.addr)
         .map_err(|e| UsageError(format!("{}: {e}", path.display())))?;
     if let Some(kafka) = &config.kafka {
-        crate::kafka::check_properties(kafka)
+        crate::kafka::client::check_properties(kafka)
             .map_err(|m| UsageError(format!("{}: {m}", path.display())))?;
     }
     Ok(config)
@@ -461,8 +465,8 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
         .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()));
     let opts = PlanOptions {
         def: std::sync::Arc::new(def),
-        cadence: crate::decide::cadence::Cadence::new(every, config.alerts.evaluate_every_events),
-        hold_down: config.alerts.hold_down.as_micros() as i64,
+        cadence: config.alerts.cadence(),
+        hold_down: config.alerts.hold_down_micros(),
         sims: args.sims,
         seed: args.seed,
         units_per_day: args.units_per_day,
@@ -576,7 +580,7 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             "baselines": def.metrics.iter().zip(&opts.baselines).map(|(m, b)| serde_json::json!({"metric": m.name, "rate": b})).collect::<Vec<_>>(),
             "scenarios": results.iter().map(|r| plan::scenario_json(&opts, r)).collect::<Vec<_>>(),
             "sweeps": sweep_docs,
-            "caution": crate::http::doc::CAUTION,
+            "caution": crate::doc::CAUTION,
         });
         println!("{}", serde_json::to_string_pretty(&doc)?);
     } else {
@@ -602,7 +606,7 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             println!("{}", plan::scenario_table(&opts, r));
         }
         print!("{sweep_text}");
-        println!("{}", crate::http::doc::CAUTION);
+        println!("{}", crate::doc::CAUTION);
     }
     Ok(())
 }

@@ -1,5 +1,6 @@
 //! The `posteriord` binary: parse the command line, set up logging, run, and pick the exit code.
 
+use std::io::IsTerminal;
 use std::process::ExitCode;
 
 use clap::Parser;
@@ -11,8 +12,10 @@ fn init_logging() {
     // POSTERIORD_LOG takes an env-filter directive (e.g. "info,posteriord=debug").
     let filter =
         EnvFilter::try_from_env("POSTERIORD_LOG").unwrap_or_else(|_| EnvFilter::new("info"));
+    // Colours only on a terminal: a log file or a journal must not fill with escape codes.
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
+        .with_ansi(std::io::stderr().is_terminal())
         .with_writer(std::io::stderr);
     if std::env::var("POSTERIORD_LOG_FORMAT").is_ok_and(|f| f == "json") {
         builder.json().init();

@@ -16,10 +16,11 @@ use rand_distr::{Binomial, Distribution, Poisson};
 use serde_json::{json, Value};
 
 use crate::decide::alerts::{AlertBook, AlertChange};
-use crate::decide::cadence::{assess_rules_only, Cadence, Clock};
+use crate::decide::evaluation::assess_rules_only;
 use crate::decide::Rule;
 use crate::event::{Micros, Outcome};
 use crate::experiment::{ExperimentDef, MetricKind};
+use crate::state::cadence::{Cadence, Clock};
 use crate::state::{
     ConversionTotals, DefectTotals, ExperimentSnapshot, MetricTotals, OutcomeCounts,
 };

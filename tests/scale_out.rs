@@ -4,9 +4,10 @@
 //! the compacted changelog topic; every instance's API must then report the exact totals of
 //! all experiments, checked against the independent ground truth.
 //!
-//! Broker note: on the test broker a dead member's partitions move at the next membership
-//! change after its session timeout, so the test waits past the timeout and then starts the
-//! replacement; a Kafka cluster moves them at the timeout itself.
+//! On Apache Kafka a dead member's partitions move to the survivors at its session timeout;
+//! the replacement then joins in a further rebalance. A second test restarts an instance with
+//! a static `group.instance.id` within the session timeout: it gets its partitions back and
+//! the other members keep theirs, with no rebalance.
 
 mod common;
 
@@ -19,6 +20,14 @@ use common::{
 
 fn kafka_events_applied(s: &Service) -> u64 {
     s.metric_sum("posteriord_events_total", r#"source="kafka""#)
+}
+
+/// How many partitions the instances have restored from the changelog so far.
+fn restores(instances: &[Service]) -> usize {
+    instances
+        .iter()
+        .map(|s| s.log_text().matches("restored from the changelog").count())
+        .sum()
 }
 
 #[test]
@@ -76,31 +85,28 @@ changelog_interval_ms = 300
     };
     std::thread::sleep(Duration::from_millis(800));
     let mut dead = instances.remove(victim);
+    // Instances joining one by one already moved partitions through the changelog; count
+    // those restores so the wait below sees only the moves the kill causes.
+    let restores_before_kill = restores(&instances);
+    let killed_at = std::time::Instant::now();
     signal(dead.child.id(), "KILL");
     wait_exit(&mut dead.child, Duration::from_secs(10)).expect("killed");
-    // Twice the session timeout, so the broker has expired the dead member before the
-    // replacement joins (see the broker note at the top). The timeout itself is generous so
-    // that heartbeats delayed by a loaded machine do not expire live members.
-    std::thread::sleep(Duration::from_millis(12_000));
+    // Apache Kafka hands the dead member's partitions to the survivors once its session
+    // times out (6 s here, generous so that heartbeats delayed by a loaded machine do not
+    // expire live members); the survivors restore them from the changelog.
+    wait_for(
+        Duration::from_secs(60),
+        "the survivors to take over the dead member's partitions",
+        || (restores(&instances) > restores_before_kill).then_some(()),
+    );
+    eprintln!("partitions moved {:?} after the kill", killed_at.elapsed());
     instances.push(Service::start_in(&config, Some(&dirs[3]), &[]));
     producer.join().unwrap();
     let complete =
         |instances: &[Service]| instances.iter().all(|s| total(s) >= w.lines.len() as u64);
-    let mut waited = std::time::Instant::now();
-    // Nudges, if started, stay members until the end: killing one would move partitions again.
-    let mut nudges = Vec::new();
+    let waited = std::time::Instant::now();
     while !complete(&instances) {
-        // If the broker still holds partitions for the dead member (its expiry came after
-        // the replacement joined), another membership change moves them.
-        if nudges.len() < 3 && waited.elapsed() > Duration::from_secs(40) {
-            eprintln!(
-                "partitions did not move yet; starting one more member to trigger a rebalance"
-            );
-            let dir = scratch.path().join(format!("state-nudge-{}", nudges.len()));
-            nudges.push(Service::start_in(&config, Some(&dir), &[]));
-            waited = std::time::Instant::now();
-        }
-        if nudges.len() == 3 && waited.elapsed() > Duration::from_secs(60) {
+        if waited.elapsed() > Duration::from_secs(120) {
             for (i, s) in instances.iter().enumerate() {
                 let log = s.log_text();
                 let moves: Vec<&str> = log
@@ -144,6 +150,155 @@ changelog_interval_ms = 300
                     .take(30)
                     .collect::<Vec<_>>()
                     .join("\n")
+            );
+        }
+    }
+}
+
+/// The partitions an instance holds now, read from its log: each rebalance revokes all of a
+/// member's partitions (librdkafka's default, eager assignment) and assigns a new set.
+fn held(s: &Service) -> std::collections::BTreeSet<String> {
+    let mut now = std::collections::BTreeSet::new();
+    for line in s.log_text().lines() {
+        if line.contains("partitions revoked") {
+            now.clear();
+        } else if line.contains("partition assigned and restored") {
+            let field = |name: &str| {
+                let rest = line.split(&format!("{name}=")).nth(1)?;
+                Some(
+                    rest.split_whitespace()
+                        .next()?
+                        .trim_matches('"')
+                        .to_string(),
+                )
+            };
+            if let (Some(t), Some(p)) = (field("topic"), field("partition")) {
+                now.insert(format!("{t}/{p}"));
+            }
+        }
+    }
+    now
+}
+
+/// Lines of an instance's log that show a rebalance reaching it.
+fn rebalance_lines(s: &Service) -> usize {
+    s.log_text()
+        .lines()
+        .filter(|l| l.contains("partitions revoked") || l.contains("partition assigned"))
+        .count()
+}
+
+#[test]
+fn a_static_member_restarted_within_its_session_timeout_gets_its_partitions_back_alone() {
+    let brokers = brokers();
+    let topic = unique("static-events");
+    let group = unique("static-group");
+    let scratch = tempfile::tempdir().unwrap();
+    let w = workload(67, 12_000);
+    let (first, second) = w.lines.split_at(6_000);
+    assert_eq!(
+        produce(&brokers, &topic, 6, first, scratch.path()),
+        first.len()
+    );
+    // A session timeout far longer than the restart takes: Apache Kafka keeps a static
+    // member's assignment for it until then, without a rebalance of the others.
+    let config = format!(
+        r#"[http]
+addr = "127.0.0.1:0"
+[store]
+snapshot_interval_ms = 300
+[kafka]
+brokers = "{brokers}"
+topics = ["{topic}"]
+group = "{group}"
+changelog_interval_ms = 300
+[kafka.properties]
+"session.timeout.ms" = 30000
+"heartbeat.interval.ms" = 1000
+{TEST_EXPERIMENTS}"#
+    );
+    let dirs: Vec<_> = (0..3)
+        .map(|i| scratch.path().join(format!("state-{i}")))
+        .collect();
+    let start = |i: usize| {
+        let id = format!("{group}-member-{i}");
+        Service::start_in(
+            &config,
+            Some(&dirs[i]),
+            &[("POSTERIORD_KAFKA_PROP_GROUP_INSTANCE_ID", id.as_str())],
+        )
+    };
+    let mut instances: Vec<Service> = (0..3).map(start).collect();
+    wait_for(
+        Duration::from_secs(120),
+        "the first half to be consumed",
+        || {
+            let applied: u64 = instances.iter().map(kafka_events_applied).sum();
+            (applied >= first.len() as u64).then_some(())
+        },
+    );
+    // Let the group settle: all six partitions held, each by one instance.
+    wait_for(
+        Duration::from_secs(60),
+        "the six partitions to be held",
+        || {
+            let held: usize = instances.iter().map(|s| held(s).len()).sum();
+            (held == 6).then_some(())
+        },
+    );
+    let victim = 1;
+    let before = held(&instances[victim]);
+    assert!(
+        !before.is_empty(),
+        "instance {victim} holds no partition:\n{}",
+        instances[victim].log_text()
+    );
+    let others_before: Vec<usize> = [0, 2]
+        .iter()
+        .map(|&i| rebalance_lines(&instances[i]))
+        .collect();
+    let mut dead = instances.remove(victim);
+    signal(dead.child.id(), "KILL");
+    wait_exit(&mut dead.child, Duration::from_secs(10)).expect("killed");
+    let restarted = start(victim);
+    wait_for(
+        Duration::from_secs(25),
+        "the restarted static member to get partitions back",
+        || (!held(&restarted).is_empty()).then_some(()),
+    );
+    instances.insert(victim, restarted);
+    let producer = produce(&brokers, &topic, 6, second, scratch.path());
+    assert_eq!(producer, second.len());
+    wait_for(
+        Duration::from_secs(120),
+        "every event to be counted",
+        || {
+            instances
+                .iter()
+                .all(|s| common::total_seen(s) >= w.lines.len() as u64)
+                .then_some(())
+        },
+    );
+    let now = held(&instances[victim]);
+    assert_eq!(
+        now, before,
+        "the restarted static member should hold what it held before the kill"
+    );
+    for (k, &i) in [0usize, 2].iter().enumerate() {
+        assert_eq!(
+            rebalance_lines(&instances[i]),
+            others_before[k],
+            "instance {i} saw a rebalance although the restarted member was static:\n{}",
+            instances[i].log_text()
+        );
+    }
+    for (i, s) in instances.iter().enumerate() {
+        for (spec, expected) in SPECS.iter().zip(&w.expected) {
+            assert_eq!(
+                &observed(s, spec),
+                expected,
+                "instance {i}, experiment {}",
+                spec.id
             );
         }
     }

@@ -5,8 +5,8 @@
 use std::sync::{Mutex, OnceLock};
 
 use libfuzzer_sys::fuzz_target;
-use posteriord::ingest::{apply_batch, Item};
-use posteriord::metrics::{Metrics, Source};
+use posteriord::service::ingest::{apply_batch, Item};
+use posteriord::service::metrics::{Metrics, Source};
 use posteriord::state::shards::Shards;
 
 fn fixture() -> &'static (Mutex<Shards>, Metrics) {

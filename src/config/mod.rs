@@ -123,6 +123,26 @@ impl Default for AlertsConfig {
     }
 }
 
+impl AlertsConfig {
+    /// The evaluation cadence these settings give (event time in µs, or a count).
+    pub fn cadence(&self) -> crate::state::cadence::Cadence {
+        crate::state::cadence::Cadence::new(
+            self.evaluate_every.as_micros() as i64,
+            self.evaluate_every_events,
+        )
+    }
+
+    /// The hold-down in µs, as the alert book counts it.
+    pub fn hold_down_micros(&self) -> crate::event::Micros {
+        self.hold_down.as_micros() as i64
+    }
+
+    /// An empty alert book with these settings' hold-down.
+    pub fn alert_book(&self) -> crate::decide::alerts::AlertBook {
+        crate::decide::alerts::AlertBook::new(self.hold_down_micros())
+    }
+}
+
 /// Default hold-down: five minutes without the finding before an alert closes.
 pub const DEFAULT_HOLD_DOWN_SECS: u64 = 300;
 /// Default evaluation cadence.
@@ -257,6 +277,15 @@ pub fn process_env() -> Vec<(String, String)> {
 }
 
 impl Config {
+    /// Largest accepted encoded event (from `[kafka]`, else the default), for every source.
+    pub fn max_event_bytes(&self) -> usize {
+        self.kafka
+            .as_ref()
+            .map_or(crate::decode::DEFAULT_MAX_EVENT_BYTES, |k| {
+                k.max_event_bytes
+            })
+    }
+
     /// Read, parse and validate the file at `path`, then apply `env` overrides.
     pub fn load(path: &Path, env: &[(String, String)]) -> Result<Config, ConfigError> {
         let origin = path.display().to_string();

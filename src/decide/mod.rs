@@ -10,7 +10,7 @@
 //! rules are reported first and suspend shipping.
 
 pub mod alerts;
-pub mod cadence;
+pub mod evaluation;
 
 use crate::event::Outcome;
 use crate::experiment::{ExperimentDef, MetricKind};

@@ -10,10 +10,11 @@ use axum::response::{IntoResponse, Response};
 use axum::Json;
 use serde_json::{json, Value};
 
+use super::blocking;
 use super::guard::error;
-use super::{blocking, doc};
-use crate::app::Shared;
-use crate::catalog::{self, Archived, CatalogError};
+use crate::doc;
+use crate::service::catalog::{Archived, CatalogError};
+use crate::service::Service;
 use crate::summary::{summarize, DEFAULT_LEVEL};
 
 /// Largest `PUT /v1/experiments/{id}` body: a 64-variant, 64-metric experiment with every
@@ -77,7 +78,7 @@ fn refusal(e: CatalogError) -> Response {
 
 /// `PUT /v1/experiments/{id}`.
 pub async fn put_experiment(
-    State(shared): State<Arc<Shared>>,
+    State(service): State<Arc<Service>>,
     Path(id): Path<String>,
     body: Bytes,
 ) -> Response {
@@ -92,17 +93,20 @@ pub async fn put_experiment(
             )
         }
     };
-    let s = Arc::clone(&shared);
+    let s = Arc::clone(&service);
     let key = id.clone();
     // The catalog file is written (fsync) under the locks: keep it off the async threads.
-    let result = match blocking(move || catalog::put(&s, &key, body)).await {
+    let result = match blocking(move || s.define_experiment(&key, body)).await {
         Ok(r) => r,
         Err(response) => return response,
     };
     match result {
         Err(e) => refusal(e),
         Ok(outcome) => {
-            let entry = shared.lock_shards().snapshot(&id).map(|s| entry(&s, "api"));
+            let entry = service
+                .lock_shards()
+                .snapshot(&id)
+                .map(|s| entry(&s, "api"));
             let status = if outcome.created {
                 StatusCode::CREATED
             } else {
@@ -125,16 +129,16 @@ pub async fn put_experiment(
 
 /// `DELETE /v1/experiments/{id}`.
 pub async fn delete_experiment(
-    State(shared): State<Arc<Shared>>,
+    State(service): State<Arc<Service>>,
     Path(id): Path<String>,
 ) -> Response {
-    let s = Arc::clone(&shared);
+    let s = Arc::clone(&service);
     let key = id.clone();
-    match blocking(move || catalog::delete(&s, &key)).await {
+    match blocking(move || s.delete_experiment(&key)).await {
         Err(response) => response,
         Ok(Err(e)) => refusal(e),
         Ok(Ok(number)) => {
-            let catalog = shared.lock_catalog();
+            let catalog = service.lock_catalog();
             let body = catalog
                 .archive(&id, Some(number))
                 .map(archived_entry)
@@ -170,15 +174,15 @@ fn archive_note(a: &Archived) -> Value {
 }
 
 /// `GET /v1/experiments?archived=true`.
-pub fn list_archived(shared: &Shared) -> Value {
-    let catalog = shared.lock_catalog();
+pub fn list_archived(service: &Service) -> Value {
+    let catalog = service.lock_catalog();
     let entries: Vec<Value> = catalog.archived().iter().map(archived_entry).collect();
     json!({ "experiments": entries })
 }
 
 /// `GET /v1/experiments/{id}?archived=true[&archive=N]`.
-pub async fn get_archived(shared: &Shared, id: &str, number: Option<u32>) -> Response {
-    let found = shared
+pub async fn get_archived(service: &Service, id: &str, number: Option<u32>) -> Response {
+    let found = service
         .lock_catalog()
         .archive(id, number)
         .map(|a| (a.snapshot.clone(), archive_note(a), a.def.generation));

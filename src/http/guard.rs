@@ -20,8 +20,8 @@ use tower_http::request_id::{
     MakeRequestId, PropagateRequestIdLayer, RequestId, SetRequestIdLayer,
 };
 
-use super::doc;
 use crate::config::HttpConfig;
+use crate::doc;
 
 /// The header carrying the request id (set on every response; a client may send its own).
 pub const REQUEST_ID: &str = "x-request-id";

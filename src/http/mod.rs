@@ -5,10 +5,9 @@
 //! (quadrature, JSON) outside it, on the blocking pool, so reads never stall ingest for long.
 //! Every route sits behind `guard` (tokens, timeout, panic capture, JSON errors).
 
-pub mod cache;
 pub mod dashboard;
 pub mod define;
-pub mod doc;
+pub mod fleet;
 pub mod guard;
 pub mod history;
 
@@ -24,24 +23,25 @@ use serde_json::{json, Value};
 use tokio::net::TcpListener;
 use tokio_util::sync::CancellationToken;
 
-use crate::app::Shared;
 use crate::decode::split_body;
+use crate::doc;
 use crate::event::Outcome;
-use crate::summary::ExperimentSummary;
-
-/// Shard of events posted over HTTP.
-pub const HTTP_SHARD: &str = "http";
+use crate::service::Service;
 
 /// The OpenAPI 3.1 description of every route, kept by hand beside the handlers (a test
 /// checks that it describes every route below and that real replies fit its schemas).
 pub const OPENAPI: &str = include_str!("openapi.json");
 
-/// Build the router over `shared`, guarded by `auth` (see [`guard::guard`]).
+/// Build the router over `service`, guarded by `auth` (see [`guard::guard`]).
 ///
 /// Every route is registered here, in one table: `GET`/`HEAD` routes are reads (open, or
 /// token-protected with `http.protect_reads`), every other method is a write and needs a
 /// token; both kinds get the same timeout, panic capture and JSON errors.
-pub fn router(shared: Arc<Shared>, http: &crate::config::HttpConfig, auth: guard::Auth) -> Router {
+pub fn router(
+    service: Arc<Service>,
+    http: &crate::config::HttpConfig,
+    auth: guard::Auth,
+) -> Router {
     let routes = Router::new()
         // Operations: probes (never token-protected) and the Prometheus scrape.
         .route("/healthz", get(healthz))
@@ -52,7 +52,7 @@ pub fn router(shared: Arc<Shared>, http: &crate::config::HttpConfig, auth: guard
         // (the dashboard's pages, `/v1/experiments/{id}/history`) belong in this table too:
         // as GET routes they inherit `protect_reads`, the timeout and the JSON errors, and
         // tests/api.rs asks for each to be described in openapi.json.
-        .route("/v1/experiments", get(list_experiments))
+        .route("/v1/experiments", get(fleet::api::list_experiments))
         .route(
             "/v1/experiments/{id}",
             get(get_experiment)
@@ -60,7 +60,7 @@ pub fn router(shared: Arc<Shared>, http: &crate::config::HttpConfig, auth: guard
                 .layer(DefaultBodyLimit::max(define::MAX_DEFINITION_BYTES))
                 .delete(define::delete_experiment),
         )
-        .route("/v1/alerts", get(list_alerts))
+        .route("/v1/alerts", get(fleet::api::list_alerts))
         // Writes that are not definitions.
         .route("/v1/events", post(ingest))
         .route("/v1/alerts/{id}/ack", post(ack_alert))
@@ -68,7 +68,7 @@ pub fn router(shared: Arc<Shared>, http: &crate::config::HttpConfig, auth: guard
         .merge(dashboard::routes())
         .fallback(not_found)
         .layer(DefaultBodyLimit::max(http.max_body_bytes))
-        .with_state(shared);
+        .with_state(service);
     guard::guard(routes, http, auth)
 }
 
@@ -99,9 +99,9 @@ async fn healthz() -> Json<Value> {
     Json(json!({ "status": "ok" }))
 }
 
-async fn readyz(State(shared): State<Arc<Shared>>) -> Response {
-    let kafka = shared.kafka_reachable();
-    let restoring = shared.is_restoring();
+async fn readyz(State(service): State<Arc<Service>>) -> Response {
+    let kafka = service.kafka_reachable();
+    let restoring = service.is_restoring();
     let ready = kafka.unwrap_or(true) && !restoring;
     let body = json!({
         "ready": ready,
@@ -144,14 +144,14 @@ enum IngestFailure {
     NotDurable,
 }
 
-async fn ingest(State(shared): State<Arc<Shared>>, body: Bytes) -> Response {
+async fn ingest(State(service): State<Arc<Service>>, body: Bytes) -> Response {
     let result = blocking(move || {
         let items = match split_body(&body) {
             Ok(items) => items,
             Err(e) => return Err(IngestFailure::BadBody(e.to_string())),
         };
         let bytes: Vec<&[u8]> = items.iter().map(|(_, b)| *b).collect();
-        let report = match shared.ingest_http(&bytes) {
+        let report = match service.ingest_http(&bytes) {
             Ok(r) => r,
             Err(e) => {
                 tracing::error!(error = %e, "cannot log posted events; refusing the request");
@@ -194,101 +194,34 @@ async fn ingest(State(shared): State<Arc<Shared>>, body: Bytes) -> Response {
     }
 }
 
-/// Filters of `GET /v1/alerts`.
-#[derive(serde::Deserialize)]
-struct AlertFilter {
-    experiment: Option<String>,
-    state: Option<String>,
-}
-
-async fn list_alerts(
-    State(shared): State<Arc<Shared>>,
-    axum::extract::Query(filter): axum::extract::Query<AlertFilter>,
-) -> Response {
-    use crate::decide::alerts::AlertState;
-    if let Some(s) = &filter.state {
-        if AlertState::from_name(s).is_none() {
-            let names: Vec<&str> = AlertState::ALL.iter().map(|s| s.as_str()).collect();
-            return error(
-                StatusCode::BAD_REQUEST,
-                "bad_filter",
-                &format!("state must be one of {}", names.join(", ")),
-            );
-        }
-    }
-    let book = shared.alerts.lock().unwrap_or_else(|p| p.into_inner());
-    let alerts: Vec<Value> = book
-        .alerts()
-        .iter()
-        .filter(|a| {
-            filter
-                .experiment
-                .as_ref()
-                .is_none_or(|e| *e == a.key.experiment)
-        })
-        .filter(|a| filter.state.as_ref().is_none_or(|s| s == a.state.as_str()))
-        .map(doc::alert)
-        .collect();
-    Json(json!({ "alerts": alerts })).into_response()
-}
-
-async fn ack_alert(State(shared): State<Arc<Shared>>, Path(id): Path<String>) -> Response {
-    let now = crate::app::now_micros();
-    let body = {
-        let mut book = shared.alerts.lock().unwrap_or_else(|p| p.into_inner());
-        book.acknowledge(&id, now).map(doc::alert)
-    };
-    match body {
-        None => error(
+async fn ack_alert(State(service): State<Arc<Service>>, Path(id): Path<String>) -> Response {
+    // The alert file is written (fsync) under the desk's lock: keep it off the async threads.
+    let key = id.clone();
+    match blocking(move || service.acknowledge_alert(&key)).await {
+        Err(response) => response,
+        Ok(None) => error(
             StatusCode::NOT_FOUND,
             "unknown_alert",
             &format!("no alert `{id}`"),
         ),
-        Some(body) => {
-            let s = Arc::clone(&shared);
-            let _ = tokio::task::spawn_blocking(move || s.save_alerts()).await;
-            Json(body).into_response()
-        }
+        Ok(Some(alert)) => Json(doc::alert(&alert)).into_response(),
     }
-}
-
-async fn list_experiments(
-    State(shared): State<Arc<Shared>>,
-    Query(q): Query<define::ArchiveQuery>,
-) -> Json<Value> {
-    if q.archived {
-        return Json(define::list_archived(&shared));
-    }
-    let catalog = shared.lock_catalog();
-    let snapshots = shared.lock_shards().snapshots();
-    let entries: Vec<Value> = snapshots
-        .iter()
-        .map(|s| {
-            let source = if catalog.is_api(&s.def.id) {
-                "api"
-            } else {
-                "config"
-            };
-            define::entry(s, source)
-        })
-        .collect();
-    Json(json!({ "experiments": entries }))
 }
 
 async fn get_experiment(
-    State(shared): State<Arc<Shared>>,
+    State(service): State<Arc<Service>>,
     Path(id): Path<String>,
     Query(q): Query<define::ArchiveQuery>,
 ) -> Response {
     if q.archived {
-        return define::get_archived(&shared, &id, q.archive).await;
+        return define::get_archived(&service, &id, q.archive).await;
     }
-    let source = if shared.lock_catalog().is_api(&id) {
+    let source = if service.lock_catalog().is_api(&id) {
         "api"
     } else {
         "config"
     };
-    let snapshot = shared.lock_shards().snapshot(&id);
+    let snapshot = service.lock_shards().snapshot(&id);
     let Some(snapshot) = snapshot else {
         return error(
             StatusCode::NOT_FOUND,
@@ -298,7 +231,7 @@ async fn get_experiment(
     };
     let generation = snapshot.def.generation;
     match blocking(move || {
-        let mut d = doc::experiment_document(&shared.summaries.summary(snapshot));
+        let mut d = doc::experiment_document(&service.summary(snapshot));
         d["source"] = json!(source);
         d["generation"] = json!(generation);
         d
@@ -310,68 +243,8 @@ async fn get_experiment(
     }
 }
 
-/// Rebuild the per-experiment gauges from `summaries`: cleared first, so an experiment that
-/// was deleted or redefined leaves no stale series behind. Callers hold `metrics.scrape`.
-fn refresh_gauges(shared: &Shared, summaries: &[Arc<ExperimentSummary>]) {
-    let m = &shared.metrics;
-    m.variant_units.reset();
-    for g in [
-        &m.posterior_mean,
-        &m.interval_lower,
-        &m.interval_upper,
-        &m.prob_best,
-        &m.expected_loss,
-        &m.prob_beats_control,
-    ] {
-        g.reset();
-    }
-    for s in summaries {
-        let def = &s.snapshot.def;
-        for (v, units) in def.variants.iter().zip(&s.snapshot.units) {
-            m.variant_units
-                .with_label_values(&[def.id.as_str(), v.name.as_str()])
-                .set(*units as i64);
-        }
-        for (metric, ms) in def.metrics.iter().zip(&s.metrics) {
-            let Ok(arms) = &ms.arms else { continue };
-            for (v, a) in def.variants.iter().zip(arms) {
-                let labels = [def.id.as_str(), metric.name.as_str(), v.name.as_str()];
-                m.posterior_mean.with_label_values(&labels).set(a.mean);
-                m.interval_lower
-                    .with_label_values(&labels)
-                    .set(a.interval.lower);
-                m.interval_upper
-                    .with_label_values(&labels)
-                    .set(a.interval.upper);
-                m.prob_best.with_label_values(&labels).set(a.prob_best);
-                m.expected_loss
-                    .with_label_values(&labels)
-                    .set(a.expected_loss);
-                if let Some(p) = a.prob_beats_control {
-                    m.prob_beats_control.with_label_values(&labels).set(p);
-                }
-            }
-        }
-    }
-}
-
-async fn metrics(State(shared): State<Arc<Shared>>) -> Response {
-    let snapshots = shared.lock_shards().snapshots();
-    let text = blocking(move || {
-        let summaries: Vec<Arc<ExperimentSummary>> = snapshots
-            .into_iter()
-            .map(|s| shared.summaries.summary(s))
-            .collect();
-        let _scrape = shared
-            .metrics
-            .scrape
-            .lock()
-            .unwrap_or_else(|p| p.into_inner());
-        refresh_gauges(&shared, &summaries);
-        shared.metrics.encode()
-    })
-    .await;
-    match text {
+async fn metrics(State(service): State<Arc<Service>>) -> Response {
+    match blocking(move || service.scrape()).await {
         Ok(text) => (
             [(
                 header::CONTENT_TYPE,

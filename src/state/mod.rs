@@ -4,6 +4,7 @@
 //! Pure and synchronous: sources decode events and call [`Engine::apply`]; readers take an
 //! [`ExperimentSnapshot`], which copies the small per-variant totals and never the unit table.
 
+pub mod cadence;
 pub mod image;
 pub mod shards;
 pub mod units;
@@ -173,7 +174,7 @@ pub struct ExperimentState {
     first_event_time: Option<Micros>,
     /// Where the experiment is in its evaluation cadence (not stored: a restored experiment
     /// restarts its cadence).
-    clock: crate::decide::cadence::Clock,
+    clock: cadence::Clock,
 }
 
 impl ExperimentState {
@@ -760,7 +761,7 @@ impl Engine {
         &mut self,
         event: &Event<'_>,
         prepared: Option<Prepared>,
-        cadence: &crate::decide::cadence::Cadence,
+        cadence: &cadence::Cadence,
     ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
         let Some((idx, hashes)) = self.locate(event, prepared) else {
             return (self.apply(event), None);

@@ -16,20 +16,25 @@ use crate::experiment::ExperimentDef;
 /// Names one input shard: `kafka/<topic>/<partition>`, `http`, `simulator`.
 pub type ShardId = String;
 
+/// Shard of events posted over HTTP.
+pub const HTTP_SHARD: &str = "http";
+
 /// The shard id of a Kafka partition.
 pub fn kafka_shard(topic: &str, partition: i32) -> ShardId {
     format!("kafka/{topic}/{partition}")
 }
 
-/// One shard's state and the input position it reflects.
+/// One shard's state and the input position it reflects. The position and the state change
+/// together ([`Shard::advance`] before an event is applied), and the dirty mark follows every
+/// change, so a stored image always pairs a state with the position it reflects.
 #[derive(Debug)]
 pub struct Shard {
     /// The shard's experiments.
-    pub engine: Engine,
+    engine: Engine,
     /// Next input offset to apply (Kafka shards); everything before it is in `engine`.
-    pub next_offset: Option<i64>,
+    next_offset: Option<i64>,
     /// Whether anything changed since the shard was last stored.
-    pub dirty: bool,
+    dirty: bool,
 }
 
 impl Shard {
@@ -40,6 +45,43 @@ impl Shard {
             next_offset: None,
             dirty: false,
         }
+    }
+
+    /// The shard's experiments.
+    pub fn engine(&self) -> &Engine {
+        &self.engine
+    }
+
+    /// Next input offset to apply; everything before it is in the state.
+    pub fn next_offset(&self) -> Option<i64> {
+        self.next_offset
+    }
+
+    /// Move the position past input `offset`, which is about to be applied: `false` (and no
+    /// change) when the shard already holds it, as after a redelivery.
+    #[inline]
+    pub fn advance(&mut self, offset: i64) -> bool {
+        if self.next_offset.is_some_and(|next| offset < next) {
+            return false;
+        }
+        self.next_offset = Some(offset + 1);
+        self.dirty = true;
+        true
+    }
+
+    /// The image to store if anything changed since the last one, clearing the mark (see
+    /// [`Shard::mark_unsaved`] for a write that then failed).
+    pub fn take_unsaved(&mut self) -> Option<ShardImage> {
+        if !self.dirty {
+            return None;
+        }
+        self.dirty = false;
+        Some(self.image())
+    }
+
+    /// A write of the image from [`Shard::take_unsaved`] failed: store the shard again.
+    pub fn mark_unsaved(&mut self) {
+        self.dirty = true;
     }
 
     /// See [`crate::state::Engine::prepare`].
@@ -72,7 +114,7 @@ impl Shard {
         &mut self,
         event: &Event<'_>,
         prepared: Option<crate::state::Prepared>,
-        cadence: &crate::decide::cadence::Cadence,
+        cadence: &super::cadence::Cadence,
     ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
         let (r, due) = self.engine.apply_due(event, prepared, cadence);
         if r.is_ok() {

@@ -451,7 +451,7 @@ fn stored_state_of_an_earlier_generation_is_not_restored() {
     new.generation = 2;
     let (restored, mismatches) = shards::Shard::from_image(&[Arc::new(new)], image.clone());
     assert!(restored
-        .engine
+        .engine()
         .experiment("crumb-checkout")
         .unwrap()
         .snapshot()
@@ -464,7 +464,7 @@ fn stored_state_of_an_earlier_generation_is_not_restored() {
     let (same, none) = shards::Shard::from_image(&[Arc::new(old)], image);
     assert!(none.is_empty());
     assert_eq!(
-        same.engine
+        same.engine()
             .experiment("crumb-checkout")
             .unwrap()
             .snapshot()
@@ -486,7 +486,7 @@ fn an_inserted_shard_follows_the_current_definitions() {
     assert!(shards.undefine("crumb-checkout"));
     shards.insert("kafka/exp-events/0".into(), stale);
     let shard = shards.shard_mut("kafka/exp-events/0");
-    assert!(shard.engine.experiment("crumb-checkout").is_none());
+    assert!(shard.engine().experiment("crumb-checkout").is_none());
     let mut e = exposure("control", "a");
     e.experiment = Cow::Borrowed("orchard-sprout-tray");
     assert_eq!(shard.apply(&e).unwrap(), Outcome::Applied);
@@ -494,7 +494,7 @@ fn an_inserted_shard_follows_the_current_definitions() {
 
 #[test]
 fn a_due_event_yields_the_snapshot_as_of_that_event_and_rejects_do_not_count() {
-    use crate::decide::cadence::Cadence;
+    use crate::state::cadence::Cadence;
     let mut engine = Engine::new([bakery()]);
     let cadence = Cadence::new(i64::MAX, 3);
     let names = ["u1", "u2", "u3", "u4", "u5", "u6"];
@@ -519,7 +519,7 @@ fn a_due_snapshot_merged_from_one_shard_equals_the_merged_snapshot() {
         .shard_mut("kafka/t/0")
         .apply(&exposure("control", "a"))
         .unwrap();
-    shards.shard_mut("kafka/t/0").next_offset = Some(1);
+    shards.shard_mut("kafka/t/0").advance(0);
     shards
         .shard_mut("http")
         .apply(&exposure("short-copy", "b"))
@@ -527,7 +527,7 @@ fn a_due_snapshot_merged_from_one_shard_equals_the_merged_snapshot() {
     let mut snap = shards
         .shard("kafka/t/0")
         .unwrap()
-        .engine
+        .engine()
         .experiment("crumb-checkout")
         .unwrap()
         .snapshot();

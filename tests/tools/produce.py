@@ -21,7 +21,7 @@ def ensure_topic(brokers, topic, partitions):
     existing = admin.list_topics(timeout=20).topics
     if topic in existing:
         return
-    futures = admin.create_topics([NewTopic(topic, num_partitions=partitions, replication_factor=1)])
+    futures = admin.create_topics([NewTopic(topic, num_partitions=partitions, replication_factor=-1)])
     for f in futures.values():
         f.result(timeout=30)
 

@@ -1,5 +1,5 @@
-//! The dashboard's HTML: the page frame (style sheet and the small refresh script), the
-//! experiment list and the experiment page with its plots, timeline and data-quality checks.
+//! The dashboard's HTML: the page frame (style sheet and the small refresh script) and the
+//! experiment page with its plots, timeline and data-quality checks.
 
 use std::fmt::Write;
 
@@ -10,6 +10,7 @@ use crate::history::{Change, ExperimentHistory};
 use crate::stats::{self, ArmSummary, Arms};
 use crate::summary::ExperimentSummary;
 
+use super::markup::escape;
 use super::svg::{self, Axis, Band, Fmt, IntervalBar, Labels, Lane, Mark, Plot, Scale, Series};
 
 /// Seconds between refreshes of the page's main part.
@@ -17,22 +18,6 @@ pub const REFRESH_SECS: u32 = 5;
 
 /// Points along each density curve.
 const CURVE_POINTS: usize = 241;
-
-/// Text made safe inside HTML element content and quoted attributes.
-pub fn escape(s: &str) -> String {
-    let mut out = String::with_capacity(s.len());
-    for c in s.chars() {
-        match c {
-            '&' => out.push_str("&amp;"),
-            '<' => out.push_str("&lt;"),
-            '>' => out.push_str("&gt;"),
-            '"' => out.push_str("&quot;"),
-            '\'' => out.push_str("&#39;"),
-            c => out.push(c),
-        }
-    }
-    out
-}
 
 const STYLE: &str = r#"
 :root { --paper:#f7f5f0; --card:#fffdf9; --ink:#1f2430; --soft:#5b6170; --rule:#dcd7cc; --accent:#0072B2; }
@@ -86,13 +71,16 @@ a { color:var(--accent); }
 "#;
 
 /// Re-fetches the main part every few seconds and swaps it in, so the page never reloads and
-/// the scroll position stays; a failed fetch keeps what is shown.
+/// the scroll position stays; a failed fetch keeps what is shown, and so does a form field
+/// being typed in.
 const SCRIPT: &str = r#"
 (function () {
   var main = document.querySelector('main[data-refresh]');
   if (!main || !window.fetch) return;
   var n = 0;
   setInterval(function () {
+    var f = document.activeElement;
+    if (f && main.contains(f) && /^(INPUT|SELECT|TEXTAREA)$/.test(f.tagName)) return;
     fetch(main.getAttribute('data-refresh'), { cache: 'no-store' })
       .then(function (r) { if (!r.ok) throw new Error(r.status); return r.text(); })
       .then(function (html) {
@@ -197,55 +185,6 @@ fn rate(x: f64, higher_is_better: bool) -> String {
     }
 }
 
-/// One row of the experiment list.
-pub struct ListEntry {
-    /// The experiment now (shared with the other readers through the summary cache).
-    pub summary: std::sync::Arc<ExperimentSummary>,
-    /// The rules that hold now.
-    pub findings: Vec<Finding>,
-    /// Alerts not closed.
-    pub open_alerts: usize,
-}
-
-/// The main part of `/`.
-pub fn list_main(entries: &[ListEntry]) -> String {
-    let mut s = String::new();
-    s.push_str("<h1>Experiments</h1>");
-    s.push_str(r#"<p class="caution">"#);
-    s.push_str(&escape(crate::http::doc::CAUTION));
-    s.push_str("</p>");
-    s.push_str(r#"<table class="experiments" data-role="experiments"><thead><tr><th>experiment</th><th>state</th><th>units</th><th>primary metric</th><th>leading variant</th><th>P(best)</th><th>open alerts</th></tr></thead><tbody>"#);
-    for e in entries {
-        let snap = &e.summary.snapshot;
-        let def = &snap.def;
-        let units: u64 = snap.units.iter().sum();
-        let p = def.rules.primary;
-        let primary = &def.metrics[p];
-        let leader = e.summary.metrics[p].arms.as_ref().ok().and_then(|arms| {
-            arms.iter()
-                .enumerate()
-                .max_by(|a, b| a.1.prob_best.total_cmp(&b.1.prob_best))
-                .map(|(v, a)| (def.variants[v].name.clone(), a.prob_best))
-        });
-        let _ = write!(
-            s,
-            r#"<tr data-experiment="{id}"><td><a href="/experiments/{id}">{id}</a></td><td>{chips}</td><td class="num">{units}</td><td>{metric}</td><td>{leader}</td><td class="num">{pbest}</td><td class="num">{alerts}</td></tr>"#,
-            id = escape(&def.id),
-            chips = chips(&glance(&e.summary, &e.findings)),
-            metric = escape(&primary.name),
-            leader = leader.as_ref().map_or("—".into(), |l| escape(&l.0)),
-            pbest = leader.as_ref().map_or("—".into(), |l| prob(l.1)),
-            alerts = e.open_alerts,
-        );
-    }
-    s.push_str("</tbody></table>");
-    let _ = write!(
-        s,
-        r#"<p class="muted">Refreshes every {REFRESH_SECS} s. JSON: <a href="/v1/experiments">/v1/experiments</a>.</p>"#
-    );
-    s
-}
-
 /// Everything the experiment page shows.
 pub struct ExperimentView {
     /// The experiment now.
@@ -277,7 +216,7 @@ pub fn experiment_main(v: &ExperimentView) -> String {
         chips(&glance(&v.summary, &v.findings))
     );
     s.push_str(r#"<p class="caution">"#);
-    s.push_str(&escape(crate::http::doc::CAUTION));
+    s.push_str(&escape(crate::doc::CAUTION));
     s.push_str("</p>");
     // Variants with their look, so every plot below reads the same way.
     s.push_str(r#"<table data-role="variants"><thead><tr><th>variant</th><th>planned</th><th>units</th></tr></thead><tbody>"#);
@@ -818,7 +757,7 @@ fn decisions_section(s: &mut String, v: &ExperimentView) {
     } else {
         s.push_str(r#"<table data-role="alerts"><thead><tr><th>alert</th><th>rule</th><th>metric</th><th>variant</th><th>state</th><th>opened</th><th>closed</th><th>message</th></tr></thead><tbody>"#);
         for a in &v.alerts {
-            let t = |m: i64| crate::http::doc::time_text(m).unwrap_or_default();
+            let t = |m: i64| crate::doc::time_text(m).unwrap_or_default();
             let _ = write!(
                 s,
                 r#"<tr data-rule="{}"><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>"#,
@@ -976,17 +915,4 @@ fn quality_section(s: &mut String, v: &ExperimentView) {
         );
     }
     s.push_str("</div>");
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn escape_neutralises_markup() {
-        assert_eq!(
-            escape(r#"<a href="x">&'"#),
-            "&lt;a href=&quot;x&quot;&gt;&amp;&#39;"
-        );
-    }
 }

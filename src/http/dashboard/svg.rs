@@ -14,7 +14,7 @@
 
 use std::fmt::Write;
 
-use super::page::escape;
+use super::markup::escape;
 
 /// Line colours, in variant order (the control is variant 0 in most experiments, but styles
 /// follow the variant index, so a variant keeps its look across every plot).

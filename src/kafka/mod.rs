@@ -17,7 +17,6 @@ use std::sync::{Arc, OnceLock};
 use std::time::{Duration, Instant};
 
 use rdkafka::client::ClientContext;
-use rdkafka::config::ClientConfig;
 use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer, ConsumerContext, RebalanceProtocol};
 use rdkafka::error::KafkaError;
 use rdkafka::message::{Header, Message, OwnedHeaders};
@@ -28,12 +27,17 @@ use rdkafka::{Offset, TopicPartitionList};
 use tokio_util::sync::CancellationToken;
 use tokio_util::task::TaskTracker;
 
-use crate::app::Shared;
-use crate::changelog::Changelog;
+pub mod changelog;
+pub mod client;
+
+use changelog::Changelog;
+use client::{client_config, ensure_topic, producer_config};
+
 use crate::config::KafkaConfig;
 use crate::event::Reject;
-use crate::ingest::Item;
-use crate::metrics::Source;
+use crate::service::ingest::Item;
+use crate::service::metrics::Source;
+use crate::service::Service;
 use crate::state::shards::{kafka_shard, Shard};
 
 /// Most messages applied under one lock.
@@ -47,81 +51,11 @@ const PROBE_INTERVAL: Duration = Duration::from_secs(2);
 /// How long a save waits for dead letters to be delivered first.
 const DEAD_LETTER_FLUSH: Duration = Duration::from_secs(10);
 
-/// Properties posteriord sets itself because its delivery guarantee depends on them.
-const OWNED_PROPERTIES: [(&str, &str); 2] = [
-    // Offsets are stored by hand after the events are applied ...
-    ("enable.auto.offset.store", "false"),
-    // ... and committed in the background from what was stored (for lag tooling).
-    ("enable.auto.commit", "true"),
-];
-
-/// The consumer's librdkafka configuration for `cfg`: our defaults, then the user's
-/// properties, then the properties the delivery guarantee depends on.
-pub fn client_config(cfg: &KafkaConfig) -> ClientConfig {
-    let mut c = ClientConfig::new();
-    c.set("bootstrap.servers", &cfg.brokers)
-        .set("group.id", &cfg.group)
-        .set("auto.offset.reset", "earliest")
-        .set("client.id", "posteriord")
-        .set("statistics.interval.ms", "5000");
-    for (k, v) in &cfg.properties {
-        c.set(k, v);
-    }
-    for (k, v) in OWNED_PROPERTIES {
-        if cfg.properties.get(k).is_some_and(|user| user != v) {
-            tracing::warn!(property = k, "ignoring kafka.properties.{k}: posteriord sets it to {v} so offsets follow applied events");
-        }
-        c.set(k, v);
-    }
-    c
-}
-
-/// Check that librdkafka accepts the configured properties (names, values, and features of
-/// this build such as TLS and SASL mechanisms) without connecting anywhere.
-pub fn check_properties(cfg: &KafkaConfig) -> Result<(), String> {
-    let consumer: Result<BaseConsumer, KafkaError> = client_config(cfg).create();
-    match consumer {
-        Ok(_) => Ok(()),
-        Err(KafkaError::ClientCreation(message)) => Err(format!(
-            "kafka.properties: librdkafka refused them: {message}"
-        )),
-        Err(e) => Err(format!("kafka.properties: {e}")),
-    }
-}
-
-/// Connection and security properties of `cfg` (brokers, TLS, SASL, sockets), without the
-/// consumer-only ones: the base of every client posteriord creates besides the consumer.
-pub fn connection_config(cfg: &KafkaConfig) -> ClientConfig {
-    let mut c = ClientConfig::new();
-    c.set("bootstrap.servers", &cfg.brokers);
-    for (k, v) in &cfg.properties {
-        let shared = k.starts_with("security.")
-            || k.starts_with("sasl.")
-            || k.starts_with("ssl.")
-            || k.starts_with("socket.")
-            || k.starts_with("broker.")
-            || k == "client.dns.lookup";
-        if shared {
-            c.set(k, v);
-        }
-    }
-    c
-}
-
-/// An idempotent producer's configuration (dead letters, alerts).
-pub fn producer_config(cfg: &KafkaConfig) -> ClientConfig {
-    let mut c = connection_config(cfg);
-    c.set("client.id", "posteriord-dead-letters")
-        .set("enable.idempotence", "true")
-        .set("linger.ms", "5");
-    c
-}
-
 type DeadLetterProducer = ThreadedProducer<DefaultProducerContext>;
 
 /// librdkafka callbacks: restore and release partition state on rebalance; lag from stats.
 struct PartitionContext {
-    shared: Arc<Shared>,
+    service: Arc<Service>,
     dead_letters: Option<Arc<DeadLetterProducer>>,
     /// Set once the changelog is reachable (before the consumer subscribes).
     changelog: Arc<OnceLock<Changelog>>,
@@ -134,14 +68,14 @@ fn shard_partition(id: &str) -> Option<i32> {
 
 /// Publish every Kafka shard whose position moved since its last publication; `only` limits
 /// it to some shards. Returns whether all publications succeeded.
-fn publish_changed(shared: &Shared, changelog: &Changelog, only: Option<&[String]>) -> bool {
+fn publish_changed(service: &Service, changelog: &Changelog, only: Option<&[String]>) -> bool {
     // During an outage a publication would only wait out its timeout; the local file keeps
     // the exact position, and the next round publishes.
-    if shared.kafka_reachable() != Some(true) {
+    if service.kafka_reachable() != Some(true) {
         return false;
     }
     let images: Vec<(String, crate::state::shards::ShardImage)> = {
-        let shards = shared.lock_shards();
+        let shards = service.lock_shards();
         shards
             .ids()
             .into_iter()
@@ -149,7 +83,7 @@ fn publish_changed(shared: &Shared, changelog: &Changelog, only: Option<&[String
             .filter(|id| only.is_none_or(|o| o.contains(id)))
             .filter_map(|id| {
                 let shard = shards.shard(&id)?;
-                if changelog.is_current(&id, shard.next_offset) {
+                if changelog.is_current(&id, shard.next_offset()) {
                     return None;
                 }
                 Some((id, shard.image()))
@@ -162,15 +96,15 @@ fn publish_changed(shared: &Shared, changelog: &Changelog, only: Option<&[String
             continue;
         };
         match changelog.publish(&id, partition, &image) {
-            Ok(()) => shared
-                .metrics
+            Ok(()) => service
+                .metrics()
                 .changelog_publishes
                 .with_label_values(&["ok"])
                 .inc(),
             Err(e) => {
                 ok = false;
-                shared
-                    .metrics
+                service
+                    .metrics()
                     .changelog_publishes
                     .with_label_values(&["error"])
                     .inc();
@@ -183,7 +117,7 @@ fn publish_changed(shared: &Shared, changelog: &Changelog, only: Option<&[String
 
 impl ClientContext for PartitionContext {
     fn stats(&self, statistics: Statistics) {
-        let shards = self.shared.lock_shards();
+        let shards = self.service.lock_shards();
         for (topic, t) in &statistics.topics {
             for (partition, p) in &t.partitions {
                 if *partition < 0 {
@@ -192,12 +126,12 @@ impl ClientContext for PartitionContext {
                 let Some(shard) = shards.shard(&kafka_shard(topic, *partition)) else {
                     continue;
                 };
-                let next = shard.next_offset.unwrap_or(0);
+                let next = shard.next_offset().unwrap_or(0);
                 let partition_label = partition.to_string();
                 let labels = [topic.as_str(), partition_label.as_str()];
                 if p.hi_offset >= 0 {
-                    self.shared
-                        .metrics
+                    self.service
+                        .metrics()
                         .kafka_lag
                         .with_label_values(&labels)
                         .set((p.hi_offset - next).max(0));
@@ -269,19 +203,11 @@ impl PartitionContext {
                 return local;
             }
         };
-        let local_pos = local.as_ref().and_then(|s| s.next_offset);
+        let local_pos = local.as_ref().and_then(|s| s.next_offset());
         match remote {
             Some(image) if image.next_offset > local_pos => {
-                let defs = self.shared.lock_shards().defs().to_vec();
-                let (shard, mismatches) = Shard::from_image(&defs, image);
-                for m in &mismatches {
-                    tracing::error!(
-                        shard = id,
-                        "{m}; that experiment starts empty in this shard"
-                    );
-                    self.shared.metrics.restore_mismatches.inc();
-                }
-                tracing::info!(shard = id, next_offset = ?shard.next_offset, "restored from the changelog");
+                let shard = self.service.shard_from_image(id, image);
+                tracing::info!(shard = id, next_offset = ?shard.next_offset(), "restored from the changelog");
                 Some(shard)
             }
             _ => local,
@@ -295,20 +221,17 @@ impl PartitionContext {
             .iter()
             .map(|e| (e.topic().to_string(), e.partition()))
             .collect();
-        self.shared.add_restoring(partitions.len() as isize);
+        self.service.add_restoring(partitions.len() as isize);
         for (topic, partition) in &partitions {
             let id = kafka_shard(topic, *partition);
             let started = Instant::now();
-            let local = match self.shared.load_shard(&id) {
+            let local = match self.service.load_shard(&id) {
                 Ok(local) => local,
                 Err(e) => {
                     // The damaged file is kept for inspection; the changelog or a re-read
                     // from the beginning rebuilds the state exactly.
                     tracing::error!(topic, partition, error = %e, "stored state unreadable; ignoring it");
-                    if let Some(store) = &self.shared.store {
-                        let path = store.path(&id);
-                        let _ = std::fs::rename(&path, path.with_extension("state.damaged"));
-                    }
+                    self.service.set_aside_damaged(&id);
                     None
                 }
             };
@@ -320,9 +243,9 @@ impl PartitionContext {
                         partition,
                         "no stored state for the partition: reading it from the beginning"
                     );
-                    Shard::new(self.shared.lock_shards().defs())
+                    Shard::new(self.service.lock_shards().defs())
                 });
-            let offset = match shard.next_offset {
+            let offset = match shard.next_offset() {
                 Some(next) => Offset::Offset(next),
                 None => Offset::Beginning,
             };
@@ -336,9 +259,9 @@ impl PartitionContext {
                 elapsed_ms = started.elapsed().as_millis() as u64,
                 "partition assigned and restored"
             );
-            self.shared.lock_shards().insert(id, shard);
+            self.service.lock_shards().insert(id, shard);
         }
-        self.shared.add_restoring(-(partitions.len() as isize));
+        self.service.add_restoring(-(partitions.len() as isize));
     }
 
     /// Save and drop the state of revoked partitions: the next owner restores it.
@@ -351,12 +274,12 @@ impl PartitionContext {
         if ids.is_empty() {
             return;
         }
-        flush_dead_letters(self.dead_letters.as_deref(), &self.shared);
-        self.shared.save_dirty(|id| ids.iter().any(|x| x == id));
+        flush_dead_letters(self.dead_letters.as_deref(), &self.service);
+        self.service.save_dirty(|id| ids.iter().any(|x| x == id));
         if let Some(changelog) = self.changelog.get() {
-            publish_changed(&self.shared, changelog, Some(&ids));
+            publish_changed(&self.service, changelog, Some(&ids));
         }
-        let mut shards = self.shared.lock_shards();
+        let mut shards = self.service.lock_shards();
         for id in &ids {
             shards.remove(id);
         }
@@ -364,10 +287,14 @@ impl PartitionContext {
         for e in tpl.elements() {
             // Another instance reports these partitions now.
             let labels = [e.topic(), &e.partition().to_string()];
-            let _ = self.shared.metrics.kafka_lag.remove_label_values(&labels);
             let _ = self
-                .shared
-                .metrics
+                .service
+                .metrics()
+                .kafka_lag
+                .remove_label_values(&labels);
+            let _ = self
+                .service
+                .metrics()
                 .kafka_next_offset
                 .remove_label_values(&labels);
         }
@@ -377,77 +304,22 @@ impl PartitionContext {
 
 /// Wait for dead letters to be delivered before offsets that follow them are saved, so a
 /// saved offset never skips an undelivered dead letter. Returns whether all were delivered.
-fn flush_dead_letters(producer: Option<&DeadLetterProducer>, shared: &Shared) -> bool {
+fn flush_dead_letters(producer: Option<&DeadLetterProducer>, service: &Service) -> bool {
     let Some(p) = producer else { return true };
     match p.flush(DEAD_LETTER_FLUSH) {
         Ok(()) => true,
         Err(e) => {
             tracing::warn!(error = %e, "dead letters not yet delivered; postponing the state save");
-            shared.metrics.dead_letter_errors.inc();
+            service.metrics().dead_letter_errors.inc();
             false
         }
     }
 }
 
-/// Create `topic` if the cluster does not have it, with `partitions` partitions,
-/// broker-default replication and the given topic `settings`; returns its partition count.
-/// Dead letters, alerts and the changelog thus have somewhere to go on clusters without topic
-/// auto-creation.
-pub async fn ensure_topic_with(
-    cfg: &KafkaConfig,
-    topic: &str,
-    partitions: i32,
-    settings: &[(&str, &str)],
-) -> Result<i32, KafkaError> {
-    use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
-    use rdkafka::client::DefaultClientContext;
-    let admin: AdminClient<DefaultClientContext> = connection_config(cfg).create()?;
-    let existing = |admin: &AdminClient<DefaultClientContext>| -> Result<Option<i32>, KafkaError> {
-        let md = admin
-            .inner()
-            .fetch_metadata(Some(topic), Duration::from_secs(10))?;
-        Ok(md
-            .topics()
-            .iter()
-            .find(|t| t.name() == topic && t.error().is_none() && !t.partitions().is_empty())
-            .map(|t| t.partitions().len() as i32))
-    };
-    if let Some(n) = existing(&admin)? {
-        return Ok(n);
-    }
-    let mut new = NewTopic::new(topic, partitions.max(1), TopicReplication::Fixed(-1));
-    for (k, v) in settings {
-        new = new.set(k, v);
-    }
-    let results = admin
-        .create_topics(
-            [&new],
-            &AdminOptions::new().operation_timeout(Some(Duration::from_secs(10))),
-        )
-        .await?;
-    for r in results {
-        match r {
-            Ok(_) => tracing::info!(topic, partitions, ?settings, "created the topic"),
-            Err((_, rdkafka::types::RDKafkaErrorCode::TopicAlreadyExists)) => {}
-            Err((name, code)) => {
-                return Err(KafkaError::AdminOp(code)).inspect_err(|_| {
-                    tracing::error!(topic = %name, error = %code, "cannot create the topic; create it by hand");
-                })
-            }
-        }
-    }
-    Ok(existing(&admin)?.unwrap_or(partitions.max(1)))
-}
-
-/// [`ensure_topic_with`] for a plain one-partition topic.
-pub async fn ensure_topic(cfg: &KafkaConfig, topic: &str) -> Result<(), KafkaError> {
-    ensure_topic_with(cfg, topic, 1, &[]).await.map(|_| ())
-}
-
 /// Start the consumer thread and the broker probe on `tracker`.
 pub fn start(
     cfg: &KafkaConfig,
-    shared: Arc<Shared>,
+    service: Arc<Service>,
     shutdown: CancellationToken,
     tracker: &TaskTracker,
 ) -> Result<(), KafkaError> {
@@ -459,7 +331,7 @@ pub fn start(
     };
     let changelog: Arc<OnceLock<Changelog>> = Arc::new(OnceLock::new());
     let context = PartitionContext {
-        shared: Arc::clone(&shared),
+        service: Arc::clone(&service),
         dead_letters: dead_letters.clone(),
         changelog: Arc::clone(&changelog),
     };
@@ -470,20 +342,20 @@ pub fn start(
     probe_config.set("statistics.interval.ms", "0");
     let probe: BaseConsumer = probe_config.create()?;
     {
-        let shared = Arc::clone(&shared);
+        let service = Arc::clone(&service);
         let shutdown = shutdown.clone();
-        tracker.spawn_blocking(move || probe_loop(&probe, &shared, &shutdown));
+        tracker.spawn_blocking(move || probe_loop(&probe, &service, &shutdown));
     }
     let loop_cfg = LoopConfig {
         dead_letter_topic: cfg.dead_letter_topic.clone(),
-        snapshot_interval: shared.snapshot_interval,
+        snapshot_interval: service.snapshot_interval(),
         changelog_interval: cfg.changelog_interval,
     };
     let handle = tokio::runtime::Handle::current();
     let kafka_cfg = cfg.clone();
     {
         let changelog = Arc::clone(&changelog);
-        let shared = Arc::clone(&shared);
+        let service = Arc::clone(&service);
         let shutdown = shutdown.clone();
         let kafka_cfg = cfg.clone();
         tracker.spawn_blocking(move || {
@@ -495,7 +367,7 @@ pub fn start(
                 std::thread::sleep(Duration::from_millis(100));
             }
             let c = changelog.get().expect("checked above");
-            if let Err(e) = crate::changelog::follow(&kafka_cfg, c.topic(), c.n_partitions(), &shared, &shutdown) {
+            if let Err(e) = changelog::follow(&kafka_cfg, c.topic(), c.n_partitions(), &service, &shutdown) {
                 tracing::error!(error = %e, "cannot follow the changelog; reads cover local partitions only");
             }
         });
@@ -511,11 +383,11 @@ pub fn start(
         while !shutdown.is_cancelled() && changelog.get().is_none() {
             // librdkafka's metadata calls cannot be interrupted, so wait for the probe to see
             // the brokers before trying: a drain during an outage stays prompt.
-            if shared.kafka_reachable() != Some(true) {
+            if service.kafka_reachable() != Some(true) {
                 std::thread::sleep(Duration::from_millis(100));
                 continue;
             }
-            let partitions = crate::changelog::input_partitions(&kafka_cfg).unwrap_or(1);
+            let partitions = changelog::input_partitions(&kafka_cfg).unwrap_or(1);
             match handle.block_on(Changelog::open(&kafka_cfg, &kafka_cfg.changelog_topic, partitions)) {
                 Ok(c) => {
                     tracing::info!(topic = c.topic(), partitions = c.n_partitions(), "changelog ready");
@@ -524,14 +396,14 @@ pub fn start(
                     match c.read_partition(0) {
                         Ok(contents) => {
                             for bytes in contents.catalogs.values() {
-                                crate::catalog::adopt(&shared, bytes);
+                                service.adopt_catalog(bytes);
                             }
                         }
                         Err(e) => tracing::error!(error = %e, "cannot read the experiment catalog from the changelog; using the local one"),
                     }
                     let _ = changelog.set(c);
                     let published = Arc::clone(&changelog);
-                    shared.set_catalog_publisher(Box::new(move |instance, bytes| {
+                    service.set_catalog_publisher(Box::new(move |instance, bytes| {
                         if let Some(c) = published.get() {
                             if let Err(e) = c.publish_catalog(instance, bytes) {
                                 tracing::error!(error = %e, "cannot publish the experiment catalog; other instances learn of the change at its next publication");
@@ -539,7 +411,7 @@ pub fn start(
                         }
                     }));
                     // Ours may hold changes made while the changelog was out of reach.
-                    crate::catalog::publish(&shared);
+                    service.publish_catalog();
                 }
                 Err(e) => {
                     if !logged {
@@ -562,7 +434,7 @@ pub fn start(
             return;
         }
         tracing::info!(brokers = %kafka_cfg.brokers, topics = ?kafka_cfg.topics, group = %kafka_cfg.group, "kafka consumer subscribed");
-        consume_loop(&consumer, &shared, dead_letters.as_deref(), c, &loop_cfg, &shutdown)
+        consume_loop(&consumer, &service, dead_letters.as_deref(), c, &loop_cfg, &shutdown)
     });
     Ok(())
 }
@@ -576,12 +448,12 @@ struct LoopConfig {
     changelog_interval: Duration,
 }
 
-fn probe_loop(probe: &BaseConsumer, shared: &Shared, shutdown: &CancellationToken) {
+fn probe_loop(probe: &BaseConsumer, service: &Service, shutdown: &CancellationToken) {
     let mut last: Option<bool> = None;
     while !shutdown.is_cancelled() {
         let started = Instant::now();
         let reachable = probe.fetch_metadata(None, PROBE_INTERVAL).is_ok();
-        shared.set_kafka_reachable(reachable);
+        service.set_kafka_reachable(reachable);
         if last != Some(reachable) {
             if reachable {
                 tracing::info!("kafka brokers reachable");
@@ -602,7 +474,7 @@ fn dead_letter(
     topic: &str,
     msg: &rdkafka::message::BorrowedMessage<'_>,
     reject: &Reject,
-    shared: &Shared,
+    service: &Service,
 ) {
     let source = format!("{}/{}/{}", msg.topic(), msg.partition(), msg.offset());
     let headers = OwnedHeaders::new()
@@ -625,21 +497,21 @@ fn dead_letter(
         record = record.key(key);
     }
     match producer.send(record) {
-        Ok(()) => shared
-            .metrics
+        Ok(()) => service
+            .metrics()
             .dead_letters
             .with_label_values(&[reject.reason.as_str()])
             .inc(),
         Err((e, _)) => {
             tracing::warn!(error = %e, %source, "cannot queue a dead letter");
-            shared.metrics.dead_letter_errors.inc();
+            service.metrics().dead_letter_errors.inc();
         }
     }
 }
 
 fn consume_loop(
     consumer: &BaseConsumer<PartitionContext>,
-    shared: &Shared,
+    service: &Service,
     dead_letters: Option<&DeadLetterProducer>,
     changelog: &Changelog,
     cfg: &LoopConfig,
@@ -674,37 +546,37 @@ fn consume_loop(
             timeout = deadline - now;
         }
         if !batch.is_empty() {
-            apply_messages(consumer, shared, dead_letters, cfg, &batch, &mut shard_ids);
+            apply_messages(consumer, service, dead_letters, cfg, &batch, &mut shard_ids);
         }
         if last_save.elapsed() >= cfg.snapshot_interval {
-            if flush_dead_letters(dead_letters, shared) {
-                shared.save_dirty(|id| id.starts_with("kafka/"));
+            if flush_dead_letters(dead_letters, service) {
+                service.save_dirty(|id| id.starts_with("kafka/"));
             }
             last_save = Instant::now();
         }
         if last_publish.elapsed() >= cfg.changelog_interval {
             // Dead letters first, for the same reason as before a local save.
-            if flush_dead_letters(dead_letters, shared) {
-                publish_changed(shared, changelog, None);
+            if flush_dead_letters(dead_letters, service) {
+                publish_changed(service, changelog, None);
             }
             last_publish = Instant::now();
         }
     }
-    if !flush_dead_letters(dead_letters, shared) {
+    if !flush_dead_letters(dead_letters, service) {
         tracing::error!(
             "dead letters undelivered at shutdown; their events will be read again after restart"
         );
-    } else if !shared.save_dirty(|id| id.starts_with("kafka/")) {
+    } else if !service.save_dirty(|id| id.starts_with("kafka/")) {
         tracing::error!(
             "state could not be saved at shutdown; events since the last save will be read again"
         );
     }
-    commit_positions(consumer, shared);
+    commit_positions(consumer, service);
 }
 
 fn apply_messages(
     consumer: &BaseConsumer<PartitionContext>,
-    shared: &Shared,
+    service: &Service,
     dead_letters: Option<&DeadLetterProducer>,
     cfg: &LoopConfig,
     batch: &[rdkafka::message::BorrowedMessage<'_>],
@@ -731,7 +603,7 @@ fn apply_messages(
             bytes: m.payload().unwrap_or_default(),
         })
         .collect();
-    let report = shared.apply(Source::Kafka, &items);
+    let report = service.apply(Source::Kafka, &items);
     for (i, reject) in report.rejects() {
         let m = &batch[i];
         tracing::debug!(
@@ -742,7 +614,7 @@ fn apply_messages(
             "refused event"
         );
         if let (Some(p), Some(topic)) = (dead_letters, &cfg.dead_letter_topic) {
-            dead_letter(p, topic, m, reject, shared);
+            dead_letter(p, topic, m, reject, service);
         }
     }
     // Keep the group's committed offsets close to what is applied, for lag tooling.
@@ -754,8 +626,8 @@ fn apply_messages(
     let mut tpl = TopicPartitionList::new();
     for ((topic, partition), offset) in &next {
         let _ = tpl.add_partition_offset(topic, *partition, Offset::Offset(*offset));
-        shared
-            .metrics
+        service
+            .metrics()
             .kafka_next_offset
             .with_label_values(&[*topic, partition.to_string().as_str()])
             .set(*offset);
@@ -766,14 +638,14 @@ fn apply_messages(
 }
 
 /// Commit the applied positions of still-assigned partitions on shutdown.
-fn commit_positions(consumer: &BaseConsumer<PartitionContext>, shared: &Shared) {
+fn commit_positions(consumer: &BaseConsumer<PartitionContext>, service: &Service) {
     let assigned = consumer.assignment().unwrap_or_default();
-    let shards = shared.lock_shards();
+    let shards = service.lock_shards();
     let mut tpl = TopicPartitionList::new();
     for e in assigned.elements() {
         if let Some(next) = shards
             .shard(&kafka_shard(e.topic(), e.partition()))
-            .and_then(|s| s.next_offset)
+            .and_then(|s| s.next_offset())
         {
             let _ = tpl.add_partition_offset(e.topic(), e.partition(), Offset::Offset(next));
         }

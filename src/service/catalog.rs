@@ -11,7 +11,7 @@
 //!
 //! With several instances (Kafka), each publishes its catalog (without archives) on the
 //! changelog topic after every change and adopts the others' per experiment, the newer
-//! definition winning and a deletion winning over older definitions (see [`adopt`]).
+//! definition winning and a deletion winning over older definitions (see [`Service::adopt_catalog`]).
 
 use std::collections::{BTreeMap, BTreeSet};
 use std::path::{Path, PathBuf};
@@ -19,14 +19,17 @@ use std::sync::Arc;
 
 use serde_json::{json, Map, Value};
 
-use crate::app::Shared;
+use super::store::{write_atomic, StoreError};
+use super::Service;
 use crate::config::{experiment_from_json, ConfigError};
 use crate::event::Outcome;
 use crate::experiment::ExperimentDef;
 use crate::state::{
     ConversionTotals, DefectTotals, ExperimentSnapshot, MetricTotals, OutcomeCounts,
 };
-use crate::store::StoreError;
+
+/// Largest catalog message, below the common 1 MB message limit.
+pub const MAX_CATALOG_BYTES: usize = 900 * 1024;
 
 /// Name of the catalog file in the store directory.
 pub const FILE_NAME: &str = "experiments.json";
@@ -342,7 +345,7 @@ impl Catalog {
             return Ok(());
         };
         let bytes = serde_json::to_vec_pretty(&self.to_json()).expect("JSON values serialize");
-        crate::store::write_atomic(path, &bytes)
+        write_atomic(path, &bytes)
     }
 
     /// Whether `id` is an experiment defined over the API (and in use).
@@ -395,287 +398,289 @@ impl Catalog {
     }
 }
 
-/// `PUT /v1/experiments/{id}`: create or redefine an API experiment from `body`.
-pub fn put(shared: &Shared, id: &str, mut body: Value) -> Result<PutOutcome, CatalogError> {
-    let restart = match body.as_object_mut().and_then(|m| m.remove("restart")) {
-        None | Some(Value::Null) => false,
-        Some(Value::Bool(b)) => b,
-        Some(other) => {
-            return Err(CatalogError::BadField {
-                key: "restart",
-                message: format!("must be true or false, got {other}"),
-            })
-        }
-    };
-    let mut def = define(id, &body, 0).map_err(CatalogError::Invalid)?;
-    let now = crate::app::now_micros();
-    // Lock order: catalog, then shards.
-    let mut catalog = shared.lock_catalog();
-    if catalog.file_ids.contains(id) {
-        return Err(CatalogError::DefinedInConfig(id.to_string()));
-    }
-    let mut shards = shared.lock_shards();
-    let old = catalog
-        .active
-        .get(id)
-        .and_then(|_| shards.defs().iter().find(|d| d.id == id).cloned());
-    let snapshot = shards.snapshot(id);
-    let running = snapshot.as_ref().is_some_and(|s| !s.is_empty());
-    let mut next = catalog.clone();
-    let last = next.generations.get(id).copied().unwrap_or(0);
-    let mut outcome = PutOutcome {
-        created: old.is_none(),
-        generation: 0,
-        archived: None,
-        added_variants: Vec::new(),
-        added_metrics: Vec::new(),
-    };
-    match &old {
-        Some(old) if !restart => match old.incompatibility(&def) {
-            // Appends and rule changes keep the generation (so instances that receive the
-            // same bodies agree on it) and the state.
-            None => {
-                outcome.added_variants = def.variants[old.variants.len()..]
-                    .iter()
-                    .map(|v| v.name.clone())
-                    .collect();
-                outcome.added_metrics = def.metrics[old.metrics.len()..]
-                    .iter()
-                    .map(|m| m.name.clone())
-                    .collect();
-                def.generation = old.generation;
-            }
-            Some(reason) if running => {
-                return Err(CatalogError::NeedsRestart {
-                    id: id.to_string(),
-                    reason,
-                })
-            }
-            // Nothing counted yet: any change is safe, and a fresh generation keeps stored
-            // state of the old shape out.
-            Some(_) => def.generation = last + 1,
-        },
-        Some(_) => {
-            if let Some(s) = snapshot.filter(|s| !s.is_empty()) {
-                outcome.archived = Some(next.push_archive(s, "restarted", now));
-            }
-            def.generation = last + 1;
-        }
-        None => def.generation = last + 1,
-    }
-    outcome.generation = def.generation;
-    next.generations.insert(id.to_string(), def.generation);
-    let created_at = next.active.get(id).map_or(now, |e| e.created_at);
-    next.active.insert(
-        id.to_string(),
-        Entry {
-            generation: def.generation,
-            definition: body,
-            created_at,
-            updated_at: now,
-        },
-    );
-    // Stored before it takes effect: a failed write changes nothing.
-    next.save()?;
-    for (shard, m) in shards.define(def) {
-        tracing::error!(%shard, "{m}; that experiment starts empty in this shard");
-    }
-    drop(shards);
-    *catalog = next;
-    drop(catalog);
-    if outcome.archived.is_some() {
-        save_soon(shared);
-    }
-    publish(shared);
-    Ok(outcome)
-}
-
-/// Store the HTTP shard now, so its write-ahead log stops holding events of the archived
-/// generation sooner than the next snapshot would: after a crash those would be replayed into
-/// the new generation (stored state of an older generation itself is never restored into a
-/// newer one). Kafka shards are left to the consumer, which must deliver dead letters before
-/// it stores an offset past them.
-fn save_soon(shared: &Shared) {
-    if !shared.save_dirty(|id| id == crate::http::HTTP_SHARD) {
-        tracing::warn!(
-            "some shards could not be saved after an archive; the next snapshot retries"
-        );
-    }
-}
-
-/// `DELETE /v1/experiments/{id}`: archive an API experiment; returns the archive number.
-pub fn delete(shared: &Shared, id: &str) -> Result<u32, CatalogError> {
-    let now = crate::app::now_micros();
-    let mut catalog = shared.lock_catalog();
-    if catalog.file_ids.contains(id) {
-        return Err(CatalogError::DefinedInConfig(id.to_string()));
-    }
-    if !catalog.active.contains_key(id) {
-        return Err(CatalogError::Unknown(id.to_string()));
-    }
-    let mut shards = shared.lock_shards();
-    let snapshot = shards
-        .snapshot(id)
-        .ok_or_else(|| CatalogError::Unknown(id.to_string()))?;
-    let mut next = catalog.clone();
-    let number = next.push_archive(snapshot, "deleted", now);
-    next.active.remove(id);
-    next.deleted.insert(id.to_string(), now);
-    next.save()?;
-    shards.undefine(id);
-    drop(shards);
-    *catalog = next;
-    drop(catalog);
-    save_soon(shared);
-    publish(shared);
-    Ok(number)
-}
-
-/// Send the catalog to the other instances (with Kafka; waits for delivery).
-pub fn publish(shared: &Shared) {
-    let Some(publisher) = shared.catalog_publisher() else {
-        return;
-    };
-    let (instance, wire) = {
-        let c = shared.lock_catalog();
-        if c.active.is_empty() && c.deleted.is_empty() {
-            // Nothing was ever defined here: nothing for others to learn.
-            return;
-        }
-        (c.instance.clone(), c.wire())
-    };
-    let bytes = serde_json::to_vec(&wire).expect("JSON values serialize");
-    if bytes.len() > crate::changelog::MAX_CATALOG_BYTES {
-        tracing::error!(
-            bytes = bytes.len(),
-            "the experiment catalog is too large to publish; other instances do not see its changes"
-        );
-        return;
-    }
-    publisher(&instance, &bytes);
-}
-
 /// One experiment as another instance sent it.
 struct RemoteEntry {
     id: String,
     entry: Entry,
 }
 
-/// Adopt what another instance published (`bytes`): per id, the newer of its definition and
-/// ours wins (by `updated_at`), and a deletion wins over older definitions. State this
-/// instance counted under a definition that is replaced by another generation, or deleted,
-/// is archived here first. Our own publications come back too and change nothing.
-pub fn adopt(shared: &Shared, bytes: &[u8]) {
-    let Ok(doc) = serde_json::from_slice::<Value>(bytes) else {
-        tracing::warn!("ignoring an unreadable experiment catalog on the changelog");
-        return;
-    };
-    if doc["version"].as_u64() != Some(FORMAT_VERSION) {
-        tracing::warn!(version = %doc["version"], "ignoring an experiment catalog of an unknown version");
-        return;
+impl Service {
+    /// `PUT /v1/experiments/{id}`: create or redefine an API experiment from `body`.
+    pub fn define_experiment(&self, id: &str, mut body: Value) -> Result<PutOutcome, CatalogError> {
+        let restart = match body.as_object_mut().and_then(|m| m.remove("restart")) {
+            None | Some(Value::Null) => false,
+            Some(Value::Bool(b)) => b,
+            Some(other) => {
+                return Err(CatalogError::BadField {
+                    key: "restart",
+                    message: format!("must be true or false, got {other}"),
+                })
+            }
+        };
+        let mut def = define(id, &body, 0).map_err(CatalogError::Invalid)?;
+        let now = super::now_micros();
+        // Lock order: catalog, then shards.
+        let mut catalog = self.lock_catalog();
+        if catalog.file_ids.contains(id) {
+            return Err(CatalogError::DefinedInConfig(id.to_string()));
+        }
+        let mut shards = self.lock_shards();
+        let old = catalog
+            .active
+            .get(id)
+            .and_then(|_| shards.defs().iter().find(|d| d.id == id).cloned());
+        let snapshot = shards.snapshot(id);
+        let running = snapshot.as_ref().is_some_and(|s| !s.is_empty());
+        let mut next = catalog.clone();
+        let last = next.generations.get(id).copied().unwrap_or(0);
+        let mut outcome = PutOutcome {
+            created: old.is_none(),
+            generation: 0,
+            archived: None,
+            added_variants: Vec::new(),
+            added_metrics: Vec::new(),
+        };
+        match &old {
+            Some(old) if !restart => match old.incompatibility(&def) {
+                // Appends and rule changes keep the generation (so instances that receive the
+                // same bodies agree on it) and the state.
+                None => {
+                    outcome.added_variants = def.variants[old.variants.len()..]
+                        .iter()
+                        .map(|v| v.name.clone())
+                        .collect();
+                    outcome.added_metrics = def.metrics[old.metrics.len()..]
+                        .iter()
+                        .map(|m| m.name.clone())
+                        .collect();
+                    def.generation = old.generation;
+                }
+                Some(reason) if running => {
+                    return Err(CatalogError::NeedsRestart {
+                        id: id.to_string(),
+                        reason,
+                    })
+                }
+                // Nothing counted yet: any change is safe, and a fresh generation keeps stored
+                // state of the old shape out.
+                Some(_) => def.generation = last + 1,
+            },
+            Some(_) => {
+                if let Some(s) = snapshot.filter(|s| !s.is_empty()) {
+                    outcome.archived = Some(next.push_archive(s, "restarted", now));
+                }
+                def.generation = last + 1;
+            }
+            None => def.generation = last + 1,
+        }
+        outcome.generation = def.generation;
+        next.generations.insert(id.to_string(), def.generation);
+        let created_at = next.active.get(id).map_or(now, |e| e.created_at);
+        next.active.insert(
+            id.to_string(),
+            Entry {
+                generation: def.generation,
+                definition: body,
+                created_at,
+                updated_at: now,
+            },
+        );
+        // Stored before it takes effect: a failed write changes nothing.
+        next.save()?;
+        for (shard, m) in shards.define(def) {
+            tracing::error!(%shard, "{m}; that experiment starts empty in this shard");
+        }
+        drop(shards);
+        *catalog = next;
+        drop(catalog);
+        if outcome.archived.is_some() {
+            self.save_soon();
+        }
+        self.publish_catalog();
+        Ok(outcome)
     }
-    let remote: Vec<RemoteEntry> = doc["experiments"]
-        .as_array()
-        .into_iter()
-        .flatten()
-        .filter_map(|e| {
-            Some(RemoteEntry {
-                id: e["id"].as_str()?.to_string(),
-                entry: Entry {
-                    generation: e["generation"].as_u64()? as u32,
-                    definition: e["definition"].clone(),
-                    created_at: e["created_at"].as_i64().unwrap_or(0),
-                    updated_at: e["updated_at"].as_i64()?,
-                },
+
+    /// Store the HTTP shard now, so its write-ahead log stops holding events of the archived
+    /// generation sooner than the next snapshot would: after a crash those would be replayed into
+    /// the new generation (stored state of an older generation itself is never restored into a
+    /// newer one). Kafka shards are left to the consumer, which must deliver dead letters before
+    /// it stores an offset past them.
+    fn save_soon(&self) {
+        if !self.save_http_shard() {
+            tracing::warn!(
+                "some shards could not be saved after an archive; the next snapshot retries"
+            );
+        }
+    }
+
+    /// `DELETE /v1/experiments/{id}`: archive an API experiment; returns the archive number.
+    pub fn delete_experiment(&self, id: &str) -> Result<u32, CatalogError> {
+        let now = super::now_micros();
+        let mut catalog = self.lock_catalog();
+        if catalog.file_ids.contains(id) {
+            return Err(CatalogError::DefinedInConfig(id.to_string()));
+        }
+        if !catalog.active.contains_key(id) {
+            return Err(CatalogError::Unknown(id.to_string()));
+        }
+        let mut shards = self.lock_shards();
+        let snapshot = shards
+            .snapshot(id)
+            .ok_or_else(|| CatalogError::Unknown(id.to_string()))?;
+        let mut next = catalog.clone();
+        let number = next.push_archive(snapshot, "deleted", now);
+        next.active.remove(id);
+        next.deleted.insert(id.to_string(), now);
+        next.save()?;
+        shards.undefine(id);
+        drop(shards);
+        *catalog = next;
+        drop(catalog);
+        self.save_soon();
+        self.publish_catalog();
+        Ok(number)
+    }
+
+    /// Send the catalog to the other instances (with Kafka; waits for delivery).
+    pub fn publish_catalog(&self) {
+        let Some(publisher) = self.catalog_publisher() else {
+            return;
+        };
+        let (instance, wire) = {
+            let c = self.lock_catalog();
+            if c.active.is_empty() && c.deleted.is_empty() {
+                // Nothing was ever defined here: nothing for others to learn.
+                return;
+            }
+            (c.instance.clone(), c.wire())
+        };
+        let bytes = serde_json::to_vec(&wire).expect("JSON values serialize");
+        if bytes.len() > MAX_CATALOG_BYTES {
+            tracing::error!(
+                bytes = bytes.len(),
+                "the experiment catalog is too large to publish; other instances do not see its changes"
+            );
+            return;
+        }
+        publisher(&instance, &bytes);
+    }
+
+    /// Adopt what another instance published (`bytes`): per id, the newer of its definition and
+    /// ours wins (by `updated_at`), and a deletion wins over older definitions. State this
+    /// instance counted under a definition that is replaced by another generation, or deleted,
+    /// is archived here first. Our own publications come back too and change nothing.
+    pub fn adopt_catalog(&self, bytes: &[u8]) {
+        let Ok(doc) = serde_json::from_slice::<Value>(bytes) else {
+            tracing::warn!("ignoring an unreadable experiment catalog on the changelog");
+            return;
+        };
+        if doc["version"].as_u64() != Some(FORMAT_VERSION) {
+            tracing::warn!(version = %doc["version"], "ignoring an experiment catalog of an unknown version");
+            return;
+        }
+        let remote: Vec<RemoteEntry> = doc["experiments"]
+            .as_array()
+            .into_iter()
+            .flatten()
+            .filter_map(|e| {
+                Some(RemoteEntry {
+                    id: e["id"].as_str()?.to_string(),
+                    entry: Entry {
+                        generation: e["generation"].as_u64()? as u32,
+                        definition: e["definition"].clone(),
+                        created_at: e["created_at"].as_i64().unwrap_or(0),
+                        updated_at: e["updated_at"].as_i64()?,
+                    },
+                })
             })
-        })
-        .collect();
-    let now = crate::app::now_micros();
-    let mut catalog = shared.lock_catalog();
-    let mut shards = shared.lock_shards();
-    let mut next = catalog.clone();
-    let mut changed = false;
-    if let Some(g) = doc["generations"].as_object() {
-        for (id, n) in g {
-            let n = n.as_u64().unwrap_or(0) as u32;
-            let last = next.generations.entry(id.clone()).or_insert(0);
-            if n > *last {
-                *last = n;
-                changed = true;
+            .collect();
+        let now = super::now_micros();
+        let mut catalog = self.lock_catalog();
+        let mut shards = self.lock_shards();
+        let mut next = catalog.clone();
+        let mut changed = false;
+        if let Some(g) = doc["generations"].as_object() {
+            for (id, n) in g {
+                let n = n.as_u64().unwrap_or(0) as u32;
+                let last = next.generations.entry(id.clone()).or_insert(0);
+                if n > *last {
+                    *last = n;
+                    changed = true;
+                }
             }
         }
-    }
-    for r in remote {
-        let newer = match next.active.get(&r.id) {
-            Some(l) => r.entry.updated_at > l.updated_at,
-            None => next
-                .deleted
-                .get(&r.id)
-                .is_none_or(|&d| r.entry.updated_at > d),
-        };
-        if !newer {
-            continue;
-        }
-        let def = match define(&r.id, &r.entry.definition, r.entry.generation) {
-            Ok(d) => d,
-            Err(e) => {
-                tracing::warn!(experiment = %r.id, error = %e, "ignoring another instance's definition");
+        for r in remote {
+            let newer = match next.active.get(&r.id) {
+                Some(l) => r.entry.updated_at > l.updated_at,
+                None => next
+                    .deleted
+                    .get(&r.id)
+                    .is_none_or(|&d| r.entry.updated_at > d),
+            };
+            if !newer {
                 continue;
             }
-        };
-        changed = true;
-        let shadowed = next.file_ids.contains(&r.id);
-        if !shadowed {
-            let local_gen = next.active.get(&r.id).map(|l| l.generation);
-            if local_gen.is_some_and(|g| g != def.generation) {
-                if let Some(s) = shards.snapshot(&r.id).filter(|s| !s.is_empty()) {
-                    next.push_archive(s, "restarted", now);
+            let def = match define(&r.id, &r.entry.definition, r.entry.generation) {
+                Ok(d) => d,
+                Err(e) => {
+                    tracing::warn!(experiment = %r.id, error = %e, "ignoring another instance's definition");
+                    continue;
+                }
+            };
+            changed = true;
+            let shadowed = next.file_ids.contains(&r.id);
+            if !shadowed {
+                let local_gen = next.active.get(&r.id).map(|l| l.generation);
+                if local_gen.is_some_and(|g| g != def.generation) {
+                    if let Some(s) = shards.snapshot(&r.id).filter(|s| !s.is_empty()) {
+                        next.push_archive(s, "restarted", now);
+                    }
+                }
+                tracing::info!(experiment = %r.id, generation = def.generation, "experiment defined on another instance");
+                for (shard, m) in shards.define(def) {
+                    tracing::error!(%shard, "{m}; that experiment starts empty in this shard");
                 }
             }
-            tracing::info!(experiment = %r.id, generation = def.generation, "experiment defined on another instance");
-            for (shard, m) in shards.define(def) {
-                tracing::error!(%shard, "{m}; that experiment starts empty in this shard");
+            next.active.insert(r.id, r.entry);
+        }
+        for (id, at) in doc["deleted"].as_object().into_iter().flatten() {
+            let at = at.as_i64().unwrap_or(0);
+            if next.deleted.get(id).is_some_and(|&d| d >= at) {
+                continue;
             }
-        }
-        next.active.insert(r.id, r.entry);
-    }
-    for (id, at) in doc["deleted"].as_object().into_iter().flatten() {
-        let at = at.as_i64().unwrap_or(0);
-        if next.deleted.get(id).is_some_and(|&d| d >= at) {
-            continue;
-        }
-        next.deleted.insert(id.clone(), at);
-        changed = true;
-        if next.active.get(id).is_some_and(|l| l.updated_at < at) {
-            if !next.file_ids.contains(id) {
-                if let Some(s) = shards.snapshot(id) {
-                    next.push_archive(s, "deleted", now);
+            next.deleted.insert(id.clone(), at);
+            changed = true;
+            if next.active.get(id).is_some_and(|l| l.updated_at < at) {
+                if !next.file_ids.contains(id) {
+                    if let Some(s) = shards.snapshot(id) {
+                        next.push_archive(s, "deleted", now);
+                    }
+                    shards.undefine(id);
+                    tracing::info!(experiment = %id, "experiment deleted on another instance");
                 }
-                shards.undefine(id);
-                tracing::info!(experiment = %id, "experiment deleted on another instance");
+                next.active.remove(id);
             }
-            next.active.remove(id);
         }
+        if !changed {
+            return;
+        }
+        if let Err(e) = next.save() {
+            tracing::error!(error = %e, "cannot store the experiment catalog adopted from another instance; it holds until the next start");
+        }
+        drop(shards);
+        *catalog = next;
     }
-    if !changed {
-        return;
-    }
-    if let Err(e) = next.save() {
-        tracing::error!(error = %e, "cannot store the experiment catalog adopted from another instance; it holds until the next start");
-    }
-    drop(shards);
-    *catalog = next;
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
 
-    fn shared() -> Shared {
-        Shared::new(&crate::config::Config::parse("", "t.toml", &[]).unwrap())
+    fn service() -> Service {
+        Service::in_memory(&crate::config::Config::parse("", "t.toml", &[]).unwrap())
     }
 
-    fn wire(s: &Shared) -> Vec<u8> {
+    fn wire(s: &Service) -> Vec<u8> {
         serde_json::to_vec(&s.lock_catalog().wire()).unwrap()
     }
 
@@ -683,12 +688,13 @@ mod tests {
     /// adopting one's own catalog again changes nothing.
     #[test]
     fn catalogs_merge_newest_first_and_deletions_stick() {
-        let (a, b) = (shared(), shared());
+        let (a, b) = (service(), service());
         let body = json!({"variants": [{"name": "control"}, {"name": "tray"}],
                           "metric": [{"name": "plant", "kind": "conversion"}]});
-        put(&a, "orchard-sprout-tray", body.clone()).unwrap();
+        a.define_experiment("orchard-sprout-tray", body.clone())
+            .unwrap();
         let first = wire(&a);
-        adopt(&b, &first);
+        b.adopt_catalog(&first);
         let def = b
             .lock_shards()
             .defs()
@@ -696,17 +702,17 @@ mod tests {
             .find(|d| d.id == "orchard-sprout-tray")
             .cloned();
         assert_eq!(def.unwrap().generation, 1);
-        adopt(&b, &wire(&b));
+        b.adopt_catalog(&wire(&b));
         assert!(b.lock_catalog().is_api("orchard-sprout-tray"));
-        delete(&a, "orchard-sprout-tray").unwrap();
-        adopt(&b, &wire(&a));
+        a.delete_experiment("orchard-sprout-tray").unwrap();
+        b.adopt_catalog(&wire(&a));
         assert!(!b.lock_shards().has_experiment("orchard-sprout-tray"));
         // The older definition arriving late does not bring it back.
-        adopt(&b, &first);
+        b.adopt_catalog(&first);
         assert!(!b.lock_shards().has_experiment("orchard-sprout-tray"));
         // A newer definition does, under a newer generation.
-        put(&a, "orchard-sprout-tray", body).unwrap();
-        adopt(&b, &wire(&a));
+        a.define_experiment("orchard-sprout-tray", body).unwrap();
+        b.adopt_catalog(&wire(&a));
         let def = b
             .lock_shards()
             .defs()

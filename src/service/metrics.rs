@@ -6,6 +6,7 @@ use prometheus::{
 };
 
 use crate::event::{Outcome, RejectReason};
+use crate::summary::ExperimentSummary;
 
 /// Where an event came from; a label on the event counters.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -297,6 +298,51 @@ impl Metrics {
         self.rejected
             .with_label_values(&[source.as_str(), reason.as_str()])
             .inc();
+    }
+
+    /// Rebuild the per-experiment gauges from `summaries`: cleared first, so an experiment
+    /// that was deleted or redefined leaves no stale series behind. Callers hold `scrape`.
+    pub fn set_experiment_gauges(&self, summaries: &[std::sync::Arc<ExperimentSummary>]) {
+        let m = self;
+        m.variant_units.reset();
+        for g in [
+            &m.posterior_mean,
+            &m.interval_lower,
+            &m.interval_upper,
+            &m.prob_best,
+            &m.expected_loss,
+            &m.prob_beats_control,
+        ] {
+            g.reset();
+        }
+        for s in summaries {
+            let def = &s.snapshot.def;
+            for (v, units) in def.variants.iter().zip(&s.snapshot.units) {
+                m.variant_units
+                    .with_label_values(&[def.id.as_str(), v.name.as_str()])
+                    .set(*units as i64);
+            }
+            for (metric, ms) in def.metrics.iter().zip(&s.metrics) {
+                let Ok(arms) = &ms.arms else { continue };
+                for (v, a) in def.variants.iter().zip(arms) {
+                    let labels = [def.id.as_str(), metric.name.as_str(), v.name.as_str()];
+                    m.posterior_mean.with_label_values(&labels).set(a.mean);
+                    m.interval_lower
+                        .with_label_values(&labels)
+                        .set(a.interval.lower);
+                    m.interval_upper
+                        .with_label_values(&labels)
+                        .set(a.interval.upper);
+                    m.prob_best.with_label_values(&labels).set(a.prob_best);
+                    m.expected_loss
+                        .with_label_values(&labels)
+                        .set(a.expected_loss);
+                    if let Some(p) = a.prob_beats_control {
+                        m.prob_beats_control.with_label_values(&labels).set(p);
+                    }
+                }
+            }
+        }
     }
 
     /// The registry in Prometheus text exposition format.

@@ -3,10 +3,10 @@
 
 use std::sync::Mutex;
 
-use crate::decide::cadence::Cadence;
+use super::metrics::{Metrics, Source};
 use crate::decode::decode_event;
 use crate::event::{Event, Outcome, Reject};
-use crate::metrics::{Metrics, Source};
+use crate::state::cadence::Cadence;
 use crate::state::shards::Shards;
 use crate::state::ExperimentSnapshot;
 
@@ -127,12 +127,10 @@ pub fn apply_batch_due(
                 }
                 let prepared = prepared[j].take();
                 if let Some(offset) = items[j].offset {
-                    if shard.next_offset.is_some_and(|next| offset < next) {
+                    if !shard.advance(offset) {
                         results.push(None);
                         continue;
                     }
-                    shard.next_offset = Some(offset + 1);
-                    shard.dirty = true;
                 }
                 // Applied in place: an event is ~150 bytes, and moving each one out of the
                 // batch cost more than the copy is worth.

@@ -19,8 +19,8 @@ use rdkafka::message::Message;
 use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
 use rdkafka::{Offset, TopicPartitionList};
 
+use super::client::{connection_config, ensure_topic_with};
 use crate::config::KafkaConfig;
-use crate::kafka::connection_config;
 use crate::state::shards::{ShardId, ShardImage};
 
 /// Largest chunk value, well below the common 1 MB message limit.
@@ -76,9 +76,6 @@ pub const CATALOG_KEY: &str = "posteriord-catalog";
 fn is_catalog_key(key: &[u8]) -> bool {
     key.starts_with(CATALOG_KEY.as_bytes())
 }
-
-/// Largest catalog message, below the common 1 MB message limit.
-pub const MAX_CATALOG_BYTES: usize = 900 * 1024;
 
 fn key(shard: &str, generation: i64, chunk: u32) -> String {
     format!("{shard}@{generation:020}#{chunk}")
@@ -162,7 +159,7 @@ impl PartitionContents {
         let Some((generation, g)) = gens.iter().rev().find(|(_, g)| g.complete()) else {
             return Ok(None);
         };
-        crate::store::decode(&g.bytes())
+        crate::service::store::decode(&g.bytes())
             .map(Some)
             .map_err(|reason| ChangelogError::Corrupt {
                 topic: topic.to_string(),
@@ -170,15 +167,6 @@ impl PartitionContents {
                 generation: *generation,
                 reason,
             })
-    }
-
-    /// Every shard with a complete generation.
-    pub fn shard_ids(&self) -> Vec<String> {
-        self.shards
-            .iter()
-            .filter(|(_, gens)| gens.values().any(Generation::complete))
-            .map(|(id, _)| id.clone())
-            .collect()
     }
 
     /// Generations present for `shard` (complete or not), oldest first.
@@ -216,14 +204,9 @@ impl Changelog {
             topic: topic.to_string(),
             source,
         };
-        let n = crate::kafka::ensure_topic_with(
-            cfg,
-            topic,
-            n_partitions,
-            &[("cleanup.policy", "compact")],
-        )
-        .await
-        .map_err(err)?;
+        let n = ensure_topic_with(cfg, topic, n_partitions, &[("cleanup.policy", "compact")])
+            .await
+            .map_err(err)?;
         let mut pc = connection_config(cfg);
         pc.set("client.id", "posteriord-changelog")
             .set("enable.idempotence", "true")
@@ -266,7 +249,7 @@ impl Changelog {
             source,
         };
         let generation = image.next_offset.unwrap_or(-1);
-        let bytes = crate::store::encode(image);
+        let bytes = crate::service::store::encode(image);
         let chunks: Vec<&[u8]> = bytes.chunks(CHUNK_BYTES).collect();
         let n = chunks.len() as u32;
         let cp = self.partition_for(partition);
@@ -423,7 +406,7 @@ pub fn follow(
     cfg: &KafkaConfig,
     topic: &str,
     n_partitions: i32,
-    shared: &crate::app::Shared,
+    service: &crate::service::Service,
     shutdown: &tokio_util::sync::CancellationToken,
 ) -> Result<(), ChangelogError> {
     let err = |source| ChangelogError::Kafka {
@@ -449,7 +432,7 @@ pub fn follow(
         let Some(k) = m.key() else { continue };
         if is_catalog_key(k) {
             if let Some(bytes) = m.payload() {
-                crate::catalog::adopt(shared, bytes);
+                service.adopt_catalog(bytes);
             }
             continue;
         }
@@ -465,7 +448,7 @@ pub fn follow(
             .is_some_and(Generation::complete);
         if complete {
             match pending.latest(topic, &shard) {
-                Ok(Some(image)) => shared.lock_shards().set_remote(shard.clone(), &image),
+                Ok(Some(image)) => service.lock_shards().set_remote(shard.clone(), &image),
                 Ok(None) => {}
                 Err(e) => tracing::warn!(error = %e, "skipping an unreadable changelog generation"),
             }
@@ -519,7 +502,7 @@ mod tests {
             next_offset: Some(10),
             experiments: vec![],
         };
-        let bytes = crate::store::encode(&image);
+        let bytes = crate::service::store::encode(&image);
         let (a, b) = bytes.split_at(bytes.len() / 2);
         let mut c = PartitionContents::default();
         c.apply(key("s", 10, 0).as_bytes(), Some(&chunk(0, 2, a)));

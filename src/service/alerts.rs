@@ -1,0 +1,406 @@
+//! The alert desk: the alert book, the outbox of deliveries not yet made, and the file that keeps
+//! both, under one lock.
+//!
+//! The book and the pending deliveries live in one file (`<store.dir>/alerts.json`), replaced
+//! atomically whenever either changes: an alert is never recorded without its deliveries, nor
+//! a delivery without its alert. Each change becomes one CloudEvents 1.0 JSON envelope per
+//! configured sink, fixed when the alert changes so that retries send identical bytes; the
+//! sinks (an edge) take due deliveries from here and report back.
+
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use serde_json::{json, Value};
+
+use super::metrics::Metrics;
+use super::store::{write_atomic, StoreError};
+use crate::config::AlertsConfig;
+use crate::decide::alerts::{Alert, AlertBook, AlertChange, AlertKey, AlertState};
+use crate::decide::{Finding, Rule};
+use crate::event::Micros;
+
+/// Why the stored alerts cannot be read.
+#[derive(Debug, thiserror::Error)]
+pub enum AlertFileError {
+    /// The file exists but cannot be read.
+    #[error("{path}: {source}")]
+    Io {
+        /// The file.
+        path: PathBuf,
+        /// What failed.
+        source: std::io::Error,
+    },
+    /// The file is not the JSON this version writes.
+    #[error("{path}: {source}")]
+    Unreadable {
+        /// The file.
+        path: PathBuf,
+        /// What is wrong.
+        source: serde_json::Error,
+    },
+}
+
+/// One pending delivery of one alert change to one sink.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Delivery {
+    /// `webhook/<index>` or `kafka`.
+    pub sink: String,
+    /// The CloudEvent id (`<alert id>.<change>`).
+    pub event_id: String,
+    /// The exact body to send (fixed when the alert changed, so retries are identical).
+    pub body: String,
+    /// Experiment id, the Kafka message key.
+    pub experiment: String,
+    /// Attempts so far.
+    pub attempts: u32,
+    /// Not before this time (µs since the epoch).
+    pub next_attempt: Micros,
+}
+
+/// The CloudEvent for one alert change.
+pub fn cloud_event(alert: &Alert, change: &str, time: Micros) -> Value {
+    let mut data = crate::doc::alert(alert);
+    data["change"] = json!(change);
+    json!({
+        "specversion": "1.0",
+        "type": format!("posteriord.alert.{change}"),
+        "source": "/posteriord",
+        "id": format!("{}.{change}", alert.id),
+        "time": crate::doc::time_text(time),
+        "subject": alert.key.experiment,
+        "datacontenttype": "application/json",
+        "data": data,
+    })
+}
+
+/// Deliveries for `changes` to each of `sinks`.
+fn deliveries_for(changes: &[AlertChange], sinks: &[String], now: Micros) -> Vec<Delivery> {
+    let mut out = Vec::new();
+    for change in changes {
+        let (name, alert) = match change {
+            AlertChange::Opened(a) => ("opened", a),
+            AlertChange::Closed(a) => ("closed", a),
+        };
+        let event = cloud_event(alert, name, now);
+        let body = event.to_string();
+        let event_id = event["id"].as_str().unwrap_or_default().to_string();
+        for sink in sinks {
+            out.push(Delivery {
+                sink: sink.clone(),
+                event_id: event_id.clone(),
+                body: body.clone(),
+                experiment: alert.key.experiment.clone(),
+                attempts: 0,
+                next_attempt: now,
+            });
+        }
+    }
+    out
+}
+
+/// The alert book, its pending deliveries and (with a store) their file. Held behind one lock
+/// by the service, so the three never disagree.
+#[derive(Debug)]
+pub struct AlertDesk {
+    book: AlertBook,
+    outbox: Vec<Delivery>,
+    file: Option<AlertFile>,
+    /// Sink names a change is delivered to, from the alert settings.
+    sinks: Vec<String>,
+}
+
+impl AlertDesk {
+    /// An empty desk kept in memory only, with alerts held down `hold_down` µs.
+    pub fn in_memory(cfg: &AlertsConfig) -> AlertDesk {
+        AlertDesk {
+            book: AlertBook::new(cfg.hold_down.as_micros() as i64),
+            outbox: Vec::new(),
+            file: None,
+            sinks: sink_names(cfg),
+        }
+    }
+
+    /// The desk stored in the store directory `dir` (empty when nothing is stored yet).
+    pub fn restore(dir: &Path, cfg: &AlertsConfig) -> Result<AlertDesk, AlertFileError> {
+        let file = AlertFile::new(dir);
+        let (alerts, pending) = file.load()?;
+        if !pending.is_empty() {
+            tracing::info!(
+                pending = pending.len(),
+                "alert deliveries pending from before the restart"
+            );
+        }
+        Ok(AlertDesk {
+            book: AlertBook::from_alerts(alerts, cfg.hold_down.as_micros() as i64),
+            outbox: pending,
+            file: Some(file),
+            sinks: sink_names(cfg),
+        })
+    }
+
+    /// The alert book.
+    pub fn book(&self) -> &AlertBook {
+        &self.book
+    }
+
+    /// Fold `changes` (already applied to the book) into the outbox, one delivery per sink,
+    /// stamped `now`, and store both before anything is announced.
+    pub(super) fn record(&mut self, changes: &[AlertChange], now: Micros) {
+        self.outbox
+            .extend(deliveries_for(changes, &self.sinks, now));
+        self.save();
+    }
+
+    /// Mutable book, for the evaluator's fold (which then calls [`AlertDesk::record`]).
+    pub(super) fn book_mut(&mut self) -> &mut AlertBook {
+        &mut self.book
+    }
+
+    /// Acknowledge alert `id` at `now`, stored at once; the alert as it is now.
+    pub(super) fn acknowledge(&mut self, id: &str, now: Micros) -> Option<Alert> {
+        let alert = self.book.acknowledge(id, now).cloned();
+        if alert.is_some() {
+            self.save();
+        }
+        alert
+    }
+
+    /// Deliveries due at `now`.
+    pub(super) fn due(&self, now: Micros) -> Vec<Delivery> {
+        self.outbox
+            .iter()
+            .filter(|d| d.next_attempt <= now)
+            .cloned()
+            .collect()
+    }
+
+    /// Take the results of delivery attempts: a delivered one leaves the outbox, a failed one
+    /// waits `backoff(attempts)` from `now`. Counted, logged, then stored.
+    pub(super) fn settle(
+        &mut self,
+        results: &[(Delivery, Result<(), String>)],
+        now: Micros,
+        backoff: impl Fn(u32) -> Duration,
+        metrics: &Metrics,
+    ) {
+        for (d, r) in results {
+            let sink_kind = if d.sink == "kafka" {
+                "kafka"
+            } else {
+                "webhook"
+            };
+            match r {
+                Ok(()) => {
+                    self.outbox
+                        .retain(|p| !(p.sink == d.sink && p.event_id == d.event_id));
+                    metrics
+                        .alert_deliveries
+                        .with_label_values(&[sink_kind, "ok"])
+                        .inc();
+                    tracing::info!(sink = %d.sink, event_id = %d.event_id, attempts = d.attempts + 1, "alert delivered");
+                }
+                Err(e) => {
+                    if let Some(p) = self
+                        .outbox
+                        .iter_mut()
+                        .find(|p| p.sink == d.sink && p.event_id == d.event_id)
+                    {
+                        p.attempts += 1;
+                        p.next_attempt = now + backoff(p.attempts).as_micros() as i64;
+                    }
+                    metrics
+                        .alert_deliveries
+                        .with_label_values(&[sink_kind, "error"])
+                        .inc();
+                    if d.attempts < 3 || d.attempts % 20 == 0 {
+                        tracing::warn!(sink = %d.sink, event_id = %d.event_id, attempts = d.attempts + 1, error = %e, "alert delivery failed; will retry");
+                    }
+                }
+            }
+        }
+        self.save();
+    }
+
+    /// Write the book and the outbox together (no-op without a store).
+    fn save(&self) {
+        let Some(file) = &self.file else { return };
+        if let Err(e) = file.save(self.book.alerts(), &self.outbox) {
+            tracing::error!(error = %e, "cannot save alerts and their pending deliveries");
+        }
+    }
+}
+
+/// `webhook/<i>` per webhook, then `kafka` with an alerts topic.
+fn sink_names(cfg: &AlertsConfig) -> Vec<String> {
+    let mut sinks: Vec<String> = (0..cfg.webhooks.len())
+        .map(|i| format!("webhook/{i}"))
+        .collect();
+    if cfg.kafka_topic.is_some() {
+        sinks.push("kafka".into());
+    }
+    sinks
+}
+
+fn alert_json(a: &Alert) -> Value {
+    json!({
+        "id": a.id,
+        "experiment": a.key.experiment,
+        "metric": a.key.metric,
+        "variant": a.key.variant,
+        "rule": a.key.rule.as_str(),
+        "state": a.state.as_str(),
+        "opened_at": a.opened_at,
+        "last_held_at": a.last_held_at,
+        "closed_at": a.closed_at,
+        "acknowledged_at": a.acknowledged_at,
+        "finding": {
+            "metric": a.finding.metric,
+            "variant": a.finding.variant,
+            "value": a.finding.value,
+            "threshold": a.finding.threshold,
+            "message": a.finding.message,
+            "evidence": {
+                "arms": a.finding.evidence.arms.iter().map(|x| json!({
+                    "variant": x.variant, "name": x.name, "posterior": x.posterior.map(|(p, q)| [p, q]), "units": x.units,
+                })).collect::<Vec<_>>(),
+                "event_time": a.finding.evidence.event_time,
+                "positions": a.finding.evidence.positions.iter().map(|(s, n)| json!([s, n])).collect::<Vec<_>>(),
+            },
+        },
+    })
+}
+
+fn alert_from(v: &Value) -> Option<Alert> {
+    let rule = Rule::from_name(v["rule"].as_str()?)?;
+    let state = AlertState::from_name(v["state"].as_str()?)?;
+    let f = &v["finding"];
+    Some(Alert {
+        id: v["id"].as_str()?.to_string(),
+        key: AlertKey {
+            experiment: v["experiment"].as_str()?.to_string(),
+            metric: v["metric"].as_str().map(str::to_string),
+            variant: v["variant"].as_str().map(str::to_string),
+            rule,
+        },
+        state,
+        opened_at: v["opened_at"].as_i64()?,
+        last_held_at: v["last_held_at"].as_i64()?,
+        closed_at: v["closed_at"].as_i64(),
+        acknowledged_at: v["acknowledged_at"].as_i64(),
+        finding: Finding {
+            rule,
+            metric: f["metric"].as_u64().map(|m| m as usize),
+            variant: f["variant"].as_u64().map(|m| m as usize),
+            value: f["value"].as_f64()?,
+            threshold: f["threshold"].as_f64()?,
+            test: rule.test(),
+            message: f["message"].as_str()?.to_string(),
+            evidence: evidence_from(&f["evidence"]),
+        },
+    })
+}
+
+fn evidence_from(v: &Value) -> crate::decide::Evidence {
+    let arms = v["arms"]
+        .as_array()
+        .map(|a| {
+            a.iter()
+                .filter_map(|x| {
+                    let posterior = x["posterior"]
+                        .as_array()
+                        .and_then(|p| Some((p.first()?.as_f64()?, p.get(1)?.as_f64()?)));
+                    Some(crate::decide::ArmEvidence {
+                        variant: x["variant"].as_u64()? as usize,
+                        name: x["name"].as_str()?.to_string(),
+                        posterior,
+                        units: x["units"].as_u64()?,
+                    })
+                })
+                .collect()
+        })
+        .unwrap_or_default();
+    let positions = v["positions"]
+        .as_array()
+        .map(|a| {
+            a.iter()
+                .filter_map(|p| Some((p.get(0)?.as_str()?.to_string(), p.get(1)?.as_i64()?)))
+                .collect()
+        })
+        .unwrap_or_default();
+    crate::decide::Evidence {
+        arms,
+        event_time: v["event_time"].as_i64(),
+        positions,
+    }
+}
+
+/// The alert file: the book and the pending deliveries, together.
+#[derive(Debug, Clone)]
+struct AlertFile {
+    path: PathBuf,
+}
+
+impl AlertFile {
+    /// The alert file of the store at `dir`.
+    fn new(dir: &Path) -> AlertFile {
+        AlertFile {
+            path: dir.join("alerts.json"),
+        }
+    }
+
+    /// Atomically replace the file with `alerts` and `pending`.
+    fn save(&self, alerts: &[Alert], pending: &[Delivery]) -> Result<(), StoreError> {
+        let doc = json!({
+            "version": 1,
+            "alerts": alerts.iter().map(alert_json).collect::<Vec<_>>(),
+            "pending": pending.iter().map(|d| json!({
+                "sink": d.sink, "event_id": d.event_id, "body": d.body,
+                "experiment": d.experiment, "attempts": d.attempts, "next_attempt": d.next_attempt,
+            })).collect::<Vec<_>>(),
+        });
+        write_atomic(&self.path, doc.to_string().as_bytes())
+    }
+
+    /// The stored alerts and pending deliveries (empty when there is no file yet).
+    fn load(&self) -> Result<(Vec<Alert>, Vec<Delivery>), AlertFileError> {
+        let text = match std::fs::read_to_string(&self.path) {
+            Ok(t) => t,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+                return Ok((Vec::new(), Vec::new()))
+            }
+            Err(source) => {
+                return Err(AlertFileError::Io {
+                    path: self.path.clone(),
+                    source,
+                })
+            }
+        };
+        let doc: Value =
+            serde_json::from_str(&text).map_err(|source| AlertFileError::Unreadable {
+                path: self.path.clone(),
+                source,
+            })?;
+        let alerts = doc["alerts"]
+            .as_array()
+            .map(|a| a.iter().filter_map(alert_from).collect())
+            .unwrap_or_default();
+        let pending = doc["pending"]
+            .as_array()
+            .map(|a| {
+                a.iter()
+                    .filter_map(|d| {
+                        Some(Delivery {
+                            sink: d["sink"].as_str()?.to_string(),
+                            event_id: d["event_id"].as_str()?.to_string(),
+                            body: d["body"].as_str()?.to_string(),
+                            experiment: d["experiment"].as_str()?.to_string(),
+                            attempts: d["attempts"].as_u64()? as u32,
+                            next_attempt: d["next_attempt"].as_i64()?,
+                        })
+                    })
+                    .collect()
+            })
+            .unwrap_or_default();
+        Ok((alerts, pending))
+    }
+}

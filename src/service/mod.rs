@@ -1,0 +1,510 @@
+//! The service: everything the edges share, behind private fields, with one method per thing
+//! an edge may ask. Synchronous: no task is spawned here and nothing awaits; the edges and
+//! `app` run its methods on their own threads.
+//!
+//! What it owns, and the lock order where two are taken together (catalog, then shards;
+//! save lock, then shards; the HTTP log, then shards):
+//! - the experiments' state by input shard and the evaluation queue fed by ingest ([`ingest`]);
+//! - evaluation and the alert desk — book, outbox and file under one lock ([`evaluate`],
+//!   [`alerts`]);
+//! - cached readings for the readers ([`readings`]), where each experiment stands for the
+//!   fleet lists ([`fleet`]) and the history recorder ([`recorder`]);
+//! - the catalog of experiments defined at run time ([`catalog`]);
+//! - the store with its one atomic writer ([`store`]) and the metrics ([`metrics`]).
+
+pub mod alerts;
+pub mod catalog;
+mod evaluate;
+pub mod fleet;
+pub mod ingest;
+pub mod metrics;
+pub mod readings;
+pub mod recorder;
+pub mod store;
+
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::sync::mpsc::{Receiver, Sender};
+use std::sync::{Arc, Mutex, MutexGuard, OnceLock};
+use std::time::Duration;
+
+use crate::config::Config;
+use crate::decide::alerts::{Alert, AlertBook};
+use crate::event::Micros;
+use crate::state::cadence::Cadence;
+use crate::state::shards::{Shard, ShardImage, Shards, HTTP_SHARD};
+use crate::state::ExperimentSnapshot;
+use crate::summary::ExperimentSummary;
+
+use alerts::{AlertDesk, AlertFileError, Delivery};
+use catalog::Catalog;
+use ingest::{BatchReport, Item};
+use metrics::{Metrics, Source};
+use readings::SummaryCache;
+use recorder::{HistoryFileError, Recorder};
+use store::{Store, StoreError, Wal};
+
+/// Why a stored service cannot be opened.
+#[derive(Debug, thiserror::Error)]
+pub enum OpenError {
+    /// The state directory or a shard file.
+    #[error("cannot open the state store (store.dir): {0}")]
+    Store(#[source] StoreError),
+    /// The write-ahead log of events posted over HTTP.
+    #[error("cannot open or replay the HTTP write-ahead log: {0}")]
+    Wal(#[source] StoreError),
+    /// The alert book and its pending deliveries.
+    #[error("cannot read the stored alerts: {0}")]
+    Alerts(#[from] AlertFileError),
+    /// The recorded history.
+    #[error("cannot open the stored history (store.dir): {0}")]
+    History(#[from] HistoryFileError),
+    /// The experiments defined over the API.
+    #[error("cannot read the experiments defined over the API: {0}")]
+    Catalog(#[source] StoreError),
+}
+
+/// Sends an instance's catalog (its id, the catalog's JSON) to the other instances.
+pub type CatalogPublisher = Box<dyn Fn(&str, &[u8]) + Send + Sync>;
+
+/// The evaluator was started before.
+#[derive(Debug, thiserror::Error)]
+#[error("the evaluator was already started")]
+pub struct EvaluatorStarted;
+
+/// The state and parts shared by every edge of a running posteriord.
+pub struct Service {
+    /// The experiments' state, by input shard. A std `Mutex`, not an async one: it is held
+    /// only to apply one batch or copy snapshots (microseconds), never across an `.await`.
+    shards: Mutex<Shards>,
+    metrics: Metrics,
+    /// Largest accepted encoded event.
+    max_event_bytes: usize,
+    /// `Some` when Kafka is configured: whether its brokers answered the last probe.
+    kafka_reachable: Option<AtomicBool>,
+    /// Partitions being restored; readiness is false while any is.
+    restoring: AtomicUsize,
+    /// Where state is stored (`None` for the demo, which keeps nothing).
+    store: Option<Store>,
+    /// How often changed state is written.
+    snapshot_interval: Duration,
+    /// Write-ahead log of events posted over HTTP (with a store only). Its lock also orders
+    /// HTTP batches: a batch is logged and applied while holding it.
+    http_wal: Option<Mutex<Wal>>,
+    /// Alerts, their pending deliveries and their file.
+    desk: Mutex<AlertDesk>,
+    /// Decision quantities over time, recorded at each evaluation.
+    recorder: Recorder,
+    /// Summaries shared by the readers.
+    readings: SummaryCache,
+    /// Where each experiment stands, refreshed in rounds for the fleet lists.
+    fleet: fleet::FleetIndex,
+    /// Experiments defined over the API, and the archive. Lock order: catalog, then shards.
+    catalog: Mutex<Catalog>,
+    /// Serialises [`Service::save_dirty`] (taken before the shards' lock).
+    save_lock: Mutex<()>,
+    /// Publishes the catalog of API experiments to the other instances (set once the Kafka
+    /// changelog is reachable).
+    catalog_publisher: OnceLock<CatalogPublisher>,
+    /// When experiments are due for evaluation, by event time and count.
+    cadence: Cadence,
+    /// Snapshots of due experiments, to the evaluator.
+    due: Sender<ExperimentSnapshot>,
+    /// The evaluator's end of `due`, taken once by [`Service::run_evaluator`].
+    evaluation_queue: Mutex<Option<Receiver<ExperimentSnapshot>>>,
+}
+
+/// Wall-clock time in microseconds since the epoch.
+pub fn now_micros() -> Micros {
+    (time::OffsetDateTime::now_utc().unix_timestamp_nanos() / 1_000) as i64
+}
+
+/// A lock whose holder panicked still guards consistent data here: every structure behind one
+/// changes one event, one evaluation or one file at a time.
+fn lock<T>(m: &Mutex<T>) -> MutexGuard<'_, T> {
+    m.lock().unwrap_or_else(|p| p.into_inner())
+}
+
+impl Service {
+    /// A service that keeps nothing on disk (the demo, tests).
+    pub fn in_memory(config: &Config) -> Service {
+        let (due, queue) = std::sync::mpsc::channel();
+        Service {
+            cadence: config.alerts.cadence(),
+            due,
+            evaluation_queue: Mutex::new(Some(queue)),
+            shards: Mutex::new(Shards::new(config.experiments.iter().cloned())),
+            metrics: Metrics::new(),
+            max_event_bytes: config.max_event_bytes(),
+            kafka_reachable: config.kafka.as_ref().map(|_| AtomicBool::new(false)),
+            restoring: AtomicUsize::new(0),
+            store: None,
+            snapshot_interval: config.store.snapshot_interval,
+            http_wal: None,
+            desk: Mutex::new(AlertDesk::in_memory(&config.alerts)),
+            recorder: Recorder::in_memory(config.history_arm_points),
+            readings: SummaryCache::default(),
+            fleet: fleet::FleetIndex::default(),
+            catalog: Mutex::new(Catalog::in_memory(
+                config.experiments.iter().map(|e| e.id.clone()),
+            )),
+            save_lock: Mutex::new(()),
+            catalog_publisher: OnceLock::new(),
+        }
+    }
+
+    /// A service over the store in `config.store.dir`: alerts, history, API experiments and
+    /// the HTTP shard restored, and events logged over HTTP since its last save re-applied.
+    pub fn open(config: &Config) -> Result<Service, OpenError> {
+        let dir = &config.store.dir;
+        let store = Store::open(dir).map_err(OpenError::Store)?;
+        let wal = Wal::open(&store, HTTP_SHARD).map_err(OpenError::Wal)?;
+        let desk = AlertDesk::restore(dir, &config.alerts)?;
+        let recorder = Recorder::restore(dir, &config.experiments, config.history_arm_points)?;
+        // API experiments join before any stored state is read, so their state restores.
+        let (catalog, defs, warnings) =
+            Catalog::load(dir, config.experiments.iter().map(|e| e.id.clone()))
+                .map_err(OpenError::Catalog)?;
+        for w in warnings {
+            tracing::warn!("{w}");
+        }
+        if !defs.is_empty() {
+            tracing::info!(experiments = defs.len(), "experiments defined over the API");
+        }
+        let mut service = Service::in_memory(config);
+        {
+            let shards = service.shards.get_mut().unwrap_or_else(|p| p.into_inner());
+            for def in defs {
+                shards.define(def);
+            }
+        }
+        service.store = Some(store);
+        service.http_wal = Some(Mutex::new(wal));
+        service.desk = Mutex::new(desk);
+        service.recorder = recorder;
+        service.catalog = Mutex::new(catalog);
+        // Events posted over HTTP are kept in their own shard: stored on the snapshot
+        // cadence, logged ahead in between.
+        if let Some(shard) = service.load_shard(HTTP_SHARD).map_err(OpenError::Store)? {
+            service.lock_shards().insert(HTTP_SHARD.to_string(), shard);
+            tracing::info!("restored the state of events posted over HTTP");
+        }
+        service.replay_http_wal().map_err(OpenError::Wal)?;
+        Ok(service)
+    }
+
+    /// Prometheus metrics.
+    pub fn metrics(&self) -> &Metrics {
+        &self.metrics
+    }
+
+    /// Largest accepted encoded event.
+    pub fn max_event_bytes(&self) -> usize {
+        self.max_event_bytes
+    }
+
+    /// Whether state is kept in a store.
+    pub fn is_stored(&self) -> bool {
+        self.store.is_some()
+    }
+
+    /// How often changed state is written.
+    pub fn snapshot_interval(&self) -> Duration {
+        self.snapshot_interval
+    }
+
+    /// The shards, even if a panic elsewhere poisoned the lock: the state is updated one
+    /// event at a time, so it is consistent between events.
+    pub fn lock_shards(&self) -> MutexGuard<'_, Shards> {
+        lock(&self.shards)
+    }
+
+    /// The catalog of API experiments (taken before the shards when both are needed).
+    pub fn lock_catalog(&self) -> MutexGuard<'_, Catalog> {
+        lock(&self.catalog)
+    }
+
+    /// The recorded history.
+    pub fn recorder(&self) -> &Recorder {
+        &self.recorder
+    }
+
+    /// The summary of `snapshot` for a reader, shared with other readers when recent.
+    pub fn summary(&self, snapshot: ExperimentSnapshot) -> Arc<ExperimentSummary> {
+        self.readings.summary(snapshot)
+    }
+
+    /// One refresh round of the fleet's verdicts (see [`fleet::FleetIndex::refresh`]): runs
+    /// the quadrature for the experiments whose totals changed; how many that was.
+    pub fn refresh_fleet(&self) -> usize {
+        let snapshots = self.lock_shards().snapshots();
+        self.fleet.refresh(snapshots, &self.readings)
+    }
+
+    /// Every experiment now with where it stands, from the latest verdicts and the alert
+    /// book. Cheap: copies pointers and counts alerts; computes no summary.
+    pub fn fleet(&self) -> Vec<fleet::Member> {
+        let defs = self.lock_shards().defs().to_vec();
+        let facts = self.with_alerts(|book| fleet::alert_facts(book.alerts()));
+        fleet::members(defs, &self.fleet, &facts)
+    }
+
+    /// Read the alert book under its lock.
+    pub fn with_alerts<R>(&self, read: impl FnOnce(&AlertBook) -> R) -> R {
+        read(lock(&self.desk).book())
+    }
+
+    /// Acknowledge alert `id` now (stored at once); the alert, if there is one.
+    pub fn acknowledge_alert(&self, id: &str) -> Option<Alert> {
+        lock(&self.desk).acknowledge(id, now_micros())
+    }
+
+    /// Alert deliveries due at `now`.
+    pub fn due_deliveries(&self, now: Micros) -> Vec<Delivery> {
+        lock(&self.desk).due(now)
+    }
+
+    /// Report delivery attempts made at `now`; a failed one is retried after
+    /// `backoff(attempts)`.
+    pub fn settle_deliveries(
+        &self,
+        results: &[(Delivery, Result<(), String>)],
+        now: Micros,
+        backoff: impl Fn(u32) -> Duration,
+    ) {
+        lock(&self.desk).settle(results, now, backoff, &self.metrics);
+    }
+
+    /// Where catalog changes are published (once; later calls are ignored).
+    pub fn set_catalog_publisher(&self, publisher: CatalogPublisher) {
+        let _ = self.catalog_publisher.set(publisher);
+    }
+
+    /// The catalog publisher, once the changelog is reachable.
+    fn catalog_publisher(&self) -> Option<&CatalogPublisher> {
+        self.catalog_publisher.get()
+    }
+
+    /// Decode and apply a batch from `source` (see [`ingest::apply_batch`]) and queue the
+    /// experiments it made due for evaluation, in input order.
+    pub fn apply(&self, source: Source, items: &[Item<'_>]) -> BatchReport {
+        let mut report = ingest::apply_batch_due(
+            &self.shards,
+            &self.metrics,
+            source,
+            items,
+            self.max_event_bytes,
+            Some(&self.cadence),
+        );
+        for snapshot in report.due.drain(..) {
+            self.metrics
+                .evaluations
+                .with_label_values(&["queued"])
+                .inc();
+            // Fails only when the evaluator has stopped (shutdown); the state is kept anyway.
+            let _ = self.due.send(snapshot);
+        }
+        report
+    }
+
+    /// Log (durably, when a store is configured) and apply a batch of events posted over
+    /// HTTP. Nothing is applied if logging fails, so an error reply means "not accepted".
+    pub fn ingest_http(&self, items: &[&[u8]]) -> Result<BatchReport, StoreError> {
+        let batch = |first: Option<i64>| -> Vec<Item<'_>> {
+            items
+                .iter()
+                .enumerate()
+                .map(|(i, bytes)| Item {
+                    shard: HTTP_SHARD,
+                    offset: first.map(|f| f + i as i64),
+                    bytes,
+                })
+                .collect()
+        };
+        let Some(wal) = &self.http_wal else {
+            return Ok(self.apply(Source::Http, &batch(None)));
+        };
+        let mut wal = lock(wal);
+        let first = self
+            .lock_shards()
+            .shard_mut(HTTP_SHARD)
+            .next_offset()
+            .unwrap_or(0);
+        wal.append(first as u64, items)?;
+        Ok(self.apply(Source::Http, &batch(Some(first))))
+    }
+
+    /// Re-apply logged HTTP events that the stored HTTP shard does not hold yet.
+    fn replay_http_wal(&self) -> Result<(), StoreError> {
+        let Some(wal) = &self.http_wal else {
+            return Ok(());
+        };
+        let mut wal = lock(wal);
+        let (records, torn) = wal.read()?;
+        let from = self
+            .lock_shards()
+            .shard(HTTP_SHARD)
+            .and_then(|s| s.next_offset())
+            .unwrap_or(0);
+        let items: Vec<Item<'_>> = records
+            .iter()
+            .filter(|(seq, _)| *seq as i64 >= from)
+            .map(|(seq, bytes)| Item {
+                shard: HTTP_SHARD,
+                offset: Some(*seq as i64),
+                bytes,
+            })
+            .collect();
+        if !items.is_empty() {
+            self.apply(Source::Http, &items);
+            tracing::info!(
+                events = items.len(),
+                "replayed events posted over HTTP from the write-ahead log"
+            );
+        }
+        if torn {
+            tracing::warn!("the HTTP write-ahead log ended in a partial record (a crash mid-write); it was cut off — that request had not been answered");
+        }
+        wal.truncate_before(from.max(0) as u64)?;
+        Ok(())
+    }
+
+    /// Whether any partition is being restored.
+    pub fn is_restoring(&self) -> bool {
+        self.restoring.load(Ordering::SeqCst) > 0
+    }
+
+    /// Mark `n` partitions as restoring (positive) or done (negative).
+    pub fn add_restoring(&self, n: isize) {
+        if n >= 0 {
+            self.restoring.fetch_add(n as usize, Ordering::SeqCst);
+        } else {
+            self.restoring.fetch_sub(n.unsigned_abs(), Ordering::SeqCst);
+        }
+        self.metrics
+            .restoring
+            .set(self.restoring.load(Ordering::SeqCst) as i64);
+    }
+
+    /// `None` without Kafka; else whether the brokers answered the last probe.
+    pub fn kafka_reachable(&self) -> Option<bool> {
+        self.kafka_reachable
+            .as_ref()
+            .map(|b| b.load(Ordering::Relaxed))
+    }
+
+    /// Record the result of a broker probe.
+    pub fn set_kafka_reachable(&self, reachable: bool) {
+        if let Some(b) = &self.kafka_reachable {
+            b.store(reachable, Ordering::Relaxed);
+            self.metrics.kafka_reachable.set(i64::from(reachable));
+        }
+    }
+
+    /// Write every changed shard accepted by `which` to the store. Images are taken under the
+    /// lock (clearing the dirty mark), files written outside it; a failed write marks the
+    /// shard dirty again so the next round retries. Returns whether all writes succeeded.
+    pub fn save_dirty(&self, which: impl Fn(&str) -> bool) -> bool {
+        let Some(store) = &self.store else {
+            return true;
+        };
+        // One save at a time: two overlapping saves of a shard could store the older image
+        // last, after the newer one had already trimmed the HTTP write-ahead log.
+        let _one_at_a_time = lock(&self.save_lock);
+        let images: Vec<(String, ShardImage)> = {
+            let mut shards = self.lock_shards();
+            shards
+                .ids()
+                .into_iter()
+                .filter(|id| which(id))
+                .filter_map(|id| {
+                    let image = shards.shard_mut(&id).take_unsaved()?;
+                    Some((id, image))
+                })
+                .collect()
+        };
+        let mut all_ok = true;
+        for (id, image) in images {
+            match store.save(&id, &image) {
+                Ok(()) => {
+                    self.metrics.state_saves.with_label_values(&["ok"]).inc();
+                    if let (Some(wal), true) = (&self.http_wal, id == HTTP_SHARD) {
+                        let from = image.next_offset.unwrap_or(0).max(0) as u64;
+                        if let Err(e) = lock(wal).truncate_before(from) {
+                            tracing::warn!(error = %e, "cannot trim the HTTP write-ahead log; it keeps growing until the next save");
+                        }
+                    }
+                }
+                Err(e) => {
+                    all_ok = false;
+                    tracing::error!(shard = %id, error = %e, "cannot save state; will retry");
+                    self.metrics.state_saves.with_label_values(&["error"]).inc();
+                    self.lock_shards().shard_mut(&id).mark_unsaved();
+                }
+            }
+        }
+        all_ok
+    }
+
+    /// Store the HTTP shard if it changed; whether that succeeded.
+    pub fn save_http_shard(&self) -> bool {
+        self.save_dirty(|id| id == HTTP_SHARD)
+    }
+
+    /// Read shard `id` from the store (if stored), reporting experiments that no longer fit.
+    pub fn load_shard(&self, id: &str) -> Result<Option<Shard>, StoreError> {
+        let Some(store) = &self.store else {
+            return Ok(None);
+        };
+        let defs = self.lock_shards().defs().to_vec();
+        let Some(loaded) = store.load(id, &defs)? else {
+            return Ok(None);
+        };
+        for m in &loaded.mismatches {
+            tracing::error!(shard = %id, "{m}; that experiment starts empty in this shard");
+            self.metrics.restore_mismatches.inc();
+        }
+        Ok(Some(loaded.shard))
+    }
+
+    /// Keep the unreadable stored file of shard `id` aside for inspection, so the next save
+    /// does not overwrite it.
+    pub fn set_aside_damaged(&self, id: &str) {
+        if let Some(store) = &self.store {
+            let path = store.path(id);
+            let _ = std::fs::rename(&path, path.with_extension("state.damaged"));
+        }
+    }
+
+    /// The shards built from stored image `image` over the current definitions, reporting
+    /// experiments that no longer fit.
+    pub fn shard_from_image(&self, id: &str, image: ShardImage) -> Shard {
+        let defs = self.lock_shards().defs().to_vec();
+        let (shard, mismatches) = Shard::from_image(&defs, image);
+        for m in &mismatches {
+            tracing::error!(
+                shard = id,
+                "{m}; that experiment starts empty in this shard"
+            );
+            self.metrics.restore_mismatches.inc();
+        }
+        shard
+    }
+
+    /// Refresh the per-experiment gauges from the current state and encode every metric in
+    /// the Prometheus text format.
+    pub fn scrape(&self) -> String {
+        let snapshots = self.lock_shards().snapshots();
+        let summaries: Vec<Arc<ExperimentSummary>> =
+            snapshots.into_iter().map(|s| self.summary(s)).collect();
+        let _scrape = lock(&self.metrics.scrape);
+        self.metrics.set_experiment_gauges(&summaries);
+        self.metrics.encode()
+    }
+
+    /// The final saves at shutdown: the HTTP shard and the history. Whether the shard saved.
+    pub fn save_at_shutdown(&self) -> bool {
+        let saved = self.save_http_shard();
+        self.recorder.save();
+        saved
+    }
+}
