@@ -220,7 +220,12 @@ pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, St
     } else {
         Vec::new()
     };
-    let outer = OuterCache::new(k);
+    let drop = if opts.lift_interval && lo_q < 1e-6 {
+        RATIO_DROP_DEEP
+    } else {
+        RATIO_DROP
+    };
+    let outer = OuterCache::new(k, drop);
     let mut out = Vec::with_capacity(k);
     for j in 0..k {
         let kernel = grid.arms[j].kernel;
@@ -484,7 +489,11 @@ const RATIO_EFOLDS: f64 = 16.0;
 const RATIO_MAX_WIDTH: f64 = 2.0;
 /// Ratio-rule nodes more than this far below the outer arm's peak log density are dropped:
 /// e^-36 ≈ 2e-16, and the ratio probabilities are needed to absolute accuracy only.
-const RATIO_DROP: f64 = 46.0;
+const RATIO_DROP: f64 = 36.0;
+/// The same for lift intervals whose tails are below 1e-6 (levels above 1 − 2e-6): a lift end
+/// at level 1 − 1e-10 needs the ratio CDF at 5e-11 to ~1e-18, and dropping below e^-36 cost
+/// 1.5e-9 in the lift there (tests/reference/cases.json, "extreme_level").
+const RATIO_DROP_DEEP: f64 = 46.0;
 
 /// Beyond this many panels an arm's own ratio rule gives way to its shared-grid nodes.
 const MAX_RATIO_PANELS: usize = 256;
@@ -518,6 +527,8 @@ struct OuterNodes {
 /// Outer node sets per arm, built on first use and shared by every variant that needs them
 /// (the control is the outer arm of several ratios).
 struct OuterCache {
+    /// How far below the peak nodes are kept (`RATIO_DROP` or `RATIO_DROP_DEEP`).
+    drop: f64,
     /// Each arm's own Gauss–Legendre rule (the usual case).
     gauss: Vec<OnceCell<OuterNodes>>,
     /// Each arm's nodes on the shared Clenshaw–Curtis grid (fallback near the x = 1 kink).
@@ -525,8 +536,9 @@ struct OuterCache {
 }
 
 impl OuterCache {
-    fn new(k: usize) -> OuterCache {
+    fn new(k: usize, drop: f64) -> OuterCache {
         OuterCache {
+            drop,
             gauss: (0..k).map(|_| OnceCell::new()).collect(),
             shared: (0..k).map(|_| OnceCell::new()).collect(),
         }
@@ -569,7 +581,7 @@ fn shared_nodes(grid: &Grid, j: usize, beta: bool) -> OuterNodes {
 /// built for CDFs to ~1e-16 *relative* in the tails (expected losses need that) and for the
 /// spread of a maximum of k arms; a probability needs neither, and Gauss–Legendre is exact to
 /// degree 2n − 1 instead of n, so this rule needs about a quarter of the shared grid's nodes.
-fn gauss_nodes(grid: &Grid, j: usize, beta: bool) -> OuterNodes {
+fn gauss_nodes(grid: &Grid, j: usize, beta: bool, drop: f64) -> OuterNodes {
     let arm = &grid.arms[j];
     let kernel = arm.kernel;
     let (lo, hi) = arm.window;
@@ -617,7 +629,7 @@ fn gauss_nodes(grid: &Grid, j: usize, beta: bool) -> OuterNodes {
         for i in 0..GL_N {
             let u = mid + half * gl.x[i];
             let ld = kernel.log_density(u);
-            if ld < peak - RATIO_DROP {
+            if ld < peak - drop {
                 continue;
             }
             let wg = half * gl.w[i] * ld.exp();
@@ -669,7 +681,7 @@ impl<'a> Ratio<'a> {
     }
 
     fn gauss(&self, j: usize) -> &'a OuterNodes {
-        self.cache.gauss[j].get_or_init(|| gauss_nodes(self.grid, j, self.beta))
+        self.cache.gauss[j].get_or_init(|| gauss_nodes(self.grid, j, self.beta, self.cache.drop))
     }
 
     fn shared(&self, j: usize) -> &'a OuterNodes {
