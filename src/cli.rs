@@ -373,7 +373,13 @@ fn compare(file: Option<PathBuf>, format: CompareFormat) -> anyhow::Result<()> {
         CompareFormat::Json => crate::compare::Format::Json,
         CompareFormat::Table => crate::compare::Format::Table,
     };
-    let output = crate::compare::run(&input, format).map_err(|e| UsageError(e.to_string()))?;
+    let output = crate::compare::run(&input, format).map_err(|e| -> anyhow::Error {
+        if e.is_input_error() {
+            UsageError(e.to_string()).into()
+        } else {
+            e.into()
+        }
+    })?;
     print!("{output}");
     if !output.ends_with('\n') {
         println!();

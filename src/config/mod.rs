@@ -1179,9 +1179,17 @@ impl Ctx<'_> {
         kind: MetricKind,
     ) -> Result<Prior, ConfigError> {
         let r = p.get_ref();
-        let positive = |x: Option<f64>, field: &str| -> Result<f64, ConfigError> {
+        // The statistics core answers every posterior whose parameters lie in these ranges
+        // (docs/methods.md, "Accepted ranges"); a prior outside them is refused here, by
+        // name, rather than failing at every evaluation of the experiment.
+        let in_range = |x: Option<f64>, field: &str, (min, max): (f64, f64)| {
             match x {
-                Some(v) if v.is_finite() && v > 0.0 => Ok(v),
+                Some(v) if v.is_finite() && v > 0.0 && (min..=max).contains(&v) => Ok(v),
+                Some(v) if v.is_finite() && v > 0.0 => Err(self.err(
+                    p.span(),
+                    format!("{key}.{field}"),
+                    format!("must lie in [{min:e}, {max:e}] (the range the statistics are verified on), got {v:e}"),
+                )),
                 Some(v) => Err(self.err(
                     p.span(),
                     format!("{key}.{field}"),
@@ -1190,6 +1198,9 @@ impl Ctx<'_> {
                 None => Err(self.err(p.span(), format!("{key}.{field}"), "is required")),
             }
         };
+        let shape_range = (crate::stats::MIN_SHAPE, crate::stats::MAX_SHAPE);
+        let rate_range = (crate::stats::MIN_RATE, crate::stats::MAX_RATE);
+        let positive = |x: Option<f64>, field: &str| in_range(x, field, shape_range);
         match kind {
             MetricKind::Conversion => {
                 if r.shape.is_some() || r.rate.is_some() {
@@ -1214,7 +1225,7 @@ impl Ctx<'_> {
                 }
                 Ok(Prior::Gamma {
                     shape: positive(r.shape, "shape")?,
-                    rate: positive(r.rate, "rate")?,
+                    rate: in_range(r.rate, "rate", rate_range)?,
                 })
             }
         }
