@@ -46,6 +46,15 @@ impl SummaryCache {
         summary
     }
 
+    /// The cached summary of exactly `snapshot`'s totals, if there is one; never computes
+    /// and never serves an older one. For background work (the fleet's verdicts), which
+    /// must not make a stale summary look young to the readers.
+    pub fn exact(&self, snapshot: &ExperimentSnapshot) -> Option<Arc<ExperimentSummary>> {
+        let entries = self.lock();
+        let e = entries.get(&snapshot.def.id)?;
+        (e.summary.snapshot == *snapshot).then(|| Arc::clone(&e.summary))
+    }
+
     fn lookup(&self, id: &str, snapshot: &ExperimentSnapshot) -> Option<Arc<ExperimentSummary>> {
         let entries = self.lock();
         let e = entries.get(id)?;

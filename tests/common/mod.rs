@@ -2,6 +2,7 @@
 //! real signals, and compute ground truth for generated events independently of the engine.
 #![allow(dead_code)]
 
+pub mod browser;
 pub mod kafka;
 
 use std::collections::{HashMap, HashSet};
