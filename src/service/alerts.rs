@@ -30,8 +30,9 @@ pub enum AlertFileError {
         /// What failed.
         source: std::io::Error,
     },
-    /// The file is not the JSON this version writes.
-    #[error("{path}: {source}")]
+    /// The file is not the JSON this version writes (damaged while posteriord was stopped:
+    /// it is only ever replaced whole).
+    #[error("{path}: {source}. Fix: restore it from a backup; or move it aside (`mv {path} {path}.damaged`) to start with no alerts and no pending deliveries (alerts that still hold open again under new ids)", path = path.display())]
     Unreadable {
         /// The file.
         path: PathBuf,
