@@ -98,8 +98,8 @@ fn check_config(toml: &str, what: &str) {
 
 /// Metric names `posteriord_*` that src/metrics.rs registers.
 fn code_metric_names() -> BTreeSet<String> {
-    let names = metric_names_in(&read("src/metrics.rs"));
-    assert!(names.len() >= 15, "found only {names:?} in src/metrics.rs");
+    let names = metric_names_in(&read("src/service/metrics.rs"));
+    assert!(names.len() >= 15, "found only {names:?} in src/service/metrics.rs");
     names
 }
 
@@ -333,6 +333,7 @@ fn prometheus_rules_and_scrape_config_pass_promtool() {
         "PosteriordConsumerLagGrowing",
         "PosteriordDeadLettersRising",
         "PosteriordStateSavesFailing",
+        "PosteriordStateNotDurable",
         "PosteriordRestoreMismatch",
     ] {
         assert!(rules.contains(&format!("alert: {alert}")), "no {alert}");
