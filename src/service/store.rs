@@ -949,11 +949,23 @@ pub fn decode(bytes: &[u8]) -> Result<ShardImage, String> {
 mod tests {
     use super::*;
     use crate::event::{Event, EventBody};
-    use crate::simulate::demo_experiments;
     use std::borrow::Cow;
 
+    /// The experiment these tests count, defined as over the API.
+    fn checkout_copy() -> ExperimentDef {
+        crate::config::experiment_from_json(
+            "crumb-checkout-copy",
+            &serde_json::json!({
+                "variants": [{"name": "control"}, {"name": "short-copy"}],
+                "metric": [{"name": "purchase", "kind": "conversion"},
+                           {"name": "payment-error", "kind": "defect_rate", "exposure": "reported"}]
+            }),
+        )
+        .unwrap()
+    }
+
     fn defs() -> Vec<Arc<ExperimentDef>> {
-        demo_experiments().into_iter().map(Arc::new).collect()
+        vec![Arc::new(checkout_copy())]
     }
 
     fn filled_shard() -> Shard {
@@ -1142,7 +1154,7 @@ mod tests {
     #[test]
     fn a_changed_definition_is_reported_not_forced() {
         let image = filled_shard().image();
-        let mut changed = demo_experiments();
+        let mut changed = vec![checkout_copy()];
         changed[0].variants.swap(0, 1);
         let defs: Vec<_> = changed.into_iter().map(Arc::new).collect();
         let (shard, mismatches) = Shard::from_image(&defs, image);
