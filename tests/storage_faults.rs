@@ -483,3 +483,76 @@ fn a_sigkill_at_each_step_of_a_write_loses_nothing_acknowledged_and_applies_noth
         eprintln!("{stage}: exact after the crash and after a further restart");
     }
 }
+
+#[test]
+fn a_full_disk_during_kafka_consumption_keeps_the_offsets_and_the_state_together() {
+    if !is_root() {
+        eprintln!("SKIPPED: mounting a tmpfs needs root (CI runs as root)");
+        return;
+    }
+    let brokers = common::kafka::brokers();
+    let topic = common::kafka::unique("storage-events");
+    let group = common::kafka::unique("storage-group");
+    let fs = Tmpfs::mount("2m");
+    let state = fs.path().join("state");
+    let scratch = tempfile::tempdir().unwrap();
+    let w = workload(2205, 9_000);
+    let cfg = format!(
+        r#"[http]
+addr = "127.0.0.1:0"
+[store]
+snapshot_interval_ms = 200
+[kafka]
+brokers = "{brokers}"
+topics = ["{topic}"]
+group = "{group}"
+changelog_interval_ms = 300
+[kafka.properties]
+"session.timeout.ms" = 6000
+"heartbeat.interval.ms" = 1000
+{TEST_EXPERIMENTS}"#
+    );
+    let produce = |lines: &[String]| {
+        assert_eq!(
+            common::kafka::produce(&brokers, &topic, 3, lines, scratch.path()),
+            lines.len()
+        );
+    };
+    let counted = |service: &Service, n: usize| {
+        wait_for(Duration::from_secs(120), "the events to be counted", || {
+            (common::total_seen(service) == n as u64).then_some(())
+        });
+    };
+    produce(&w.lines[..3_000]);
+    let mut service = Service::start_in(&cfg, Some(&state), &[]);
+    counted(&service, 3_000);
+    fs.fill();
+    // Consumed and applied in memory, but neither these events nor their offsets can be
+    // saved: readiness says so, and a restart must read them again (once).
+    produce(&w.lines[3_000..6_000]);
+    counted(&service, 6_000);
+    wait_not_durable(&service);
+    let (_, store) = store_status(&service);
+    assert!(
+        store["failing"]
+            .to_string()
+            .contains("state of shard kafka/"),
+        "{store}"
+    );
+    common::assert_exact(&service, &w.expected_of(|i| i < 6_000));
+    kill(&mut service);
+    // A restart on the still-full disk restores each partition from its file or the
+    // changelog and re-reads from the stored offset: nothing counted twice.
+    let mut service = Service::start_in(&cfg, Some(&state), &[]);
+    counted(&service, 6_000);
+    common::assert_exact(&service, &w.expected_of(|i| i < 6_000));
+    fs.unfill();
+    wait_durable(&service);
+    produce(&w.lines[6_000..]);
+    counted(&service, 9_000);
+    kill(&mut service);
+    let service = Service::start_in(&cfg, Some(&state), &[]);
+    counted(&service, 9_000);
+    std::thread::sleep(Duration::from_secs(1));
+    common::assert_exact(&service, &w.expected);
+}
