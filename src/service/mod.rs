@@ -66,6 +66,9 @@ pub enum OpenError {
 /// What [`StoreHealth`] calls the HTTP write-ahead log.
 const HTTP_LOG: &str = "HTTP write-ahead log";
 
+/// What [`StoreHealth`] calls the periodic write probe of the state directory.
+const SPACE_PROBE: &str = "state directory (write probe)";
+
 /// Sends an instance's catalog (its id, the catalog's JSON) to the other instances.
 pub type CatalogPublisher = Box<dyn Fn(&str, &[u8]) + Send + Sync>;
 
@@ -420,9 +423,10 @@ impl Service {
         self.store.as_ref().and_then(|s| store::free_bytes(s.dir()))
     }
 
-    /// Retry what failed to be written (alerts, history) and probe whether the HTTP log can
-    /// take the request that was last refused; called on the snapshot cadence. Shards are
-    /// retried by their own savers.
+    /// Retry what failed to be written (alerts, history) and probe the state directory with
+    /// a small file — or, while requests are being refused, a file the size of the last
+    /// refused one — so readiness follows the store even when nothing else writes; called on
+    /// the snapshot cadence. Shards are retried by their own savers.
     pub fn retry_store(&self) {
         let Some(store) = &self.store else { return };
         if self.health.is_failing(alerts::ALERTS_FILE) {
@@ -431,20 +435,23 @@ impl Service {
         if self.health.is_failing(recorder::HISTORY_FILES) {
             self.recorder.save();
         }
-        for what in [HTTP_LOG, catalog::CATALOG_FILE] {
-            if !self.health.is_failing(what) {
-                continue;
-            }
-            let size = self.refused_bytes.load(Ordering::Relaxed).clamp(1, 1 << 20);
-            let probe = store.dir().join(".posteriord-space-probe");
-            let result = store::write_atomic(&probe, &vec![0u8; size as usize]);
-            let _ = std::fs::remove_file(&probe);
-            if result.is_ok() {
-                tracing::info!(probe_bytes = size, "the state directory takes writes again");
-                self.health.succeeded(HTTP_LOG);
-                self.health.succeeded(catalog::CATALOG_FILE);
-            }
-            break;
+        let refusing =
+            self.health.is_failing(HTTP_LOG) || self.health.is_failing(catalog::CATALOG_FILE);
+        let size = if refusing {
+            self.refused_bytes
+                .load(Ordering::Relaxed)
+                .clamp(4096, 1 << 20)
+        } else {
+            4096
+        };
+        let probe = store.dir().join(".posteriord-space-probe");
+        let result = store::write_atomic(&probe, &vec![0u8; size as usize]);
+        let _ = std::fs::remove_file(&probe);
+        self.health.note(SPACE_PROBE, &result);
+        if result.is_ok() && refusing {
+            tracing::info!(probe_bytes = size, "the state directory takes writes again");
+            self.health.succeeded(HTTP_LOG);
+            self.health.succeeded(catalog::CATALOG_FILE);
         }
     }
 
