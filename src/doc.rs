@@ -4,6 +4,8 @@
 use serde::Serialize;
 use serde_json::{json, Value};
 
+use crate::decide::evaluation::Reading;
+use crate::decide::Finding;
 use crate::decode::Position;
 use crate::event::{Outcome, Reject};
 use crate::experiment::{ExperimentDef, ExposureBasis, MetricKind, Prior};
@@ -145,8 +147,10 @@ fn arm_quantities(a: &ArmSummary) -> serde_json::Map<String, Value> {
     m
 }
 
-/// `GET /v1/experiments/{id}`.
-pub fn experiment_document(summary: &ExperimentSummary) -> Value {
+/// `GET /v1/experiments/{id}`: the reading of one experiment (its summary and the rules that
+/// hold on it).
+pub fn experiment_document(reading: &Reading) -> Value {
+    let summary: &ExperimentSummary = &reading.summary;
     let snap = &summary.snapshot;
     let def: &ExperimentDef = &snap.def;
     let metrics: Vec<Value> = def
@@ -205,16 +209,15 @@ pub fn experiment_document(summary: &ExperimentSummary) -> Value {
         "sample_ratio": sample_ratio(&summary.sample_ratio, summary.snapshot.def.rules.srm_p),
         "last_event_time": snap.last_event_time.and_then(time_text),
         "metrics": metrics,
-        "decisions": decisions(summary),
+        "decisions": decisions(def, &reading.findings),
         "caution": CAUTION,
     })
 }
 
 /// The rules that hold now, with the numbers they compared.
-fn decisions(summary: &ExperimentSummary) -> Value {
-    let def = &summary.snapshot.def;
-    let found: Vec<Value> = crate::decide::evaluate(summary)
-        .into_iter()
+fn decisions(def: &ExperimentDef, findings: &[Finding]) -> Value {
+    let found: Vec<Value> = findings
+        .iter()
         .map(|f| {
             json!({
                 "rule": f.rule.as_str(),

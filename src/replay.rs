@@ -11,13 +11,11 @@ use serde_json::{json, Value};
 
 use crate::config::Config;
 use crate::decide::alerts::{AlertBook, AlertChange};
-use crate::decide::evaluation::evaluate_snapshot;
-use crate::decide::Finding;
+use crate::decide::evaluation::{evaluate_snapshot, Reading};
 use crate::event::Outcome;
 use crate::service::ingest::{apply_batch_due, Item};
 use crate::service::metrics::{Metrics, Source};
 use crate::state::shards::Shards;
-use crate::summary::ExperimentSummary;
 
 /// The shard replayed events are applied to.
 pub const REPLAY_SHARD: &str = "replay";
@@ -112,8 +110,8 @@ pub struct ReplayReport {
     pub decisions: Vec<Decision>,
     /// The alert book at the end.
     pub book: AlertBook,
-    /// Each experiment's summary and the rules that hold at the end of the input.
-    pub experiments: Vec<(ExperimentSummary, Vec<Finding>)>,
+    /// Each experiment's reading (summary and the rules that hold) at the end of the input.
+    pub experiments: Vec<Reading>,
 }
 
 /// Observes progress, in bytes read.
@@ -256,11 +254,7 @@ pub fn replay(
     report.experiments = shards
         .snapshots()
         .into_iter()
-        .map(|snap| {
-            let summary = crate::summary::summarize(snap, crate::summary::DEFAULT_LEVEL);
-            let findings = crate::decide::evaluate(&summary);
-            (summary, findings)
-        })
+        .map(|snap| Reading::of(snap, crate::summary::DEFAULT_LEVEL))
         .collect();
     Ok(report)
 }
@@ -298,7 +292,7 @@ pub fn to_json(report: &ReplayReport) -> Value {
         "evaluations": report.evaluations,
         "decisions": report.decisions.iter().map(decision_doc).collect::<Vec<_>>(),
         "alerts": report.book.alerts().iter().map(crate::doc::alert).collect::<Vec<_>>(),
-        "experiments": report.experiments.iter().map(|(s, _)| crate::doc::experiment_document(s)).collect::<Vec<_>>(),
+        "experiments": report.experiments.iter().map(crate::doc::experiment_document).collect::<Vec<_>>(),
         "caution": crate::doc::CAUTION,
     })
 }
@@ -366,7 +360,7 @@ pub fn to_text(report: &ReplayReport) -> String {
         );
     }
     let _ = writeln!(out, "\nfinal state:");
-    for (summary, findings) in &report.experiments {
+    for Reading { summary, findings } in &report.experiments {
         let snap = &summary.snapshot;
         let _ = writeln!(
             out,

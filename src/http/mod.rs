@@ -291,7 +291,7 @@ async fn get_experiment(
     };
     let generation = snapshot.def.generation;
     match blocking(move || {
-        let mut d = doc::experiment_document(&service.summary(snapshot));
+        let mut d = doc::experiment_document(&service.reading(snapshot));
         d["source"] = json!(source);
         d["generation"] = json!(generation);
         d

@@ -27,6 +27,7 @@ use std::time::Duration;
 
 use crate::config::Config;
 use crate::decide::alerts::{Alert, AlertBook};
+use crate::decide::evaluation::Reading;
 use crate::event::Micros;
 use crate::state::cadence::Cadence;
 use crate::state::shards::{Shard, ShardImage, Shards, HTTP_SHARD};
@@ -223,9 +224,10 @@ impl Service {
         &self.recorder
     }
 
-    /// The summary of `snapshot` for a reader, shared with other readers when recent.
-    pub fn summary(&self, snapshot: ExperimentSnapshot) -> Arc<ExperimentSummary> {
-        self.readings.summary(snapshot)
+    /// The reading (summary and findings) of `snapshot` for a reader, shared with other
+    /// readers when recent.
+    pub fn reading(&self, snapshot: ExperimentSnapshot) -> Arc<Reading> {
+        self.readings.reading(snapshot)
     }
 
     /// Read the alert book under its lock.
@@ -474,8 +476,10 @@ impl Service {
     /// the Prometheus text format.
     pub fn scrape(&self) -> String {
         let snapshots = self.lock_shards().snapshots();
-        let summaries: Vec<Arc<ExperimentSummary>> =
-            snapshots.into_iter().map(|s| self.summary(s)).collect();
+        let summaries: Vec<Arc<ExperimentSummary>> = snapshots
+            .into_iter()
+            .map(|s| Arc::clone(&self.reading(s).summary))
+            .collect();
         let _scrape = lock(&self.metrics.scrape);
         self.metrics.set_experiment_gauges(&summaries);
         self.metrics.encode()

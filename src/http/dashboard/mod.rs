@@ -75,8 +75,8 @@ async fn list(State(service): State<Arc<Service>>, Query(part): Query<Part>) -> 
         let entries: Vec<page::ListEntry> = snapshots
             .into_iter()
             .map(|s| {
-                let summary = service.summary(s);
-                let findings = crate::decide::evaluate(&summary);
+                let reading = service.reading(s);
+                let (summary, findings) = (Arc::clone(&reading.summary), reading.findings.clone());
                 let open_alerts = open
                     .iter()
                     .filter(|e| **e == summary.snapshot.def.id)
@@ -131,8 +131,8 @@ async fn experiment(
     });
     let now = crate::service::now_micros();
     let rendered = super::blocking(move || {
-        let summary = service.summary(snapshot);
-        let findings = crate::decide::evaluate(&summary);
+        let reading = service.reading(snapshot);
+        let (summary, findings) = (Arc::clone(&reading.summary), reading.findings.clone());
         page::experiment_main(&page::ExperimentView {
             summary,
             findings,
