@@ -38,7 +38,7 @@ use crate::event::Reject;
 use crate::service::ingest::Item;
 use crate::service::metrics::Source;
 use crate::service::Service;
-use crate::state::shards::{kafka_shard, Shard};
+use crate::state::shards::{Shard, ShardId};
 
 /// Most messages applied under one lock.
 const MAX_BATCH: usize = 2_000;
@@ -61,29 +61,24 @@ struct PartitionContext {
     changelog: Arc<OnceLock<Changelog>>,
 }
 
-/// The input partition number of a Kafka shard id (`kafka/<topic>/<partition>`).
-fn shard_partition(id: &str) -> Option<i32> {
-    id.rsplit('/').next()?.parse().ok()
-}
-
 /// Publish every Kafka shard whose position moved since its last publication; `only` limits
 /// it to some shards. Returns whether all publications succeeded.
-fn publish_changed(service: &Service, changelog: &Changelog, only: Option<&[String]>) -> bool {
+fn publish_changed(service: &Service, changelog: &Changelog, only: Option<&[ShardId]>) -> bool {
     // During an outage a publication would only wait out its timeout; the local file keeps
     // the exact position, and the next round publishes.
     if service.kafka_reachable() != Some(true) {
         return false;
     }
-    let images: Vec<(String, crate::state::shards::ShardImage)> = {
+    let images: Vec<(ShardId, crate::state::shards::ShardImage)> = {
         let shards = service.lock_shards();
         shards
             .ids()
             .into_iter()
-            .filter(|id| id.starts_with("kafka/"))
+            .filter(ShardId::is_kafka)
             .filter(|id| only.is_none_or(|o| o.contains(id)))
             .filter_map(|id| {
-                let shard = shards.shard(&id)?;
-                if changelog.is_current(&id, shard.next_offset()) {
+                let shard = shards.shard(id.as_str())?;
+                if changelog.is_current(id.as_str(), shard.next_offset()) {
                     return None;
                 }
                 Some((id, shard.image()))
@@ -92,7 +87,7 @@ fn publish_changed(service: &Service, changelog: &Changelog, only: Option<&[Stri
     };
     let mut ok = true;
     for (id, image) in images {
-        let Some(partition) = shard_partition(&id) else {
+        let Some(partition) = id.kafka_partition() else {
             continue;
         };
         match changelog.publish(&id, partition, &image) {
@@ -123,7 +118,7 @@ impl ClientContext for PartitionContext {
                 if *partition < 0 {
                     continue; // librdkafka's internal "unassigned" partition
                 }
-                let Some(shard) = shards.shard(&kafka_shard(topic, *partition)) else {
+                let Some(shard) = shards.shard(&ShardId::kafka(topic, *partition)) else {
                     continue;
                 };
                 let next = shard.next_offset().unwrap_or(0);
@@ -223,7 +218,7 @@ impl PartitionContext {
             .collect();
         self.service.add_restoring(partitions.len() as isize);
         for (topic, partition) in &partitions {
-            let id = kafka_shard(topic, *partition);
+            let id = ShardId::kafka(topic, *partition);
             let started = Instant::now();
             let local = match self.service.load_shard(&id) {
                 Ok(local) => local,
@@ -266,10 +261,10 @@ impl PartitionContext {
 
     /// Save and drop the state of revoked partitions: the next owner restores it.
     fn release(&self, tpl: &TopicPartitionList) {
-        let ids: Vec<String> = tpl
+        let ids: Vec<ShardId> = tpl
             .elements()
             .iter()
-            .map(|e| kafka_shard(e.topic(), e.partition()))
+            .map(|e| ShardId::kafka(e.topic(), e.partition()))
             .collect();
         if ids.is_empty() {
             return;
@@ -440,7 +435,7 @@ pub fn start(
 }
 
 /// Shard id of each (topic, partition) seen by the consumer.
-type ShardIds = HashMap<String, HashMap<i32, String>>;
+type ShardIds = HashMap<String, HashMap<i32, ShardId>>;
 
 struct LoopConfig {
     dead_letter_topic: Option<String>,
@@ -550,7 +545,7 @@ fn consume_loop(
         }
         if last_save.elapsed() >= cfg.snapshot_interval {
             if flush_dead_letters(dead_letters, service) {
-                service.save_dirty(|id| id.starts_with("kafka/"));
+                service.save_dirty(ShardId::is_kafka);
             }
             last_save = Instant::now();
         }
@@ -566,7 +561,7 @@ fn consume_loop(
         tracing::error!(
             "dead letters undelivered at shutdown; their events will be read again after restart"
         );
-    } else if !service.save_dirty(|id| id.starts_with("kafka/")) {
+    } else if !service.save_dirty(ShardId::is_kafka) {
         tracing::error!(
             "state could not be saved at shutdown; events since the last save will be read again"
         );
@@ -592,7 +587,7 @@ fn apply_messages(
             shard_ids
                 .entry(m.topic().to_string())
                 .or_default()
-                .insert(m.partition(), kafka_shard(m.topic(), m.partition()));
+                .insert(m.partition(), ShardId::kafka(m.topic(), m.partition()));
         }
     }
     let items: Vec<Item<'_>> = batch
@@ -644,7 +639,7 @@ fn commit_positions(consumer: &BaseConsumer<PartitionContext>, service: &Service
     let mut tpl = TopicPartitionList::new();
     for e in assigned.elements() {
         if let Some(next) = shards
-            .shard(&kafka_shard(e.topic(), e.partition()))
+            .shard(&ShardId::kafka(e.topic(), e.partition()))
             .and_then(|s| s.next_offset())
         {
             let _ = tpl.add_partition_offset(e.topic(), e.partition(), Offset::Offset(next));

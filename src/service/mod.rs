@@ -30,7 +30,7 @@ use crate::decide::alerts::{Alert, AlertBook};
 use crate::decide::evaluation::Reading;
 use crate::event::Micros;
 use crate::state::cadence::Cadence;
-use crate::state::shards::{Shard, ShardImage, Shards, HTTP_SHARD};
+use crate::state::shards::{Shard, ShardId, ShardImage, Shards, HTTP_SHARD};
 use crate::state::ExperimentSnapshot;
 use crate::summary::ExperimentSummary;
 
@@ -181,7 +181,7 @@ impl Service {
         // Events posted over HTTP are kept in their own shard: stored on the snapshot
         // cadence, logged ahead in between.
         if let Some(shard) = service.load_shard(HTTP_SHARD).map_err(OpenError::Store)? {
-            service.lock_shards().insert(HTTP_SHARD.to_string(), shard);
+            service.lock_shards().insert(ShardId::http(), shard);
             tracing::info!("restored the state of events posted over HTTP");
         }
         service.replay_http_wal().map_err(OpenError::Wal)?;
@@ -385,31 +385,31 @@ impl Service {
     /// Write every changed shard accepted by `which` to the store. Images are taken under the
     /// lock (clearing the dirty mark), files written outside it; a failed write marks the
     /// shard dirty again so the next round retries. Returns whether all writes succeeded.
-    pub fn save_dirty(&self, which: impl Fn(&str) -> bool) -> bool {
+    pub fn save_dirty(&self, which: impl Fn(&ShardId) -> bool) -> bool {
         let Some(store) = &self.store else {
             return true;
         };
         // One save at a time: two overlapping saves of a shard could store the older image
         // last, after the newer one had already trimmed the HTTP write-ahead log.
         let _one_at_a_time = lock(&self.save_lock);
-        let images: Vec<(String, ShardImage)> = {
+        let images: Vec<(ShardId, ShardImage)> = {
             let mut shards = self.lock_shards();
             shards
                 .ids()
                 .into_iter()
                 .filter(|id| which(id))
                 .filter_map(|id| {
-                    let image = shards.shard_mut(&id).take_unsaved()?;
+                    let image = shards.shard_mut(id.as_str()).take_unsaved()?;
                     Some((id, image))
                 })
                 .collect()
         };
         let mut all_ok = true;
         for (id, image) in images {
-            match store.save(&id, &image) {
+            match store.save(id.as_str(), &image) {
                 Ok(()) => {
                     self.metrics.state_saves.with_label_values(&["ok"]).inc();
-                    if let (Some(wal), true) = (&self.http_wal, id == HTTP_SHARD) {
+                    if let (Some(wal), true) = (&self.http_wal, id.is_http()) {
                         let from = image.next_offset.unwrap_or(0).max(0) as u64;
                         if let Err(e) = lock(wal).truncate_before(from) {
                             tracing::warn!(error = %e, "cannot trim the HTTP write-ahead log; it keeps growing until the next save");
@@ -420,7 +420,7 @@ impl Service {
                     all_ok = false;
                     tracing::error!(shard = %id, error = %e, "cannot save state; will retry");
                     self.metrics.state_saves.with_label_values(&["error"]).inc();
-                    self.lock_shards().shard_mut(&id).mark_unsaved();
+                    self.lock_shards().shard_mut(id.as_str()).mark_unsaved();
                 }
             }
         }
@@ -429,7 +429,7 @@ impl Service {
 
     /// Store the HTTP shard if it changed; whether that succeeded.
     pub fn save_http_shard(&self) -> bool {
-        self.save_dirty(|id| id == HTTP_SHARD)
+        self.save_dirty(ShardId::is_http)
     }
 
     /// Read shard `id` from the store (if stored), reporting experiments that no longer fit.
