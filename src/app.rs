@@ -67,6 +67,32 @@ async fn save_http_shard(service: Arc<Service>, shutdown: CancellationToken) {
     }
 }
 
+/// Pause between rounds of the fleet's verdicts: a verdict is then at most about this old,
+/// plus one round.
+const FLEET_REFRESH_EVERY: std::time::Duration = crate::service::readings::MAX_AGE;
+
+/// Refresh the fleet's verdicts (the states the lists and the overview read) every
+/// [`FLEET_REFRESH_EVERY`] until `shutdown`; the first round starts at once. One round at a
+/// time, on the blocking pool.
+async fn refresh_fleet(service: Arc<Service>, shutdown: CancellationToken) {
+    loop {
+        let s = Arc::clone(&service);
+        let round = tokio::task::spawn_blocking(move || s.refresh_fleet());
+        tokio::select! {
+            _ = shutdown.cancelled() => break,
+            done = round => {
+                if let Err(e) = done {
+                    tracing::error!(error = %e, "a fleet refresh round failed; trying again");
+                }
+            }
+        }
+        tokio::select! {
+            _ = shutdown.cancelled() => break,
+            _ = tokio::time::sleep(FLEET_REFRESH_EVERY) => {}
+        }
+    }
+}
+
 /// Run the service until `shutdown` is cancelled, then stop every task and wait for them.
 pub async fn run(
     config: Config,
@@ -100,6 +126,7 @@ pub async fn run(
         // Started here, before any source, so nothing queued for evaluation waits long.
         tracker.spawn_blocking(move || s.run_evaluator(|| token.is_cancelled()));
     }
+    tracker.spawn(refresh_fleet(Arc::clone(&service), shutdown.clone()));
     if service.is_stored() {
         tracker.spawn(save_http_shard(Arc::clone(&service), shutdown.clone()));
     }

@@ -29,8 +29,9 @@ pub struct Cli {
 pub enum Command {
     /// Serve simulated traffic for invented experiments (no Kafka needed).
     Demo {
-        /// Address of the HTTP API.
-        #[arg(long, default_value = config::DEFAULT_HTTP_ADDR)]
+        /// Address of the HTTP API; without --addr, `POSTERIORD_HTTP_ADDR` as for `serve`
+        /// (the container image sets it to 0.0.0.0:8080).
+        #[arg(long, env = "POSTERIORD_HTTP_ADDR", default_value = config::DEFAULT_HTTP_ADDR)]
         addr: SocketAddr,
         /// Stop after this many seconds (default: run until Ctrl-C or SIGTERM).
         #[arg(long)]
@@ -247,6 +248,9 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
         shutdown_grace: Duration::from_secs(config::DEFAULT_SHUTDOWN_GRACE_SECS),
         history_arm_points: config::DEFAULT_HISTORY_ARM_POINTS,
     };
+    // Refused before anything starts, as `serve` does in load_config.
+    crate::http::guard::check_exposure(&config.http, config.http.addr)
+        .map_err(|e| UsageError(e.to_string()))?;
     runtime()?.block_on(async move {
         let listener = app::bind(config.http.addr).await?;
         let bound = listener.local_addr()?;

@@ -7,6 +7,7 @@
 
 pub mod dashboard;
 pub mod define;
+pub mod fleet;
 pub mod guard;
 pub mod history;
 
@@ -51,7 +52,7 @@ pub fn router(
         // (the dashboard's pages, `/v1/experiments/{id}/history`) belong in this table too:
         // as GET routes they inherit `protect_reads`, the timeout and the JSON errors, and
         // tests/api.rs asks for each to be described in openapi.json.
-        .route("/v1/experiments", get(list_experiments))
+        .route("/v1/experiments", get(fleet::api::list_experiments))
         .route(
             "/v1/experiments/{id}",
             get(get_experiment)
@@ -59,7 +60,7 @@ pub fn router(
                 .layer(DefaultBodyLimit::max(define::MAX_DEFINITION_BYTES))
                 .delete(define::delete_experiment),
         )
-        .route("/v1/alerts", get(list_alerts))
+        .route("/v1/alerts", get(fleet::api::list_alerts))
         // Writes that are not definitions.
         .route("/v1/events", post(ingest))
         .route("/v1/alerts/{id}/ack", post(ack_alert))
@@ -193,44 +194,6 @@ async fn ingest(State(service): State<Arc<Service>>, body: Bytes) -> Response {
     }
 }
 
-/// Filters of `GET /v1/alerts`.
-#[derive(serde::Deserialize)]
-struct AlertFilter {
-    experiment: Option<String>,
-    state: Option<String>,
-}
-
-async fn list_alerts(
-    State(service): State<Arc<Service>>,
-    axum::extract::Query(filter): axum::extract::Query<AlertFilter>,
-) -> Response {
-    use crate::decide::alerts::AlertState;
-    if let Some(s) = &filter.state {
-        if AlertState::from_name(s).is_none() {
-            let names: Vec<&str> = AlertState::ALL.iter().map(|s| s.as_str()).collect();
-            return error(
-                StatusCode::BAD_REQUEST,
-                "bad_filter",
-                &format!("state must be one of {}", names.join(", ")),
-            );
-        }
-    }
-    let alerts: Vec<Value> = service.with_alerts(|book| {
-        book.alerts()
-            .iter()
-            .filter(|a| {
-                filter
-                    .experiment
-                    .as_ref()
-                    .is_none_or(|e| *e == a.key.experiment)
-            })
-            .filter(|a| filter.state.as_ref().is_none_or(|s| s == a.state.as_str()))
-            .map(doc::alert)
-            .collect()
-    });
-    Json(json!({ "alerts": alerts })).into_response()
-}
-
 async fn ack_alert(State(service): State<Arc<Service>>, Path(id): Path<String>) -> Response {
     // The alert file is written (fsync) under the desk's lock: keep it off the async threads.
     let key = id.clone();
@@ -243,29 +206,6 @@ async fn ack_alert(State(service): State<Arc<Service>>, Path(id): Path<String>) 
         ),
         Ok(Some(alert)) => Json(doc::alert(&alert)).into_response(),
     }
-}
-
-async fn list_experiments(
-    State(service): State<Arc<Service>>,
-    Query(q): Query<define::ArchiveQuery>,
-) -> Json<Value> {
-    if q.archived {
-        return Json(define::list_archived(&service));
-    }
-    let catalog = service.lock_catalog();
-    let snapshots = service.lock_shards().snapshots();
-    let entries: Vec<Value> = snapshots
-        .iter()
-        .map(|s| {
-            let source = if catalog.is_api(&s.def.id) {
-                "api"
-            } else {
-                "config"
-            };
-            define::entry(s, source)
-        })
-        .collect();
-    Json(json!({ "experiments": entries }))
 }
 
 async fn get_experiment(

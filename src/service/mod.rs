@@ -7,13 +7,15 @@
 //! - the experiments' state by input shard and the evaluation queue fed by ingest ([`ingest`]);
 //! - evaluation and the alert desk — book, outbox and file under one lock ([`evaluate`],
 //!   [`alerts`]);
-//! - cached readings for the readers ([`readings`]) and the history recorder ([`recorder`]);
+//! - cached readings for the readers ([`readings`]), where each experiment stands for the
+//!   fleet lists ([`fleet`]) and the history recorder ([`recorder`]);
 //! - the catalog of experiments defined at run time ([`catalog`]);
 //! - the store with its one atomic writer ([`store`]) and the metrics ([`metrics`]).
 
 pub mod alerts;
 pub mod catalog;
 mod evaluate;
+pub mod fleet;
 pub mod ingest;
 pub mod metrics;
 pub mod readings;
@@ -95,6 +97,8 @@ pub struct Service {
     recorder: Recorder,
     /// Summaries shared by the readers.
     readings: SummaryCache,
+    /// Where each experiment stands, refreshed in rounds for the fleet lists.
+    fleet: fleet::FleetIndex,
     /// Experiments defined over the API, and the archive. Lock order: catalog, then shards.
     catalog: Mutex<Catalog>,
     /// Serialises [`Service::save_dirty`] (taken before the shards' lock).
@@ -140,6 +144,7 @@ impl Service {
             desk: Mutex::new(AlertDesk::in_memory(&config.alerts)),
             recorder: Recorder::in_memory(config.history_arm_points),
             readings: SummaryCache::default(),
+            fleet: fleet::FleetIndex::default(),
             catalog: Mutex::new(Catalog::in_memory(
                 config.experiments.iter().map(|e| e.id.clone()),
             )),
@@ -228,6 +233,21 @@ impl Service {
     /// readers when recent.
     pub fn reading(&self, snapshot: ExperimentSnapshot) -> Arc<Reading> {
         self.readings.reading(snapshot)
+    }
+
+    /// One refresh round of the fleet's verdicts (see [`fleet::FleetIndex::refresh`]): runs
+    /// the quadrature for the experiments whose totals changed; how many that was.
+    pub fn refresh_fleet(&self) -> usize {
+        let snapshots = self.lock_shards().snapshots();
+        self.fleet.refresh(snapshots, &self.readings)
+    }
+
+    /// Every experiment now with where it stands, from the latest verdicts and the alert
+    /// book. Cheap: copies pointers and counts alerts; computes no summary.
+    pub fn fleet(&self) -> Vec<fleet::Member> {
+        let defs = self.lock_shards().defs().to_vec();
+        let facts = self.with_alerts(|book| fleet::alert_facts(book.alerts()));
+        fleet::members(defs, &self.fleet, &facts)
     }
 
     /// Read the alert book under its lock.

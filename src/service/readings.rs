@@ -48,6 +48,15 @@ impl SummaryCache {
         reading
     }
 
+    /// The cached reading of exactly `snapshot`'s totals, if there is one; never computes
+    /// and never serves an older one. For background work (the fleet's verdicts), which
+    /// must not make a stale reading look young to the readers.
+    pub fn exact(&self, snapshot: &ExperimentSnapshot) -> Option<Arc<Reading>> {
+        let entries = self.lock();
+        let e = entries.get(&snapshot.def.id)?;
+        (e.reading.summary.snapshot == *snapshot).then(|| Arc::clone(&e.reading))
+    }
+
     fn lookup(&self, id: &str, snapshot: &ExperimentSnapshot) -> Option<Arc<Reading>> {
         let entries = self.lock();
         let e = entries.get(id)?;

@@ -2,6 +2,7 @@
 //! real signals, and compute ground truth for generated events independently of the engine.
 #![allow(dead_code)]
 
+pub mod browser;
 pub mod kafka;
 
 use std::collections::{HashMap, HashSet};
@@ -507,6 +508,11 @@ impl TruthState {
 pub fn observed(service: &Service, spec: &Spec) -> Expected {
     let (status, doc) = service.get(&format!("/v1/experiments/{}", spec.id));
     assert_eq!(status, 200, "{doc}");
+    observed_in(&doc, spec)
+}
+
+/// The totals of experiment `spec` in `doc`, its `GET /v1/experiments/{id}` document.
+pub fn observed_in(doc: &Value, spec: &Spec) -> Expected {
     let k = spec.variants.len();
     let metric = |name: &str| {
         doc["metrics"]
