@@ -265,7 +265,7 @@ impl Changelog {
         self.producer.flush(PUBLISH_TIMEOUT).map_err(err)?;
         let mut known = self.known.lock().unwrap_or_else(|p| p.into_inner());
         let old = known
-            .insert(shard.to_string(), vec![(generation, n)])
+            .insert(ShardId::from(shard), vec![(generation, n)])
             .unwrap_or_default();
         for (g, count) in old.into_iter().filter(|(g, _)| *g != generation) {
             for i in 0..count {
@@ -329,7 +329,7 @@ impl Changelog {
         self.known
             .lock()
             .unwrap_or_else(|p| p.into_inner())
-            .insert(shard.to_string(), contents.generations(shard));
+            .insert(ShardId::from(shard), contents.generations(shard));
         contents.latest(&self.topic, shard)
     }
 
@@ -448,7 +448,9 @@ pub fn follow(
             .is_some_and(Generation::complete);
         if complete {
             match pending.latest(topic, &shard) {
-                Ok(Some(image)) => service.lock_shards().set_remote(shard.clone(), &image),
+                Ok(Some(image)) => service
+                    .lock_shards()
+                    .set_remote(ShardId::from(shard.as_str()), &image),
                 Ok(None) => {}
                 Err(e) => tracing::warn!(error = %e, "skipping an unreadable changelog generation"),
             }
