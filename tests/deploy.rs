@@ -436,6 +436,7 @@ fn prometheus_rules_and_scrape_config_pass_promtool() {
         "PosteriordConsumerLagGrowing",
         "PosteriordDeadLettersRising",
         "PosteriordStateSavesFailing",
+        "PosteriordStateNotDurable",
         "PosteriordRestoreMismatch",
     ] {
         assert!(rules.contains(&format!("alert: {alert}")), "no {alert}");

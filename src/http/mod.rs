@@ -102,7 +102,24 @@ async fn healthz() -> Json<Value> {
 async fn readyz(State(service): State<Arc<Service>>) -> Response {
     let kafka = service.kafka_reachable();
     let restoring = service.is_restoring();
-    let ready = kafka.unwrap_or(true) && !restoring;
+    // Not ready for writes while any file of the state directory cannot be written: events
+    // posted now would be refused (HTTP) or re-read after a restart (Kafka).
+    let failing = service.store_failures();
+    let ready = kafka.unwrap_or(true) && !restoring && failing.is_empty();
+    let store = if !service.is_stored() {
+        json!({ "status": "not configured" })
+    } else if failing.is_empty() {
+        json!({ "status": "writable", "free_bytes": service.store_free_bytes() })
+    } else {
+        json!({
+            "status": "not_durable",
+            "free_bytes": service.store_free_bytes(),
+            "failing": failing
+                .iter()
+                .map(|(file, error)| json!({ "file": file, "error": error }))
+                .collect::<Vec<_>>(),
+        })
+    };
     let body = json!({
         "ready": ready,
         "checks": {
@@ -112,6 +129,7 @@ async fn readyz(State(service): State<Arc<Service>>) -> Response {
                 Some(false) => "unreachable",
             },
             "state": if restoring { "restoring" } else { "ready" },
+            "store": store,
         }
     });
     let status = if ready {
@@ -230,8 +248,9 @@ async fn get_experiment(
         );
     };
     let generation = snapshot.def.generation;
+    let evidence = service.with_alerts(|book| book.evidence().subset(&snapshot.def.state_key()));
     match blocking(move || {
-        let mut d = doc::experiment_document(&service.summary(snapshot));
+        let mut d = doc::experiment_document_with(&service.summary(snapshot), Some(&evidence));
         d["source"] = json!(source);
         d["generation"] = json!(generation);
         d
