@@ -523,9 +523,21 @@ changelog_interval_ms = 300
             (common::total_seen(service) == n as u64).then_some(())
         });
     };
+    // The changelog topic, made by the independent client with a message limit far below a
+    // partition image, so every publication is refused by the broker until it is raised.
+    let changelog = format!("{group}-changelog");
+    changelog_limit(&brokers, &changelog, 1024);
     produce(&w.lines[..3_000]);
     let mut service = Service::start_in(&cfg, Some(&state), &[]);
     counted(&service, 3_000);
+    wait_for(
+        Duration::from_secs(20),
+        "a refused changelog publication",
+        || {
+            (service.metric_sum("posteriord_changelog_publishes_total", "result=\"error\"") > 0)
+                .then_some(())
+        },
+    );
     fs.fill();
     // Consumed and applied in memory, but neither these events nor their offsets can be
     // saved: readiness says so, and a restart must read them again (once).
@@ -548,8 +560,13 @@ changelog_interval_ms = 300
     common::assert_exact(&service, &w.expected_of(|i| i < 6_000));
     fs.unfill();
     wait_durable(&service);
+    changelog_limit(&brokers, &changelog, 8 << 20);
     produce(&w.lines[6_000..]);
     counted(&service, 9_000);
+    wait_for(Duration::from_secs(30), "a changelog publication", || {
+        (service.metric_sum("posteriord_changelog_publishes_total", "result=\"ok\"") > 0)
+            .then_some(())
+    });
     kill(&mut service);
     let service = Service::start_in(&cfg, Some(&state), &[]);
     counted(&service, 9_000);
@@ -632,4 +649,31 @@ fn a_definition_is_kept_whole_or_not_at_all_after_a_crash_or_a_full_disk() {
     let (status, doc) = put_definition(&service, "orchard-pear").unwrap();
     assert_eq!(status, 201, "{doc}");
     wait_durable(&service);
+}
+
+/// Create (if needed) the compacted topic `topic` and set its largest message to `bytes`,
+/// with the independent client (Python confluent-kafka's admin API).
+fn changelog_limit(brokers: &str, topic: &str, bytes: u32) {
+    let script = r#"
+import sys
+from confluent_kafka.admin import AdminClient, NewTopic, ConfigResource
+brokers, topic, limit = sys.argv[1], sys.argv[2], sys.argv[3]
+admin = AdminClient({"bootstrap.servers": brokers})
+config = {"cleanup.policy": "compact", "max.message.bytes": limit}
+if topic not in admin.list_topics(timeout=10).topics:
+    for f in admin.create_topics([NewTopic(topic, 3, 1, config=config)]).values():
+        f.result()
+else:
+    for f in admin.alter_configs([ConfigResource("topic", topic, set_config=config)]).values():
+        f.result()
+"#;
+    let out = Command::new("python3")
+        .args(["-c", script, brokers, topic, &bytes.to_string()])
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
 }
