@@ -14,7 +14,7 @@ use crate::decide::alerts::{Alert, AlertState};
 use crate::decide::{Finding, Rule};
 use crate::experiment::ExperimentDef;
 use crate::state::ExperimentSnapshot;
-use crate::summary::{summarize, ExperimentSummary, DEFAULT_LEVEL};
+use crate::summary::{summarize_rules_only, ExperimentSummary};
 
 use super::readings::SummaryCache;
 
@@ -89,10 +89,12 @@ impl Standing {
     }
 }
 
-/// The latest cached summary of one experiment and the rules that hold on it.
+/// The latest summary of one experiment and the rules that hold on it.
 #[derive(Debug)]
 pub struct Verdict {
-    /// The summary (shared with the other readers through the summary cache).
+    /// The summary: the readers' full one when it had exactly these totals, otherwise one
+    /// with only what the rules and P(best) need ([`summarize_rules_only`]: the same
+    /// findings bit for bit, no lift intervals, at a fraction of the cost).
     pub summary: Arc<ExperimentSummary>,
     /// The rules that hold on it.
     pub findings: Vec<Finding>,
@@ -146,7 +148,7 @@ impl FleetIndex {
             // The quadrature runs outside the lock.
             let summary = summaries
                 .exact(&snap)
-                .unwrap_or_else(|| Arc::new(summarize(snap, DEFAULT_LEVEL)));
+                .unwrap_or_else(|| Arc::new(summarize_rules_only(snap)));
             let verdict = Arc::new(Verdict::new(summary));
             self.lock()
                 .insert(verdict.summary.snapshot.def.id.clone(), verdict);
@@ -321,23 +323,29 @@ mod tests {
     use super::*;
     use crate::decide::Finding;
 
-    fn summaries_of(n_units: u64) -> (SummaryCache, Vec<ExperimentSnapshot>) {
-        let defs = crate::simulate::demo_experiments();
-        let engine = crate::state::Engine::new(defs);
-        let snaps: Vec<ExperimentSnapshot> = engine
-            .experiments()
-            .map(|e| {
-                let mut s = e.snapshot();
-                s.units[0] = n_units;
-                s
+    /// Three experiments of an invented seed shop, defined as over the API, with no events.
+    fn summaries_of() -> (SummaryCache, Vec<ExperimentSnapshot>) {
+        let defs: Vec<ExperimentDef> = ["seed-tray", "seed-label", "seed-bag"]
+            .into_iter()
+            .map(|id| {
+                crate::config::experiment_from_json(
+                    id,
+                    &serde_json::json!({
+                        "variants": [{"name": "control"}, {"name": "pear"}, {"name": "quince"}],
+                        "metric": [{"name": "sprouted", "kind": "conversion"}]
+                    }),
+                )
+                .unwrap()
             })
             .collect();
+        let engine = crate::state::Engine::new(defs);
+        let snaps = engine.experiments().map(|e| e.snapshot()).collect();
         (SummaryCache::default(), snaps)
     }
 
     #[test]
     fn refresh_recomputes_only_what_changed_and_forgets_the_deleted() {
-        let (cache, snaps) = summaries_of(0);
+        let (cache, snaps) = summaries_of();
         let n = snaps.len();
         assert!(n >= 2);
         let index = FleetIndex::default();

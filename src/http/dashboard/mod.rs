@@ -88,12 +88,16 @@ async fn experiment(
             .collect()
     });
     let now = crate::service::now_micros();
+    let evidence = service.with_alerts(|book| book.evidence().subset(&snapshot.def.state_key()));
     let rendered = super::blocking(move || {
         let summary = service.summary(snapshot);
-        let findings = crate::decide::evaluate(&summary);
+        let mut findings = crate::decide::evaluate(&summary);
+        crate::decide::add_evidence_findings(&summary, &evidence, &mut findings);
+        let standings = crate::decide::standing::standings(&summary, &findings, Some(&evidence));
         page::experiment_main(&page::ExperimentView {
             summary,
             findings,
+            standings,
             history,
             alerts,
             now,

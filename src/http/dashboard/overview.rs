@@ -193,11 +193,12 @@ fn chip_class(s: Standing) -> &'static str {
     }
 }
 
-/// The two chips the experiment pages do not have. Colours from the Okabe–Ito palette, each
+/// The chips the experiment pages do not have (two states and the open alerts). Colours from the Okabe–Ito palette, each
 /// with its own glyph, so no state is told by colour alone.
 const STYLE: &str = r#"<style>
 .chip.ready { background:#dcecf7; border-color:#0072B2; } .chip.ready::before { content:"◆"; }
 .chip.decided { background:#d9f0e6; border-color:#009E73; } .chip.decided::before { content:"✓"; }
+.chip.alerting { background:#f7e4ef; border-color:#CC79A7; } .chip.alerting::before { content:"!"; }
 nav.counts { display:flex; flex-wrap:wrap; gap:.5rem; margin:.4rem 0 .9rem; }
 nav.counts a.chip { font-size:.95rem; padding:.25rem .6rem; text-decoration:none; color:var(--ink); }
 nav.counts a.chip .n { font-variant-numeric:tabular-nums; font-size:1.1rem; margin-right:.3rem; }
@@ -244,7 +245,7 @@ fn counts_nav(s: &mut String, counts: &Counts, filter: &Filter) {
     };
     let _ = write!(
         s,
-        r#"<a class="chip harm{current}" href="{href}" data-count="open-alerts" data-experiments="{e}"><span class="n">{n}</span>open alerts in {e} experiments</a>"#,
+        r#"<a class="chip alerting{current}" href="{href}" data-count="open-alerts" data-experiments="{e}"><span class="n">{n}</span>open alerts in {e} experiments</a>"#,
         current = if *filter == alerting { " current" } else { "" },
         href = escape(&link(&params(&alerting, Order::Alerts), None)),
         n = counts.open_alerts,

@@ -191,6 +191,8 @@ pub struct ExperimentView {
     pub summary: std::sync::Arc<ExperimentSummary>,
     /// The rules that hold now.
     pub findings: Vec<Finding>,
+    /// Where every rule stands.
+    pub standings: Vec<crate::decide::standing::RuleStanding>,
     /// Recorded evaluations (`None` before the first).
     pub history: Option<ExperimentHistory>,
     /// This experiment's alerts.
@@ -247,6 +249,7 @@ pub fn experiment_main(v: &ExperimentView) -> String {
         );
     }
 
+    standings_section(&mut s, v);
     for m in 0..def.metrics.len() {
         metric_section(&mut s, v, m);
     }
@@ -258,6 +261,27 @@ pub fn experiment_main(v: &ExperimentView) -> String {
         id = escape(&def.id)
     );
     s
+}
+
+/// Where each rule stands, one row per rule, metric and variant.
+fn standings_section(s: &mut String, v: &ExperimentView) {
+    let def = &v.summary.snapshot.def;
+    s.push_str(r#"<h2>Where each rule stands</h2><table data-role="rules"><thead><tr><th>rule</th><th>metric</th><th>variant</th><th>state</th><th>why</th></tr></thead><tbody>"#);
+    for r in &v.standings {
+        let _ = write!(
+            s,
+            r#"<tr data-rule="{rule}" data-state="{state}"><td>{rule}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>"#,
+            r.metric
+                .map_or(String::new(), |m| escape(&def.metrics[m].name)),
+            r.variant
+                .map_or(String::new(), |x| escape(&def.variants[x].name)),
+            r.state.as_str().replace('_', " "),
+            escape(&r.detail),
+            rule = r.rule.as_str(),
+            state = r.state.as_str(),
+        );
+    }
+    s.push_str("</tbody></table>");
 }
 
 fn metric_section(s: &mut String, v: &ExperimentView, m: usize) {
