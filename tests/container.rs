@@ -428,13 +428,12 @@ fn the_image_builds_serves_drains_and_restores_its_state() {
 
     // The container listens on 0.0.0.0, not loopback: writes need the token.
     let work = workload(24, 600);
-    let (status, body) = post_events(&base, work.lines.join("\n"), None);
+    // The refused writes carry a few events only: the server answers 401/403 before it reads
+    // a body, and a client still writing a large one may see the connection close first.
+    let few = work.lines[..5].join("\n");
+    let (status, body) = post_events(&base, few.clone(), None);
     assert_eq!(status, 401, "a write without a token: {body}");
-    let (status, body) = post_events(
-        &base,
-        work.lines.join("\n"),
-        Some("not-the-token-0123456789"),
-    );
+    let (status, body) = post_events(&base, few, Some("not-the-token-0123456789"));
     assert_eq!(status, 403, "a write with a wrong token: {body}");
     for spec in &SPECS {
         let (_, doc) = get_json(&base, &format!("/v1/experiments/{}", spec.id));

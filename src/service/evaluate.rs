@@ -48,6 +48,7 @@ impl Service {
     fn evaluate_due(&self, snapshot: ExperimentSnapshot) {
         // Quadrature runs outside the desk's lock; only the fold takes it.
         let mut evaluation = crate::decide::evaluation::assess(snapshot);
+        self.note_failures(&evaluation.summary);
         self.recorder
             .record(&evaluation.summary, &evaluation.findings, evaluation.at);
         let changes = {
@@ -85,6 +86,36 @@ impl Service {
                 "{}",
                 alert.finding.message
             );
+        }
+    }
+
+    /// Count the metrics whose numbers could not be computed; the rules skip them and every
+    /// other metric and experiment is evaluated as usual. Logged once per experiment, metric
+    /// and message, not at every look (the document carries the message meanwhile).
+    fn note_failures(&self, summary: &crate::summary::ExperimentSummary) {
+        let def = &summary.snapshot.def;
+        for (m, ms) in summary.metrics.iter().enumerate() {
+            let Err(e) = &ms.arms else { continue };
+            let reason = if e.is_internal() {
+                "internal"
+            } else {
+                "out_of_range"
+            };
+            self.metrics
+                .evaluation_failures
+                .with_label_values(&[reason])
+                .inc();
+            let key = (def.id.clone(), def.metrics[m].name.clone(), e.to_string());
+            if lock(&self.failures_logged).insert(key) {
+                tracing::error!(
+                    experiment = %def.id,
+                    metric = %def.metrics[m].name,
+                    reason,
+                    error = %e,
+                    "cannot compute this metric's numbers; its rules are skipped until they can be{}",
+                    if e.is_internal() { " (a failure of ours: please report it)" } else { "" }
+                );
+            }
         }
     }
 

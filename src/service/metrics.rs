@@ -75,6 +75,9 @@ pub struct Metrics {
     pub alert_deliveries: IntCounterVec,
     /// Rule evaluations by stage: `queued` by the ingest path, `done` by the evaluator.
     pub evaluations: IntCounterVec,
+    /// Metrics whose numbers an evaluation could not compute, by reason
+    /// (`out_of_range`: counts or priors outside the supported range; `internal`: ours).
+    pub evaluation_failures: IntCounterVec,
     /// Posterior mean per experiment, metric and variant.
     pub posterior_mean: GaugeVec,
     /// Lower end of the 95% equal-tailed credible interval.
@@ -234,8 +237,20 @@ impl Metrics {
         for stage in ["queued", "done"] {
             evaluations.with_label_values(&[stage]);
         }
+        let evaluation_failures = counter_vec(
+            &registry,
+            "posteriord_evaluation_failures_total",
+            "Metrics of an evaluation whose numbers could not be computed, by reason \
+             (out_of_range: counts or priors outside the supported range; internal: a failure \
+             of ours, please report). Other metrics and experiments are evaluated as usual.",
+            &["reason"],
+        );
+        for reason in ["out_of_range", "internal"] {
+            evaluation_failures.with_label_values(&[reason]);
+        }
         let m = Metrics {
             evaluations,
+            evaluation_failures,
             alert_deliveries,
             alerts,
             alert_changes,

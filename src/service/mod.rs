@@ -123,6 +123,9 @@ pub struct Service {
     due: Sender<ExperimentSnapshot>,
     /// The evaluator's end of `due`, taken once by [`Service::run_evaluator`].
     evaluation_queue: Mutex<Option<Receiver<ExperimentSnapshot>>>,
+    /// (experiment, metric, message) of numbers that could not be computed, already logged:
+    /// a failing metric is logged once, not at every look.
+    failures_logged: Mutex<std::collections::HashSet<(String, String, String)>>,
 }
 
 /// Wall-clock time in microseconds since the epoch.
@@ -163,6 +166,7 @@ impl Service {
             health: StoreHealth::default(),
             refused_bytes: std::sync::atomic::AtomicU64::new(0),
             catalog_publisher: OnceLock::new(),
+            failures_logged: Mutex::default(),
         }
     }
 
