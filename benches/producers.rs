@@ -161,7 +161,14 @@ fn main() {
     let work = tempfile::tempdir().expect("temporary directory");
     let broker = broker(work.path());
     let brokers = broker.brokers.as_str();
-    println!("producer guarantees on {brokers} ({})", if bench { "measuring" } else { "smoke run: the figures mean nothing" });
+    println!(
+        "producer guarantees on {brokers} ({})",
+        if bench {
+            "measuring"
+        } else {
+            "smoke run: the figures mean nothing"
+        }
+    );
 
     let image = vec![7u8; 1 << 20];
     let chunks: Vec<&[u8]> = image.chunks(512 * 1024).collect();
@@ -170,7 +177,11 @@ fn main() {
     let tx = transactional(brokers);
     let mut rows = Vec::new();
     for (what, payloads, n) in [
-        ("changelog publication (1 MiB, 2 chunks)", chunks.clone(), rounds(60)),
+        (
+            "changelog publication (1 MiB, 2 chunks)",
+            chunks.clone(),
+            rounds(60),
+        ),
         ("alert (1 KiB)", vec![alert.as_slice()], rounds(300)),
     ] {
         let t_plain = unique("bench-plain");
@@ -179,8 +190,16 @@ fn main() {
         let (q50, q90) = time_it(n, || publish(&tx, true, &t_tx, "k", &payloads));
         // Every publication reached the topic, committed, in both modes.
         let sent = (n + 1) * payloads.len();
-        assert_eq!(committed_count(brokers, &t_plain, sent), sent, "{what}: idempotent");
-        assert_eq!(committed_count(brokers, &t_tx, sent), sent, "{what}: transactional");
+        assert_eq!(
+            committed_count(brokers, &t_plain, sent),
+            sent,
+            "{what}: idempotent"
+        );
+        assert_eq!(
+            committed_count(brokers, &t_tx, sent),
+            sent,
+            "{what}: transactional"
+        );
         rows.push((what, p50, p90, q50, q90));
     }
     println!(

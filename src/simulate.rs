@@ -335,6 +335,7 @@ fn items(lines: &[String]) -> Vec<crate::service::ingest::Item<'_>> {
             shard: SIMULATOR_SHARD,
             offset: None,
             bytes: l.as_bytes(),
+            mapping: None,
         })
         .collect()
 }
