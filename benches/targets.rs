@@ -1,10 +1,11 @@
 //! The performance targets of docs/performance.md, each measured beside its baseline in the
 //! same run and printed as a ratio: ingest vs serde_json parse-only, memory per unit and per
 //! variant (counting allocator), restart time, Kafka end to end vs a bare rdkafka loop, ingest
-//! under HTTP read load (wrk), and the cost of rule evaluation.
+//! under HTTP read load (wrk), the cost of rule evaluation, and the fleet view at 5 000
+//! experiments (list page and overview in Chromium, `parts/fleet.rs`).
 //!
 //! Run all with `cargo bench --bench targets`, or some with
-//! `cargo bench --bench targets -- ingest memory restart kafka http evaluation`.
+//! `cargo bench --bench targets -- ingest memory restart kafka http evaluation fleet`.
 //! `POSTERIORD_BENCH_UNITS` sets the units of the memory/restart state (default 10 000 000);
 //! `POSTERIORD_BENCH_BROKERS` names a broker, else Apache Kafka is started on loopback with
 //! tests/kafka/broker.sh.
@@ -26,6 +27,9 @@ use posteriord::service::ingest::Item;
 use posteriord::service::metrics::{Metrics, Source};
 use posteriord::service::store::Store;
 use posteriord::state::shards::Shards;
+
+#[path = "parts/fleet.rs"]
+mod fleet;
 
 /// Counts live heap bytes, so memory per unit is measured rather than estimated.
 struct Counting;
@@ -117,6 +121,9 @@ fn main() {
     }
     if want("evaluation") {
         rows.extend(evaluation_target());
+    }
+    if want("fleet") {
+        rows.extend(fleet::fleet_target(work.path()));
     }
     if smoke() {
         for r in &rows {

@@ -42,10 +42,13 @@ pub fn prepare_store(config: &Config) -> anyhow::Result<()> {
             dir.display()
         )
     })?;
+    // An empty file: it needs no free space, so a directory that is merely full still
+    // starts (not ready until space is freed) while a read-only one is named at once.
     let probe = dir.join(".posteriord-write-check");
-    std::fs::write(&probe, b"ok").with_context(|| {
+    std::fs::File::create(&probe).with_context(|| {
         format!(
-            "the state directory {} is not writable (store.dir)",
+            "the state directory {} is not writable (store.dir); make it writable (a read-only \
+             mount must be remounted read-write) and start again",
             dir.display()
         )
     })?;
@@ -53,7 +56,8 @@ pub fn prepare_store(config: &Config) -> anyhow::Result<()> {
     Ok(())
 }
 
-/// Store the HTTP shard on the snapshot cadence (the final save happens in [`run`], after the
+/// Store the HTTP shard on the snapshot cadence, and retry or probe whatever of the store was
+/// failing (the final save happens in [`run`], after the
 /// HTTP server has finished its requests).
 async fn save_http_shard(service: Arc<Service>, shutdown: CancellationToken) {
     let mut tick = tokio::time::interval(service.snapshot_interval());
@@ -63,7 +67,37 @@ async fn save_http_shard(service: Arc<Service>, shutdown: CancellationToken) {
             _ = tick.tick() => {}
         }
         let s = Arc::clone(&service);
-        let _ = tokio::task::spawn_blocking(move || s.save_http_shard()).await;
+        let _ = tokio::task::spawn_blocking(move || {
+            s.save_http_shard();
+            s.retry_store();
+        })
+        .await;
+    }
+}
+
+/// Pause between rounds of the fleet's verdicts: a verdict is then at most about this old,
+/// plus one round.
+const FLEET_REFRESH_EVERY: std::time::Duration = crate::service::readings::MAX_AGE;
+
+/// Refresh the fleet's verdicts (the states the lists and the overview read) every
+/// [`FLEET_REFRESH_EVERY`] until `shutdown`; the first round starts at once. One round at a
+/// time, on the blocking pool.
+async fn refresh_fleet(service: Arc<Service>, shutdown: CancellationToken) {
+    loop {
+        let s = Arc::clone(&service);
+        let round = tokio::task::spawn_blocking(move || s.refresh_fleet());
+        tokio::select! {
+            _ = shutdown.cancelled() => break,
+            done = round => {
+                if let Err(e) = done {
+                    tracing::error!(error = %e, "a fleet refresh round failed; trying again");
+                }
+            }
+        }
+        tokio::select! {
+            _ = shutdown.cancelled() => break,
+            _ = tokio::time::sleep(FLEET_REFRESH_EVERY) => {}
+        }
     }
 }
 
@@ -100,6 +134,7 @@ pub async fn run(
         // Started here, before any source, so nothing queued for evaluation waits long.
         tracker.spawn_blocking(move || s.run_evaluator(|| token.is_cancelled()));
     }
+    tracker.spawn(refresh_fleet(Arc::clone(&service), shutdown.clone()));
     if service.is_stored() {
         tracker.spawn(save_http_shard(Arc::clone(&service), shutdown.clone()));
     }

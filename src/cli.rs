@@ -29,8 +29,9 @@ pub struct Cli {
 pub enum Command {
     /// Serve simulated traffic for invented experiments (no Kafka needed).
     Demo {
-        /// Address of the HTTP API.
-        #[arg(long, default_value = config::DEFAULT_HTTP_ADDR)]
+        /// Address of the HTTP API; without --addr, `POSTERIORD_HTTP_ADDR` as for `serve`
+        /// (the container image sets it to 0.0.0.0:8080).
+        #[arg(long, env = "POSTERIORD_HTTP_ADDR", default_value = config::DEFAULT_HTTP_ADDR)]
         addr: SocketAddr,
         /// Stop after this many seconds (default: run until Ctrl-C or SIGTERM).
         #[arg(long)]
@@ -136,6 +137,12 @@ pub struct PlanArgs {
     /// at most this.
     #[arg(long)]
     pub target_false_harm: Option<f64>,
+    /// Flag scenarios whose share of runs with a false harm alert exceeds this.
+    #[arg(long, default_value_t = crate::plan::DEFAULT_MAX_FALSE_HARM)]
+    pub max_false_harm: f64,
+    /// Flag scenarios whose share of runs shipping the wrong way exceeds this.
+    #[arg(long, default_value_t = crate::plan::DEFAULT_MAX_WRONG_SHIP)]
+    pub max_wrong_ship: f64,
     /// JSON for machines instead of a table.
     #[arg(long)]
     pub json: bool,
@@ -269,6 +276,9 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
         history_arm_points: config::DEFAULT_HISTORY_ARM_POINTS,
         sources: Vec::new(),
     };
+    // Refused before anything starts, as `serve` does in load_config.
+    crate::http::guard::check_exposure(&config.http, config.http.addr)
+        .map_err(|e| UsageError(e.to_string()))?;
     runtime()?.block_on(async move {
         let listener = app::bind(config.http.addr).await?;
         let bound = listener.local_addr()?;
@@ -361,6 +371,11 @@ fn check_config(path: &std::path::Path) -> anyhow::Result<()> {
             "not configured"
         }
     );
+    for def in &config.experiments {
+        for w in crate::decide::standing::config_warnings(def) {
+            eprintln!("warning: {w}");
+        }
+    }
     Ok(())
 }
 
@@ -380,7 +395,13 @@ fn compare(file: Option<PathBuf>, format: CompareFormat) -> anyhow::Result<()> {
         CompareFormat::Json => crate::compare::Format::Json,
         CompareFormat::Table => crate::compare::Format::Table,
     };
-    let output = crate::compare::run(&input, format).map_err(|e| UsageError(e.to_string()))?;
+    let output = crate::compare::run(&input, format).map_err(|e| -> anyhow::Error {
+        if e.is_input_error() {
+            UsageError(e.to_string()).into()
+        } else {
+            e.into()
+        }
+    })?;
     print!("{output}");
     if !output.ends_with('\n') {
         println!();
@@ -399,6 +420,103 @@ fn progress_bar(len: u64, what: &str) -> indicatif::ProgressBar {
     .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar());
     bar.set_style(style);
     bar
+}
+
+/// `plan`'s progress: a bar on a terminal, otherwise a line every few seconds; and, once the
+/// first simulations show the pace, one line saying so when the whole run will take more than
+/// a minute. The estimate counts simulations, which `plan::run` hands out interleaved across
+/// scenarios so that the pace seen early is the pace of the whole run.
+struct PlanProgress {
+    bar: indicatif::ProgressBar,
+    total: u64,
+    done: std::sync::atomic::AtomicU64,
+    started: std::time::Instant,
+    last_line: std::sync::Mutex<std::time::Instant>,
+    warned: std::sync::atomic::AtomicBool,
+    terminal: bool,
+}
+
+/// Seconds between progress lines when standard error is not a terminal.
+const PROGRESS_LINE_SECS: u64 = 5;
+
+impl PlanProgress {
+    fn new(total: u64) -> PlanProgress {
+        use std::io::IsTerminal;
+        let terminal = std::io::stderr().is_terminal();
+        let bar = progress_bar(total, "simulating");
+        if !terminal {
+            bar.set_draw_target(indicatif::ProgressDrawTarget::hidden());
+        }
+        let now = std::time::Instant::now();
+        PlanProgress {
+            bar,
+            total: total.max(1),
+            done: std::sync::atomic::AtomicU64::new(0),
+            started: now,
+            last_line: std::sync::Mutex::new(now),
+            warned: std::sync::atomic::AtomicBool::new(false),
+            terminal,
+        }
+    }
+
+    /// Count `n` simulations that will not run (a sweep that met its target early).
+    fn skip(&self, n: u64) {
+        self.done.fetch_add(n, std::sync::atomic::Ordering::Relaxed);
+        self.bar.inc(n);
+    }
+
+    fn finish(&self) {
+        self.bar.finish_and_clear();
+        if !self.terminal {
+            eprintln!(
+                "simulating: done, {} simulations in {:.1} s",
+                self.total,
+                self.started.elapsed().as_secs_f64()
+            );
+        }
+    }
+
+    fn report(&self, done: u64) {
+        let elapsed = self.started.elapsed().as_secs_f64();
+        let eta = elapsed / done.max(1) as f64 * (self.total.saturating_sub(done)) as f64;
+        // Say it once, as soon as the pace is known (2% done or 3 s in).
+        if !self.warned.load(std::sync::atomic::Ordering::Relaxed)
+            && (done * 50 >= self.total || elapsed >= 3.0)
+        {
+            self.warned
+                .store(true, std::sync::atomic::Ordering::Relaxed);
+            if elapsed + eta > 60.0 {
+                let msg = format!(
+                    "posteriord plan: this run will take about {:.0} min ({} simulations at {:.1}/s); fewer --sims or a longer --step-secs trade precision for time",
+                    (elapsed + eta) / 60.0,
+                    self.total,
+                    done as f64 / elapsed.max(1e-9)
+                );
+                self.bar.suspend(|| eprintln!("{msg}"));
+            }
+        }
+        if !self.terminal {
+            let mut last = self.last_line.lock().unwrap_or_else(|p| p.into_inner());
+            if last.elapsed().as_secs() >= PROGRESS_LINE_SECS {
+                *last = std::time::Instant::now();
+                eprintln!(
+                    "simulating: {done}/{} ({:.0}%), {:.0} s elapsed, about {:.0} s left",
+                    self.total,
+                    100.0 * done as f64 / self.total as f64,
+                    elapsed,
+                    eta
+                );
+            }
+        }
+    }
+}
+
+impl crate::plan::Progress for PlanProgress {
+    fn advance(&self) {
+        let done = self.done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
+        self.bar.inc(1);
+        self.report(done);
+    }
 }
 
 fn plan(args: PlanArgs) -> anyhow::Result<()> {
@@ -444,6 +562,8 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
     for (flag, t) in [
         ("--target-false-ship", args.target_false_ship),
         ("--target-false-harm", args.target_false_harm),
+        ("--max-false-harm", Some(args.max_false_harm)),
+        ("--max-wrong-ship", Some(args.max_wrong_ship)),
     ] {
         if let Some(t) = t {
             if !(t > 0.0 && t < 1.0) {
@@ -488,6 +608,8 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
         baselines,
         scenarios,
         threads,
+        max_false_harm: args.max_false_harm,
+        max_wrong_ship: args.max_wrong_ship,
     };
     let sweeps: Vec<(SweepKind, f64)> = [
         args.target_false_ship
@@ -505,7 +627,7 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             .len()
             * opts.sims) as u64;
     }
-    let bar = progress_bar(total, "simulating");
+    let bar = PlanProgress::new(total);
     let started = std::time::Instant::now();
     let (results, timing) = plan::run(&opts, &bar);
     let wall = started.elapsed();
@@ -513,6 +635,12 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
     let mut sweep_text = String::new();
     for (kind, target) in &sweeps {
         let points = plan::sweep(&opts, *kind, *target, &bar).map_err(|e| bad(e.to_string()))?;
+        // Values after the one meeting the target are not run: count them as done, so the
+        // bar and its estimate end where the work ends.
+        let tried = plan::sweep_values(&opts.def, *kind)
+            .map_err(|e| bad(e.to_string()))?
+            .len();
+        bar.skip(((tried - points.len()) * opts.sims) as u64);
         let best = plan::recommend(&points, *kind, *target);
         let (what, error) = match kind {
             SweepKind::ThresholdOfCaring => ("threshold_of_caring", "false_ship"),
@@ -555,7 +683,7 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             )
         );
     }
-    bar.finish_and_clear();
+    bar.finish();
     if args.bench {
         let eval = timing.evaluating_ns as f64;
         let sim = timing.simulating_ns as f64;

@@ -66,6 +66,17 @@ pub enum CompareError {
     /// The comparison itself refused the options.
     #[error("invalid input: {0}")]
     Stats(#[from] StatsError),
+    /// The input was accepted but the statistics core failed on it: a defect of ours, not
+    /// of the input (the caller exits 1, not 2).
+    #[error("internal error: {0}; the input is valid, so this is a defect of posteriord — please report it with the input")]
+    Internal(StatsError),
+}
+
+impl CompareError {
+    /// True when the input was at fault (exit 2); false for a failure of ours (exit 1).
+    pub fn is_input_error(&self) -> bool {
+        !matches!(self, CompareError::Internal(_))
+    }
 }
 
 #[derive(Deserialize)]
@@ -224,7 +235,13 @@ pub fn run(input: &str, format: Format) -> Result<String, CompareError> {
     };
     let metric_prior = raw.prior.ok_or_else(|| invalid("missing field `prior`"))?;
     let arms = build_arms(metric, &metric_prior, &raw.variants)?;
-    let summaries = stats::compare(&arms, &opts)?;
+    let summaries = stats::compare(&arms, &opts).map_err(|e| {
+        if e.is_internal() {
+            CompareError::Internal(e)
+        } else {
+            CompareError::Stats(e)
+        }
+    })?;
 
     let variants: Vec<OutVariant> = raw
         .variants

@@ -145,16 +145,85 @@ fn arm_quantities(a: &ArmSummary) -> serde_json::Map<String, Value> {
     m
 }
 
-/// `GET /v1/experiments/{id}`.
+/// `GET /v1/experiments/{id}` without the anytime-valid processes (a one-off summary).
 pub fn experiment_document(summary: &ExperimentSummary) -> Value {
+    experiment_document_with(summary, None)
+}
+
+/// The anytime-valid numbers of one variant on one metric: the harm process and the
+/// confidence sequence for the lift, shown beside the credible interval.
+fn anytime(
+    def: &ExperimentDef,
+    evidence: Option<&crate::decide::betting::EvidenceBook>,
+    m: usize,
+    v: usize,
+) -> Value {
+    let Some(rule) = def.metrics[m].rules.evidence else {
+        return Value::Null;
+    };
+    let Some(p) = evidence.and_then(|e| e.get(&def.state_key(), m, v)) else {
+        return Value::Null;
+    };
+    let st = p.standing();
+    json!({
+        "e_value": st.e_value,
+        "max_e_value": st.max_e_value,
+        "alarm_at": 1.0 / rule.alpha,
+        "always_valid_p_value": st.p_value,
+        "margin": rule.margin,
+        "lift_sequence": p.lift_interval(rule.alpha).map(|(lo, hi)| json!({
+            "level": 1.0 - rule.alpha,
+            "lower": if lo.is_finite() { json!(lo) } else { Value::Null },
+            "upper": if hi.is_finite() { json!(hi) } else { Value::Null },
+        })),
+        "looks": p.blocks(),
+    })
+}
+
+/// Where every rule stands, per metric and variant.
+pub fn rule_standings(
+    summary: &ExperimentSummary,
+    findings: &[crate::decide::Finding],
+    evidence: Option<&crate::decide::betting::EvidenceBook>,
+) -> Value {
+    let def = &summary.snapshot.def;
+    Value::Array(
+        crate::decide::standing::standings(summary, findings, evidence)
+            .into_iter()
+            .map(|s| {
+                json!({
+                    "rule": s.rule.as_str(),
+                    "metric": s.metric.map(|m| def.metrics[m].name.clone()),
+                    "variant": s.variant.map(|v| def.variants[v].name.clone()),
+                    "state": s.state.as_str(),
+                    "value": s.value,
+                    "threshold": s.threshold,
+                    "progress": s.progress.map(|(have, need)| json!({"have": have, "need": need})),
+                    "detail": s.detail,
+                })
+            })
+            .collect(),
+    )
+}
+
+/// `GET /v1/experiments/{id}`, with this process's anytime-valid harm processes when given.
+pub fn experiment_document_with(
+    summary: &ExperimentSummary,
+    evidence: Option<&crate::decide::betting::EvidenceBook>,
+) -> Value {
     let snap = &summary.snapshot;
     let def: &ExperimentDef = &snap.def;
+    let mut findings = crate::decide::evaluate(summary);
+    if let Some(e) = evidence {
+        crate::decide::add_evidence_findings(summary, e, &mut findings);
+    }
     let metrics: Vec<Value> = def
         .metrics
         .iter()
         .zip(&snap.metrics)
         .zip(&summary.metrics)
-        .map(|((m, totals), ms)| {
+        .enumerate()
+        .map(|(mi, ((m, totals), ms))| {
             let mut variants = Vec::with_capacity(def.variants.len());
             for (i, v) in def.variants.iter().enumerate() {
                 let mut obj = serde_json::Map::new();
@@ -174,6 +243,9 @@ pub fn experiment_document(summary: &ExperimentSummary) -> Value {
                 }
                 if let Ok(arms) = &ms.arms {
                     obj.extend(arm_quantities(&arms[i]));
+                }
+                if i != def.control {
+                    obj.insert("anytime".into(), anytime(def, evidence, mi, i));
                 }
                 variants.push(Value::Object(obj));
             }
@@ -205,16 +277,17 @@ pub fn experiment_document(summary: &ExperimentSummary) -> Value {
         "sample_ratio": sample_ratio(&summary.sample_ratio, summary.snapshot.def.rules.srm_p),
         "last_event_time": snap.last_event_time.and_then(time_text),
         "metrics": metrics,
-        "decisions": decisions(summary),
+        "decisions": decisions(summary, &findings),
+        "rules": rule_standings(summary, &findings, evidence),
         "caution": CAUTION,
     })
 }
 
 /// The rules that hold now, with the numbers they compared.
-fn decisions(summary: &ExperimentSummary) -> Value {
+fn decisions(summary: &ExperimentSummary, findings: &[crate::decide::Finding]) -> Value {
     let def = &summary.snapshot.def;
-    let found: Vec<Value> = crate::decide::evaluate(summary)
-        .into_iter()
+    let found: Vec<Value> = findings
+        .iter()
         .map(|f| {
             json!({
                 "rule": f.rule.as_str(),

@@ -51,6 +51,9 @@ pub struct ExperimentRules {
     /// Outcomes naming no experiment count only this long (µs) after the unit's first
     /// exposure; `None` = no limit.
     pub attribution_window: Option<i64>,
+    /// Event-time span before `ship` or `equivalent` may hold (µs); 0 = none. Harm rules are
+    /// not held back by it.
+    pub min_duration: i64,
 }
 
 impl Default for ExperimentRules {
@@ -63,9 +66,16 @@ impl Default for ExperimentRules {
             equivalence_probability: DEFAULT_EQUIVALENCE_PROBABILITY,
             max_duration: None,
             attribution_window: None,
+            min_duration: DEFAULT_MIN_DURATION,
         }
     }
 }
+
+/// Default minimum duration before a ship or equivalence decision: seven days of event time,
+/// so that a decision covers every weekday once (common practice, from memory) and so that the
+/// early, noisy looks of a continuously checked ship rule cannot decide (docs/decisions.md has
+/// the measured error rates with and without it).
+pub const DEFAULT_MIN_DURATION: i64 = 7 * 86_400 * 1_000_000;
 
 /// Default SRM alarm threshold: p < 0.001 is common practice for this check.
 pub const DEFAULT_SRM_P: f64 = 0.001;
@@ -75,8 +85,19 @@ pub const DEFAULT_MAX_CROSSOVER_SHARE: f64 = 0.01;
 pub const DEFAULT_EQUIVALENCE_PROBABILITY: f64 = 0.95;
 /// Default minimum exposed units per variant before any decision.
 pub const DEFAULT_MIN_UNITS: u64 = 500;
-/// Default harm probability: strict, because the rule is checked continuously.
-pub const DEFAULT_HARM_PROBABILITY: f64 = 0.99;
+/// Default harm probability: strict, because the rule is checked continuously (the rate of
+/// false alarms it gives at hourly looks is measured in docs/decisions.md).
+pub const DEFAULT_HARM_PROBABILITY: f64 = 0.999;
+/// Default clearance of a guardrail before shipping: the variant must be worse than the
+/// control by more than this relative margin with probability at most
+/// [`DEFAULT_CLEAR_PROBABILITY`].
+pub const DEFAULT_CLEAR_MARGIN: f64 = 0.2;
+/// Default largest posterior probability of "worse by more than the clearance margin" that
+/// still clears a guardrail.
+pub const DEFAULT_CLEAR_PROBABILITY: f64 = 0.05;
+/// Default false-alarm bound of the anytime-valid harm rule (`harm_evidence`), per metric and
+/// variant.
+pub const DEFAULT_EVIDENCE_ALPHA: f64 = 0.01;
 /// Default ROPE half-width (relative lift).
 pub const DEFAULT_ROPE: f64 = 0.01;
 
@@ -93,6 +114,31 @@ pub struct MetricRules {
     pub ship: Option<ShipRule>,
     /// Region of practical equivalence: half-width of the relative lift.
     pub rope: f64,
+    /// As a guardrail: what clears it for shipping (`None`: the guardrail is not checked
+    /// before shipping, only its harm blocks).
+    pub clear: Option<ClearRule>,
+    /// The anytime-valid harm rule (`harm_evidence`); `None` = off.
+    pub evidence: Option<EvidenceRule>,
+}
+
+/// Guardrail clearance: shipping a variant waits until P(variant worse than the control by
+/// more than `margin`, relative) ≤ `probability` on this metric.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ClearRule {
+    /// Relative margin of tolerated worsening (non-inferiority margin).
+    pub margin: f64,
+    /// Largest posterior probability of worsening beyond the margin that still clears.
+    pub probability: f64,
+}
+
+/// The anytime-valid harm rule: a test martingale against "the variant is not worse than the
+/// control by more than `margin`" alarms when it reaches 1/`alpha`.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct EvidenceRule {
+    /// False-alarm bound, at any cadence (Ville's inequality).
+    pub alpha: f64,
+    /// Relative margin, as in [`HarmRule`].
+    pub margin: f64,
 }
 
 impl Default for MetricRules {
@@ -106,6 +152,14 @@ impl Default for MetricRules {
             }),
             ship: None,
             rope: DEFAULT_ROPE,
+            clear: Some(ClearRule {
+                margin: DEFAULT_CLEAR_MARGIN,
+                probability: DEFAULT_CLEAR_PROBABILITY,
+            }),
+            evidence: Some(EvidenceRule {
+                alpha: DEFAULT_EVIDENCE_ALPHA,
+                margin: 0.0,
+            }),
         }
     }
 }

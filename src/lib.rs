@@ -1,28 +1,30 @@
 //! posteriord: continuous, exact Bayesian monitoring of online experiments.
 //!
-//! The modules stand in layers, each importing only the layers below it; the table and its
-//! rules are in docs/architecture.md, and `tests/tidy.rs` holds the code to them.
+//! The modules stand in layers, each importing only the layers below it. The one table of them
+//! is `src/layers.toml`; `tests/tidy.rs` reads it and fails on an import against it, and
+//! docs/architecture.md is the map of what each module does. Modules that nothing outside the
+//! crate needs are private.
 #![deny(missing_docs)]
 
-pub mod app;
+mod app;
 pub mod cli;
 pub mod compare;
 pub mod config;
 pub mod decide;
 pub mod decode;
-pub mod doc;
+mod doc;
 pub mod event;
 pub mod experiment;
 pub mod history;
-pub mod http;
-pub mod kafka;
+mod http;
+mod kafka;
 pub mod mapping;
-pub mod plan;
-pub mod replay;
-pub mod sample;
+mod plan;
+mod replay;
+mod sample;
 pub mod service;
-pub mod simulate;
-pub mod sinks;
+mod simulate;
+mod sinks;
 pub mod state;
 pub mod stats;
 pub mod summary;

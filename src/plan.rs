@@ -91,7 +91,16 @@ pub struct PlanOptions {
     pub scenarios: Vec<Scenario>,
     /// Worker threads (results do not depend on it).
     pub threads: usize,
+    /// Largest acceptable share of runs with a false harm alert (flagged above it).
+    pub max_false_harm: f64,
+    /// Largest acceptable share of runs shipping the wrong way (flagged above it).
+    pub max_wrong_ship: f64,
 }
+
+/// Default target for the share of runs with a false harm alert.
+pub const DEFAULT_MAX_FALSE_HARM: f64 = 0.05;
+/// Default target for the share of runs shipping the wrong way.
+pub const DEFAULT_MAX_WRONG_SHIP: f64 = 0.05;
 
 /// How a simulated experiment ended.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
@@ -158,6 +167,18 @@ pub struct RunEnd {
     pub loss: f64,
     /// Looks evaluated.
     pub looks: u64,
+    /// The arm kept: the one shipped, else the control.
+    pub kept: usize,
+    /// The decision shipped an arm that is truly worse than the best on the primary metric,
+    /// or a variant truly worse than the control on a guardrail by more than its clearance
+    /// margin.
+    pub wrong_ship: bool,
+    /// A harm alert (either rule) opened on a (metric, variant) that is truly not worse than
+    /// the control by more than the rule's margin.
+    pub false_harm: bool,
+    /// The first alarm of the anytime-valid harm rule over the whole planned duration
+    /// (followed past the run's decision): its (metric, variant, elapsed µs).
+    pub evidence_alarm: Option<(usize, usize, Micros)>,
 }
 
 /// Time spent, for `--bench`.
@@ -330,7 +351,12 @@ pub fn simulate_run(
     );
     let regret = |arm: usize| (best - rates[p][arm]).abs();
     let mut rng = StdRng::seed_from_u64(run_seed(opts.seed, scenario_index, run));
-    let mut book = AlertBook::new(opts.hold_down);
+    let mut book = AlertBook::without_intervals(opts.hold_down);
+    // The anytime-valid processes followed over the whole plan, also after the decision
+    // (they read totals only, so following them costs no quadrature).
+    let mut shadow = crate::decide::betting::EvidenceBook::new(false);
+    let mut evidence_alarm: Option<(usize, usize, Micros)> = None;
+    let mut decided: Option<RunEnd> = None;
     let mut clock = Clock::default();
     let applied = Outcome::ALL
         .iter()
@@ -434,6 +460,16 @@ pub fn simulate_run(
             first_event_time: Some(START),
             positions: Vec::new(),
         };
+        if evidence_alarm.is_none() {
+            shadow.advance(&snapshot);
+            evidence_alarm = first_alarm(def, &shadow, now);
+        }
+        if decided.is_some() {
+            if evidence_alarm.is_some() {
+                break;
+            }
+            continue;
+        }
         looks += 1;
         let t_eval = std::time::Instant::now();
         // The service's evaluation step without the lift quantiles, which only the history
@@ -442,26 +478,104 @@ pub fn simulate_run(
         evaluation.fold_into(&mut book);
         evaluating += t_eval.elapsed();
         let total_units: u64 = units.iter().sum();
-        if let Some((ending, kept)) = classify(def, &rates, &evaluation.changes) {
-            let end = RunEnd {
+        if let Some((ending, kept, harm_at)) = classify(def, &rates, &evaluation.changes) {
+            decided = Some(RunEnd {
                 ending,
                 elapsed: now,
                 units: total_units,
                 loss: regret(kept),
                 looks,
-            };
-            account(timing, t_start, evaluating, looks);
-            return end;
+                kept,
+                wrong_ship: matches!(
+                    ending,
+                    Ending::TrueShip | Ending::FalseShip | Ending::ControlShipped
+                ) && wrong_way(def, &rates, kept),
+                false_harm: harm_at.is_some_and(|(m, v)| !truly_worse(def, &rates, m, v)),
+                evidence_alarm: None,
+            });
+            if evidence_alarm.is_some() {
+                break;
+            }
         }
     }
     account(timing, t_start, evaluating, looks);
-    RunEnd {
+    let mut end = decided.unwrap_or(RunEnd {
         ending: Ending::Inconclusive,
         elapsed: horizon,
         units: units.iter().sum(),
         loss: regret(def.control),
         looks,
+        kept: def.control,
+        wrong_ship: false,
+        false_harm: false,
+        evidence_alarm: None,
+    });
+    end.evidence_alarm = evidence_alarm;
+    end
+}
+
+/// The first (metric, variant) whose anytime-valid harm process alarmed, at `now`.
+fn first_alarm(
+    def: &ExperimentDef,
+    book: &crate::decide::betting::EvidenceBook,
+    now: Micros,
+) -> Option<(usize, usize, Micros)> {
+    let key = def.state_key();
+    def.metrics.iter().enumerate().find_map(|(m, metric)| {
+        let rule = metric.rules.evidence?;
+        (0..def.variants.len())
+            .filter(|&v| v != def.control)
+            .find(|&v| book.get(&key, m, v).is_some_and(|p| p.alarmed(rule.alpha)))
+            .map(|v| (m, v, now))
+    })
+}
+
+/// Whether variant `v` is truly worse than the control on metric `m` by more than the harm
+/// margin (the smaller of the two harm rules' margins).
+fn truly_worse(def: &ExperimentDef, rates: &[Vec<f64>], m: usize, v: usize) -> bool {
+    let rules = &def.metrics[m].rules;
+    let margin = rules
+        .harm
+        .map(|h| h.margin)
+        .into_iter()
+        .chain(rules.evidence.map(|e| e.margin))
+        .fold(f64::INFINITY, f64::min);
+    let margin = if margin.is_finite() { margin } else { 0.0 };
+    let (c, x) = (rates[m][def.control], rates[m][v]);
+    if higher_is_better(def, m) {
+        x < (1.0 - margin) * c
+    } else {
+        x > (1.0 + margin) * c
     }
+}
+
+/// Whether keeping arm `kept` is a wrong-way ship: truly worse than the best arm on the
+/// primary metric, or (for a variant) truly worse than the control on a guardrail by more
+/// than that guardrail's clearance margin.
+fn wrong_way(def: &ExperimentDef, rates: &[Vec<f64>], kept: usize) -> bool {
+    let p = def.rules.primary;
+    let better = |a: f64, b: f64| {
+        if higher_is_better(def, p) {
+            a > b
+        } else {
+            a < b
+        }
+    };
+    if rates[p].iter().any(|&r| better(r, rates[p][kept])) {
+        return true;
+    }
+    if kept == def.control {
+        return false;
+    }
+    def.rules.guardrails.iter().any(|&g| {
+        let margin = def.metrics[g].rules.clear.map_or(0.0, |c| c.margin);
+        let (c, x) = (rates[g][def.control], rates[g][kept]);
+        if higher_is_better(def, g) {
+            x < (1.0 - margin) * c
+        } else {
+            x > (1.0 + margin) * c
+        }
+    })
 }
 
 fn account(
@@ -480,13 +594,17 @@ fn higher_is_better(def: &ExperimentDef, metric: usize) -> bool {
     def.metrics[metric].kind == MetricKind::Conversion
 }
 
-/// The decision an evaluation's alert changes amount to, and the arm kept: harm first (the
-/// team stops the variant), then ship, equivalence and inconclusive.
+/// An ending, the arm kept, and for harm the (metric, variant) it was raised on.
+type Classified = (Ending, usize, Option<(usize, usize)>);
+
+/// The decision an evaluation's alert changes amount to, the arm kept, and for harm the
+/// (metric, variant) it was raised on: harm first (either harm rule; the team stops the
+/// variant), then ship, equivalence and inconclusive.
 fn classify(
     def: &ExperimentDef,
     rates: &[Vec<f64>],
     changes: &[AlertChange],
-) -> Option<(Ending, usize)> {
+) -> Option<Classified> {
     let opened: Vec<&crate::decide::alerts::Alert> = changes
         .iter()
         .filter_map(|c| match c {
@@ -496,13 +614,17 @@ fn classify(
         .collect();
     let p = def.rules.primary;
     let control = def.control;
-    if opened.iter().any(|a| a.key.rule == Rule::Harm) {
-        return Some((Ending::Harm, control));
+    if let Some(a) = opened
+        .iter()
+        .find(|a| matches!(a.key.rule, Rule::Harm | Rule::HarmEvidence))
+    {
+        let at = a.finding.metric.zip(a.finding.variant);
+        return Some((Ending::Harm, control, at));
     }
     if let Some(a) = opened.iter().find(|a| a.key.rule == Rule::Ship) {
         let v = a.finding.variant.unwrap_or(control);
         if v == control {
-            return Some((Ending::ControlShipped, control));
+            return Some((Ending::ControlShipped, control, None));
         }
         let better = if higher_is_better(def, p) {
             rates[p][v] > rates[p][control]
@@ -516,13 +638,14 @@ fn classify(
                 Ending::FalseShip
             },
             v,
+            None,
         ));
     }
     if opened.iter().any(|a| a.key.rule == Rule::Equivalent) {
-        return Some((Ending::Equivalent, control));
+        return Some((Ending::Equivalent, control, None));
     }
     if opened.iter().any(|a| a.key.rule == Rule::Inconclusive) {
-        return Some((Ending::Inconclusive, control));
+        return Some((Ending::Inconclusive, control, None));
     }
     None
 }
@@ -546,8 +669,11 @@ impl Progress for indicatif::ProgressBar {
 /// Run every scenario of `opts` on `opts.threads` threads; results are in run order, so they
 /// do not depend on the thread count.
 pub fn run(opts: &PlanOptions, progress: &dyn Progress) -> (Vec<ScenarioResult>, Timing) {
-    let jobs: Vec<(usize, usize)> = (0..opts.scenarios.len())
-        .flat_map(|s| (0..opts.sims).map(move |r| (s, r)))
+    // Interleaved across scenarios (run-major), so that progress and its time estimate see
+    // every scenario's pace from the start; results are put back in scenario order below.
+    let n_scenarios = opts.scenarios.len();
+    let jobs: Vec<(usize, usize)> = (0..opts.sims)
+        .flat_map(|r| (0..n_scenarios).map(move |s| (s, r)))
         .collect();
     let next = AtomicUsize::new(0);
     let slots: Vec<Mutex<Option<RunEnd>>> = jobs.iter().map(|_| Mutex::new(None)).collect();
@@ -570,17 +696,21 @@ pub fn run(opts: &PlanOptions, progress: &dyn Progress) -> (Vec<ScenarioResult>,
             });
         }
     });
-    let mut ends = slots.into_iter().map(|m| {
-        m.into_inner()
-            .unwrap_or_else(|p| p.into_inner())
-            .expect("every job ran")
-    });
+    let ends: Vec<RunEnd> = slots
+        .into_iter()
+        .map(|m| {
+            m.into_inner()
+                .unwrap_or_else(|p| p.into_inner())
+                .expect("every job ran")
+        })
+        .collect();
     let results = opts
         .scenarios
         .iter()
-        .map(|sc| ScenarioResult {
+        .enumerate()
+        .map(|(s, sc)| ScenarioResult {
             scenario: sc.clone(),
-            runs: ends.by_ref().take(opts.sims).collect(),
+            runs: (0..opts.sims).map(|r| ends[r * n_scenarios + s]).collect(),
         })
         .collect();
     (
@@ -640,7 +770,43 @@ pub fn scenario_json(opts: &PlanOptions, result: &ScenarioResult) -> Value {
     }
     let def = &opts.def;
     let loss: f64 = result.runs.iter().map(|r| r.loss).sum::<f64>() / n.max(1.0);
+    let rates = true_rates(opts, &result.scenario);
+    let rate_of = |f: &dyn Fn(&RunEnd) -> bool| {
+        let s = result.runs.iter().filter(|r| f(r)).count() as f64 / n.max(1.0);
+        json!({"share": s, "mc_standard_error": (s * (1.0 - s) / n.max(1.0)).sqrt()})
+    };
+    let wrong_ship = rate_of(&|r| r.wrong_ship);
+    let false_harm = rate_of(&|r| r.false_harm);
+    let mut alarm_days: Vec<f64> = result
+        .runs
+        .iter()
+        .filter_map(|r| r.evidence_alarm.map(|(_, _, t)| t as f64 / DAY as f64))
+        .collect();
+    let evidence_false = rate_of(&|r| {
+        r.evidence_alarm
+            .is_some_and(|(m, v, _)| !truly_worse(def, &rates, m, v))
+    });
+    let flags = flags(opts, &wrong_ship, &false_harm);
     json!({
+        "targets": {"false_harm": opts.max_false_harm, "wrong_ship": opts.max_wrong_ship},
+        "wrong_ship": wrong_ship,
+        "false_harm": false_harm,
+        "flags": flags,
+        "anytime_harm": {
+            "rule": "harm_evidence",
+            "alarm": rate_of(&|r| r.evidence_alarm.is_some()),
+            "false_alarm": evidence_false,
+            "days_to_alarm": {
+                "median": quantile(&mut alarm_days.clone(), 0.5).map(|x| round_to(x, 4)),
+                "p90": quantile(&mut alarm_days, 0.9).map(|x| round_to(x, 4)),
+            },
+            "followed_for_days": opts.days,
+        },
+        "guardrail_harm_incurred": def.rules.guardrails.iter().map(|&g| json!({
+            "metric": def.metrics[g].name,
+            "kind": def.metrics[g].kind.as_str(),
+            "mean": guardrail_harm(opts, &rates, result, g),
+        })).collect::<Vec<_>>(),
         "scenario": result.scenario.name,
         "effects": result.scenario.effects.iter().map(|e| json!({
             "variant": def.variants[e.variant].name,
@@ -660,6 +826,53 @@ pub fn scenario_json(opts: &PlanOptions, result: &ScenarioResult) -> Value {
             Value::Object(m)
         }).collect::<Vec<_>>(),
     })
+}
+
+/// Mean over runs of the guardrail harm the kept arm brings on guardrail `g`, in the metric's
+/// own units: how much worse than the control its true rate is (0 when not worse).
+fn guardrail_harm(
+    opts: &PlanOptions,
+    rates: &[Vec<f64>],
+    result: &ScenarioResult,
+    g: usize,
+) -> f64 {
+    let def = &opts.def;
+    let n = result.runs.len().max(1) as f64;
+    let c = rates[g][def.control];
+    result
+        .runs
+        .iter()
+        .map(|r| {
+            let x = rates[g][r.kept];
+            if higher_is_better(def, g) {
+                (c - x).max(0.0)
+            } else {
+                (x - c).max(0.0)
+            }
+        })
+        .sum::<f64>()
+        / n
+}
+
+/// The targets a scenario's error rates exceed, each as one sentence.
+fn flags(opts: &PlanOptions, wrong_ship: &Value, false_harm: &Value) -> Vec<String> {
+    let mut out = Vec::new();
+    let share = |v: &Value| v["share"].as_f64().unwrap_or(0.0);
+    if share(false_harm) > opts.max_false_harm {
+        out.push(format!(
+            "false harm alerts in {:.1}% of runs exceed the target {:.1}%: raise harm.probability, lower harm_evidence.alpha, or look less often",
+            share(false_harm) * 100.0,
+            opts.max_false_harm * 100.0
+        ));
+    }
+    if share(wrong_ship) > opts.max_wrong_ship {
+        out.push(format!(
+            "wrong-way ships in {:.1}% of runs exceed the target {:.1}%: lower the threshold of caring, raise min_duration_days, or tighten the guardrails' clearance",
+            share(wrong_ship) * 100.0,
+            opts.max_wrong_ship * 100.0
+        ));
+    }
+    out
 }
 
 /// For each whole day of the plan (and its end), the share of runs that had reached each
@@ -724,6 +937,52 @@ pub fn scenario_table(opts: &PlanOptions, result: &ScenarioResult) -> String {
         v["expected_loss_incurred"].as_f64().unwrap_or(0.0),
         opts.def.metrics[opts.def.rules.primary].name
     );
+    for g in v["guardrail_harm_incurred"]
+        .as_array()
+        .into_iter()
+        .flatten()
+    {
+        let kind = g["kind"].as_str().unwrap_or("");
+        let _ = writeln!(
+            out,
+            "  guardrail harm incurred on `{}`: {:.3e} ({}; kept arm minus control where worse)",
+            g["metric"].as_str().unwrap_or(""),
+            g["mean"].as_f64().unwrap_or(0.0),
+            if kind == "conversion" {
+                "conversion rate units"
+            } else {
+                "defects per unit of exposure"
+            }
+        );
+    }
+    let rate = |x: &Value| {
+        format!(
+            "{:.4} ± {:.4}",
+            x["share"].as_f64().unwrap_or(0.0),
+            x["mc_standard_error"].as_f64().unwrap_or(0.0)
+        )
+    };
+    let _ = writeln!(
+        out,
+        "  wrong-way ship {} (target ≤ {}); false harm alert {} (target ≤ {})",
+        rate(&v["wrong_ship"]),
+        opts.max_wrong_ship,
+        rate(&v["false_harm"]),
+        opts.max_false_harm
+    );
+    let a = &v["anytime_harm"];
+    let _ = writeln!(
+        out,
+        "  anytime-valid harm rule (harm_evidence), followed for all {} days: alarm {}, of which false {}; median {} d, p90 {} d to the alarm",
+        opts.days,
+        rate(&a["alarm"]),
+        rate(&a["false_alarm"]),
+        num(&a["days_to_alarm"]["median"], 2),
+        num(&a["days_to_alarm"]["p90"], 2),
+    );
+    for f in v["flags"].as_array().into_iter().flatten() {
+        let _ = writeln!(out, "  ⚠ {}", f.as_str().unwrap_or(""));
+    }
     out
 }
 

@@ -277,7 +277,9 @@ pub fn replay(
         .into_iter()
         .map(|snap| {
             let summary = crate::summary::summarize(snap, crate::summary::DEFAULT_LEVEL);
-            let findings = crate::decide::evaluate(&summary);
+            let mut findings = crate::decide::evaluate(&summary);
+            // The anytime-valid processes as of the last due point (they advance only there).
+            crate::decide::add_evidence_findings(&summary, report.book.evidence(), &mut findings);
             (summary, findings)
         })
         .collect();
@@ -317,7 +319,7 @@ pub fn to_json(report: &ReplayReport) -> Value {
         "evaluations": report.evaluations,
         "decisions": report.decisions.iter().map(decision_doc).collect::<Vec<_>>(),
         "alerts": report.book.alerts().iter().map(crate::doc::alert).collect::<Vec<_>>(),
-        "experiments": report.experiments.iter().map(|(s, _)| crate::doc::experiment_document(s)).collect::<Vec<_>>(),
+        "experiments": report.experiments.iter().map(|(s, _)| crate::doc::experiment_document_with(s, Some(report.book.evidence()))).collect::<Vec<_>>(),
         "caution": crate::doc::CAUTION,
     })
 }
@@ -402,6 +404,26 @@ pub fn to_text(report: &ReplayReport) -> String {
                     .join(", ")
             }
         );
+        let def = &snap.def;
+        for st in
+            crate::decide::standing::standings(summary, findings, Some(report.book.evidence()))
+        {
+            let _ = writeln!(
+                out,
+                "    {:<14} {:<28} {:<10} {}",
+                st.rule.as_str(),
+                [
+                    st.metric.map(|m| def.metrics[m].name.as_str()),
+                    st.variant.map(|v| def.variants[v].name.as_str()),
+                ]
+                .into_iter()
+                .flatten()
+                .collect::<Vec<_>>()
+                .join(" / "),
+                st.state.as_str(),
+                st.detail
+            );
+        }
     }
     let _ = writeln!(out, "\n{}", crate::doc::CAUTION);
     out

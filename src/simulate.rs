@@ -61,6 +61,10 @@ fn variants(names: &[(&str, f64)]) -> Vec<VariantDef> {
 
 fn metric(name: &str, kind: MetricKind, prior: Prior, n_variants: usize) -> MetricDef {
     let mut rules = crate::experiment::MetricRules::default();
+    if kind == MetricKind::DefectRate(ExposureBasis::Reported) {
+        // As the config does for reported exposure: the metric's own minimum is exposure.
+        rules.min_units = 0;
+    }
     if kind == MetricKind::Conversion {
         // The demo's teams care about 0.05 percentage points of conversion: small enough that
         // a demo run does not "ship" after a few hundred units (a poor example to set; see

@@ -878,3 +878,121 @@ changelog_interval_ms = 300
     assert_eq!(kafka_rejects(&c), 0);
     api_a.check_schemas();
 }
+
+/// The lists page by cursor with their filters, refuse bad paging parameters with the one
+/// error shape naming the parameter, and every reply (pages, errors, the overview's HTML)
+/// fits the OpenAPI document.
+#[test]
+fn lists_page_by_cursor_with_filters_and_fit_the_schema() {
+    let mut api = Api::new(Service::start(CONFIG), None);
+    for id in [
+        "orchard-tray-a",
+        "orchard-tray-b",
+        "orchard-pot-c",
+        "orchard-tray-d",
+    ] {
+        let r = api.call(
+            "PUT",
+            "/v1/experiments/{id}",
+            &format!("/v1/experiments/{id}"),
+            Some(seed_tray(&["control", "tray"], &[("plant", "conversion")]).to_string()),
+        );
+        assert_eq!(r.status, 201, "{}", r.body);
+    }
+    // Two at a time, by id, to the end.
+    let mut ids = Vec::new();
+    let mut path = "/v1/experiments?limit=2".to_string();
+    loop {
+        let r = api.call("GET", "/v1/experiments", &path, None);
+        assert_eq!(r.status, 200, "{}", r.body);
+        assert_eq!(r.body["matched"], 5);
+        assert_eq!(r.body["limit"], 2);
+        for e in r.body["experiments"].as_array().unwrap() {
+            ids.push(e["id"].as_str().unwrap().to_string());
+            assert_eq!(e["state"], "learning", "no data yet");
+            assert_eq!(e["open_alerts"], 0);
+        }
+        match r.body["next"].as_str() {
+            Some(c) => path = format!("/v1/experiments?limit=2&after={c}"),
+            None => break,
+        }
+    }
+    assert_eq!(
+        ids,
+        [
+            "crumb-checkout-copy",
+            "orchard-pot-c",
+            "orchard-tray-a",
+            "orchard-tray-b",
+            "orchard-tray-d"
+        ]
+    );
+    // Filters.
+    let r = api.call(
+        "GET",
+        "/v1/experiments",
+        "/v1/experiments?q=TRAY&metric=plant&sort=units",
+        None,
+    );
+    assert_eq!(r.body["matched"], 3, "{}", r.body);
+    let r = api.call(
+        "GET",
+        "/v1/experiments",
+        "/v1/experiments?metric=purchase",
+        None,
+    );
+    assert_eq!(r.body["experiments"][0]["id"], "crumb-checkout-copy");
+    assert_eq!(r.body["matched"], 1);
+    for q in ["state=harm", "rule=ship", "alerting=true"] {
+        let r = api.call(
+            "GET",
+            "/v1/experiments",
+            &format!("/v1/experiments?{q}"),
+            None,
+        );
+        assert_eq!((r.status, &r.body["matched"]), (200, &json!(0)), "{q}");
+        assert!(r.body["next"].is_null());
+    }
+    // Bad parameters, each named.
+    let first = api.call("GET", "/v1/experiments", "/v1/experiments?limit=1", None);
+    let cursor = first.body["next"].as_str().unwrap().to_string();
+    for (q, param) in [
+        ("limit=0".to_string(), "limit"),
+        ("limit=1001".to_string(), "limit"),
+        ("state=asleep".to_string(), "state"),
+        ("rule=ship-it".to_string(), "rule"),
+        ("sort=colour".to_string(), "sort"),
+        ("after=not-a-cursor".to_string(), "after"),
+        (format!("sort=units&after={cursor}"), "after"),
+    ] {
+        let r = api.call(
+            "GET",
+            "/v1/experiments",
+            &format!("/v1/experiments?{q}"),
+            None,
+        );
+        assert_error(&r, 400, "bad_filter");
+        assert_eq!(r.body["error"]["details"]["parameter"], param, "{q}");
+    }
+    let r = api.call(
+        "GET",
+        "/v1/alerts",
+        "/v1/alerts?limit=1&rule=harm&metric=plant",
+        None,
+    );
+    assert_eq!(r.status, 200);
+    assert_eq!(
+        (&r.body["matched"], &r.body["next"]),
+        (&json!(0), &Value::Null)
+    );
+    let r = api.call("GET", "/v1/alerts", "/v1/alerts?rule=teleport", None);
+    assert_error(&r, 400, "bad_filter");
+    let r = api.call("GET", "/v1/alerts", "/v1/alerts?after=opened~x", None);
+    assert_error(&r, 400, "bad_filter");
+    // The overview: counts and a bad filter, as HTML.
+    let r = api.call("GET", "/", "/?q=tray&sort=id", None);
+    assert_eq!(r.status, 200);
+    let r = api.call("GET", "/", "/?state=asleep", None);
+    assert_eq!(r.status, 400);
+    api.check_schemas();
+}

@@ -117,6 +117,58 @@ fn demo_stops_cleanly_on_sigterm() {
 }
 
 #[test]
+fn demo_takes_its_address_from_posteriord_http_addr_like_serve() {
+    // Without --addr the demo listens where POSTERIORD_HTTP_ADDR says (port 0 here, so not
+    // the default 127.0.0.1:8080), as `serve` and the container image expect.
+    let dir = tempfile::tempdir().unwrap();
+    let log = dir.path().join("demo.log");
+    let mut child = Command::new(bin())
+        .arg("demo")
+        .env("POSTERIORD_HTTP_ADDR", "127.0.0.1:0")
+        .env_remove("POSTERIORD_API_TOKENS")
+        .current_dir(dir.path())
+        .stdout(Stdio::piped())
+        .stderr(std::fs::File::create(&log).unwrap())
+        .spawn()
+        .unwrap();
+    let base = read_listen_line(&mut child, &log);
+    let base = base.split("/v1/").next().unwrap().to_string();
+    assert!(base.starts_with("http://127.0.0.1:"), "{base}");
+    assert!(
+        !base.ends_with(":8080"),
+        "the default address was used: {base}"
+    );
+    let status = client()
+        .get(format!("{base}/healthz"))
+        .send()
+        .unwrap()
+        .status();
+    assert_eq!(status.as_u16(), 200);
+    signal(child.id(), "TERM");
+    let status = wait_exit(&mut child, Duration::from_secs(20)).expect("demo exits on SIGTERM");
+    assert!(status.success(), "{status:?}");
+
+    // A non-loopback address from the environment gets the same token guard as --addr.
+    let out = Command::new(bin())
+        .args(["demo", "--duration", "1"])
+        .env("POSTERIORD_HTTP_ADDR", "0.0.0.0:0")
+        .env_remove("POSTERIORD_API_TOKENS")
+        .current_dir(dir.path())
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "0.0.0.0 without a token: {stderr}"
+    );
+    assert!(
+        stderr.contains("refusing to listen on 0.0.0.0:0 without an API token"),
+        "{stderr}"
+    );
+}
+
+#[test]
 fn with_the_brokers_unreachable_sigterm_still_drains_within_the_grace_period() {
     let dead = std::net::TcpListener::bind("127.0.0.1:0")
         .unwrap()

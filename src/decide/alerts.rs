@@ -93,6 +93,7 @@ pub enum AlertChange {
 pub struct AlertBook {
     alerts: Vec<Alert>,
     hold_down: Micros,
+    evidence: super::betting::EvidenceBook,
 }
 
 fn is_final(rule: Rule) -> bool {
@@ -105,12 +106,36 @@ impl AlertBook {
         AlertBook {
             alerts: Vec::new(),
             hold_down,
+            evidence: super::betting::EvidenceBook::new(true),
         }
+    }
+
+    /// An empty book whose anytime-valid harm processes keep no confidence sequences (for
+    /// `plan`, which reads only the alarms).
+    pub fn without_intervals(hold_down: Micros) -> AlertBook {
+        AlertBook {
+            evidence: super::betting::EvidenceBook::new(false),
+            ..AlertBook::new(hold_down)
+        }
+    }
+
+    /// The anytime-valid harm processes.
+    pub fn evidence(&self) -> &super::betting::EvidenceBook {
+        &self.evidence
+    }
+
+    /// The anytime-valid harm processes, to advance them.
+    pub fn evidence_mut(&mut self) -> &mut super::betting::EvidenceBook {
+        &mut self.evidence
     }
 
     /// A book holding `alerts` (restored from the store).
     pub fn from_alerts(alerts: Vec<Alert>, hold_down: Micros) -> AlertBook {
-        AlertBook { alerts, hold_down }
+        AlertBook {
+            alerts,
+            hold_down,
+            evidence: super::betting::EvidenceBook::new(true),
+        }
     }
 
     /// Every alert, oldest first.

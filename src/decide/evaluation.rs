@@ -58,8 +58,11 @@ fn assess_with(
 }
 
 impl Evaluation {
-    /// Fold the findings into `book` with the evaluation's event time as "now".
+    /// Advance the anytime-valid harm processes in `book` by this look, add their findings,
+    /// and fold all findings into `book` with the evaluation's event time as "now".
     pub fn fold_into(&mut self, book: &mut AlertBook) {
+        book.evidence_mut().advance(&self.summary.snapshot);
+        super::add_evidence_findings(&self.summary, book.evidence(), &mut self.findings);
         self.changes = book.update(&self.summary.snapshot.def, &self.findings, self.at);
     }
 }

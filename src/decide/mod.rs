@@ -10,7 +10,9 @@
 //! rules are reported first and suspend shipping.
 
 pub mod alerts;
+pub mod betting;
 pub mod evaluation;
+pub mod standing;
 
 use crate::event::Outcome;
 use crate::experiment::{ExperimentDef, MetricKind};
@@ -27,6 +29,9 @@ pub enum Rule {
     Crossovers,
     /// A variant is worse than the control by more than the margin, with high probability.
     Harm,
+    /// Anytime-valid evidence that a variant is worse than the control by more than the
+    /// margin: its test martingale reached 1/α.
+    HarmEvidence,
     /// An arm can be shipped: its expected loss is below the threshold of caring.
     Ship,
     /// All variants are practically equivalent to the control.
@@ -37,10 +42,11 @@ pub enum Rule {
 
 impl Rule {
     /// Every rule.
-    pub const ALL: [Rule; 6] = [
+    pub const ALL: [Rule; 7] = [
         Rule::SampleRatio,
         Rule::Crossovers,
         Rule::Harm,
+        Rule::HarmEvidence,
         Rule::Ship,
         Rule::Equivalent,
         Rule::Inconclusive,
@@ -52,7 +58,8 @@ impl Rule {
             Rule::SampleRatio => "p_value < threshold",
             Rule::Crossovers => "crossover share > threshold",
             Rule::Harm => "prob_harm >= threshold",
-            Rule::Ship => "expected_loss < threshold_of_caring",
+            Rule::HarmEvidence => "max_e_value >= 1/alpha",
+            Rule::Ship => "expected_loss < threshold_of_caring and guardrails cleared",
             Rule::Equivalent => "min prob_practically_equivalent >= threshold",
             Rule::Inconclusive => "duration_days >= max_duration_days",
         }
@@ -69,6 +76,7 @@ impl Rule {
             Rule::SampleRatio => "sample_ratio",
             Rule::Crossovers => "crossovers",
             Rule::Harm => "harm",
+            Rule::HarmEvidence => "harm_evidence",
             Rule::Ship => "ship",
             Rule::Equivalent => "equivalent",
             Rule::Inconclusive => "inconclusive",
@@ -122,7 +130,7 @@ pub struct ArmEvidence {
     pub units: u64,
 }
 
-fn eligible(
+pub(crate) fn eligible(
     def: &ExperimentDef,
     totals: &MetricTotals,
     units: &[u64],
@@ -240,14 +248,17 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
         let all_eligible =
             (0..def.variants.len()).all(|v| eligible(def, &snap.metrics[p], &snap.units, p, v));
         if all_eligible {
-            if let (Some(rule), false) = (primary.rules.ship, srm_holds) {
+            if let (Some(rule), false, true) = (primary.rules.ship, srm_holds, long_enough(summary))
+            {
                 let best = arms
                     .iter()
                     .enumerate()
                     .filter(|(v, _)| !xr.guardrails.iter().any(|g| harmed.contains(&(*g, *v))))
                     .min_by(|a, b| a.1.expected_loss.total_cmp(&b.1.expected_loss));
                 if let Some((v, arm)) = best {
-                    if arm.expected_loss < rule.threshold_of_caring {
+                    if arm.expected_loss < rule.threshold_of_caring
+                        && guardrail_blockers(summary, v).is_empty()
+                    {
                         out.push(Finding {
                             evidence: Evidence::default(),
                             rule: Rule::Ship,
@@ -267,7 +278,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                 .filter(|(v, _)| *v != control)
                 .filter_map(|(_, a)| a.prob_practically_equivalent)
                 .collect();
-            if !equivalent.is_empty() {
+            if !equivalent.is_empty() && long_enough(summary) {
                 let worst = equivalent.iter().copied().fold(f64::INFINITY, f64::min);
                 if worst >= xr.equivalence_probability {
                     out.push(Finding {
@@ -318,12 +329,233 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
         }
     }
     for f in &mut out {
-        f.evidence = evidence(summary, f);
+        f.evidence = evidence_of(summary, f);
     }
     out
 }
 
-fn evidence(summary: &ExperimentSummary, f: &Finding) -> Evidence {
+/// Add the `harm_evidence` findings of `evidence` (already advanced by this look) to the
+/// findings of `summary`, after the other harm findings; a variant with such evidence on the
+/// primary metric or a guardrail is not shipped. Suspended while a sample-ratio mismatch holds:
+/// the processes assume units are assigned with the planned weights.
+pub fn add_evidence_findings(
+    summary: &ExperimentSummary,
+    evidence: &betting::EvidenceBook,
+    findings: &mut Vec<Finding>,
+) {
+    if findings.iter().any(|f| f.rule == Rule::SampleRatio) {
+        return;
+    }
+    let def = &summary.snapshot.def;
+    let key = def.state_key();
+    let mut found = Vec::new();
+    for (m, metric) in def.metrics.iter().enumerate() {
+        let Some(rule) = metric.rules.evidence else {
+            continue;
+        };
+        for v in (0..def.variants.len()).filter(|&v| v != def.control) {
+            let Some(process) = evidence.get(&key, m, v) else {
+                continue;
+            };
+            if !process.alarmed(rule.alpha) {
+                continue;
+            }
+            let st = process.standing();
+            let mut f = Finding {
+                rule: Rule::HarmEvidence,
+                metric: Some(m),
+                variant: Some(v),
+                value: st.max_e_value,
+                threshold: 1.0 / rule.alpha,
+                test: Rule::HarmEvidence.test(),
+                message: format!(
+                    "`{}` is worse than `{}` on `{}`{}: the evidence against \"not worse\" reached {:.1} (alarm at 1/α = {:.0}; a false alarm has probability at most {} however often this is looked at); consider stopping it",
+                    def.variants[v].name,
+                    def.variants[def.control].name,
+                    metric.name,
+                    if rule.margin > 0.0 { format!(" by more than {:.1}%", rule.margin * 100.0) } else { String::new() },
+                    st.max_e_value,
+                    1.0 / rule.alpha,
+                    rule.alpha
+                ),
+                evidence: Evidence::default(),
+            };
+            f.evidence = evidence_of(summary, &f);
+            found.push(f);
+        }
+    }
+    if found.is_empty() {
+        return;
+    }
+    let blocked: Vec<usize> = found
+        .iter()
+        .filter(|f| {
+            f.metric
+                .is_some_and(|m| m == def.rules.primary || def.rules.guardrails.contains(&m))
+        })
+        .filter_map(|f| f.variant)
+        .collect();
+    findings.retain(|f| !(f.rule == Rule::Ship && f.variant.is_some_and(|v| blocked.contains(&v))));
+    let at = findings
+        .iter()
+        .rposition(|f| matches!(f.rule, Rule::SampleRatio | Rule::Crossovers | Rule::Harm))
+        .map_or(0, |i| i + 1);
+    findings.splice(at..at, found);
+}
+
+/// Whether the experiment ran `min_duration` of event time (ship and equivalence wait for it).
+/// Data without event times cannot show a duration; the rule's standing says so
+/// ([`standing`]) and the minimum is not applied.
+pub fn long_enough(summary: &ExperimentSummary) -> bool {
+    let snap = &summary.snapshot;
+    match (snap.first_event_time, snap.last_event_time) {
+        (Some(first), Some(last)) => last - first >= snap.def.rules.min_duration,
+        _ => true,
+    }
+}
+
+/// Why a guardrail does not (yet) clear shipping variant `v`.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Blocker {
+    /// Too little data on the guardrail: which arm, and what it has of what it needs.
+    Waiting {
+        /// Guardrail metric.
+        metric: usize,
+        /// The arm short of data.
+        arm: usize,
+        /// "units" or "exposure".
+        what: &'static str,
+        /// What it has.
+        have: f64,
+        /// What it needs.
+        need: f64,
+    },
+    /// The posterior probability of worsening beyond the margin is above the clearance
+    /// probability.
+    NotCleared {
+        /// Guardrail metric.
+        metric: usize,
+        /// P(worse than the control by more than the margin).
+        probability: f64,
+        /// The largest probability that clears.
+        threshold: f64,
+        /// The clearance margin.
+        margin: f64,
+    },
+    /// The guardrail's numbers could not be computed.
+    Failed {
+        /// Guardrail metric.
+        metric: usize,
+        /// Why.
+        reason: String,
+    },
+}
+
+/// The guardrails that keep variant `v` from shipping; empty when every guardrail with a
+/// clearance rule is cleared (always for the control, the status quo).
+pub fn guardrail_blockers(summary: &ExperimentSummary, v: usize) -> Vec<Blocker> {
+    let snap = &summary.snapshot;
+    let def = &snap.def;
+    let control = def.control;
+    if v == control {
+        return Vec::new();
+    }
+    let mut out = Vec::new();
+    for &g in &def.rules.guardrails {
+        let Some(clear) = def.metrics[g].rules.clear else {
+            continue;
+        };
+        if let Some(b) = [control, v]
+            .into_iter()
+            .find_map(|arm| shortfall(def, &snap.metrics[g], &snap.units, g, arm))
+        {
+            out.push(b);
+            continue;
+        }
+        match prob_beyond(summary, g, v, clear.margin) {
+            Ok(p) if p <= clear.probability => {}
+            Ok(p) => out.push(Blocker::NotCleared {
+                metric: g,
+                probability: p,
+                threshold: clear.probability,
+                margin: clear.margin,
+            }),
+            Err(reason) => out.push(Blocker::Failed { metric: g, reason }),
+        }
+    }
+    out
+}
+
+/// What arm `arm` lacks on metric `m` before its rules may hold, if anything.
+pub(crate) fn shortfall(
+    def: &ExperimentDef,
+    totals: &MetricTotals,
+    units: &[u64],
+    m: usize,
+    arm: usize,
+) -> Option<Blocker> {
+    let rules = &def.metrics[m].rules;
+    if units[arm] < rules.min_units {
+        return Some(Blocker::Waiting {
+            metric: m,
+            arm,
+            what: "units",
+            have: units[arm] as f64,
+            need: rules.min_units as f64,
+        });
+    }
+    if let MetricTotals::Defect(t) = totals {
+        if t[arm].exposure < rules.min_exposure {
+            return Some(Blocker::Waiting {
+                metric: m,
+                arm,
+                what: "exposure",
+                have: t[arm].exposure,
+                need: rules.min_exposure,
+            });
+        }
+    }
+    None
+}
+
+/// P(variant `v` worse than the control by more than `margin`, relative) on metric `m`:
+/// the summary's own harm probability when the margins agree, else one two-arm comparison.
+pub fn prob_beyond(
+    summary: &ExperimentSummary,
+    m: usize,
+    v: usize,
+    margin: f64,
+) -> Result<f64, String> {
+    let def = &summary.snapshot.def;
+    let ms = &summary.metrics[m];
+    let harm_margin = def.metrics[m].rules.harm.map_or(0.0, |h| h.margin);
+    if harm_margin == margin {
+        if let Ok(arms) = &ms.arms {
+            if let Some(p) = arms[v].prob_harm {
+                return Ok(p);
+            }
+        }
+    }
+    let posteriors = ms.posteriors.as_ref().map_err(|e| e.to_string())?;
+    let c = def.control;
+    let pair = match posteriors {
+        crate::stats::Arms::Beta(b) => crate::stats::Arms::Beta(vec![b[c], b[v]]),
+        crate::stats::Arms::Gamma(g) => crate::stats::Arms::Gamma(vec![g[c], g[v]]),
+    };
+    let options = crate::stats::CompareOptions {
+        control: 0,
+        harm_margin: margin,
+        lift_interval: false,
+        equivalence: false,
+        ..crate::stats::CompareOptions::default()
+    };
+    let arms = crate::stats::compare(&pair, &options).map_err(|e| e.to_string())?;
+    arms[1]
+        .prob_harm
+        .ok_or_else(|| "no harm probability for the variant".to_string())
+}
+
+fn evidence_of(summary: &ExperimentSummary, f: &Finding) -> Evidence {
     let snap = &summary.snapshot;
     let control = snap.def.control;
     let arms_of: Vec<usize> = match f.variant {

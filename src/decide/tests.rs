@@ -200,6 +200,14 @@ fn nothing_is_decided_below_the_minimum_sample() {
     assert!(rules_of(&f).contains(&(Rule::Harm, Some(0), Some(2))));
 }
 
+/// Guardrail rules without clearance, for tests of the ship rule's own comparison.
+fn no_clear() -> MetricRules {
+    MetricRules {
+        clear: None,
+        ..MetricRules::default()
+    }
+}
+
 fn ship_at(t: f64) -> MetricRules {
     MetricRules {
         ship: Some(ShipRule {
@@ -213,7 +221,7 @@ fn ship_at(t: f64) -> MetricRules {
 fn ship_fires_below_the_threshold_of_caring_and_picks_the_smallest_loss() {
     // short-copy converts 14% against 12% and 12.2%.
     let arms = even([480, 560, 488], [10, 10, 10]);
-    let (_, summary) = findings(def(ship_at(1.0), MetricRules::default(), rules()), &arms, 0);
+    let (_, summary) = findings(def(ship_at(1.0), no_clear(), rules()), &arms, 0);
     let losses: Vec<f64> = summary.metrics[0]
         .arms
         .as_ref()
@@ -224,7 +232,7 @@ fn ship_fires_below_the_threshold_of_caring_and_picks_the_smallest_loss() {
     let best = losses[1];
     assert!(best < losses[0] && best < losses[2], "{losses:?}");
     let (f, _) = findings(
-        def(ship_at(best * 1.000_001), MetricRules::default(), rules()),
+        def(ship_at(best * 1.000_001), no_clear(), rules()),
         &arms,
         0,
     );
@@ -234,11 +242,7 @@ fn ship_fires_below_the_threshold_of_caring_and_picks_the_smallest_loss() {
         ship.message.contains("review"),
         "the caution travels with the decision"
     );
-    let (f, _) = findings(
-        def(ship_at(best), MetricRules::default(), rules()),
-        &arms,
-        0,
-    );
+    let (f, _) = findings(def(ship_at(best), no_clear(), rules()), &arms, 0);
     assert!(
         !f.iter().any(|x| x.rule == Rule::Ship),
         "strictly below: {f:?}"
@@ -273,11 +277,7 @@ fn a_sample_ratio_mismatch_is_reported_and_suspends_shipping() {
     let mut arms = even([480, 560, 488], [10, 10, 10]);
     arms[1].units = 3_500;
     arms[1].conversions = 490;
-    let (f, summary) = findings(
-        def(ship_at(0.01), MetricRules::default(), rules()),
-        &arms,
-        0,
-    );
+    let (f, summary) = findings(def(ship_at(0.01), no_clear(), rules()), &arms, 0);
     let p = summary
         .sample_ratio
         .as_ref()
@@ -293,7 +293,7 @@ fn a_sample_ratio_mismatch_is_reported_and_suspends_shipping() {
         srm_p: p * 0.5,
         ..rules()
     };
-    let (f, _) = findings(def(ship_at(0.01), MetricRules::default(), loose), &arms, 0);
+    let (f, _) = findings(def(ship_at(0.01), no_clear(), loose), &arms, 0);
     assert!(!f.iter().any(|x| x.rule == Rule::SampleRatio));
     assert!(f.iter().any(|x| x.rule == Rule::Ship), "{f:?}");
 }
@@ -360,7 +360,7 @@ fn inconclusive_at_max_duration_unless_decided() {
         ..rules()
     };
     let run = |span: i64, conv_rules: MetricRules| {
-        let d = def(conv_rules, MetricRules::default(), limited.clone());
+        let d = def(conv_rules, no_clear(), limited.clone());
         let (_, summary) = findings(d, &arms, 0);
         let mut snap = summary.snapshot.clone();
         snap.first_event_time = Some(0);
@@ -380,4 +380,245 @@ fn inconclusive_at_max_duration_unless_decided() {
     assert!(!run(20 * day, ship_at(1.0))
         .iter()
         .any(|f| f.rule == Rule::Inconclusive));
+}
+
+#[test]
+fn shipping_waits_for_guardrails_to_be_cleared_and_says_why() {
+    // short-copy wins on purchase (14% vs 12%); payment errors 10 per 4 000 units in every
+    // arm: too few to rule out a 20% worsening, so the guardrail is not cleared.
+    let arms = even([480, 560, 488], [10, 10, 10]);
+    let (f, summary) = findings(
+        def(ship_at(0.01), MetricRules::default(), rules()),
+        &arms,
+        0,
+    );
+    assert!(!f.iter().any(|x| x.rule == Rule::Ship), "{f:?}");
+    let blockers = guardrail_blockers(&summary, 1);
+    let [Blocker::NotCleared {
+        metric: 1,
+        probability,
+        threshold,
+        margin,
+    }] = blockers[..]
+    else {
+        panic!("{blockers:?}")
+    };
+    assert!(probability > threshold && margin == 0.2, "{blockers:?}");
+    let st = standing::standings(&summary, &f, None);
+    let ship = st
+        .iter()
+        .find(|s| s.rule == Rule::Ship && s.variant == Some(1))
+        .unwrap();
+    assert_eq!(ship.state, standing::State::NotYet);
+    assert!(
+        ship.detail
+            .contains("guardrail `payment-error` not cleared"),
+        "{}",
+        ship.detail
+    );
+    // The control (the status quo) needs no clearance.
+    assert!(guardrail_blockers(&summary, 0).is_empty());
+
+    // With 4 000 errors per arm a 20% worsening is ruled out: cleared, short-copy ships.
+    let many = even([480, 560, 488], [4_000, 4_000, 4_000]);
+    let (f, summary) = findings(
+        def(ship_at(0.01), MetricRules::default(), rules()),
+        &many,
+        0,
+    );
+    assert!(guardrail_blockers(&summary, 1).is_empty());
+    assert_eq!(
+        f.iter()
+            .find(|x| x.rule == Rule::Ship)
+            .and_then(|x| x.variant),
+        Some(1),
+        "{f:?}"
+    );
+    // 50% more errors in short-copy, with much data: never cleared (and harmed).
+    let worse = even([480, 560, 488], [4_000, 6_000, 4_000]);
+    let (f, summary) = findings(
+        def(ship_at(0.01), MetricRules::default(), rules()),
+        &worse,
+        0,
+    );
+    assert!(matches!(
+        guardrail_blockers(&summary, 1)[..],
+        [Blocker::NotCleared { .. }]
+    ));
+    assert_ne!(
+        f.iter()
+            .find(|x| x.rule == Rule::Ship)
+            .and_then(|x| x.variant),
+        Some(1)
+    );
+}
+
+#[test]
+fn a_guardrail_with_too_little_data_blocks_shipping_and_says_so() {
+    let arms = even([480, 560, 488], [4_000, 4_000, 4_000]);
+    let guard = MetricRules {
+        min_exposure: 5_000.0,
+        ..MetricRules::default()
+    };
+    let (f, summary) = findings(def(ship_at(0.01), guard, rules()), &arms, 0);
+    assert!(!f.iter().any(|x| x.rule == Rule::Ship), "{f:?}");
+    assert!(matches!(
+        guardrail_blockers(&summary, 1)[..],
+        [Blocker::Waiting { what: "exposure", need, .. }] if need == 5_000.0
+    ));
+    let st = standing::standings(&summary, &f, None);
+    let ship = st
+        .iter()
+        .find(|s| s.rule == Rule::Ship && s.variant == Some(1))
+        .unwrap();
+    assert!(
+        ship.detail
+            .contains("waiting for data: `control` has 4000 of 5000 exposure on `payment-error`"),
+        "{}",
+        ship.detail
+    );
+    assert_eq!(ship.progress, Some((4_000.0, 5_000.0)));
+}
+
+#[test]
+fn ship_and_equivalence_wait_for_the_minimum_duration() {
+    let day: i64 = 86_400_000_000;
+    let arms = even([480, 560, 488], [4_000, 4_000, 4_000]);
+    let at = |span: i64| {
+        let (_, summary) = findings(
+            def(ship_at(0.01), MetricRules::default(), rules()),
+            &arms,
+            0,
+        );
+        let mut snap = summary.snapshot.clone();
+        snap.first_event_time = Some(0);
+        snap.last_event_time = Some(span);
+        let s = summarize(snap, 0.95);
+        let f = evaluate(&s);
+        (f, s)
+    };
+    let (f, s) = at(7 * day - 1);
+    assert!(!f.iter().any(|x| x.rule == Rule::Ship), "{f:?}");
+    let st = standing::standings(&s, &f, None);
+    let ship = st
+        .iter()
+        .find(|x| x.rule == Rule::Ship && x.variant == Some(1))
+        .unwrap();
+    assert!(
+        ship.detail.contains("minimum duration: 7.0 of 7.0 days"),
+        "{}",
+        ship.detail
+    );
+    let (f, _) = at(7 * day);
+    assert!(f.iter().any(|x| x.rule == Rule::Ship), "{f:?}");
+}
+
+#[test]
+fn every_rule_says_where_it_stands() {
+    // Below the unit minimum: harm waits with its progress.
+    let arms = even([480, 470, 320], [10, 10, 10]);
+    let few = MetricRules {
+        min_units: 4_500,
+        ..MetricRules::default()
+    };
+    let (f, summary) = findings(def(few, MetricRules::default(), rules()), &arms, 0);
+    let st = standing::standings(&summary, &f, None);
+    let harm = st
+        .iter()
+        .find(|s| s.rule == Rule::Harm && s.metric == Some(0) && s.variant == Some(2))
+        .unwrap();
+    assert_eq!(harm.state, standing::State::NotYet);
+    assert_eq!(harm.progress, Some((4_000.0, 4_500.0)));
+    assert!(
+        harm.detail.contains("4000 of 4500 units"),
+        "{}",
+        harm.detail
+    );
+    // Above it: holds.
+    let (f, summary) = findings(
+        def(MetricRules::default(), MetricRules::default(), rules()),
+        &arms,
+        0,
+    );
+    let st = standing::standings(&summary, &f, None);
+    let harm = st
+        .iter()
+        .find(|s| s.rule == Rule::Harm && s.metric == Some(0) && s.variant == Some(2))
+        .unwrap();
+    assert_eq!(harm.state, standing::State::Holds, "{harm:?}");
+    // Below its threshold: value and threshold.
+    let short = st
+        .iter()
+        .find(|s| s.rule == Rule::Harm && s.metric == Some(0) && s.variant == Some(1))
+        .unwrap();
+    assert_eq!(short.state, standing::State::NotYet);
+    assert!(short.value.unwrap() < 0.999 && short.threshold == Some(0.999));
+    // Anytime-valid evidence without processes: waiting.
+    assert!(st
+        .iter()
+        .any(|s| s.rule == Rule::HarmEvidence && s.detail.starts_with("waiting for data")));
+    // A sample-ratio mismatch suspends shipping.
+    let mut skewed = even([480, 560, 488], [10, 10, 10]);
+    skewed[1].units = 3_500;
+    skewed[1].conversions = 490;
+    let (f, summary) = findings(def(ship_at(0.01), no_clear(), rules()), &skewed, 0);
+    let st = standing::standings(&summary, &f, None);
+    assert!(st
+        .iter()
+        .filter(|s| s.rule == Rule::Ship)
+        .all(|s| s.state == standing::State::Suspended));
+    assert_eq!(st[0].state, standing::State::Holds, "sample ratio first");
+}
+
+#[test]
+fn a_unit_minimum_on_a_metric_without_units_cannot_hold_and_is_warned_about() {
+    // Crashes per machine hour: reported exposure, events carry no units.
+    let mut d = def(MetricRules::default(), MetricRules::default(), rules());
+    d.metrics[1].kind = MetricKind::DefectRate(ExposureBasis::Reported);
+    assert!(standing::config_warnings(&d)[0].contains("rules.min_units = 500"));
+    let snap = ExperimentSnapshot {
+        def: Arc::new(d.clone()),
+        units: vec![0, 0, 0],
+        metrics: vec![
+            MetricTotals::Conversion(vec![ConversionTotals::default(); 3]),
+            MetricTotals::Defect(
+                [20u64, 60, 20]
+                    .iter()
+                    .map(|&c| DefectTotals {
+                        count: c,
+                        exposure: 1_000.0,
+                    })
+                    .collect(),
+            ),
+        ],
+        outcomes: OutcomeCounts::default(),
+        last_event_time: None,
+        first_event_time: None,
+        positions: Vec::new(),
+    };
+    let s = summarize(snap.clone(), 0.95);
+    let f = evaluate(&s);
+    assert!(!f.iter().any(|x| x.rule == Rule::Harm), "{f:?}");
+    let st = standing::standings(&s, &f, None);
+    let harm = st
+        .iter()
+        .find(|x| x.rule == Rule::Harm && x.metric == Some(1) && x.variant == Some(1))
+        .unwrap();
+    assert_eq!(harm.state, standing::State::CannotHold, "{harm:?}");
+    // With the reported-exposure default (no unit minimum) the same data raise harm, and
+    // no warning is given.
+    d.metrics[1].rules.min_units = 0;
+    assert!(standing::config_warnings(&d).is_empty());
+    let s = summarize(
+        ExperimentSnapshot {
+            def: Arc::new(d),
+            ..snap
+        },
+        0.95,
+    );
+    let f = evaluate(&s);
+    assert!(
+        rules_of(&f).contains(&(Rule::Harm, Some(1), Some(1))),
+        "{f:?}"
+    );
 }

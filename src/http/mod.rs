@@ -7,6 +7,7 @@
 
 pub mod dashboard;
 pub mod define;
+pub mod fleet;
 pub mod guard;
 pub mod history;
 
@@ -51,7 +52,7 @@ pub fn router(
         // (the dashboard's pages, `/v1/experiments/{id}/history`) belong in this table too:
         // as GET routes they inherit `protect_reads`, the timeout and the JSON errors, and
         // tests/api.rs asks for each to be described in openapi.json.
-        .route("/v1/experiments", get(list_experiments))
+        .route("/v1/experiments", get(fleet::api::list_experiments))
         .route(
             "/v1/experiments/{id}",
             get(get_experiment)
@@ -59,7 +60,7 @@ pub fn router(
                 .layer(DefaultBodyLimit::max(define::MAX_DEFINITION_BYTES))
                 .delete(define::delete_experiment),
         )
-        .route("/v1/alerts", get(list_alerts))
+        .route("/v1/alerts", get(fleet::api::list_alerts))
         // Writes that are not definitions.
         .route("/v1/events", post(ingest))
         .route("/v1/alerts/{id}/ack", post(ack_alert))
@@ -101,7 +102,24 @@ async fn healthz() -> Json<Value> {
 async fn readyz(State(service): State<Arc<Service>>) -> Response {
     let kafka = service.kafka_reachable();
     let restoring = service.is_restoring();
-    let ready = kafka.unwrap_or(true) && !restoring;
+    // Not ready for writes while any file of the state directory cannot be written: events
+    // posted now would be refused (HTTP) or re-read after a restart (Kafka).
+    let failing = service.store_failures();
+    let ready = kafka.unwrap_or(true) && !restoring && failing.is_empty();
+    let store = if !service.is_stored() {
+        json!({ "status": "not configured" })
+    } else if failing.is_empty() {
+        json!({ "status": "writable", "free_bytes": service.store_free_bytes() })
+    } else {
+        json!({
+            "status": "not_durable",
+            "free_bytes": service.store_free_bytes(),
+            "failing": failing
+                .iter()
+                .map(|(file, error)| json!({ "file": file, "error": error }))
+                .collect::<Vec<_>>(),
+        })
+    };
     let body = json!({
         "ready": ready,
         "checks": {
@@ -111,6 +129,7 @@ async fn readyz(State(service): State<Arc<Service>>) -> Response {
                 Some(false) => "unreachable",
             },
             "state": if restoring { "restoring" } else { "ready" },
+            "store": store,
         }
     });
     let status = if ready {
@@ -217,44 +236,6 @@ async fn ingest(
     }
 }
 
-/// Filters of `GET /v1/alerts`.
-#[derive(serde::Deserialize)]
-struct AlertFilter {
-    experiment: Option<String>,
-    state: Option<String>,
-}
-
-async fn list_alerts(
-    State(service): State<Arc<Service>>,
-    axum::extract::Query(filter): axum::extract::Query<AlertFilter>,
-) -> Response {
-    use crate::decide::alerts::AlertState;
-    if let Some(s) = &filter.state {
-        if AlertState::from_name(s).is_none() {
-            let names: Vec<&str> = AlertState::ALL.iter().map(|s| s.as_str()).collect();
-            return error(
-                StatusCode::BAD_REQUEST,
-                "bad_filter",
-                &format!("state must be one of {}", names.join(", ")),
-            );
-        }
-    }
-    let alerts: Vec<Value> = service.with_alerts(|book| {
-        book.alerts()
-            .iter()
-            .filter(|a| {
-                filter
-                    .experiment
-                    .as_ref()
-                    .is_none_or(|e| *e == a.key.experiment)
-            })
-            .filter(|a| filter.state.as_ref().is_none_or(|s| s == a.state.as_str()))
-            .map(doc::alert)
-            .collect()
-    });
-    Json(json!({ "alerts": alerts })).into_response()
-}
-
 async fn ack_alert(State(service): State<Arc<Service>>, Path(id): Path<String>) -> Response {
     // The alert file is written (fsync) under the desk's lock: keep it off the async threads.
     let key = id.clone();
@@ -267,29 +248,6 @@ async fn ack_alert(State(service): State<Arc<Service>>, Path(id): Path<String>) 
         ),
         Ok(Some(alert)) => Json(doc::alert(&alert)).into_response(),
     }
-}
-
-async fn list_experiments(
-    State(service): State<Arc<Service>>,
-    Query(q): Query<define::ArchiveQuery>,
-) -> Json<Value> {
-    if q.archived {
-        return Json(define::list_archived(&service));
-    }
-    let catalog = service.lock_catalog();
-    let snapshots = service.lock_shards().snapshots();
-    let entries: Vec<Value> = snapshots
-        .iter()
-        .map(|s| {
-            let source = if catalog.is_api(&s.def.id) {
-                "api"
-            } else {
-                "config"
-            };
-            define::entry(s, source)
-        })
-        .collect();
-    Json(json!({ "experiments": entries }))
 }
 
 async fn get_experiment(
@@ -314,8 +272,9 @@ async fn get_experiment(
         );
     };
     let generation = snapshot.def.generation;
+    let evidence = service.with_alerts(|book| book.evidence().subset(&snapshot.def.state_key()));
     match blocking(move || {
-        let mut d = doc::experiment_document(&service.summary(snapshot));
+        let mut d = doc::experiment_document_with(&service.summary(snapshot), Some(&evidence));
         d["source"] = json!(source);
         d["generation"] = json!(generation);
         d

@@ -169,15 +169,6 @@ impl PartitionContents {
             })
     }
 
-    /// Every shard with a complete generation.
-    pub fn shard_ids(&self) -> Vec<String> {
-        self.shards
-            .iter()
-            .filter(|(_, gens)| gens.values().any(Generation::complete))
-            .map(|(id, _)| id.clone())
-            .collect()
-    }
-
     /// Generations present for `shard` (complete or not), oldest first.
     fn generations(&self, shard: &str) -> Vec<(i64, u32)> {
         self.shards

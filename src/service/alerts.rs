@@ -13,7 +13,7 @@ use std::time::Duration;
 use serde_json::{json, Value};
 
 use super::metrics::Metrics;
-use super::store::{write_atomic, StoreError};
+use super::store::{write_atomic, StoreError, StoreHealth};
 use crate::config::AlertsConfig;
 use crate::decide::alerts::{Alert, AlertBook, AlertChange, AlertKey, AlertState};
 use crate::decide::{Finding, Rule};
@@ -30,8 +30,9 @@ pub enum AlertFileError {
         /// What failed.
         source: std::io::Error,
     },
-    /// The file is not the JSON this version writes.
-    #[error("{path}: {source}")]
+    /// The file is not the JSON this version writes (damaged while posteriord was stopped:
+    /// it is only ever replaced whole).
+    #[error("{path}: {source}. Fix: restore it from a backup; or move it aside (`mv {path} {path}.damaged`) to start with no alerts and no pending deliveries (alerts that still hold open again under new ids)", path = path.display())]
     Unreadable {
         /// The file.
         path: PathBuf,
@@ -107,7 +108,12 @@ pub struct AlertDesk {
     file: Option<AlertFile>,
     /// Sink names a change is delivered to, from the alert settings.
     sinks: Vec<String>,
+    /// Where a failed write of the file is reported.
+    health: Option<StoreHealth>,
 }
+
+/// What [`StoreHealth`] calls the alert file.
+pub const ALERTS_FILE: &str = "alerts.json";
 
 impl AlertDesk {
     /// An empty desk kept in memory only, with alerts held down `hold_down` µs.
@@ -117,6 +123,7 @@ impl AlertDesk {
             outbox: Vec::new(),
             file: None,
             sinks: sink_names(cfg),
+            health: None,
         }
     }
 
@@ -135,6 +142,7 @@ impl AlertDesk {
             outbox: pending,
             file: Some(file),
             sinks: sink_names(cfg),
+            health: None,
         })
     }
 
@@ -221,11 +229,21 @@ impl AlertDesk {
         self.save();
     }
 
-    /// Write the book and the outbox together (no-op without a store).
-    fn save(&self) {
+    /// Report failed and successful writes of the file to `health`.
+    pub fn watch(&mut self, health: StoreHealth) {
+        self.health = Some(health);
+    }
+
+    /// Write the book and the outbox together (no-op without a store). A failure is logged
+    /// and reported; the service retries on its snapshot cadence.
+    pub(super) fn save(&self) {
         let Some(file) = &self.file else { return };
-        if let Err(e) = file.save(self.book.alerts(), &self.outbox) {
-            tracing::error!(error = %e, "cannot save alerts and their pending deliveries");
+        let result = file.save(self.book.alerts(), &self.outbox);
+        if let Some(h) = &self.health {
+            h.note(ALERTS_FILE, &result);
+        }
+        if let Err(e) = result {
+            tracing::error!(error = %e, "cannot save alerts and their pending deliveries; will retry");
         }
     }
 }

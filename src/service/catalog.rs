@@ -34,6 +34,9 @@ pub const MAX_CATALOG_BYTES: usize = 900 * 1024;
 /// Name of the catalog file in the store directory.
 pub const FILE_NAME: &str = "experiments.json";
 
+/// What the store's health calls the catalog file.
+pub const CATALOG_FILE: &str = FILE_NAME;
+
 const FORMAT_VERSION: u64 = 1;
 
 /// Why a change was refused.
@@ -230,9 +233,15 @@ impl Catalog {
             }
             Err(source) => return Err(StoreError::Io { path, source }),
         };
-        let corrupt = |reason: String| StoreError::Corrupt {
+        let corrupt = |reason: String| {
+            StoreError::Corrupt {
+            reason: format!(
+                "{reason}. Fix: restore it from a backup; or move it aside (`mv {p} {p}.damaged`) \
+                 to start without the experiments defined over the API (define them again with PUT)",
+                p = path.display()
+            ),
             path: path.clone(),
-            reason,
+        }
         };
         let doc: Value = serde_json::from_slice(&bytes).map_err(|e| corrupt(e.to_string()))?;
         if doc["version"].as_u64() != Some(FORMAT_VERSION) {
@@ -486,7 +495,7 @@ impl Service {
             },
         );
         // Stored before it takes effect: a failed write changes nothing.
-        next.save()?;
+        self.note_catalog(next.save())?;
         for (shard, m) in shards.define(def) {
             tracing::error!(%shard, "{m}; that experiment starts empty in this shard");
         }
@@ -513,6 +522,12 @@ impl Service {
         }
     }
 
+    /// Record the result of writing the catalog file in the store's health.
+    fn note_catalog(&self, result: Result<(), StoreError>) -> Result<(), StoreError> {
+        self.health.note(CATALOG_FILE, &result);
+        result
+    }
+
     /// `DELETE /v1/experiments/{id}`: archive an API experiment; returns the archive number.
     pub fn delete_experiment(&self, id: &str) -> Result<u32, CatalogError> {
         let now = super::now_micros();
@@ -531,7 +546,7 @@ impl Service {
         let number = next.push_archive(snapshot, "deleted", now);
         next.active.remove(id);
         next.deleted.insert(id.to_string(), now);
-        next.save()?;
+        self.note_catalog(next.save())?;
         shards.undefine(id);
         drop(shards);
         *catalog = next;
@@ -664,7 +679,7 @@ impl Service {
         if !changed {
             return;
         }
-        if let Err(e) = next.save() {
+        if let Err(e) = self.note_catalog(next.save()) {
             tracing::error!(error = %e, "cannot store the experiment catalog adopted from another instance; it holds until the next start");
         }
         drop(shards);

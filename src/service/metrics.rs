@@ -57,6 +57,12 @@ pub struct Metrics {
     pub dead_letter_errors: prometheus::IntCounter,
     /// State snapshots written, by outcome (ok, error).
     pub state_saves: IntCounterVec,
+    /// 1 while every file of the state directory can be written (0: state not durable).
+    pub state_durable: IntGauge,
+    /// Files of the state directory failing to be written now.
+    pub state_failing_files: IntGauge,
+    /// Bytes free for posteriord on the file system of the state directory.
+    pub state_free_bytes: IntGauge,
     /// Experiments whose stored state did not fit the configuration at restore.
     pub restore_mismatches: prometheus::IntCounter,
     /// Partition states published to the changelog, by result (ok, error).
@@ -179,6 +185,19 @@ impl Metrics {
             "State snapshots written, by result.",
             &["result"],
         );
+        let state_durable = int_gauge(
+            "posteriord_state_durable",
+            "1 while every file of the state directory can be written; 0 while events posted over HTTP are refused or saves fail (state not durable).",
+        );
+        state_durable.set(1);
+        let state_failing_files = int_gauge(
+            "posteriord_state_failing_files",
+            "Files (or kinds of file) of the state directory whose last write failed.",
+        );
+        let state_free_bytes = int_gauge(
+            "posteriord_state_free_bytes",
+            "Bytes free for posteriord on the file system holding the state directory.",
+        );
         let restore_mismatches = counter(
             "posteriord_restore_mismatches_total",
             "Experiments whose stored state did not fit the configuration at restore.",
@@ -227,6 +246,9 @@ impl Metrics {
             dead_letters,
             dead_letter_errors,
             state_saves,
+            state_durable,
+            state_failing_files,
+            state_free_bytes,
             restore_mismatches,
             posterior_mean: gauge_vec(
                 &registry,

@@ -7,13 +7,15 @@
 //! - the experiments' state by input shard and the evaluation queue fed by ingest ([`ingest`]);
 //! - evaluation and the alert desk — book, outbox and file under one lock ([`evaluate`],
 //!   [`alerts`]);
-//! - cached readings for the readers ([`readings`]) and the history recorder ([`recorder`]);
+//! - cached readings for the readers ([`readings`]), where each experiment stands for the
+//!   fleet lists ([`fleet`]) and the history recorder ([`recorder`]);
 //! - the catalog of experiments defined at run time ([`catalog`]);
 //! - the store with its one atomic writer ([`store`]) and the metrics ([`metrics`]).
 
 pub mod alerts;
 pub mod catalog;
 mod evaluate;
+pub mod fleet;
 pub mod ingest;
 pub mod metrics;
 pub mod readings;
@@ -39,7 +41,7 @@ use ingest::{BatchReport, Item};
 use metrics::{Metrics, Source};
 use readings::SummaryCache;
 use recorder::{HistoryFileError, Recorder};
-use store::{Store, StoreError, Wal};
+use store::{Store, StoreError, StoreHealth, Wal};
 
 /// Why a stored service cannot be opened.
 #[derive(Debug, thiserror::Error)]
@@ -60,6 +62,12 @@ pub enum OpenError {
     #[error("cannot read the experiments defined over the API: {0}")]
     Catalog(#[source] StoreError),
 }
+
+/// What [`StoreHealth`] calls the HTTP write-ahead log.
+const HTTP_LOG: &str = "HTTP write-ahead log";
+
+/// What [`StoreHealth`] calls the periodic write probe of the state directory.
+const SPACE_PROBE: &str = "state directory (write probe)";
 
 /// Sends an instance's catalog (its id, the catalog's JSON) to the other instances.
 pub type CatalogPublisher = Box<dyn Fn(&str, &[u8]) + Send + Sync>;
@@ -96,10 +104,17 @@ pub struct Service {
     recorder: Recorder,
     /// Summaries shared by the readers.
     readings: SummaryCache,
+    /// Where each experiment stands, refreshed in rounds for the fleet lists.
+    fleet: fleet::FleetIndex,
     /// Experiments defined over the API, and the archive. Lock order: catalog, then shards.
     catalog: Mutex<Catalog>,
-    /// Serialises [`Service::save_dirty`] (taken before the shards' lock).
+    /// Serialises [`Service::save_dirty`] (taken before the HTTP log's and the shards' locks).
     save_lock: Mutex<()>,
+    /// Which files of the store are failing to be written (readiness and metrics read it).
+    health: StoreHealth,
+    /// Size of the last HTTP request refused because it could not be logged: the store is
+    /// writable again once a probe of that size fits.
+    refused_bytes: std::sync::atomic::AtomicU64,
     /// Publishes the catalog of API experiments to the other instances (set once the Kafka
     /// changelog is reachable).
     catalog_publisher: OnceLock<CatalogPublisher>,
@@ -142,10 +157,13 @@ impl Service {
             desk: Mutex::new(AlertDesk::in_memory(&config.alerts)),
             recorder: Recorder::in_memory(config.history_arm_points),
             readings: SummaryCache::default(),
+            fleet: fleet::FleetIndex::default(),
             catalog: Mutex::new(Catalog::in_memory(
                 config.experiments.iter().map(|e| e.id.clone()),
             )),
             save_lock: Mutex::new(()),
+            health: StoreHealth::default(),
+            refused_bytes: std::sync::atomic::AtomicU64::new(0),
             catalog_publisher: OnceLock::new(),
         }
     }
@@ -155,9 +173,16 @@ impl Service {
     pub fn open(config: &Config) -> Result<Service, OpenError> {
         let dir = &config.store.dir;
         let store = Store::open(dir).map_err(OpenError::Store)?;
+        // Saves interrupted by a crash leave temporary files: give their space back first.
+        for d in [dir.clone(), dir.join("shards"), dir.join("history")] {
+            store::remove_stale_temps(&d);
+        }
         let wal = Wal::open(&store, HTTP_SHARD).map_err(OpenError::Wal)?;
-        let desk = AlertDesk::restore(dir, &config.alerts)?;
-        let recorder = Recorder::restore(dir, &config.experiments, config.history_arm_points)?;
+        let health = StoreHealth::default();
+        let mut desk = AlertDesk::restore(dir, &config.alerts)?;
+        desk.watch(health.clone());
+        let mut recorder = Recorder::restore(dir, &config.experiments, config.history_arm_points)?;
+        recorder.watch(health.clone());
         // API experiments join before any stored state is read, so their state restores.
         let (catalog, defs, warnings) =
             Catalog::load(dir, config.experiments.iter().map(|e| e.id.clone()))
@@ -169,6 +194,7 @@ impl Service {
             tracing::info!(experiments = defs.len(), "experiments defined over the API");
         }
         let mut service = Service::in_memory(config);
+        service.health = health;
         {
             let shards = service.shards.get_mut().unwrap_or_else(|p| p.into_inner());
             for def in defs {
@@ -182,7 +208,19 @@ impl Service {
         service.catalog = Mutex::new(catalog);
         // Events posted over HTTP are kept in their own shard: stored on the snapshot
         // cadence, logged ahead in between.
-        if let Some(shard) = service.load_shard(HTTP_SHARD).map_err(OpenError::Store)? {
+        let http_shard = service.load_shard(HTTP_SHARD).map_err(|e| match e {
+            StoreError::Corrupt { path, reason } => OpenError::Store(StoreError::Corrupt {
+                reason: format!(
+                    "{reason}. Fix: restore it from a backup; or move it aside (`mv {p} {p}.damaged`) \
+                     to start with the events posted over HTTP since the last save only — those \
+                     before it are then lost",
+                    p = path.display()
+                ),
+                path,
+            }),
+            e => OpenError::Store(e),
+        })?;
+        if let Some(shard) = http_shard {
             service.lock_shards().insert(HTTP_SHARD.to_string(), shard);
             tracing::info!("restored the state of events posted over HTTP");
         }
@@ -229,6 +267,21 @@ impl Service {
     /// The summary of `snapshot` for a reader, shared with other readers when recent.
     pub fn summary(&self, snapshot: ExperimentSnapshot) -> Arc<ExperimentSummary> {
         self.readings.summary(snapshot)
+    }
+
+    /// One refresh round of the fleet's verdicts (see [`fleet::FleetIndex::refresh`]): runs
+    /// the quadrature for the experiments whose totals changed; how many that was.
+    pub fn refresh_fleet(&self) -> usize {
+        let snapshots = self.lock_shards().snapshots();
+        self.fleet.refresh(snapshots, &self.readings)
+    }
+
+    /// Every experiment now with where it stands, from the latest verdicts and the alert
+    /// book. Cheap: copies pointers and counts alerts; computes no summary.
+    pub fn fleet(&self) -> Vec<fleet::Member> {
+        let defs = self.lock_shards().defs().to_vec();
+        let facts = self.with_alerts(|book| fleet::alert_facts(book.alerts()));
+        fleet::members(defs, &self.fleet, &facts)
     }
 
     /// Read the alert book under its lock.
@@ -313,7 +366,13 @@ impl Service {
             .shard_mut(HTTP_SHARD)
             .next_offset()
             .unwrap_or(0);
-        wal.append(first as u64, items)?;
+        let logged = wal.append(first as u64, items);
+        self.health.note(HTTP_LOG, &logged);
+        if logged.is_err() {
+            self.refused_bytes
+                .store(Wal::record_bytes(items), Ordering::Relaxed);
+        }
+        logged?;
         Ok(self.apply(Source::Http, &batch(Some(first))))
     }
 
@@ -369,40 +428,88 @@ impl Service {
         Ok(report)
     }
 
-    /// Re-apply logged HTTP events that the stored HTTP shard does not hold yet.
+    /// Re-apply logged HTTP events that the stored HTTP shard does not hold yet. Reads the
+    /// log where it is and writes nothing, so it needs no free space.
     fn replay_http_wal(&self) -> Result<(), StoreError> {
         let Some(wal) = &self.http_wal else {
             return Ok(());
         };
-        let mut wal = lock(wal);
+        let wal = lock(wal);
         let (records, torn) = wal.read()?;
-        let from = self
-            .lock_shards()
-            .shard(HTTP_SHARD)
-            .and_then(|s| s.next_offset())
-            .unwrap_or(0);
+        // Events below the shard's position are in its stored state already; `apply`
+        // skips them by offset, so a segment that outlived its save is harmless.
         let items: Vec<Item<'_>> = records
             .iter()
-            .filter(|(seq, _)| *seq as i64 >= from)
-            .map(|(seq, bytes)| Item {
-                shard: HTTP_SHARD,
-                offset: Some(*seq as i64),
-                bytes,
-                mapping: None,
+            .flat_map(|r| {
+                r.events.iter().enumerate().map(move |(i, bytes)| Item {
+                    shard: HTTP_SHARD,
+                    offset: Some((r.first_seq + i as u64) as i64),
+                    bytes,
+                    mapping: None,
+                })
             })
             .collect();
         if !items.is_empty() {
-            self.apply(Source::Http, &items);
-            tracing::info!(
-                events = items.len(),
-                "replayed events posted over HTTP from the write-ahead log"
+            let report = self.apply(Source::Http, &items);
+            let replayed = report.results.iter().filter(|r| r.is_some()).count();
+            if replayed > 0 {
+                tracing::info!(
+                    events = replayed,
+                    "replayed events posted over HTTP from the write-ahead log"
+                );
+            }
+        }
+        if torn > 0 {
+            tracing::warn!(
+                segments = torn,
+                dir = %self.store.as_ref().map(|s| s.path(HTTP_SHARD)).unwrap_or_default().parent().map(|p| p.display().to_string()).unwrap_or_default(),
+                "the HTTP write-ahead log ended in a partial record (a crash while a request was being logged); that request had not been answered and was not applied"
             );
         }
-        if torn {
-            tracing::warn!("the HTTP write-ahead log ended in a partial record (a crash mid-write); it was cut off — that request had not been answered");
-        }
-        wal.truncate_before(from.max(0) as u64)?;
         Ok(())
+    }
+
+    /// Files of the store that cannot be written now, with the last error (empty while the
+    /// state is durable).
+    pub fn store_failures(&self) -> Vec<(String, String)> {
+        self.health.failing()
+    }
+
+    /// Bytes free on the file system of the state directory, if stored.
+    pub fn store_free_bytes(&self) -> Option<u64> {
+        self.store.as_ref().and_then(|s| store::free_bytes(s.dir()))
+    }
+
+    /// Retry what failed to be written (alerts, history) and probe the state directory with
+    /// a small file — or, while requests are being refused, a file the size of the last
+    /// refused one — so readiness follows the store even when nothing else writes; called on
+    /// the snapshot cadence. Shards are retried by their own savers.
+    pub fn retry_store(&self) {
+        let Some(store) = &self.store else { return };
+        if self.health.is_failing(alerts::ALERTS_FILE) {
+            lock(&self.desk).save();
+        }
+        if self.health.is_failing(recorder::HISTORY_FILES) {
+            self.recorder.save();
+        }
+        let refusing =
+            self.health.is_failing(HTTP_LOG) || self.health.is_failing(catalog::CATALOG_FILE);
+        let size = if refusing {
+            self.refused_bytes
+                .load(Ordering::Relaxed)
+                .clamp(4096, 1 << 20)
+        } else {
+            4096
+        };
+        let probe = store.dir().join(".posteriord-space-probe");
+        let result = store::write_atomic(&probe, &vec![0u8; size as usize]);
+        let _ = std::fs::remove_file(&probe);
+        self.health.note(SPACE_PROBE, &result);
+        if result.is_ok() && refusing {
+            tracing::info!(probe_bytes = size, "the state directory takes writes again");
+            self.health.succeeded(HTTP_LOG);
+            self.health.succeeded(catalog::CATALOG_FILE);
+        }
     }
 
     /// Whether any partition is being restored.
@@ -445,8 +552,15 @@ impl Service {
             return true;
         };
         // One save at a time: two overlapping saves of a shard could store the older image
-        // last, after the newer one had already trimmed the HTTP write-ahead log.
+        // last, after the newer one had already removed the HTTP log's sealed segments.
         let _one_at_a_time = lock(&self.save_lock);
+        // The HTTP shard's image is taken under the log's lock and the log sealed with it,
+        // so the sealed segments hold exactly the events before the image's offset.
+        let mut wal = match &self.http_wal {
+            Some(wal) if which(HTTP_SHARD) => Some(lock(wal)),
+            _ => None,
+        };
+        let mut sealed = None;
         let images: Vec<(String, ShardImage)> = {
             let mut shards = self.lock_shards();
             shards
@@ -455,25 +569,34 @@ impl Service {
                 .filter(|id| which(id))
                 .filter_map(|id| {
                     let image = shards.shard_mut(&id).take_unsaved()?;
+                    if id == HTTP_SHARD {
+                        sealed = wal.as_mut().map(|w| w.seal());
+                    }
                     Some((id, image))
                 })
                 .collect()
         };
+        drop(wal);
         let mut all_ok = true;
         for (id, image) in images {
-            match store.save(&id, &image) {
+            let what = format!("state of shard {id}");
+            let saved = store.save(&id, &image);
+            self.health.note(&what, &saved);
+            match saved {
                 Ok(()) => {
                     self.metrics.state_saves.with_label_values(&["ok"]).inc();
-                    if let (Some(wal), true) = (&self.http_wal, id == HTTP_SHARD) {
-                        let from = image.next_offset.unwrap_or(0).max(0) as u64;
-                        if let Err(e) = lock(wal).truncate_before(from) {
-                            tracing::warn!(error = %e, "cannot trim the HTTP write-ahead log; it keeps growing until the next save");
+                    store::crash_point("save-done", &store.path(&id));
+                    if let (Some(wal), Some(sealed), true) =
+                        (&self.http_wal, sealed, id == HTTP_SHARD)
+                    {
+                        if let Err(e) = lock(wal).remove_sealed(sealed) {
+                            tracing::warn!(error = %e, "cannot remove saved segments of the HTTP write-ahead log; they are skipped on replay and removed at the next save");
                         }
                     }
                 }
                 Err(e) => {
                     all_ok = false;
-                    tracing::error!(shard = %id, error = %e, "cannot save state; will retry");
+                    tracing::error!(shard = %id, error = %e, free_bytes = ?store::free_bytes(store.dir()), "cannot save state; will retry");
                     self.metrics.state_saves.with_label_values(&["error"]).inc();
                     self.lock_shards().shard_mut(&id).mark_unsaved();
                 }
@@ -535,6 +658,14 @@ impl Service {
             snapshots.into_iter().map(|s| self.summary(s)).collect();
         let _scrape = lock(&self.metrics.scrape);
         self.metrics.set_experiment_gauges(&summaries);
+        let failing = self.health.failing().len();
+        self.metrics.state_durable.set(i64::from(failing == 0));
+        self.metrics.state_failing_files.set(failing as i64);
+        if let Some(free) = self.store_free_bytes() {
+            self.metrics
+                .state_free_bytes
+                .set(free.min(i64::MAX as u64) as i64);
+        }
         self.metrics.encode()
     }
 

@@ -46,6 +46,15 @@ impl SummaryCache {
         summary
     }
 
+    /// The cached summary of exactly `snapshot`'s totals, if there is one; never computes
+    /// and never serves an older one. For background work (the fleet's verdicts), which
+    /// must not make a stale summary look young to the readers.
+    pub fn exact(&self, snapshot: &ExperimentSnapshot) -> Option<Arc<ExperimentSummary>> {
+        let entries = self.lock();
+        let e = entries.get(&snapshot.def.id)?;
+        (e.summary.snapshot == *snapshot).then(|| Arc::clone(&e.summary))
+    }
+
     fn lookup(&self, id: &str, snapshot: &ExperimentSnapshot) -> Option<Arc<ExperimentSummary>> {
         let entries = self.lock();
         let e = entries.get(id)?;
@@ -64,11 +73,24 @@ impl SummaryCache {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::simulate::demo_experiments;
+    use crate::experiment::ExperimentDef;
     use crate::state::Engine;
 
+    /// The experiment these tests count, defined as over the API.
+    fn checkout_copy() -> ExperimentDef {
+        crate::config::experiment_from_json(
+            "crumb-checkout-copy",
+            &serde_json::json!({
+                "variants": [{"name": "control"}, {"name": "short-copy"}],
+                "metric": [{"name": "purchase", "kind": "conversion"},
+                           {"name": "payment-error", "kind": "defect_rate", "exposure": "reported"}]
+            }),
+        )
+        .unwrap()
+    }
+
     fn snapshot_after(n_units: usize) -> ExperimentSnapshot {
-        let defs = demo_experiments();
+        let defs = vec![checkout_copy()];
         let id = defs[0].id.clone();
         let variant = defs[0].variants[0].name.clone();
         let mut engine = Engine::new(defs);

@@ -8,7 +8,7 @@ use std::time::{Duration, Instant};
 
 use serde_json::{json, Value};
 
-use super::store::write_atomic;
+use super::store::{write_atomic, StoreHealth};
 use crate::decide::{Finding, Rule};
 use crate::history::{
     ArmPoint, Change, ExperimentHistory, History, HistoryParts, Point, QualityPoint, RuleKey,
@@ -40,7 +40,12 @@ pub struct Recorder {
     dir: Option<PathBuf>,
     /// Last save and the experiments changed since.
     pending: Mutex<(Instant, HashSet<String>)>,
+    /// Where failed and successful writes are reported.
+    health: Option<StoreHealth>,
 }
+
+/// What [`StoreHealth`] calls the history files.
+pub const HISTORY_FILES: &str = "history files";
 
 impl Recorder {
     /// A history kept in memory only (the demo).
@@ -49,6 +54,7 @@ impl Recorder {
             history: Mutex::new(History::with_budget(budget)),
             dir: None,
             pending: Mutex::new((Instant::now(), HashSet::new())),
+            health: None,
         }
     }
 
@@ -93,7 +99,13 @@ impl Recorder {
             history: Mutex::new(history),
             dir: Some(dir),
             pending: Mutex::new((Instant::now(), HashSet::new())),
+            health: None,
         })
+    }
+
+    /// Report failed and successful writes to `health`.
+    pub fn watch(&mut self, health: StoreHealth) {
+        self.health = Some(health);
     }
 
     /// The history, even if a panic elsewhere poisoned the lock (it changes one evaluation
@@ -127,6 +139,7 @@ impl Recorder {
             p.0 = Instant::now();
             p.1.drain().collect()
         };
+        let mut failed = None;
         for id in ids {
             let text = match self.lock().experiment(&id) {
                 Some(h) => encode(&id, h),
@@ -134,11 +147,18 @@ impl Recorder {
             };
             if let Err(e) = write_atomic(&dir.join(format!("{id}.json")), text.as_bytes()) {
                 tracing::error!(experiment = %id, error = %e, "cannot save the history; will retry");
+                failed = Some(e);
                 self.pending
                     .lock()
                     .unwrap_or_else(|p| p.into_inner())
                     .1
                     .insert(id);
+            }
+        }
+        if let Some(h) = &self.health {
+            match failed {
+                Some(e) => h.failed(HISTORY_FILES, &e),
+                None => h.succeeded(HISTORY_FILES),
             }
         }
     }

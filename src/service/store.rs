@@ -78,6 +78,11 @@ impl Store {
         Ok(Store { dir })
     }
 
+    /// The directory of shard files.
+    pub fn dir(&self) -> &Path {
+        &self.dir
+    }
+
     /// File of shard `id`. Shard ids contain `/`; topic names cannot contain `~`.
     pub fn path(&self, id: &str) -> PathBuf {
         self.dir.join(format!("{}.state", id.replace('/', "~")))
@@ -118,16 +123,22 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<(), StoreError> {
     write_atomic_with(path, |w| w.write_all(bytes))
 }
 
+/// The temporary file a save of `path` writes first.
+fn temp_path(path: &Path) -> PathBuf {
+    let mut tmp = path.as_os_str().to_owned();
+    tmp.push(".tmp");
+    PathBuf::from(tmp)
+}
+
 /// [`write_atomic`] with the content streamed by `write` through a buffer, so a large state
-/// is never held twice in memory (encoded and live).
+/// is never held twice in memory (encoded and live). A failed write removes its temporary
+/// file, so a full disk is not left fuller by the attempt.
 fn write_atomic_with(
     path: &Path,
     write: impl FnOnce(&mut io::BufWriter<File>) -> io::Result<()>,
 ) -> Result<(), StoreError> {
-    let mut tmp = path.as_os_str().to_owned();
-    tmp.push(".tmp");
-    let tmp = PathBuf::from(tmp);
-    {
+    let tmp = temp_path(path);
+    let written = (|| {
         let f = File::create(&tmp).map_err(io_err(&tmp))?;
         let mut w = io::BufWriter::with_capacity(1 << 20, f);
         write(&mut w).map_err(io_err(&tmp))?;
@@ -135,108 +146,508 @@ fn write_atomic_with(
             .into_inner()
             .map_err(io::IntoInnerError::into_error)
             .map_err(io_err(&tmp))?;
-        f.sync_all().map_err(io_err(&tmp))?;
+        crash_point("save-tmp-written", path);
+        f.sync_all().map_err(io_err(&tmp))
+    })();
+    if let Err(e) = written {
+        let _ = fs::remove_file(&tmp);
+        return Err(e);
     }
-    fs::rename(&tmp, path).map_err(io_err(path))?;
+    crash_point("save-tmp-synced", path);
+    if let Err(e) = fs::rename(&tmp, path) {
+        let _ = fs::remove_file(&tmp);
+        return Err(io_err(path)(e));
+    }
+    crash_point("save-renamed", path);
     // The rename is durable only once the directory entry is.
-    let dir = path.parent().unwrap_or(Path::new("."));
-    File::open(dir)
-        .and_then(|d| d.sync_all())
-        .map_err(io_err(dir))?;
-    Ok(())
+    sync_dir(path.parent().unwrap_or(Path::new(".")))
 }
 
-/// One logged event: its sequence number and encoded bytes.
-pub type WalRecord = (u64, Vec<u8>);
+fn sync_dir(dir: &Path) -> Result<(), StoreError> {
+    File::open(dir)
+        .and_then(|d| d.sync_all())
+        .map_err(io_err(dir))
+}
 
-/// Write-ahead log for events that arrive without an input log of their own (HTTP ingest):
-/// each record is appended and fsynced before its event is applied, so an accepted event
-/// survives a crash; records already in the shard's stored state are dropped after each save.
+/// Remove temporary files that a save interrupted by a crash left in `dir` (they are never
+/// read; removing them gives their space back before anything else is written).
+pub fn remove_stale_temps(dir: &Path) {
+    let Ok(entries) = fs::read_dir(dir) else {
+        return;
+    };
+    for entry in entries.flatten() {
+        let path = entry.path();
+        if path.extension().is_some_and(|e| e == "tmp") && path.is_file() {
+            match fs::remove_file(&path) {
+                Ok(()) => {
+                    tracing::info!(file = %path.display(), "removed the temporary file of an interrupted save")
+                }
+                Err(e) => {
+                    tracing::warn!(file = %path.display(), error = %e, "cannot remove the temporary file of an interrupted save")
+                }
+            }
+        }
+    }
+}
+
+/// Test hook: `POSTERIORD_TEST_CRASH_AT=<stage>[@<file name part>]` makes the process kill
+/// itself with SIGKILL when a write reaches `<stage>` (for a file whose path contains the
+/// part, if given), so the fault tests can stop a save at each of its steps. Stages:
+/// `wal-partial` (half a log record written), `wal-written` (record written, not synced),
+/// `wal-synced` (record durable, events not yet applied), `save-tmp-written`,
+/// `save-tmp-synced`, `save-renamed` (a file replaced, directory not yet synced) and
+/// `save-done` (a shard saved, its log segments not yet removed).
+pub(crate) fn crash_point(stage: &str, path: &Path) {
+    static PLAN: std::sync::OnceLock<Option<(String, String)>> = std::sync::OnceLock::new();
+    let plan = PLAN.get_or_init(|| {
+        let v = std::env::var("POSTERIORD_TEST_CRASH_AT").ok()?;
+        let (s, f) = v.split_once('@').unwrap_or((&v, ""));
+        Some((s.to_string(), f.to_string()))
+    });
+    let Some((s, f)) = plan else { return };
+    if s == stage && path.to_string_lossy().contains(f.as_str()) {
+        eprintln!(
+            "POSTERIORD_TEST_CRASH_AT: killing the process at {stage} of {}",
+            path.display()
+        );
+        // SAFETY: kill(2) on our own pid with a valid signal number has no memory effects.
+        unsafe {
+            libc::kill(libc::getpid(), libc::SIGKILL);
+        }
+    }
+}
+
+/// Free bytes available to posteriord on the file system holding `dir`, if it can be asked.
+pub fn free_bytes(dir: &Path) -> Option<u64> {
+    use std::os::unix::ffi::OsStrExt;
+    let c = std::ffi::CString::new(dir.as_os_str().as_bytes()).ok()?;
+    // SAFETY: statvfs writes only into the zeroed struct we pass; the path is NUL-terminated.
+    let mut st: libc::statvfs = unsafe { std::mem::zeroed() };
+    let rc = unsafe { libc::statvfs(c.as_ptr(), &mut st) };
+    (rc == 0).then(|| st.f_bavail as u64 * st.f_frsize as u64)
+}
+
+/// Which stored files are failing to be written, and why. Shared by every writer of the
+/// store directory; readiness and the `posteriord_state_durable` gauge read it.
+#[derive(Debug, Clone, Default)]
+pub struct StoreHealth {
+    failing: Arc<std::sync::Mutex<std::collections::BTreeMap<String, String>>>,
+}
+
+impl StoreHealth {
+    fn map(&self) -> std::sync::MutexGuard<'_, std::collections::BTreeMap<String, String>> {
+        self.failing.lock().unwrap_or_else(|p| p.into_inner())
+    }
+
+    /// `what` (a file or kind of file) could not be written: `error`.
+    pub fn failed(&self, what: &str, error: &dyn std::fmt::Display) {
+        self.map().insert(what.to_string(), error.to_string());
+    }
+
+    /// `what` was written.
+    pub fn succeeded(&self, what: &str) {
+        self.map().remove(what);
+    }
+
+    /// Record the result of writing `what`.
+    pub fn note<T, E: std::fmt::Display>(&self, what: &str, result: &Result<T, E>) {
+        match result {
+            Ok(_) => self.succeeded(what),
+            Err(e) => self.failed(what, e),
+        }
+    }
+
+    /// Whether `what` is failing now.
+    pub fn is_failing(&self, what: &str) -> bool {
+        self.map().contains_key(what)
+    }
+
+    /// What is failing, by file or kind of file, with the last error.
+    pub fn failing(&self) -> Vec<(String, String)> {
+        self.map()
+            .iter()
+            .map(|(k, v)| (k.clone(), v.clone()))
+            .collect()
+    }
+}
+
+/// One record of the HTTP log: the events of one request, with the sequence number of the
+/// first.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct WalRecord {
+    /// Sequence number (HTTP shard offset) of the first event.
+    pub first_seq: u64,
+    /// The encoded events, in request order.
+    pub events: Vec<Vec<u8>>,
+}
+
+const RECORD_MAGIC: &[u8; 4] = b"PWR2";
+/// magic | first_seq u64 | count u32 | body length u32 | CRC-32 of the previous 20 bytes.
+const HEADER: usize = 24;
+/// Largest body a record may claim, so a damaged header cannot make us allocate wildly.
+const MAX_RECORD: usize = 1 << 30;
+
+/// Write-ahead log for events that arrive without an input log of their own (HTTP ingest).
+/// Each request's events are appended as **one record** and fsynced before any is applied;
+/// a failed append is cut back off the file, so a refused request leaves nothing a restart
+/// would apply.
 ///
-/// Record: `u64 sequence | u32 length | bytes | u32 CRC-32 of the previous fields`. A torn
-/// record at the end (a crash mid-append) is detected by length or CRC and cut off.
+/// Record: `"PWR2" | u64 first sequence | u32 event count | u32 body length | u32 CRC of
+/// the header`, then the body (`u32 length | bytes` per event) and a `u32` CRC of the body.
+/// The log is a series of segment files `<name>.wal.<n>`; a save of the shard seals the
+/// current segment (later appends start the next one), and once the saved file is durable
+/// the sealed segments are deleted. Nothing is ever copied, so a restart after a full disk
+/// needs no free space to read the log back.
+///
+/// Reading: a record cut short or failing its checksum at the very end of a segment is the
+/// trace of a crash during an append (that request was never answered) and is ignored; any
+/// other damage stops the start with the file, the byte and the fix.
 #[derive(Debug)]
 pub struct Wal {
-    path: PathBuf,
-    file: File,
+    dir: PathBuf,
+    name: String,
+    /// Segment numbers present on disk, ascending (the current one may not exist yet).
+    segments: Vec<u64>,
+    /// Segment appends go to.
+    current: u64,
+    /// Length of the current segment's intact content (a failed append is cut back to it).
+    current_len: u64,
+    /// Whether the current segment's file and directory entry exist durably.
+    current_exists: bool,
+    /// A failed append that could not be cut back: the file must be cut to this length
+    /// before anything else is appended.
+    cut_pending: Option<u64>,
+    /// The pre-segment log (`<name>.wal`, per-event records) of an older version, read on
+    /// start and removed with the first sealed segments.
+    legacy: Option<PathBuf>,
 }
 
 impl Wal {
-    /// Open (creating) the log `name` in the store.
+    /// Open the log `name` in the store: finds its segments, writes nothing.
     pub fn open(store: &Store, name: &str) -> Result<Wal, StoreError> {
-        let path = store.dir.join(format!("{name}.wal"));
-        let file = fs::OpenOptions::new()
+        let dir = store.dir.clone();
+        let prefix = format!("{name}.wal.");
+        let mut segments = Vec::new();
+        for entry in fs::read_dir(&dir).map_err(io_err(&dir))? {
+            let entry = entry.map_err(io_err(&dir))?;
+            let file_name = entry.file_name();
+            let Some(n) = file_name
+                .to_str()
+                .and_then(|f| f.strip_prefix(&prefix))
+                .and_then(|n| n.parse::<u64>().ok())
+            else {
+                continue;
+            };
+            segments.push(n);
+        }
+        segments.sort_unstable();
+        let legacy = dir.join(format!("{name}.wal"));
+        let legacy = legacy.exists().then_some(legacy);
+        // Appends after a restart go to a fresh segment: whatever the crash left at the end
+        // of the last one stays where it is, behind a record boundary.
+        let current = segments.last().map_or(1, |n| n + 1);
+        Ok(Wal {
+            dir,
+            name: name.to_string(),
+            segments,
+            current,
+            current_len: 0,
+            current_exists: false,
+            cut_pending: None,
+            legacy,
+        })
+    }
+
+    /// Path of segment `n`.
+    pub fn segment_path(&self, n: u64) -> PathBuf {
+        self.dir.join(format!("{}.wal.{n:010}", self.name))
+    }
+
+    /// Bytes the log holds on disk.
+    pub fn disk_bytes(&self) -> u64 {
+        let mut paths: Vec<PathBuf> = self
+            .segments
+            .iter()
+            .map(|&n| self.segment_path(n))
+            .collect();
+        paths.extend(self.legacy.clone());
+        paths
+            .iter()
+            .filter_map(|p| fs::metadata(p).ok())
+            .map(|m| m.len())
+            .sum()
+    }
+
+    fn encode(first_seq: u64, items: &[&[u8]]) -> Vec<u8> {
+        let body_len: usize = items.iter().map(|b| 4 + b.len()).sum();
+        let mut out = Vec::with_capacity(HEADER + body_len + 4);
+        out.extend_from_slice(RECORD_MAGIC);
+        out.extend_from_slice(&first_seq.to_le_bytes());
+        out.extend_from_slice(&(items.len() as u32).to_le_bytes());
+        out.extend_from_slice(&(body_len as u32).to_le_bytes());
+        let crc = crc32fast::hash(&out[..20]);
+        out.extend_from_slice(&crc.to_le_bytes());
+        for b in items {
+            out.extend_from_slice(&(b.len() as u32).to_le_bytes());
+            out.extend_from_slice(b);
+        }
+        let crc = crc32fast::hash(&out[HEADER..]);
+        out.extend_from_slice(&crc.to_le_bytes());
+        out
+    }
+
+    /// Size on disk of the record of `items`.
+    pub fn record_bytes(items: &[&[u8]]) -> u64 {
+        (HEADER + items.iter().map(|b| 4 + b.len()).sum::<usize>() + 4) as u64
+    }
+
+    /// Append the events of one request, numbered from `first_seq`, as one record and make
+    /// it durable. On error the file is cut back to where it was: nothing of the request
+    /// remains to be replayed.
+    pub fn append(&mut self, first_seq: u64, items: &[&[u8]]) -> Result<(), StoreError> {
+        let path = self.segment_path(self.current);
+        if let Some(len) = self.cut_pending {
+            let f = fs::OpenOptions::new()
+                .write(true)
+                .open(&path)
+                .map_err(io_err(&path))?;
+            f.set_len(len)
+                .and_then(|()| f.sync_all())
+                .map_err(io_err(&path))?;
+            self.cut_pending = None;
+        }
+        let record = Wal::encode(first_seq, items);
+        // Opened per append, not held: a file held open for writing would stop an operator
+        // from remounting the directory read-only, and opening costs microseconds.
+        let mut file = fs::OpenOptions::new()
             .create(true)
             .append(true)
             .open(&path)
             .map_err(io_err(&path))?;
-        Ok(Wal { path, file })
-    }
-
-    fn record(seq: u64, bytes: &[u8], out: &mut Vec<u8>) {
-        let start = out.len();
-        out.extend_from_slice(&seq.to_le_bytes());
-        out.extend_from_slice(&(bytes.len() as u32).to_le_bytes());
-        out.extend_from_slice(bytes);
-        let crc = crc32fast::hash(&out[start..]);
-        out.extend_from_slice(&crc.to_le_bytes());
-    }
-
-    /// Append `items` with sequence numbers from `first_seq` and make them durable.
-    pub fn append(&mut self, first_seq: u64, items: &[&[u8]]) -> Result<(), StoreError> {
-        let mut buf = Vec::with_capacity(items.iter().map(|b| b.len() + 16).sum());
-        for (i, bytes) in items.iter().enumerate() {
-            Wal::record(first_seq + i as u64, bytes, &mut buf);
+        if !self.current_exists {
+            // A new segment's name must be durable before a record in it is acknowledged.
+            if let Err(e) = sync_dir(&self.dir) {
+                drop(file);
+                let _ = fs::remove_file(&path);
+                return Err(e);
+            }
+            self.current_exists = true;
+            if self.segments.last() != Some(&self.current) {
+                self.segments.push(self.current);
+            }
         }
-        self.file.write_all(&buf).map_err(io_err(&self.path))?;
-        self.file.sync_data().map_err(io_err(&self.path))
+        let start = self.current_len;
+        let result = (|| {
+            if crash_enabled() {
+                let half = record.len() / 2;
+                file.write_all(&record[..half])?;
+                crash_point("wal-partial", &path);
+                file.write_all(&record[half..])?;
+                crash_point("wal-written", &path);
+            } else {
+                file.write_all(&record)?;
+            }
+            file.sync_data()
+        })();
+        match result {
+            Ok(()) => {
+                crash_point("wal-synced", &path);
+                self.current_len = start + record.len() as u64;
+                Ok(())
+            }
+            Err(e) => {
+                // Cut the partial or unsynced record off, so no restart applies a request
+                // that was refused.
+                let cut = file.set_len(start).and_then(|()| file.sync_all());
+                if let Err(cut_error) = cut {
+                    tracing::error!(file = %path.display(), error = %cut_error, "cannot cut a refused request off the HTTP write-ahead log; no request is accepted until it is cut");
+                    self.cut_pending = Some(start);
+                }
+                Err(io_err(&path)(e))
+            }
+        }
     }
 
-    /// Every intact record, in order; a damaged tail is reported in the second value.
-    pub fn read(&self) -> Result<(Vec<WalRecord>, bool), StoreError> {
-        let bytes = fs::read(&self.path).map_err(io_err(&self.path))?;
+    /// Seal the current segment: later appends start a new one. Returns the last sealed
+    /// segment, to pass to [`Wal::remove_sealed`] once the state holding their events is
+    /// durable.
+    pub fn seal(&mut self) -> u64 {
+        let sealed = self.current;
+        if self.current_exists || self.current_len > 0 {
+            self.current += 1;
+            self.current_len = 0;
+            self.current_exists = false;
+            self.cut_pending = None;
+        }
+        sealed
+    }
+
+    /// Delete segments up to `sealed` (and the legacy file): the stored state holds their
+    /// events.
+    pub fn remove_sealed(&mut self, sealed: u64) -> Result<(), StoreError> {
+        let current = self.current;
+        let mut removed = false;
+        let mut result = Ok(());
+        let mut keep = Vec::new();
+        for &n in &self.segments {
+            if n <= sealed && n != current {
+                let path = self.segment_path(n);
+                match fs::remove_file(&path) {
+                    Ok(()) => removed = true,
+                    Err(e) if e.kind() == io::ErrorKind::NotFound => {}
+                    Err(e) => {
+                        keep.push(n);
+                        result = Err(io_err(&path)(e));
+                    }
+                }
+            } else {
+                keep.push(n);
+            }
+        }
+        self.segments = keep;
+        if let Some(legacy) = self.legacy.take() {
+            match fs::remove_file(&legacy) {
+                Ok(()) => removed = true,
+                Err(e) if e.kind() == io::ErrorKind::NotFound => {}
+                Err(e) => {
+                    result = Err(io_err(&legacy)(e));
+                    self.legacy = Some(legacy);
+                }
+            }
+        }
+        if removed {
+            // Not needed for correctness (a segment that comes back holds events the state
+            // already has, which replay skips by sequence number); it just frees space sooner.
+            let _ = sync_dir(&self.dir);
+        }
+        result
+    }
+
+    /// Every intact record, oldest first, and how many torn tails (crashes mid-append) were
+    /// skipped. Damage anywhere else is an error naming the file, the byte and the fix.
+    pub fn read(&self) -> Result<(Vec<WalRecord>, usize), StoreError> {
         let mut records = Vec::new();
-        let mut pos = 0;
-        while pos < bytes.len() {
-            let Some(header) = bytes.get(pos..pos + 12) else {
-                return Ok((records, true));
+        let mut torn = 0;
+        if let Some(legacy) = &self.legacy {
+            let bytes = fs::read(legacy).map_err(io_err(legacy))?;
+            let (mut r, t) = read_legacy(&bytes);
+            records.append(&mut r);
+            torn += usize::from(t);
+        }
+        for &n in &self.segments {
+            let path = self.segment_path(n);
+            let bytes = match fs::read(&path) {
+                Ok(b) => b,
+                Err(e) if e.kind() == io::ErrorKind::NotFound => continue,
+                Err(e) => return Err(io_err(&path)(e)),
             };
-            let seq = u64::from_le_bytes(header[..8].try_into().expect("8 bytes"));
-            let len = u32::from_le_bytes(header[8..12].try_into().expect("4 bytes")) as usize;
-            let end = pos + 12 + len;
-            let Some(crc_bytes) = bytes.get(end..end + 4) else {
-                return Ok((records, true));
-            };
-            let crc = u32::from_le_bytes(crc_bytes.try_into().expect("4 bytes"));
-            if crc32fast::hash(&bytes[pos..end]) != crc {
+            let (mut r, t) = read_segment(&bytes).map_err(|(at, reason)| StoreError::Corrupt {
+                path: path.clone(),
+                reason: format!(
+                    "{reason} at byte {at} of {len}; the events after it were acknowledged to clients. \
+                     Fix: restore the file from a backup, or accept losing the requests from that byte on \
+                     with `truncate -s {at} {file}` and start again",
+                    len = bytes.len(),
+                    file = path.display()
+                ),
+            })?;
+            records.append(&mut r);
+            torn += usize::from(t);
+        }
+        Ok((records, torn))
+    }
+}
+
+fn crash_enabled() -> bool {
+    static ON: std::sync::OnceLock<bool> = std::sync::OnceLock::new();
+    *ON.get_or_init(|| std::env::var_os("POSTERIORD_TEST_CRASH_AT").is_some())
+}
+
+/// Records of one segment, and whether it ended in a torn record. `Err((byte, reason))` for
+/// damage that is not a torn end.
+fn read_segment(bytes: &[u8]) -> Result<(Vec<WalRecord>, bool), (usize, String)> {
+    let mut records = Vec::new();
+    let mut pos = 0;
+    while pos < bytes.len() {
+        let rest = &bytes[pos..];
+        // A torn end: the header or the body runs past the end of the file, or what
+        // follows is zeros (the file was extended but the bytes never reached the disk, as
+        // after a power cut), or the last record's checksum field was never written.
+        if rest.len() < HEADER || rest.iter().all(|&b| b == 0) {
+            return Ok((records, true));
+        }
+        let header = &rest[..HEADER];
+        let header_ok = &header[..4] == RECORD_MAGIC
+            && crc32fast::hash(&header[..20])
+                == u32::from_le_bytes(header[20..24].try_into().expect("4 bytes"));
+        if !header_ok {
+            return Err((pos, "a damaged record header".into()));
+        }
+        let first_seq = u64::from_le_bytes(header[4..12].try_into().expect("8 bytes"));
+        let count = u32::from_le_bytes(header[12..16].try_into().expect("4 bytes")) as usize;
+        let body_len = u32::from_le_bytes(header[16..20].try_into().expect("4 bytes")) as usize;
+        if body_len > MAX_RECORD {
+            return Err((pos, format!("a record claiming {body_len} bytes")));
+        }
+        let end = pos + HEADER + body_len + 4;
+        if end > bytes.len() {
+            return Ok((records, true));
+        }
+        let body = &bytes[pos + HEADER..pos + HEADER + body_len];
+        let crc = u32::from_le_bytes(bytes[end - 4..end].try_into().expect("4 bytes"));
+        if crc32fast::hash(body) != crc {
+            if end == bytes.len() && crc == 0 {
                 return Ok((records, true));
             }
-            records.push((seq, bytes[pos + 12..end].to_vec()));
-            pos = end + 4;
+            return Err((pos, "a record failing its checksum".into()));
         }
-        Ok((records, false))
+        let mut events = Vec::with_capacity(count);
+        let mut at = 0;
+        for _ in 0..count {
+            let len = body
+                .get(at..at + 4)
+                .map(|b| u32::from_le_bytes(b.try_into().expect("4 bytes")) as usize);
+            let Some(event) = len.and_then(|len| body.get(at + 4..at + 4 + len)) else {
+                return Err((pos, "a record whose events do not fit its length".into()));
+            };
+            events.push(event.to_vec());
+            at += 4 + event.len();
+        }
+        if at != body.len() {
+            return Err((pos, "a record with bytes after its events".into()));
+        }
+        records.push(WalRecord { first_seq, events });
+        pos = end;
     }
+    Ok((records, false))
+}
 
-    /// Keep only records with sequence ≥ `from` (the rest are in the stored state).
-    pub fn truncate_before(&mut self, from: u64) -> Result<(), StoreError> {
-        let (records, _) = self.read()?;
-        let mut buf = Vec::new();
-        for (seq, bytes) in records.iter().filter(|(seq, _)| *seq >= from) {
-            Wal::record(*seq, bytes, &mut buf);
+/// Records of the log written by earlier versions (one record per event:
+/// `u64 sequence | u32 length | bytes | u32 CRC`), each read as a record of one event.
+fn read_legacy(bytes: &[u8]) -> (Vec<WalRecord>, bool) {
+    let mut records = Vec::new();
+    let mut pos = 0;
+    while pos < bytes.len() {
+        let Some(header) = bytes.get(pos..pos + 12) else {
+            return (records, true);
+        };
+        let seq = u64::from_le_bytes(header[..8].try_into().expect("8 bytes"));
+        let len = u32::from_le_bytes(header[8..12].try_into().expect("4 bytes")) as usize;
+        let end = pos + 12 + len;
+        let Some(crc_bytes) = bytes.get(end..end + 4) else {
+            return (records, true);
+        };
+        let crc = u32::from_le_bytes(crc_bytes.try_into().expect("4 bytes"));
+        if crc32fast::hash(&bytes[pos..end]) != crc {
+            return (records, true);
         }
-        let tmp = self.path.with_extension("wal.tmp");
-        {
-            let mut f = File::create(&tmp).map_err(io_err(&tmp))?;
-            f.write_all(&buf).map_err(io_err(&tmp))?;
-            f.sync_all().map_err(io_err(&tmp))?;
-        }
-        fs::rename(&tmp, &self.path).map_err(io_err(&self.path))?;
-        self.file = fs::OpenOptions::new()
-            .append(true)
-            .open(&self.path)
-            .map_err(io_err(&self.path))?;
-        Ok(())
+        records.push(WalRecord {
+            first_seq: seq,
+            events: vec![bytes[pos + 12..end].to_vec()],
+        });
+        pos = end + 4;
     }
+    (records, false)
 }
 
 /// Little-endian writer that keeps the running CRC-32 and the first I/O error, so the encoder
@@ -538,11 +949,23 @@ pub fn decode(bytes: &[u8]) -> Result<ShardImage, String> {
 mod tests {
     use super::*;
     use crate::event::{Event, EventBody};
-    use crate::simulate::demo_experiments;
     use std::borrow::Cow;
 
+    /// The experiment these tests count, defined as over the API.
+    fn checkout_copy() -> ExperimentDef {
+        crate::config::experiment_from_json(
+            "crumb-checkout-copy",
+            &serde_json::json!({
+                "variants": [{"name": "control"}, {"name": "short-copy"}],
+                "metric": [{"name": "purchase", "kind": "conversion"},
+                           {"name": "payment-error", "kind": "defect_rate", "exposure": "reported"}]
+            }),
+        )
+        .unwrap()
+    }
+
     fn defs() -> Vec<Arc<ExperimentDef>> {
-        demo_experiments().into_iter().map(Arc::new).collect()
+        vec![Arc::new(checkout_copy())]
     }
 
     fn filled_shard() -> Shard {
@@ -608,35 +1031,110 @@ mod tests {
         assert!(store.load("kafka/other/0", &defs()).unwrap().is_none());
     }
 
+    fn seqs(wal: &Wal) -> Vec<(u64, usize)> {
+        let (records, _) = wal.read().unwrap();
+        records
+            .iter()
+            .map(|r| (r.first_seq, r.events.len()))
+            .collect()
+    }
+
     #[test]
-    fn the_wal_keeps_records_and_cuts_a_torn_tail() {
+    fn a_request_is_one_record_and_saved_segments_go_without_a_copy() {
         let dir = tempfile::tempdir().unwrap();
         let store = Store::open(dir.path()).unwrap();
         let mut wal = Wal::open(&store, "http").unwrap();
         wal.append(0, &[b"one", b"two"]).unwrap();
+        let sealed = wal.seal();
         wal.append(2, &[b"three"]).unwrap();
+        assert_eq!(seqs(&wal), vec![(0, 2), (2, 1)]);
         let (records, torn) = wal.read().unwrap();
-        assert!(!torn);
-        assert_eq!(
-            records.iter().map(|(s, _)| *s).collect::<Vec<_>>(),
-            vec![0, 1, 2]
-        );
-        assert_eq!(records[2].1, b"three");
-        wal.truncate_before(2).unwrap();
-        wal.append(3, &[b"four"]).unwrap();
-        let (records, _) = wal.read().unwrap();
-        assert_eq!(
-            records.iter().map(|(s, _)| *s).collect::<Vec<_>>(),
-            vec![2, 3]
-        );
-        // A crash mid-append leaves a partial record: it is detected, the rest kept.
-        let path = dir.path().join("shards/http.wal");
-        let mut bytes = std::fs::read(&path).unwrap();
-        bytes.extend_from_slice(&[9, 0, 0, 0, 0, 0, 0, 0, 50, 0]);
-        std::fs::write(&path, &bytes).unwrap();
-        let (records, torn) = Wal::open(&store, "http").unwrap().read().unwrap();
-        assert!(torn);
-        assert_eq!(records.len(), 2);
+        assert_eq!(torn, 0);
+        assert_eq!(records[0].events, vec![b"one".to_vec(), b"two".to_vec()]);
+        wal.remove_sealed(sealed).unwrap();
+        assert_eq!(seqs(&wal), vec![(2, 1)]);
+        // A restart appends to a fresh segment and reads the old ones in place.
+        let mut wal = Wal::open(&store, "http").unwrap();
+        wal.append(3, &[b"four", b"five"]).unwrap();
+        assert_eq!(seqs(&wal), vec![(2, 1), (3, 2)]);
+        assert_eq!(Wal::record_bytes(&[b"four", b"five"]), 24 + 8 + 8 + 4);
+    }
+
+    #[test]
+    fn a_torn_end_is_skipped_and_damage_elsewhere_names_the_file_and_the_fix() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::open(dir.path()).unwrap();
+        let mut wal = Wal::open(&store, "http").unwrap();
+        wal.append(0, &[b"alpha", b"beta"]).unwrap();
+        wal.append(2, &[b"gamma"]).unwrap();
+        let path = wal.segment_path(1);
+        let good = std::fs::read(&path).unwrap();
+        let first_len = 24 + 4 + 5 + 4 + 4 + 4;
+        // Cut anywhere inside the last record: the trace of a crash mid-append.
+        for cut in [
+            first_len + 1,
+            first_len + 23,
+            first_len + 30,
+            good.len() - 1,
+        ] {
+            std::fs::write(&path, &good[..cut]).unwrap();
+            let (records, torn) = wal.read().unwrap();
+            assert_eq!((records.len(), torn), (1, 1), "cut at {cut}");
+        }
+        // Zeros where the last record should be (extended, never written): torn too.
+        let mut zeroed = good.clone();
+        zeroed[first_len..].fill(0);
+        std::fs::write(&path, &zeroed).unwrap();
+        assert_eq!(wal.read().unwrap().0.len(), 1);
+        // A flipped bit in a complete record, first or last, is damage, not a torn end.
+        for flip in [3, 10, 30, first_len + 26, good.len() - 2] {
+            let mut bad = good.clone();
+            bad[flip] ^= 0x10;
+            std::fs::write(&path, &bad).unwrap();
+            let e = wal.read().unwrap_err().to_string();
+            assert!(
+                e.contains(&path.display().to_string())
+                    && e.contains("Fix:")
+                    && e.contains("truncate -s"),
+                "flip at {flip}: {e}"
+            );
+        }
+    }
+
+    #[test]
+    fn the_log_of_earlier_versions_is_read_and_removed_with_the_first_save() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::open(dir.path()).unwrap();
+        let mut old = Vec::new();
+        for (seq, bytes) in [(0u64, &b"one"[..]), (1, b"two")] {
+            let start = old.len();
+            old.extend_from_slice(&seq.to_le_bytes());
+            old.extend_from_slice(&(bytes.len() as u32).to_le_bytes());
+            old.extend_from_slice(bytes);
+            let crc = crc32fast::hash(&old[start..]);
+            old.extend_from_slice(&crc.to_le_bytes());
+        }
+        let legacy = dir.path().join("shards/http.wal");
+        std::fs::write(&legacy, &old).unwrap();
+        let mut wal = Wal::open(&store, "http").unwrap();
+        wal.append(2, &[b"three"]).unwrap();
+        assert_eq!(seqs(&wal), vec![(0, 1), (1, 1), (2, 1)]);
+        let sealed = wal.seal();
+        wal.remove_sealed(sealed).unwrap();
+        assert!(!legacy.exists());
+        assert!(seqs(&wal).is_empty());
+    }
+
+    #[test]
+    fn a_failed_save_leaves_no_temporary_file() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("x.json");
+        let e = write_atomic_with(&path, |_| Err(io::Error::other("disk full"))).unwrap_err();
+        assert!(e.to_string().contains("x.json.tmp"), "{e}");
+        assert!(std::fs::read_dir(dir.path()).unwrap().next().is_none());
+        std::fs::write(dir.path().join("y.state.tmp"), b"half").unwrap();
+        remove_stale_temps(dir.path());
+        assert!(std::fs::read_dir(dir.path()).unwrap().next().is_none());
     }
 
     #[test]
@@ -656,7 +1154,7 @@ mod tests {
     #[test]
     fn a_changed_definition_is_reported_not_forced() {
         let image = filled_shard().image();
-        let mut changed = demo_experiments();
+        let mut changed = vec![checkout_copy()];
         changed[0].variants.swap(0, 1);
         let defs: Vec<_> = changed.into_iter().map(Arc::new).collect();
         let (shard, mismatches) = Shard::from_image(&defs, image);

@@ -39,8 +39,11 @@ const WIDTH_SD: f64 = 2.0;
 /// at rate |ℓ'| and the rate-unit jacobian (or a CDF factor of a wide arm) at rate ≤ 1. A
 /// degree-16 Chebyshev fit of e^{6u} on [0, 1] is exact to ~6e-12 relative.
 const WIDTH_EFOLDS: f64 = 6.0;
-/// Guard against pathological inputs: no realistic posterior needs more panels.
-const MAX_PANELS: usize = 50_000;
+/// Panel width near t = 0 for logistic-based integrands (see `Kernel::analytic_width`).
+const BETA_POLE_WIDTH: f64 = 2.0;
+/// Guard against a bug: with panel widths set by slope, curvature and analyticity, every
+/// accepted input needs far fewer (64 arms with shapes from 1e-10 to 1e13: a few thousand).
+pub(crate) const MAX_PANELS: usize = 50_000;
 
 /// Clenshaw–Curtis nodes, weights, cumulative matrix and barycentric weights on [−1, 1].
 pub(crate) struct Rule {
@@ -375,6 +378,12 @@ impl Kernel {
     }
 
     /// `step` shrunk by `scale` (≤ 1) for grids with many arms.
+    ///
+    /// The density changes by at most e^WIDTH_EFOLDS over a panel and is resolved to
+    /// WIDTH_SD local sds; nothing else limits the width here. In particular the width is
+    /// not tied to one logit or log unit: a Beta(1e-4, ·) left tail is e^{1e-4·t} over
+    /// 4e5 logit units and takes a few dozen panels, not 1e5 (the rate-unit jacobian, which
+    /// changes at rate ≤ 1, is limited separately where it matters, in `Grid::new`).
     fn scaled_step(&self, t: f64, scale: f64) -> f64 {
         let (slope, curvature) = self.slope_curvature(t);
         let by_curvature = if curvature > 0.0 {
@@ -382,12 +391,31 @@ impl Kernel {
         } else {
             f64::INFINITY
         };
-        let by_slope = scale * WIDTH_EFOLDS / (slope.abs() + 1.0);
-        let h = by_curvature.min(by_slope);
+        let by_slope = if slope != 0.0 {
+            scale * WIDTH_EFOLDS / slope.abs()
+        } else {
+            f64::INFINITY
+        };
+        let h = by_curvature.min(by_slope).min(self.analytic_width(t));
         if h.is_finite() {
             h
         } else {
             scale * WIDTH_SD * self.sd()
+        }
+    }
+
+    /// Widest panel around t on which functions of the working variable built from the
+    /// logistic map (the Beta logit density, its CDF, the jacobian x(1 − x)) stay
+    /// polynomial to ~1e-13: they are analytic except at t = ±iπ(2j + 1), so a panel of
+    /// width w centred at c converges like ρ^-16 with ρ the Bernstein ellipse parameter of
+    /// those points; w = 2 at c = 0 gives ρ ≈ 6.4 (ρ^-16 ≈ 1e-13), and w = |c|/2 further out
+    /// gives ρ ≥ 7.9. The log-Gamma density e^{a·t − r·e^t} is entire: no limit. Before this
+    /// limit, 6-unit panels across the gap between two distant conversion arms put 5e-9 of
+    /// error into the dominated arm's expected loss (tests/stats_reference.rs).
+    pub(crate) fn analytic_width(&self, t: f64) -> f64 {
+        match *self {
+            Kernel::BetaLogit { .. } => BETA_POLE_WIDTH.max(0.5 * t.abs()),
+            Kernel::GammaLog { .. } => f64::INFINITY,
         }
     }
 
@@ -418,10 +446,7 @@ impl Kernel {
             let mut t = mode;
             let mut n_steps = 0;
             loop {
-                let h = self.step(t);
-                let next = t + dir * h;
-                let h2 = self.step(next).min(h);
-                t += dir * h2;
+                t += dir * safe_step(|u| self.step(u), t, dir);
                 n_steps += 1;
                 if self.log_density(t) < peak - LOG_DROP {
                     break;
@@ -434,6 +459,28 @@ impl Kernel {
         }
         Ok((bounds[0], bounds[1]))
     }
+}
+
+/// A panel width h from t in direction `dir` that `step` allows at both ends and the middle.
+///
+/// The allowed width can fall by orders of magnitude within one step (a Gamma log density's
+/// curvature r·e^t grows e-fold per unit), so the width allowed at t alone may overshoot
+/// into a region needing panels 1e-12 wide; shrinking until the far end agrees keeps each
+/// panel inside its own resolution limits. A width that is infinite (no arm needs
+/// resolving) is returned as is.
+fn safe_step(step: impl Fn(f64) -> f64, t: f64, dir: f64) -> f64 {
+    let mut h = step(t);
+    if !h.is_finite() {
+        return h;
+    }
+    for _ in 0..200 {
+        let far = step(t + dir * h).min(step(t + dir * 0.5 * h));
+        if far >= h {
+            break;
+        }
+        h = far.max(0.25 * h);
+    }
+    h
 }
 
 /// One arm's values on the shared grid.
@@ -516,21 +563,21 @@ impl Grid {
                     .map(|(k, _)| k.scaled_step(u, width_scale))
                     .fold(f64::INFINITY, f64::min);
                 if jac_kernel.jacobian(u) > 1e-20 * rate_scale {
-                    h.min(WIDTH_EFOLDS)
+                    h.min(WIDTH_EFOLDS).min(jac_kernel.analytic_width(u))
                 } else {
                     h
                 }
             };
-            let h0 = local_step(t);
+            let h0 = safe_step(local_step, t, 1.0);
             let mut next = if h0.is_finite() { t + h0 } else { next_start };
-            let h1 = local_step(next.min(hi));
-            if h1.is_finite() && t + h1 < next {
-                next = t + h1;
-            }
             next = next.min(next_start).min(hi);
-            // A sliver shorter than a tenth of a step before a boundary is merged into it.
-            if next_start - next < 0.1 * (next - t) {
-                next = next_start.min(hi);
+            // A sliver shorter than a tenth of a step before a boundary is merged into it,
+            // unless the widths allowed at the far end or the middle forbid the longer panel.
+            let merged = next_start.min(hi);
+            if merged - next < 0.1 * (next - t)
+                && local_step(merged).min(local_step(0.5 * (t + merged))) >= merged - t
+            {
+                next = merged;
             }
             if next <= t {
                 return Err(StatsError::Numerical("quadrature panels stopped advancing"));
@@ -855,7 +902,7 @@ mod tests {
             Kernel::gamma(51.0, 101.0),
         ];
         for k in cases {
-            let g = Grid::new(&[k]).expect("grid");
+            let g = Grid::new(&[k]).unwrap_or_else(|e| panic!("{k:?}: {e}"));
             let arm = &g.arms[0];
             let mut mass = 0.0;
             for p in arm.p0..arm.p1 {
@@ -864,6 +911,50 @@ mod tests {
                 }
             }
             assert!((mass - 1.0).abs() < 1e-10, "{k:?}: mass {mass}");
+        }
+    }
+
+    use proptest::prelude::*;
+
+    /// Shapes evenly in log10 over the whole accepted range's prior part and counts up to
+    /// 1e9: an arm as `compare` may receive it.
+    fn arb_kernel() -> impl Strategy<Value = Kernel> {
+        let shape = prop_oneof![(-10.0f64..3.0).prop_map(|e| 10f64.powf(e)), Just(1e-10)];
+        let count = prop_oneof![Just(0.0), (0.0f64..9.0).prop_map(|e| 10f64.powf(e).round())];
+        prop_oneof![
+            (shape.clone(), shape.clone(), count.clone(), 0.0f64..=1.0).prop_map(|(a, b, n, f)| {
+                Kernel::beta(a + (n * f).round(), b + n - (n * f).round())
+            }),
+            (shape, -3.0f64..3.0, count, -3.0f64..12.0)
+                .prop_map(|(a, r, c, e)| Kernel::gamma(a + c, 10f64.powf(r) + 10f64.powf(e))),
+        ]
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 64, ..ProptestConfig::default() })]
+
+        /// Bounded work and memory for any accepted input (the worst case of
+        /// docs/performance.md): the panels and table entries of a 2..64-arm grid stay
+        /// below fixed bounds, so one summary's time and memory are bounded too (a table
+        /// entry is three f64: 1.2 M entries are 29 MB, under the 64 MB goal). Before the
+        /// panel rules were tied to slope rather than to one unit, 64 arms of
+        /// Beta(0.001, 0.001) hit the 50 000-panel guard after 1.4 GB.
+        #[test]
+        fn grid_work_is_bounded_for_every_accepted_input(
+            kernels in prop::collection::vec(arb_kernel(), 2..=64),
+        ) {
+            let same_family: Vec<Kernel> = kernels
+                .iter()
+                .copied()
+                .filter(|k| matches!(k, Kernel::BetaLogit { .. }) == matches!(kernels[0], Kernel::BetaLogit { .. }))
+                .collect();
+            prop_assume!(same_family.len() >= 2);
+            let g = Grid::new(&same_family);
+            prop_assert!(g.is_ok(), "{:?}", g.err());
+            let g = g.unwrap();
+            let entries: usize = g.arms.iter().map(|a| a.dens.len()).sum();
+            prop_assert!(g.n_panels() <= 8_000, "{} panels", g.n_panels());
+            prop_assert!(entries <= 1_200_000, "{entries} table entries");
         }
     }
 }

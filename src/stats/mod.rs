@@ -24,7 +24,7 @@ mod srm;
 
 pub use arms::{compare, decide, ArmSummary, Arms, CompareOptions, Decision, Lift, MAX_ARMS};
 pub use density::{lift_density, plot_range, posterior_density, PLOT_TAIL};
-pub use posterior::{Beta, Gamma, MAX_SHAPE, MIN_SHAPE};
+pub use posterior::{Beta, Gamma, MAX_LEVEL, MAX_RATE, MAX_SHAPE, MIN_RATE, MIN_SHAPE};
 pub use srm::{sample_ratio_mismatch, SampleRatio, SRM_P_THRESHOLD};
 
 /// Errors from the statistics core.
@@ -51,8 +51,8 @@ pub enum StatsError {
         /// Largest accepted value.
         max: f64,
     },
-    /// An interval level outside (0, 1).
-    #[error("credible interval level must lie strictly between 0 and 1, got {0}")]
+    /// An interval level outside (0, [`MAX_LEVEL`]].
+    #[error("credible interval level must lie in (0, 1 - 1e-10], got {0}")]
     InvalidLevel(f64),
     /// A probability outside [0, 1].
     #[error("probability must lie in [0, 1], got {0}")]
@@ -98,9 +98,18 @@ pub enum StatsError {
     /// The sample ratio test got no units at all.
     #[error("no units observed")]
     NoUnits,
-    /// An internal consistency check failed (a bug or an input far outside validated ranges).
-    #[error("numerical failure: {0}")]
+    /// An internal consistency check failed on accepted input: a defect of ours, never the
+    /// caller's (every accepted input is answered; docs/methods.md lists the ranges).
+    #[error("numerical failure in the statistics core: {0}")]
     Numerical(&'static str),
+}
+
+impl StatsError {
+    /// True for a failure of ours on accepted input (report it: exit 1), false for input
+    /// the core refuses (the caller's to fix: exit 2).
+    pub fn is_internal(&self) -> bool {
+        matches!(self, StatsError::Numerical(_))
+    }
 }
 
 /// An equal-tailed credible interval.

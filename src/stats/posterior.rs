@@ -10,6 +10,18 @@ pub const MIN_SHAPE: f64 = 1e-10;
 /// many thousand ulps wide, so node placement stays exact to ~1e-9 of an sd.
 pub const MAX_SHAPE: f64 = 1e13;
 
+/// Highest credible level accepted: tails of 5e-11 each are resolved to full accuracy
+/// (each arm's window reaches ~1e-17 of mass), beyond that the interval ends would be
+/// clamped to the window.
+pub const MAX_LEVEL: f64 = 1.0 - 1e-10;
+
+/// Smallest Gamma rate accepted (prior rate plus exposure): with shapes in
+/// [`MIN_SHAPE`], [`MAX_SHAPE`], every mean a/r stays far inside double range.
+pub const MIN_RATE: f64 = 1e-10;
+/// Largest Gamma rate accepted: exposures up to 1e15 units (1e18 requests counted in
+/// thousands).
+pub const MAX_RATE: f64 = 1e15;
+
 fn check_shape(name: &'static str, value: f64) -> Result<f64, StatsError> {
     if !value.is_finite() || value <= 0.0 {
         return Err(StatsError::InvalidParameter { name, value });
@@ -34,7 +46,7 @@ fn check_probability(p: f64) -> Result<f64, StatsError> {
 
 /// Tail probabilities of an equal-tailed interval at `level`.
 pub(crate) fn tail_levels(level: f64) -> Result<(f64, f64), StatsError> {
-    if !(level > 0.0 && level < 1.0) {
+    if !(level > 0.0 && level <= MAX_LEVEL) {
         return Err(StatsError::InvalidLevel(level));
     }
     Ok((0.5 * (1.0 - level), 0.5 * (1.0 + level)))
@@ -200,6 +212,14 @@ impl Gamma {
             return Err(StatsError::InvalidParameter {
                 name: "rate",
                 value: rate,
+            });
+        }
+        if !(MIN_RATE..=MAX_RATE).contains(&rate) {
+            return Err(StatsError::ParameterOutOfRange {
+                name: "rate",
+                value: rate,
+                min: MIN_RATE,
+                max: MAX_RATE,
             });
         }
         Ok(Gamma { shape, rate })

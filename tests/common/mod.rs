@@ -2,6 +2,7 @@
 //! real signals, and compute ground truth for generated events independently of the engine.
 #![allow(dead_code)]
 
+pub mod browser;
 pub mod kafka;
 
 use std::collections::{HashMap, HashSet};
@@ -291,13 +292,26 @@ struct TruthState {
 pub struct Workload {
     pub lines: Vec<String>,
     pub expected: Vec<Expected>,
+    /// Per line: the experiment's index, the event id and what the event does.
+    effects: Vec<(usize, Option<String>, Effect)>,
 }
 
-/// Generate `n` mixed events (exposures, conversions, defects, tallies; with duplicates,
-/// producer retries, crossovers and orphans) for the two test experiments.
-pub fn workload(seed: u64, n: usize) -> Workload {
-    let mut rng = StdRng::seed_from_u64(seed);
-    let mut states: Vec<TruthState> = SPECS
+impl Workload {
+    /// The expected totals when only the lines for which `keep(i)` holds were delivered,
+    /// in order (e.g. the requests a service acknowledged).
+    pub fn expected_of(&self, keep: impl Fn(usize) -> bool) -> Vec<Expected> {
+        let mut states = fresh_states();
+        for (i, (x, id, effect)) in self.effects.iter().enumerate() {
+            if keep(i) {
+                states[*x].apply(id.as_deref(), effect);
+            }
+        }
+        states.into_iter().map(|s| s.e).collect()
+    }
+}
+
+fn fresh_states() -> Vec<TruthState> {
+    SPECS
         .iter()
         .map(|s| {
             let k = s.variants.len();
@@ -314,8 +328,16 @@ pub fn workload(seed: u64, n: usize) -> Workload {
                 ..Default::default()
             }
         })
-        .collect();
+        .collect()
+}
+
+/// Generate `n` mixed events (exposures, conversions, defects, tallies; with duplicates,
+/// producer retries, crossovers and orphans) for the two test experiments.
+pub fn workload(seed: u64, n: usize) -> Workload {
+    let mut rng = StdRng::seed_from_u64(seed);
+    let mut states = fresh_states();
     let mut lines = Vec::with_capacity(n);
+    let mut effects = Vec::with_capacity(n);
     let mut next_unit = 0u64;
     let mut next_id = 0u64;
     let t = "2026-05-02T10:00:00Z";
@@ -419,14 +441,17 @@ pub fn workload(seed: u64, n: usize) -> Workload {
         for _ in 0..copies {
             lines.push(line.clone());
             st.apply(id.as_deref(), &effect);
+            effects.push((x, id.clone(), effect.clone()));
         }
     }
     Workload {
         lines,
         expected: states.into_iter().map(|s| s.e).collect(),
+        effects,
     }
 }
 
+#[derive(Clone)]
 enum Effect {
     Exposure(String, usize),
     Conversion(String),
@@ -507,6 +532,11 @@ impl TruthState {
 pub fn observed(service: &Service, spec: &Spec) -> Expected {
     let (status, doc) = service.get(&format!("/v1/experiments/{}", spec.id));
     assert_eq!(status, 200, "{doc}");
+    observed_in(&doc, spec)
+}
+
+/// The totals of experiment `spec` in `doc`, its `GET /v1/experiments/{id}` document.
+pub fn observed_in(doc: &Value, spec: &Spec) -> Expected {
     let k = spec.variants.len();
     let metric = |name: &str| {
         doc["metrics"]

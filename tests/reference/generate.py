@@ -81,6 +81,28 @@ CASES = [
          [(1_000_000_000, 20_000_000), (1_000_000_000, 20_004_000)], kind="scipy"),
     defect("factory_1e6_events", "sensor faults on 1e9 readings (exposure in 1k)", (1, 1),
            [(1_000_000, 1e6), (999_000, 1e6), (1_001_500, 1e6)], kind="scipy"),
+    # ---- families added for the edge audit (well-separated arms, tiny shapes, huge
+    # exposures, extreme interval levels); fixed before the Rust code was re-tuned.
+    conv("sep_dominated_1e4", "newsletter sign-up: a broken form against a working one",
+         (1, 0.5), [(10_000, 100), (10_000, 9_500)]),
+    conv("sep_three_1e4", "three landing pages, each far from the others", (1, 1),
+         [(10_000, 500), (10_000, 2_000), (10_000, 6_000)], control=1, kind="scipy"),
+    conv("sep_1e9", "ticket shop: 1e9 visits per arm, 1% against 20% checkout", (1, 1),
+         [(1_000_000_000, 10_000_000), (1_000_000_000, 200_000_000)], kind="scipy"),
+    defect("sep_exposure_1e9", "sensor faults: 10 per 1e9 readings against 1e8 per 1e3 "
+           "(exposure in 1k)", (1, 1), [(10, 1e6), (100_000_000, 1.0)], kind="scipy"),
+    defect("exposure_1e12", "ad impressions: 1e9 faults in 1e12 renders (exposure in 1k)",
+           (1, 1), [(1_000_000_000, 1e9), (1_000_030_000, 1e9)], kind="scipy"),
+    conv("tiny_prior_zero_successes", "prior Beta(1e-4, 1e-4), no conversions yet in one arm",
+         (1e-4, 1e-4), [(40, 0), (40, 3)], control=1),
+    conv("tiny_prior_all_successes", "prior Beta(1e-4, 1e-4), every unit converted in one arm",
+         (1e-4, 1e-4), [(30, 30), (30, 27)], control=1),
+    conv("tiny_prior_no_data", "prior Beta(2e-4, 2e-4) before any traffic", (2e-4, 2e-4),
+         [(0, 0), (0, 0)]),
+    defect("tiny_prior_no_defects", "prior Gamma(1e-4, 1): no crash yet in one arm", (1e-4, 1),
+           [(0, 10.0), (5, 10.0)], control=1),
+    conv("extreme_level", "bakery banner at interval level 1 - 1e-10", (1, 1),
+         [(530, 48), (512, 61)], level=0.9999999999),
 ]
 
 
@@ -122,7 +144,7 @@ class MpArm:
 
     def jac(self, t):
         x = self.x(t)
-        return x * (1 - x) if self.beta else x
+        return x / (1 + mp.exp(t)) if self.beta else x
 
     def log_g(self, t):
         """ln density of t."""
@@ -155,12 +177,18 @@ class MpArm:
     def cdf_t(self, t):
         x = self.x(t)
         if self.beta:
+            if t > 0:
+                # Right of the middle 1 - x = 1/(1 + e^t) directly: at t = 1e5 (shapes
+                # 1e-4), x itself rounds to 1 even at 40 digits.
+                return 1 - mp.betainc(self.b, self.a, 0, 1 / (1 + mp.exp(t)), regularized=True)
             return mp.betainc(self.a, self.b, 0, x, regularized=True)
         return mp.gammainc(self.a, 0, self.b * x, regularized=True)
 
     def sf_t(self, t):
         x = self.x(t)
         if self.beta:
+            if t > 0:
+                return mp.betainc(self.b, self.a, 0, 1 / (1 + mp.exp(t)), regularized=True)
             return mp.betainc(self.a, self.b, x, 1, regularized=True)
         return mp.gammainc(self.a, self.b * x, mp.inf, regularized=True)
 
@@ -174,7 +202,18 @@ class MpArm:
                 lo = mid
             else:
                 hi = mid
-        return self.x(mp.findroot(f, (lo, hi), solver="anderson", tol=mp.mpf(10) ** -35))
+        try:
+            return self.x(mp.findroot(f, (lo, hi), solver="anderson", tol=mp.mpf(10) ** -35))
+        except (ZeroDivisionError, ValueError):
+            # Tiny shapes: f is flat to working precision over the bracket (the quantile is
+            # e^-1000 or so); finish by bisection, which needs no slope.
+            for _ in range(200):
+                mid = (lo + hi) / 2
+                if f(mid) < 0:
+                    lo = mid
+                else:
+                    hi = mid
+            return self.x((lo + hi) / 2)
 
 
 def _gl(f, a, b):
@@ -284,6 +323,10 @@ def make_ratio_cdf(v, c, higher):
     nodes_v = [(v.x(t), w * v.g(t)) for t, w in nodes_for([v])]
 
     def cdf(rho):
+        if rho == 1:
+            # P(x_v <= x_c) in the logit variable itself: with shapes ~1e-4 much of the mass
+            # has 1 - x below 1e-40, where x rounds to 1 and F_v(x) would read 1.
+            return mp.fsum(w * c.g(t) * v.cdf_t(t) for t, w in nodes_for([c, v]))
         if rho <= 1:
             return mp.fsum(w * mp.betainc(v.a, v.b, 0, rho * x, regularized=True) for x, w in nodes_c)
         return 1 - mp.fsum(w * mp.betainc(c.a, c.b, 0, x / rho, regularized=True) for x, w in nodes_v)
@@ -342,15 +385,54 @@ def sp_case(case):
         pdf = [stats.gamma(a, scale=1 / r).pdf for a, r in P]
         cdf = [lambda x, a=a, r=r: special.gammainc(a, r * x) for a, r in P]
         sf = [lambda x, a=a, r=r: special.gammaincc(a, r * x) for a, r in P]
-    lo = min(m - 14 * s for m, s in zip(mean, sd))
-    hi = max(m + 14 * s for m, s in zip(mean, sd))
+    # Pieces where the mass is: 40 pieces over each arm's mean +- 14 sd, merged where the
+    # windows overlap, and 10 pieces over each gap between windows (where the loss integrand
+    # is a product of CDFs equal to 0 or 1 to double precision, so GL is exact there).
+    wins = sorted((max(m - 14 * s, 0.0), m + 14 * s) for m, s in zip(mean, sd))
+    merged = [list(wins[0])]
+    for a, b in wins[1:]:
+        if a <= merged[-1][1]:
+            merged[-1][1] = max(merged[-1][1], b)
+        else:
+            merged.append([a, b])
+    pieces = []
+    for idx, (a, b) in enumerate(merged):
+        if idx > 0:
+            pieces.append(np.linspace(merged[idx - 1][1], a, 11)[:-1])
+        n_here = 40 * sum(1 for lo_, hi_ in wins if lo_ >= a and hi_ <= b)
+        pieces.append(np.linspace(a, b, n_here + 1)[:-1])
+    edges = np.concatenate(pieces + [np.array([merged[-1][1]])])
     z, w = np.polynomial.legendre.leggauss(100)
-    edges = np.linspace(lo, hi, 41)
     xs = np.concatenate([0.5 * (b - a) * z + 0.5 * (a + b) for a, b in zip(edges[:-1], edges[1:])])
     ws = np.concatenate([0.5 * (b - a) * w for a, b in zip(edges[:-1], edges[1:])])
     k, c = len(P), case["control"]
-    # scipy's pdf normalizes with lgamma differences, off by ~1e-10 relative at shapes ~1e6
-    # (METHODS 1.5 point 2); renormalize each density on the grid, as the Rust code does.
+    # scipy's pdf forms ln f from terms of size ~a (lgamma, a*ln r, r*x), so at shapes ~1e9
+    # each value carries ~1e-6 relative noise (METHODS 1.5 point 2), enough to move P(beats)
+    # by 1e-9. Use the deviance from the mode instead, whose linear terms cancel exactly:
+    # ln f(x) - ln f(m) = (a-1)[log1p(d1) - d1] + (b-1)[log1p(d2) - d2] (Beta) or
+    # (a-1)[log1p(d) - d] (Gamma), then normalize each density on the grid.
+    def stable_pdf(a, b):
+        if higher:
+            m = (a - 1) / (a + b - 2) if a > 1 and b > 1 else a / (a + b)
+
+            def f(x):
+                x = np.asarray(x, dtype=float)
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    d1, d2 = x / m - 1, (1 - x) / (1 - m) - 1
+                    v = np.exp((a - 1) * (np.log1p(d1) - d1) + (b - 1) * (np.log1p(d2) - d2))
+                return np.where((x > 0) & (x < 1), v, 0.0)
+            return f
+        m = (a - 1) / b if a > 1 else a / b
+
+        def f(x):
+            x = np.asarray(x, dtype=float)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                d = x / m - 1
+                v = np.exp((a - 1) * (np.log1p(d) - d))
+            return np.where(x > 0, v, 0.0)
+        return f
+    if all(a > 1 and (b > 1 or not higher) for a, b in P):
+        pdf = [stable_pdf(a, b) for a, b in P]
     raw_pdf = pdf
     Z = [float(np.sum(ws * raw_pdf[j](xs))) for j in range(k)]
     pdf = [lambda x, j=j: raw_pdf[j](x) / Z[j] for j in range(k)]
@@ -380,7 +462,12 @@ def sp_case(case):
                         "prob_practically_equivalent", "prob_harm"):
                 out[key].append(None)
             continue
-        out["prob_beats_control"].append(float(np.sum(ws * pdf[i](xs) * G[c])))
+        if higher:
+            out["prob_beats_control"].append(float(np.sum(ws * pdf[i](xs) * G[c])))
+        else:
+            # Exact (METHODS 1.2): P(lam_i < lam_c) = I_{r_i/(r_c + r_i)}(a_i, a_c).
+            out["prob_beats_control"].append(
+                float(special.betainc(P[i][0], P[c][0], P[i][1] / (P[c][1] + P[i][1]))))
         ac, bc = P[c]
         inv = (ac + bc - 1) / (ac - 1) if higher else bc / (ac - 1)
         out["lift_mean"].append(mean[i] * inv - 1)
@@ -398,30 +485,67 @@ def sp_case(case):
             rcdf = lambda rho: (float(np.sum(wcc * cdf[i](rho * xc))) if rho <= 1
                                 else 1.0 - float(np.sum(wvv * cdf[c](xv / rho))))
         else:
-            rcdf = lambda rho: float(np.sum(wcc * cdf[i](rho * xc)))
+            # Exact (METHODS 1.2): P(lam_v <= rho lam_c) = I_{rho r_v/(r_c + rho r_v)}(a_v, a_c).
+            av, rv, ac_, rc = P[i][0], P[i][1], P[c][0], P[c][1]
+            rcdf = lambda rho: float(special.betainc(av, ac_, rho * rv / (rc + rho * rv)))
+            rsf = lambda rho: float(special.betaincc(av, ac_, rho * rv / (rc + rho * rv)))
         mu = np.log(mean[i] / mean[c]); s = np.hypot(sd[i] / mean[i], sd[c] / mean[c])
         qs = []
         for qq in ((1 - level) / 2, (1 + level) / 2):
+            if not higher:
+                # Exact (METHODS 1.2): lam_v/lam_c = (r_c/r_v) W/(1-W), W ~ Beta(a_v, a_c).
+                wq = special.betaincinv(P[i][0], P[c][0], qq)
+                qs.append((P[c][1] / P[i][1]) * wq / (1 - wq) - 1)
+                continue
             qs.append(optimize.brentq(lambda r: rcdf(r) - qq, np.exp(mu - 10 * s),
                                       np.exp(mu + 10 * s), xtol=1e-15, rtol=1e-15) - 1)
         out["lift_interval"].append(qs)
         rope, harm = case["rope"], case["harm_margin"]
         out["prob_practically_equivalent"].append(rcdf(1 + rope) - rcdf(1 - rope))
-        out["prob_harm"].append(rcdf(1 - harm) if higher else 1 - rcdf(1 + harm))
+        out["prob_harm"].append(rcdf(1 - harm) if higher else rsf(1 + harm))
+    if not higher and k == 2:
+        # Two Gamma arms: the loss in closed form (METHODS 1.3, E[(l_A - l_B)+] =
+        # mu_A P(l_A+ > l_B) - mu_B P(l_A > l_B+), each P an incomplete beta by 1.2), Boost's
+        # ibeta ~1e-15 relative: more accurate here than quadrature over gammainc values at
+        # shapes 1e9 (which differed by 1.6e-11 in "exposure_1e12").
+        for i in range(2):
+            j = 1 - i
+            (ai, ri), (aj, rj) = P[i], P[j]
+            x = rj / (ri + rj)
+            out["expected_loss"][i] = float(
+                (ai / ri) * special.betainc(aj, ai + 1, x) - (aj / rj) * special.betainc(aj + 1, ai, x))
+    # Arms whose +-14 sd windows lie wholly below the best arm's: the loss integral runs
+    # across the whole gap; E[max - theta_i] = loss_b + (mu_b - mu_i) exactly, with the means
+    # in exact rational arithmetic (mpmath), is the more accurate reference there.
+    b = int(np.argmin(out["expected_loss"]))
+    for i in range(k):
+        sep = (mean[i] + 14 * sd[i] < mean[b] - 14 * sd[b]) if higher else \
+            (mean[i] - 14 * sd[i] > mean[b] + 14 * sd[b])
+        if i != b and sep:
+            mp_mean = [mp.mpf(a) / (mp.mpf(a) + mp.mpf(bb)) if higher else mp.mpf(a) / mp.mpf(bb)
+                       for a, bb in case["params"]]
+            gap = mp_mean[b] - mp_mean[i] if higher else mp_mean[i] - mp_mean[b]
+            out["expected_loss"][i] = float(gap + mp.mpf(out["expected_loss"][b]))
     return out
 
 
 def to_json(v):
+    """Numbers to JSON; values beyond double range (a lift quantile of e^1000) become null,
+    which the Rust test reads as "must be infinite or beyond 1e300"."""
     if v is None:
         return None
     if isinstance(v, list):
         return [to_json(x) for x in v]
-    return float(mp.nstr(mp.mpf(v), 20)) if not isinstance(v, float) else v
+    x = float(mp.nstr(mp.mpf(v), 20)) if not isinstance(v, float) else v
+    return x if np.isfinite(x) else None
 
 
 def main():
     out = []
+    only = set(sys.argv[1:])
     for case in CASES:
+        if only and case["id"] not in only:
+            continue
         print(f"computing {case['id']} ...", file=sys.stderr)
         res = mp_case(case) if case["kind"] == "mpmath" else sp_case(case)
         case = dict(case)

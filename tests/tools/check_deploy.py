@@ -1,18 +1,19 @@
 #!/usr/bin/env python3
-"""Checks of the deploy kit (deploy/) that need a YAML parser; run by tests/deploy.rs.
+"""Cross-object checks of the deploy kit (deploy/) that no schema can express; run by
+tests/deploy.rs after `kubernetes-validate --strict` has checked every Kubernetes object
+against the official schemas (unknown fields, types, required fields).
 
 Usage: check_deploy.py REPO_ROOT
 
-Parses every YAML document under deploy/ with PyYAML and checks the Kubernetes objects
-against OUR OWN schema (below). This is not kubeconform and not the Kubernetes OpenAPI
-schema: kubeconform is not installable here, so this script encodes, by hand, the fields of
-the object kinds the kit uses (unknown keys are errors, as in a strict validator) plus
-cross-object checks (selectors, named ports, Service and ConfigMap references). It also
-checks the Containerfile's structure and the systemd unit's keys.
+What is left here is what the schemas cannot say: selectors that select the pods, named
+ports and ConfigMap references that resolve, the persistent volume for the state, the
+security settings the kit promises, env vars posteriord actually reads, the grace period
+against the drain budget, resource quantities, and that the Containerfile's USER and EXPOSE
+agree with the pod's runAsUser and containerPort. It also hands facts (probe paths, the
+ConfigMap's config text) to tests/deploy.rs, which checks them against the real binary.
 
 Prints one JSON object on stdout: {"errors": [...], "facts": {...}}; exits 1 when there are
-errors. The facts (probe paths, the ConfigMap's config text, env var names, ...) are checked
-further by tests/deploy.rs against the real binary.
+errors.
 """
 
 import glob
@@ -30,150 +31,8 @@ def err(where, message):
     ERRORS.append(f"{where}: {message}")
 
 
-# ---------------------------------------------------------------------------------------------
-# Our schema of the Kubernetes fields the kit uses. A dict maps allowed keys to sub-schemas;
-# "str", "int", "bool", "any" are leaf types; [schema] is a list of schema.
-# ---------------------------------------------------------------------------------------------
-LABELS = {"*": "str"}
-METADATA = {"name": "str", "namespace": "str", "labels": LABELS, "annotations": LABELS}
-SELECTOR = {"matchLabels": LABELS}
-HTTP_GET = {"path": "str", "port": "any", "scheme": "str"}
-PROBE = {
-    "httpGet": HTTP_GET,
-    "initialDelaySeconds": "int",
-    "periodSeconds": "int",
-    "timeoutSeconds": "int",
-    "failureThreshold": "int",
-    "successThreshold": "int",
-}
-QUANTITIES = {"cpu": "str", "memory": "str", "storage": "str"}
-CONTAINER_SECURITY = {
-    "allowPrivilegeEscalation": "bool",
-    "readOnlyRootFilesystem": "bool",
-    "runAsNonRoot": "bool",
-    "runAsUser": "int",
-    "runAsGroup": "int",
-    "capabilities": {"drop": ["str"], "add": ["str"]},
-    "seccompProfile": {"type": "str"},
-}
-ENV = {
-    "name": "str",
-    "value": "str",
-    "valueFrom": {
-        "secretKeyRef": {"name": "str", "key": "str", "optional": "bool"},
-        "configMapKeyRef": {"name": "str", "key": "str", "optional": "bool"},
-    },
-}
-CONTAINER = {
-    "name": "str",
-    "image": "str",
-    "imagePullPolicy": "str",
-    "command": ["str"],
-    "args": ["str"],
-    "ports": [{"name": "str", "containerPort": "int", "protocol": "str"}],
-    "env": [ENV],
-    "livenessProbe": PROBE,
-    "readinessProbe": PROBE,
-    "startupProbe": PROBE,
-    "resources": {"requests": QUANTITIES, "limits": QUANTITIES},
-    "securityContext": CONTAINER_SECURITY,
-    "volumeMounts": [{"name": "str", "mountPath": "str", "readOnly": "bool", "subPath": "str"}],
-}
-POD_SPEC = {
-    "terminationGracePeriodSeconds": "int",
-    "automountServiceAccountToken": "bool",
-    "enableServiceLinks": "bool",
-    "serviceAccountName": "str",
-    "securityContext": {
-        "runAsNonRoot": "bool",
-        "runAsUser": "int",
-        "runAsGroup": "int",
-        "fsGroup": "int",
-        "fsGroupChangePolicy": "str",
-        "seccompProfile": {"type": "str"},
-    },
-    "containers": [CONTAINER],
-    "volumes": [{"name": "str", "configMap": {"name": "str"}, "secret": {"secretName": "str"}}],
-}
-PVC_TEMPLATE = {
-    "metadata": METADATA,
-    "spec": {
-        "accessModes": ["str"],
-        "storageClassName": "str",
-        "resources": {"requests": QUANTITIES},
-    },
-}
-SCHEMAS = {
-    ("apps/v1", "StatefulSet"): {
-        "apiVersion": "str",
-        "kind": "str",
-        "metadata": METADATA,
-        "spec": {
-            "serviceName": "str",
-            "replicas": "int",
-            "selector": SELECTOR,
-            "podManagementPolicy": "str",
-            "updateStrategy": {"type": "str"},
-            "template": {"metadata": METADATA, "spec": POD_SPEC},
-            "volumeClaimTemplates": [PVC_TEMPLATE],
-        },
-    },
-    ("v1", "Service"): {
-        "apiVersion": "str",
-        "kind": "str",
-        "metadata": METADATA,
-        "spec": {
-            "type": "str",
-            "clusterIP": "str",
-            "publishNotReadyAddresses": "bool",
-            "selector": LABELS,
-            "ports": [{"name": "str", "port": "int", "targetPort": "any", "protocol": "str"}],
-        },
-    },
-    ("v1", "ConfigMap"): {
-        "apiVersion": "str",
-        "kind": "str",
-        "metadata": METADATA,
-        "data": {"*": "str"},
-    },
-    ("policy/v1", "PodDisruptionBudget"): {
-        "apiVersion": "str",
-        "kind": "str",
-        "metadata": METADATA,
-        "spec": {"maxUnavailable": "any", "minAvailable": "any", "selector": SELECTOR},
-    },
-}
-LEAF_TYPES = {"str": str, "int": int, "bool": bool}
 DNS_1123 = re.compile(r"^[a-z0-9]([-a-z0-9]*[a-z0-9])?$")
 QUANTITY = re.compile(r"^[0-9]+(\.[0-9]+)?(m|Ki|Mi|Gi|Ti|k|M|G|T)?$")
-
-
-def check_shape(value, schema, where):
-    if schema == "any":
-        return
-    if isinstance(schema, str):
-        want = LEAF_TYPES[schema]
-        # bool is a subclass of int in Python; an int field must not hold true/false.
-        if not isinstance(value, want) or (want is int and isinstance(value, bool)):
-            err(where, f"expected {schema}, got {type(value).__name__} {value!r}")
-        return
-    if isinstance(schema, list):
-        if not isinstance(value, list):
-            err(where, f"expected a list, got {type(value).__name__}")
-            return
-        for i, item in enumerate(value):
-            check_shape(item, schema[0], f"{where}[{i}]")
-        return
-    if not isinstance(value, dict):
-        err(where, f"expected a mapping, got {type(value).__name__}")
-        return
-    for key, sub in value.items():
-        if key in schema:
-            check_shape(sub, schema[key], f"{where}.{key}")
-        elif "*" in schema:
-            check_shape(sub, schema["*"], f"{where}.{key}")
-        else:
-            err(where, f"unknown field {key!r} (our schema; a typo?)")
 
 
 def load_yaml_docs(root):
@@ -223,12 +82,7 @@ def check_kubernetes(root, docs):
             continue
         if not DNS_1123.match(name) or len(name) > 63:
             err(where, f"metadata.name {name!r} is not a DNS-1123 label")
-        key = (d.get("apiVersion"), d.get("kind"))
         where = f"{rel} {d.get('kind')}/{name}"
-        if key not in SCHEMAS:
-            err(where, f"apiVersion/kind {key} is not one our schema knows")
-            continue
-        check_shape(d, SCHEMAS[key], where)
         if (d["kind"], name) in objects:
             err(where, "defined twice")
         objects[(d["kind"], name)] = (where, d)
@@ -259,6 +113,7 @@ def check_kubernetes(root, docs):
             err(where, f"terminationGracePeriodSeconds {grace!r} must exceed the 30 s drain budget")
         facts["grace_seconds"] = grace
         psc = pod.get("securityContext", {})
+        facts["run_as_user"] = psc.get("runAsUser")
         if psc.get("runAsNonRoot") is not True:
             err(where, "pod securityContext.runAsNonRoot must be true")
         if not isinstance(psc.get("runAsUser"), int) or psc.get("runAsUser") == 0:
@@ -371,63 +226,29 @@ def check_kubernetes(root, docs):
 
 
 def check_containerfile(root):
+    """USER and EXPOSE of the Containerfile's final stage (hadolint lints the file, and
+    tests/container.rs inspects the built image; here only what must agree with the pod)."""
     rel = "deploy/container/Containerfile"
     facts = {}
     with open(os.path.join(root, rel), encoding="utf-8") as f:
         text = f.read()
-    # Join continuation lines, drop comments.
-    lines = []
-    for line in re.sub(r"\\\n", " ", text).splitlines():
-        if line.strip() and not line.lstrip().startswith("#"):
-            lines.append(line.strip())
-    instrs = [(l.split(None, 1)[0].upper(), l.split(None, 1)[1] if " " in l else "") for l in lines]
-    froms = [a for i, a in instrs if i == "FROM"]
-    if len(froms) < 2:
-        err(rel, "expected a multi-stage build (two FROM lines)")
-    stages = [a.split()[-1] for a in froms if " AS " in a.upper()]
+    lines = [
+        line.strip()
+        for line in re.sub(r"\\\n", " ", text).splitlines()
+        if line.strip() and not line.lstrip().startswith("#")
+    ]
     final = []
-    for i, a in instrs:
-        if i == "FROM":
+    for line in lines:
+        instr, _, arg = line.partition(" ")
+        if instr.upper() == "FROM":
             final = []
-        final.append((i, a))
+        final.append((instr.upper(), arg.strip()))
     users = [a for i, a in final if i == "USER"]
-    if not users or users[-1].split(":")[0] in ("0", "root"):
-        err(rel, "the runtime stage must set a non-root USER")
-    for i, a in instrs:
-        if i in ("ENTRYPOINT", "CMD"):
-            try:
-                v = json.loads(a)
-                if not isinstance(v, list):
-                    raise ValueError
-            except ValueError:
-                err(rel, f"{i} must be in exec form (a JSON array), so no shell is needed: {a}")
-                continue
-            facts[i.lower()] = v
-        if i == "COPY" and "--from=" not in a:
-            for src in a.split()[:-1]:
-                if not src.startswith("--") and not os.path.exists(os.path.join(root, src)):
-                    err(rel, f"COPY source {src} does not exist in the repository")
-        if i == "COPY" and "--from=" in a:
-            stage = re.search(r"--from=(\S+)", a).group(1)
-            if stage not in stages:
-                err(rel, f"COPY --from={stage} names no build stage")
-        if i == "VOLUME":
-            facts["volumes"] = json.loads(a)
-        if i == "EXPOSE":
-            facts["expose"] = [int(p.split("/")[0]) for p in a.split()]
-        if i == "STOPSIGNAL":
-            facts["stopsignal"] = a
-        if i == "RUN" and "cargo build" in a and "--release" not in a:
-            err(rel, "cargo build must be --release")
-    for want in ["/etc/posteriord", "/var/lib/posteriord"]:
-        if want not in facts.get("volumes", []):
-            err(rel, f"VOLUME must declare {want}")
-    if facts.get("stopsignal") != "SIGTERM":
-        err(rel, "STOPSIGNAL must be SIGTERM (posteriord drains on it)")
-    if facts.get("cmd", [])[:1] != ["serve"] or "/etc/posteriord/posteriord.toml" not in facts.get("cmd", []):
-        err(rel, "CMD must serve /etc/posteriord/posteriord.toml")
-    if not facts.get("entrypoint", [""])[0].endswith("/posteriord"):
-        err(rel, "ENTRYPOINT must run the posteriord binary")
+    if not users:
+        err(rel, "the runtime stage sets no USER")
+    else:
+        facts["user"] = users[-1]
+    facts["expose"] = [int(p.split("/")[0]) for i, a in final if i == "EXPOSE" for p in a.split()]
     return facts
 
 
@@ -435,11 +256,19 @@ def main():
     root = sys.argv[1]
     files, docs = load_yaml_docs(root)
     facts = {"yaml_files": [os.path.relpath(f, root) for f in files], "yaml_documents": len(docs)}
-    facts["kubernetes"] = check_kubernetes(root, docs)
+    try:
+        facts["kubernetes"] = check_kubernetes(root, docs)
+    except (KeyError, TypeError, AttributeError) as e:
+        # kubernetes-validate --strict reports the shape; say where we stopped.
+        err("deploy/kubernetes", f"unexpected shape ({e!r}); run kubernetes-validate --strict")
+        facts["kubernetes"] = {}
     facts["container"] = check_containerfile(root)
     k8s, ctr = facts["kubernetes"], facts["container"]
-    if ctr.get("expose") and k8s.get("container_ports") and ctr["expose"] != k8s["container_ports"]:
-        err("deploy", f"Containerfile EXPOSE {ctr['expose']} != containerPort {k8s['container_ports']}")
+    if ctr.get("expose") != k8s.get("container_ports"):
+        err("deploy", f"Containerfile EXPOSE {ctr.get('expose')} != containerPort {k8s.get('container_ports')}")
+    uid = str(k8s.get("run_as_user"))
+    if ctr.get("user") is not None and ctr["user"].split(":")[0] != uid:
+        err("deploy", f"Containerfile USER {ctr['user']} != the pod's runAsUser {uid}")
     json.dump({"errors": ERRORS, "facts": facts}, sys.stdout, indent=1)
     print()
     sys.exit(1 if ERRORS else 0)

@@ -1,11 +1,13 @@
 //! The dashboard: server-rendered HTML pages with inline SVG plots, no JS build chain.
-//! `/` lists the experiments with their state at a glance; `/experiments/{id}` shows, per
+//! `/` is the fleet overview (counts per state, search, filters, paging; see `overview`);
+//! `/experiments/{id}` shows, per
 //! metric, the posterior densities, the lift against the control with its interval and ROPE,
 //! P(best) and expected loss over time with the threshold of caring, the rule timeline with
 //! the alerts, and the data-quality checks. `?part=main` returns only the main part, which the
 //! page's small inline script re-fetches every few seconds and swaps in.
 
 mod markup;
+pub mod overview;
 pub mod page;
 pub mod svg;
 
@@ -17,13 +19,12 @@ use axum::response::{IntoResponse, Response};
 use axum::routing::get;
 use axum::Router;
 
-use crate::decide::alerts::AlertState;
 use crate::service::Service;
 
 /// The dashboard's routes and the history route (merged into the API router).
 pub fn routes() -> Router<Arc<Service>> {
     Router::new()
-        .route("/", get(list))
+        .route("/", get(overview::overview))
         .route("/experiments/{id}", get(experiment))
         .route(
             "/v1/experiments/{id}/history",
@@ -37,12 +38,13 @@ struct Part {
     part: Option<String>,
 }
 
-/// What the pages may do: their own inline style and script, fetches from this origin, and
-/// nothing else — no external resources, no forms, no framing by other sites. Everything
+/// What the pages may do: their own inline style and script, fetches from this origin, forms
+/// that submit to this origin (the overview's search), and nothing else — no external
+/// resources, no framing by other sites. Everything
 /// interpolated into a page is escaped (`markup::escape`), so the inline script is the only one.
 const CONTENT_SECURITY_POLICY: &str = "default-src 'none'; style-src 'unsafe-inline'; \
 script-src 'unsafe-inline'; connect-src 'self'; img-src 'self' data:; base-uri 'none'; \
-form-action 'none'; frame-ancestors 'none'";
+form-action 'self'; frame-ancestors 'none'";
 
 fn html(status: StatusCode, body: String) -> Response {
     (
@@ -60,50 +62,6 @@ fn html(status: StatusCode, body: String) -> Response {
 
 fn wants_main(part: &Part) -> bool {
     part.part.as_deref() == Some("main")
-}
-
-async fn list(State(service): State<Arc<Service>>, Query(part): Query<Part>) -> Response {
-    let snapshots = service.lock_shards().snapshots();
-    let open: Vec<String> = service.with_alerts(|book| {
-        book.alerts()
-            .iter()
-            .filter(|a| matches!(a.state, AlertState::Open | AlertState::Easing))
-            .map(|a| a.key.experiment.clone())
-            .collect()
-    });
-    let rendered = super::blocking(move || {
-        let entries: Vec<page::ListEntry> = snapshots
-            .into_iter()
-            .map(|s| {
-                let summary = service.summary(s);
-                let findings = crate::decide::evaluate(&summary);
-                let open_alerts = open
-                    .iter()
-                    .filter(|e| **e == summary.snapshot.def.id)
-                    .count();
-                page::ListEntry {
-                    summary,
-                    findings,
-                    open_alerts,
-                }
-            })
-            .collect();
-        page::list_main(&entries)
-    })
-    .await;
-    match rendered {
-        Err(r) => r,
-        Ok(main) if wants_main(&part) => html(StatusCode::OK, main),
-        Ok(main) => html(
-            StatusCode::OK,
-            page::layout(
-                "posteriord · experiments",
-                "experiments",
-                &main,
-                "/?part=main",
-            ),
-        ),
-    }
 }
 
 async fn experiment(
@@ -130,12 +88,16 @@ async fn experiment(
             .collect()
     });
     let now = crate::service::now_micros();
+    let evidence = service.with_alerts(|book| book.evidence().subset(&snapshot.def.state_key()));
     let rendered = super::blocking(move || {
         let summary = service.summary(snapshot);
-        let findings = crate::decide::evaluate(&summary);
+        let mut findings = crate::decide::evaluate(&summary);
+        crate::decide::add_evidence_findings(&summary, &evidence, &mut findings);
+        let standings = crate::decide::standing::standings(&summary, &findings, Some(&evidence));
         page::experiment_main(&page::ExperimentView {
             summary,
             findings,
+            standings,
             history,
             alerts,
             now,

@@ -1,5 +1,5 @@
-//! The dashboard's HTML: the page frame (style sheet and the small refresh script), the
-//! experiment list and the experiment page with its plots, timeline and data-quality checks.
+//! The dashboard's HTML: the page frame (style sheet and the small refresh script) and the
+//! experiment page with its plots, timeline and data-quality checks.
 
 use std::fmt::Write;
 
@@ -71,13 +71,16 @@ a { color:var(--accent); }
 "#;
 
 /// Re-fetches the main part every few seconds and swaps it in, so the page never reloads and
-/// the scroll position stays; a failed fetch keeps what is shown.
+/// the scroll position stays; a failed fetch keeps what is shown, and so does a form field
+/// being typed in.
 const SCRIPT: &str = r#"
 (function () {
   var main = document.querySelector('main[data-refresh]');
   if (!main || !window.fetch) return;
   var n = 0;
   setInterval(function () {
+    var f = document.activeElement;
+    if (f && main.contains(f) && /^(INPUT|SELECT|TEXTAREA)$/.test(f.tagName)) return;
     fetch(main.getAttribute('data-refresh'), { cache: 'no-store' })
       .then(function (r) { if (!r.ok) throw new Error(r.status); return r.text(); })
       .then(function (html) {
@@ -182,61 +185,14 @@ fn rate(x: f64, higher_is_better: bool) -> String {
     }
 }
 
-/// One row of the experiment list.
-pub struct ListEntry {
-    /// The experiment now (shared with the other readers through the summary cache).
-    pub summary: std::sync::Arc<ExperimentSummary>,
-    /// The rules that hold now.
-    pub findings: Vec<Finding>,
-    /// Alerts not closed.
-    pub open_alerts: usize,
-}
-
-/// The main part of `/`.
-pub fn list_main(entries: &[ListEntry]) -> String {
-    let mut s = String::new();
-    s.push_str("<h1>Experiments</h1>");
-    s.push_str(r#"<p class="caution">"#);
-    s.push_str(&escape(crate::doc::CAUTION));
-    s.push_str("</p>");
-    s.push_str(r#"<table class="experiments" data-role="experiments"><thead><tr><th>experiment</th><th>state</th><th>units</th><th>primary metric</th><th>leading variant</th><th>P(best)</th><th>open alerts</th></tr></thead><tbody>"#);
-    for e in entries {
-        let snap = &e.summary.snapshot;
-        let def = &snap.def;
-        let units: u64 = snap.units.iter().sum();
-        let p = def.rules.primary;
-        let primary = &def.metrics[p];
-        let leader = e.summary.metrics[p].arms.as_ref().ok().and_then(|arms| {
-            arms.iter()
-                .enumerate()
-                .max_by(|a, b| a.1.prob_best.total_cmp(&b.1.prob_best))
-                .map(|(v, a)| (def.variants[v].name.clone(), a.prob_best))
-        });
-        let _ = write!(
-            s,
-            r#"<tr data-experiment="{id}"><td><a href="/experiments/{id}">{id}</a></td><td>{chips}</td><td class="num">{units}</td><td>{metric}</td><td>{leader}</td><td class="num">{pbest}</td><td class="num">{alerts}</td></tr>"#,
-            id = escape(&def.id),
-            chips = chips(&glance(&e.summary, &e.findings)),
-            metric = escape(&primary.name),
-            leader = leader.as_ref().map_or("—".into(), |l| escape(&l.0)),
-            pbest = leader.as_ref().map_or("—".into(), |l| prob(l.1)),
-            alerts = e.open_alerts,
-        );
-    }
-    s.push_str("</tbody></table>");
-    let _ = write!(
-        s,
-        r#"<p class="muted">Refreshes every {REFRESH_SECS} s. JSON: <a href="/v1/experiments">/v1/experiments</a>.</p>"#
-    );
-    s
-}
-
 /// Everything the experiment page shows.
 pub struct ExperimentView {
     /// The experiment now.
     pub summary: std::sync::Arc<ExperimentSummary>,
     /// The rules that hold now.
     pub findings: Vec<Finding>,
+    /// Where every rule stands.
+    pub standings: Vec<crate::decide::standing::RuleStanding>,
     /// Recorded evaluations (`None` before the first).
     pub history: Option<ExperimentHistory>,
     /// This experiment's alerts.
@@ -293,6 +249,7 @@ pub fn experiment_main(v: &ExperimentView) -> String {
         );
     }
 
+    standings_section(&mut s, v);
     for m in 0..def.metrics.len() {
         metric_section(&mut s, v, m);
     }
@@ -304,6 +261,27 @@ pub fn experiment_main(v: &ExperimentView) -> String {
         id = escape(&def.id)
     );
     s
+}
+
+/// Where each rule stands, one row per rule, metric and variant.
+fn standings_section(s: &mut String, v: &ExperimentView) {
+    let def = &v.summary.snapshot.def;
+    s.push_str(r#"<h2>Where each rule stands</h2><table data-role="rules"><thead><tr><th>rule</th><th>metric</th><th>variant</th><th>state</th><th>why</th></tr></thead><tbody>"#);
+    for r in &v.standings {
+        let _ = write!(
+            s,
+            r#"<tr data-rule="{rule}" data-state="{state}"><td>{rule}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>"#,
+            r.metric
+                .map_or(String::new(), |m| escape(&def.metrics[m].name)),
+            r.variant
+                .map_or(String::new(), |x| escape(&def.variants[x].name)),
+            r.state.as_str().replace('_', " "),
+            escape(&r.detail),
+            rule = r.rule.as_str(),
+            state = r.state.as_str(),
+        );
+    }
+    s.push_str("</tbody></table>");
 }
 
 fn metric_section(s: &mut String, v: &ExperimentView, m: usize) {
