@@ -357,7 +357,7 @@ fn serve(path: &std::path::Path) -> anyhow::Result<()> {
 fn check_config(path: &std::path::Path) -> anyhow::Result<()> {
     let config = load_config(path)?;
     println!(
-        "{}: ok ({} experiment{}, Kafka {})",
+        "{}: ok ({} experiment{}, {} source mapping{}, Kafka {})",
         path.display(),
         config.experiments.len(),
         if config.experiments.len() == 1 {
@@ -365,6 +365,8 @@ fn check_config(path: &std::path::Path) -> anyhow::Result<()> {
         } else {
             "s"
         },
+        config.sources.len(),
+        if config.sources.len() == 1 { "" } else { "s" },
         if config.kafka.is_some() {
             "configured"
         } else {
