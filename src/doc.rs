@@ -4,6 +4,8 @@
 use serde::Serialize;
 use serde_json::{json, Value};
 
+use crate::decide::evaluation::Reading;
+use crate::decide::Finding;
 use crate::decode::Position;
 use crate::event::{Outcome, Reject};
 use crate::experiment::{ExperimentDef, ExposureBasis, MetricKind, Prior};
@@ -145,11 +147,6 @@ fn arm_quantities(a: &ArmSummary) -> serde_json::Map<String, Value> {
     m
 }
 
-/// `GET /v1/experiments/{id}` without the anytime-valid processes (a one-off summary).
-pub fn experiment_document(summary: &ExperimentSummary) -> Value {
-    experiment_document_with(summary, None)
-}
-
 /// The anytime-valid numbers of one variant on one metric: the harm process and the
 /// confidence sequence for the lift, shown beside the credible interval.
 fn anytime(
@@ -206,14 +203,17 @@ pub fn rule_standings(
     )
 }
 
-/// `GET /v1/experiments/{id}`, with this process's anytime-valid harm processes when given.
-pub fn experiment_document_with(
-    summary: &ExperimentSummary,
+/// `GET /v1/experiments/{id}`: the reading of one experiment (its summary and the rules that
+/// hold on it), with this process's anytime-valid harm processes when given (they advance at
+/// each look of the evaluator, so they are not part of the cached reading).
+pub fn experiment_document(
+    reading: &Reading,
     evidence: Option<&crate::decide::betting::EvidenceBook>,
 ) -> Value {
+    let summary: &ExperimentSummary = &reading.summary;
     let snap = &summary.snapshot;
     let def: &ExperimentDef = &snap.def;
-    let mut findings = crate::decide::evaluate(summary);
+    let mut findings = reading.findings.clone();
     if let Some(e) = evidence {
         crate::decide::add_evidence_findings(summary, e, &mut findings);
     }
@@ -277,15 +277,14 @@ pub fn experiment_document_with(
         "sample_ratio": sample_ratio(&summary.sample_ratio, summary.snapshot.def.rules.srm_p),
         "last_event_time": snap.last_event_time.and_then(time_text),
         "metrics": metrics,
-        "decisions": decisions(summary, &findings),
+        "decisions": decisions(def, &findings),
         "rules": rule_standings(summary, &findings, evidence),
         "caution": CAUTION,
     })
 }
 
 /// The rules that hold now, with the numbers they compared.
-fn decisions(summary: &ExperimentSummary, findings: &[crate::decide::Finding]) -> Value {
-    let def = &summary.snapshot.def;
+fn decisions(def: &ExperimentDef, findings: &[Finding]) -> Value {
     let found: Vec<Value> = findings
         .iter()
         .map(|f| {

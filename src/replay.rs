@@ -11,13 +11,11 @@ use serde_json::{json, Value};
 
 use crate::config::Config;
 use crate::decide::alerts::{AlertBook, AlertChange};
-use crate::decide::evaluation::evaluate_snapshot;
-use crate::decide::Finding;
+use crate::decide::evaluation::{evaluate_snapshot, Reading};
 use crate::event::Outcome;
 use crate::service::ingest::{apply_batch_due, Item};
 use crate::service::metrics::{Metrics, Source};
 use crate::state::shards::Shards;
-use crate::summary::ExperimentSummary;
 
 /// The shard replayed events are applied to.
 pub const REPLAY_SHARD: &str = "replay";
@@ -112,8 +110,8 @@ pub struct ReplayReport {
     pub decisions: Vec<Decision>,
     /// The alert book at the end.
     pub book: AlertBook,
-    /// Each experiment's summary and the rules that hold at the end of the input.
-    pub experiments: Vec<(ExperimentSummary, Vec<Finding>)>,
+    /// Each experiment's reading (summary and the rules that hold) at the end of the input.
+    pub experiments: Vec<Reading>,
 }
 
 /// Observes progress, in bytes read.
@@ -275,13 +273,7 @@ pub fn replay(
     report.experiments = shards
         .snapshots()
         .into_iter()
-        .map(|snap| {
-            let summary = crate::summary::summarize(snap, crate::summary::DEFAULT_LEVEL);
-            let mut findings = crate::decide::evaluate(&summary);
-            // The anytime-valid processes as of the last due point (they advance only there).
-            crate::decide::add_evidence_findings(&summary, report.book.evidence(), &mut findings);
-            (summary, findings)
-        })
+        .map(|snap| Reading::of(snap, crate::summary::DEFAULT_LEVEL))
         .collect();
     Ok(report)
 }
@@ -319,7 +311,11 @@ pub fn to_json(report: &ReplayReport) -> Value {
         "evaluations": report.evaluations,
         "decisions": report.decisions.iter().map(decision_doc).collect::<Vec<_>>(),
         "alerts": report.book.alerts().iter().map(crate::doc::alert).collect::<Vec<_>>(),
-        "experiments": report.experiments.iter().map(|(s, _)| crate::doc::experiment_document_with(s, Some(report.book.evidence()))).collect::<Vec<_>>(),
+        "experiments": report
+            .experiments
+            .iter()
+            .map(|r| crate::doc::experiment_document(r, Some(report.book.evidence())))
+            .collect::<Vec<_>>(),
         "caution": crate::doc::CAUTION,
     })
 }
@@ -387,7 +383,11 @@ pub fn to_text(report: &ReplayReport) -> String {
         );
     }
     let _ = writeln!(out, "\nfinal state:");
-    for (summary, findings) in &report.experiments {
+    for Reading { summary, findings } in &report.experiments {
+        // The anytime-valid processes as of the last due point (they advance only there).
+        let mut findings = findings.clone();
+        crate::decide::add_evidence_findings(summary, report.book.evidence(), &mut findings);
+        let findings = &findings;
         let snap = &summary.snapshot;
         let _ = writeln!(
             out,

@@ -5,9 +5,10 @@
 //!
 //! No registry is reachable, so the two base images are made offline from Debian's mirror
 //! (tests/tools/container_bases.py: debootstrap, and a distroless cc-debian12 stand-in cut
-//! from it) and passed as build arguments; the build stage takes a release binary compiled on
-//! the host from exactly the files the Containerfile's compile stage copies, with the same
-//! cargo command (BINARY=prebuilt). Everything after the build stage is the shipped recipe.
+//! from it) and passed as build arguments; the build stage takes the binary `cargo test` built
+//! (BINARY=prebuilt) — or, with POSTERIORD_CONTAINER_RELEASE=1 or in the soak run, a release
+//! binary compiled on the host from exactly the files the Containerfile's compile stage copies,
+//! with the same cargo command. Everything after the build stage is the shipped recipe.
 //!
 //! Engine quirks of these machines (checked with Debian 12's podman 4.3): `--runtime runc`
 //! (crun: "cgroups in hybrid mode not supported"), `--isolation chroot` for builds, and
@@ -187,10 +188,20 @@ fn build_context() -> PathBuf {
     }
     let bin_dir = ctx.join("target/release");
     std::fs::create_dir_all(&bin_dir).unwrap();
-    // For iterating on this test only: a binary of your choice instead of the release build
-    // (tests/run.sh never sets it, so the suite always tests the release build).
-    if let Some(bin) = std::env::var_os("POSTERIORD_CONTAINER_TEST_BINARY") {
-        println!("NOTE: testing {bin:?}, not the release build");
+    // The default run puts the binary `cargo test` built into the image: a cold release
+    // build costs 10-15 minutes of two cores, on every fresh CI machine, and the stages that
+    // ship (everything after the build stage) are the same for either. The soak run, or
+    // POSTERIORD_CONTAINER_RELEASE=1, builds the release binary from the compile stage's
+    // files with its own command, as the production build does.
+    // POSTERIORD_CONTAINER_TEST_BINARY names any other binary, for iterating on this test.
+    let release = std::env::var_os("POSTERIORD_CONTAINER_RELEASE").is_some()
+        || std::env::var("POSTERIORD_SOAK").is_ok_and(|v| v == "1");
+    let chosen = std::env::var_os("POSTERIORD_CONTAINER_TEST_BINARY")
+        .or_else(|| (!release).then(|| env!("CARGO_BIN_EXE_posteriord").into()));
+    if let Some(bin) = chosen {
+        println!(
+            "the image carries {bin:?} (set POSTERIORD_CONTAINER_RELEASE=1 for the release build)"
+        );
         std::fs::copy(bin, bin_dir.join("posteriord")).unwrap();
         return ctx;
     }

@@ -72,8 +72,18 @@ fn means(arms: &Arms) -> Vec<f64> {
     }
 }
 
+/// Cases per property: a few in the default run (a debug build spends seconds on a 64-arm
+/// case), many more in the soak run (`POSTERIORD_SOAK=1`).
+fn cases() -> u32 {
+    if std::env::var("POSTERIORD_SOAK").is_ok_and(|v| v == "1") {
+        256
+    } else {
+        12
+    }
+}
+
 proptest! {
-    #![proptest_config(ProptestConfig { cases: 32, ..ProptestConfig::default() })]
+    #![proptest_config(ProptestConfig { cases: cases(), ..ProptestConfig::default() })]
 
     #[test]
     fn every_accepted_input_is_answered_lawfully(

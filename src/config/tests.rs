@@ -74,6 +74,18 @@ fn bad_values_name_the_key_and_line() {
             "experiment[0].metric[0].prior.alpha",
             "alpha = 0.0",
         ),
+        // Priors outside the range the statistics are verified on (docs/methods.md,
+        // "Accepted ranges") are refused by key and line, not at every evaluation.
+        (
+            EXAMPLE.replace("alpha = 1.0, beta = 1.0", "alpha = 1e-12, beta = 1.0"),
+            "experiment[0].metric[0].prior.alpha",
+            "alpha = 1e-12",
+        ),
+        (
+            EXAMPLE.replace("shape = 1.0, rate = 1.0", "shape = 1.0, rate = 1e20"),
+            "experiment[0].metric[1].prior.rate",
+            "rate = 1e20",
+        ),
         (
             EXAMPLE.replace("shape = 1.0, rate = 1.0", "alpha = 1.0, beta = 1.0 "),
             "experiment[0].metric[1].prior",

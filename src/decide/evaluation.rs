@@ -3,11 +3,36 @@
 //! read, so the same event order gives the same decisions live, in `replay` and in `plan`
 //! (when a snapshot is due is the state's own bookkeeping, `state::cadence`).
 
+use std::sync::Arc;
+
 use super::alerts::{AlertBook, AlertChange};
 use super::Finding;
 use crate::event::Micros;
 use crate::state::ExperimentSnapshot;
 use crate::summary::ExperimentSummary;
+
+/// What a reader shows of one snapshot: its summary at a credible level and the rules that
+/// hold on it, computed together once, so documents, pages and reports never run the rules
+/// again on the same snapshot.
+#[derive(Debug, Clone)]
+pub struct Reading {
+    /// The summary (shared: pages keep it while they render).
+    pub summary: Arc<ExperimentSummary>,
+    /// The rules that hold on it.
+    pub findings: Vec<Finding>,
+}
+
+impl Reading {
+    /// Summarize `snapshot` at credible level `level` and evaluate the rules on it.
+    pub fn of(snapshot: ExperimentSnapshot, level: f64) -> Reading {
+        let summary = crate::summary::summarize(snapshot, level);
+        let findings = super::evaluate(&summary);
+        Reading {
+            summary: Arc::new(summary),
+            findings,
+        }
+    }
+}
 
 /// The result of one evaluation: what a reader (history, dashboards, the alert sinks) needs.
 #[derive(Debug)]

@@ -12,10 +12,11 @@ use serde_json::{json, Value};
 
 use super::blocking;
 use super::guard::error;
+use crate::decide::evaluation::Reading;
 use crate::doc;
 use crate::service::catalog::{Archived, CatalogError};
 use crate::service::Service;
-use crate::summary::{summarize, DEFAULT_LEVEL};
+use crate::summary::DEFAULT_LEVEL;
 
 /// Largest `PUT /v1/experiments/{id}` body: a 64-variant, 64-metric experiment with every
 /// rule spelled out stays far below it.
@@ -198,7 +199,7 @@ pub async fn get_archived(service: &Service, id: &str, number: Option<u32>) -> R
         );
     };
     match blocking(move || {
-        let mut d = doc::experiment_document(&summarize(snapshot, DEFAULT_LEVEL));
+        let mut d = doc::experiment_document(&Reading::of(snapshot, DEFAULT_LEVEL), None);
         d["source"] = json!("api");
         d["generation"] = json!(generation);
         d["archive"] = note;

@@ -274,7 +274,7 @@ async fn get_experiment(
     let generation = snapshot.def.generation;
     let evidence = service.with_alerts(|book| book.evidence().subset(&snapshot.def.state_key()));
     match blocking(move || {
-        let mut d = doc::experiment_document_with(&service.summary(snapshot), Some(&evidence));
+        let mut d = doc::experiment_document(&service.reading(snapshot), Some(&evidence));
         d["source"] = json!(source);
         d["generation"] = json!(generation);
         d

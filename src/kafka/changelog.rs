@@ -16,7 +16,8 @@ use std::time::{Duration, Instant};
 use rdkafka::consumer::{BaseConsumer, Consumer};
 use rdkafka::error::KafkaError;
 use rdkafka::message::Message;
-use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
+use rdkafka::producer::{BaseRecord, DeliveryResult, Producer, ProducerContext, ThreadedProducer};
+use rdkafka::ClientContext;
 use rdkafka::{Offset, TopicPartitionList};
 
 use super::client::{connection_config, ensure_topic_with};
@@ -186,11 +187,47 @@ impl PartitionContents {
 pub struct Changelog {
     topic: String,
     n_partitions: i32,
-    producer: ThreadedProducer<DefaultProducerContext>,
+    producer: ThreadedProducer<DeliveryCheck>,
     /// Reader for restores (assigned one partition at a time).
     reader: Mutex<BaseConsumer>,
     /// Generations known to be in the topic per shard, to tombstone after the next publish.
     known: Mutex<HashMap<ShardId, Vec<(i64, u32)>>>,
+}
+
+/// Counts deliveries the broker refused, so a publication can tell that one of its chunks
+/// was lost (librdkafka reports that only in the delivery callback).
+#[derive(Default)]
+struct DeliveryCheck {
+    refused: std::sync::atomic::AtomicU64,
+    last: Mutex<Option<KafkaError>>,
+}
+
+impl DeliveryCheck {
+    fn refused(&self) -> u64 {
+        self.refused.load(std::sync::atomic::Ordering::SeqCst)
+    }
+
+    /// `Err` with the last refusal if any delivery was refused since `before`.
+    fn check(&self, before: u64) -> Result<(), KafkaError> {
+        if self.refused() == before {
+            return Ok(());
+        }
+        let last = self.last.lock().unwrap_or_else(|p| p.into_inner()).clone();
+        Err(last.unwrap_or(KafkaError::Flush(rdkafka::types::RDKafkaErrorCode::Fail)))
+    }
+}
+
+impl ClientContext for DeliveryCheck {}
+
+impl ProducerContext for DeliveryCheck {
+    type DeliveryOpaque = ();
+    fn delivery(&self, result: &DeliveryResult<'_>, _: ()) {
+        if let Err((e, _)) = result {
+            *self.last.lock().unwrap_or_else(|p| p.into_inner()) = Some(e.clone());
+            self.refused
+                .fetch_add(1, std::sync::atomic::Ordering::SeqCst);
+        }
+    }
 }
 
 impl Changelog {
@@ -211,7 +248,9 @@ impl Changelog {
         pc.set("client.id", "posteriord-changelog")
             .set("enable.idempotence", "true")
             .set("linger.ms", "5");
-        let producer = pc.create().map_err(err)?;
+        let producer = pc
+            .create_with_context(DeliveryCheck::default())
+            .map_err(err)?;
         let mut rc = connection_config(cfg);
         rc.set("group.id", "posteriord-changelog-reader")
             .set("enable.auto.commit", "false")
@@ -262,10 +301,15 @@ impl Changelog {
             let k = key(shard, generation, i as u32);
             self.send(&k, Some(&value), cp).map_err(err)?;
         }
+        let refused_before = self.producer.context().refused();
         self.producer.flush(PUBLISH_TIMEOUT).map_err(err)?;
+        // flush() only waits for the queue to empty: a chunk the broker refused (too large,
+        // no such partition) must not count as published, or the older generations below
+        // would be tombstoned with no complete one left.
+        self.producer.context().check(refused_before).map_err(err)?;
         let mut known = self.known.lock().unwrap_or_else(|p| p.into_inner());
         let old = known
-            .insert(shard.to_string(), vec![(generation, n)])
+            .insert(ShardId::from(shard), vec![(generation, n)])
             .unwrap_or_default();
         for (g, count) in old.into_iter().filter(|(g, _)| *g != generation) {
             for i in 0..count {
@@ -283,8 +327,10 @@ impl Changelog {
             source,
         };
         let key = format!("{CATALOG_KEY}/{instance}");
+        let refused_before = self.producer.context().refused();
         self.send(&key, Some(bytes), 0).map_err(err)?;
-        self.producer.flush(PUBLISH_TIMEOUT).map_err(err)
+        self.producer.flush(PUBLISH_TIMEOUT).map_err(err)?;
+        self.producer.context().check(refused_before).map_err(err)
     }
 
     fn send(&self, key: &str, value: Option<&[u8]>, partition: i32) -> Result<(), KafkaError> {
@@ -329,7 +375,7 @@ impl Changelog {
         self.known
             .lock()
             .unwrap_or_else(|p| p.into_inner())
-            .insert(shard.to_string(), contents.generations(shard));
+            .insert(ShardId::from(shard), contents.generations(shard));
         contents.latest(&self.topic, shard)
     }
 
@@ -448,7 +494,9 @@ pub fn follow(
             .is_some_and(Generation::complete);
         if complete {
             match pending.latest(topic, &shard) {
-                Ok(Some(image)) => service.lock_shards().set_remote(shard.clone(), &image),
+                Ok(Some(image)) => service
+                    .lock_shards()
+                    .set_remote(ShardId::from(shard.as_str()), &image),
                 Ok(None) => {}
                 Err(e) => tracing::warn!(error = %e, "skipping an unreadable changelog generation"),
             }

@@ -9,36 +9,35 @@
 //! are kept up to date for lag tooling but are not what restores use.
 //!
 //! Consumption runs on a dedicated blocking thread with librdkafka's poll loop; rebalance
-//! callbacks run inside `poll` on the same thread, which keeps restore, apply and save
-//! strictly ordered without extra locking.
+//! callbacks (`partitions`) run inside `poll` on the same thread, which keeps restore, apply
+//! and save strictly ordered without extra locking.
 
 use std::collections::HashMap;
 use std::sync::{Arc, OnceLock};
 use std::time::{Duration, Instant};
 
-use rdkafka::client::ClientContext;
-use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer, ConsumerContext, RebalanceProtocol};
+use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer};
 use rdkafka::error::KafkaError;
 use rdkafka::message::{Header, Message, OwnedHeaders};
-use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
-use rdkafka::statistics::Statistics;
-use rdkafka::types::RDKafkaRespErr;
+use rdkafka::producer::BaseRecord;
 use rdkafka::{Offset, TopicPartitionList};
 use tokio_util::sync::CancellationToken;
 use tokio_util::task::TaskTracker;
 
 pub mod changelog;
 pub mod client;
+mod partitions;
 
 use changelog::Changelog;
 use client::{client_config, ensure_topic, producer_config};
+use partitions::{flush_dead_letters, publish_changed, DeadLetterProducer, PartitionContext};
 
 use crate::config::KafkaConfig;
 use crate::event::Reject;
 use crate::service::ingest::Item;
 use crate::service::metrics::Source;
 use crate::service::Service;
-use crate::state::shards::{kafka_shard, Shard};
+use crate::state::shards::ShardId;
 
 /// Most messages applied under one lock.
 const MAX_BATCH: usize = 2_000;
@@ -48,273 +47,6 @@ const MAX_BATCH_WAIT: Duration = Duration::from_millis(20);
 const POLL_TIMEOUT: Duration = Duration::from_millis(100);
 /// How often readiness asks the brokers for metadata.
 const PROBE_INTERVAL: Duration = Duration::from_secs(2);
-/// How long a save waits for dead letters to be delivered first.
-const DEAD_LETTER_FLUSH: Duration = Duration::from_secs(10);
-
-type DeadLetterProducer = ThreadedProducer<DefaultProducerContext>;
-
-/// librdkafka callbacks: restore and release partition state on rebalance; lag from stats.
-struct PartitionContext {
-    service: Arc<Service>,
-    dead_letters: Option<Arc<DeadLetterProducer>>,
-    /// Set once the changelog is reachable (before the consumer subscribes).
-    changelog: Arc<OnceLock<Changelog>>,
-}
-
-/// The input partition number of a Kafka shard id (`kafka/<topic>/<partition>`).
-fn shard_partition(id: &str) -> Option<i32> {
-    id.rsplit('/').next()?.parse().ok()
-}
-
-/// Publish every Kafka shard whose position moved since its last publication; `only` limits
-/// it to some shards. Returns whether all publications succeeded.
-fn publish_changed(service: &Service, changelog: &Changelog, only: Option<&[String]>) -> bool {
-    // During an outage a publication would only wait out its timeout; the local file keeps
-    // the exact position, and the next round publishes.
-    if service.kafka_reachable() != Some(true) {
-        return false;
-    }
-    let images: Vec<(String, crate::state::shards::ShardImage)> = {
-        let shards = service.lock_shards();
-        shards
-            .ids()
-            .into_iter()
-            .filter(|id| id.starts_with("kafka/"))
-            .filter(|id| only.is_none_or(|o| o.contains(id)))
-            .filter_map(|id| {
-                let shard = shards.shard(&id)?;
-                if changelog.is_current(&id, shard.next_offset()) {
-                    return None;
-                }
-                Some((id, shard.image()))
-            })
-            .collect()
-    };
-    let mut ok = true;
-    for (id, image) in images {
-        let Some(partition) = shard_partition(&id) else {
-            continue;
-        };
-        match changelog.publish(&id, partition, &image) {
-            Ok(()) => service
-                .metrics()
-                .changelog_publishes
-                .with_label_values(&["ok"])
-                .inc(),
-            Err(e) => {
-                ok = false;
-                service
-                    .metrics()
-                    .changelog_publishes
-                    .with_label_values(&["error"])
-                    .inc();
-                tracing::warn!(shard = %id, error = %e, "cannot publish partition state to the changelog; will retry");
-            }
-        }
-    }
-    ok
-}
-
-impl ClientContext for PartitionContext {
-    fn stats(&self, statistics: Statistics) {
-        let shards = self.service.lock_shards();
-        for (topic, t) in &statistics.topics {
-            for (partition, p) in &t.partitions {
-                if *partition < 0 {
-                    continue; // librdkafka's internal "unassigned" partition
-                }
-                let Some(shard) = shards.shard(&kafka_shard(topic, *partition)) else {
-                    continue;
-                };
-                let next = shard.next_offset().unwrap_or(0);
-                let partition_label = partition.to_string();
-                let labels = [topic.as_str(), partition_label.as_str()];
-                if p.hi_offset >= 0 {
-                    self.service
-                        .metrics()
-                        .kafka_lag
-                        .with_label_values(&labels)
-                        .set((p.hi_offset - next).max(0));
-                }
-            }
-        }
-    }
-}
-
-impl ConsumerContext for PartitionContext {
-    fn rebalance(
-        &self,
-        consumer: &BaseConsumer<Self>,
-        err: RDKafkaRespErr,
-        tpl: &mut TopicPartitionList,
-    ) {
-        let cooperative = matches!(
-            consumer.rebalance_protocol(),
-            RebalanceProtocol::Cooperative
-        );
-        match err {
-            RDKafkaRespErr::RD_KAFKA_RESP_ERR__ASSIGN_PARTITIONS => {
-                self.restore(tpl);
-                let r = if cooperative {
-                    consumer.incremental_assign(tpl)
-                } else {
-                    consumer.assign(tpl)
-                };
-                if let Err(e) = r {
-                    tracing::error!(error = %e, "cannot take the assigned partitions");
-                }
-            }
-            RDKafkaRespErr::RD_KAFKA_RESP_ERR__REVOKE_PARTITIONS => {
-                self.release(tpl);
-                let r = if cooperative {
-                    consumer.incremental_unassign(tpl)
-                } else {
-                    consumer.unassign()
-                };
-                if let Err(e) = r {
-                    tracing::error!(error = %e, "cannot release the revoked partitions");
-                }
-            }
-            other => {
-                tracing::error!(error = ?other, "rebalance error; releasing all partitions");
-                let all = consumer.assignment().unwrap_or_default();
-                self.release(&all);
-                let _ = consumer.unassign();
-            }
-        }
-    }
-}
-
-impl PartitionContext {
-    /// The changelog's state of shard `id` if it is further along than `local`.
-    fn newer_from_changelog(
-        &self,
-        id: &str,
-        partition: i32,
-        local: Option<Shard>,
-    ) -> Option<Shard> {
-        let Some(changelog) = self.changelog.get() else {
-            return local;
-        };
-        let remote = match changelog.restore(id, partition) {
-            Ok(r) => r,
-            Err(e) => {
-                tracing::error!(shard = id, error = %e, "cannot read the changelog; using local state only");
-                return local;
-            }
-        };
-        let local_pos = local.as_ref().and_then(|s| s.next_offset());
-        match remote {
-            Some(image) if image.next_offset > local_pos => {
-                let shard = self.service.shard_from_image(id, image);
-                tracing::info!(shard = id, next_offset = ?shard.next_offset(), "restored from the changelog");
-                Some(shard)
-            }
-            _ => local,
-        }
-    }
-
-    /// Load each assigned partition's stored state and point the assignment at its offset.
-    fn restore(&self, tpl: &mut TopicPartitionList) {
-        let partitions: Vec<(String, i32)> = tpl
-            .elements()
-            .iter()
-            .map(|e| (e.topic().to_string(), e.partition()))
-            .collect();
-        self.service.add_restoring(partitions.len() as isize);
-        for (topic, partition) in &partitions {
-            let id = kafka_shard(topic, *partition);
-            let started = Instant::now();
-            let local = match self.service.load_shard(&id) {
-                Ok(local) => local,
-                Err(e) => {
-                    // The damaged file is kept for inspection; the changelog or a re-read
-                    // from the beginning rebuilds the state exactly.
-                    tracing::error!(topic, partition, error = %e, "stored state unreadable; ignoring it");
-                    self.service.set_aside_damaged(&id);
-                    None
-                }
-            };
-            let shard = self
-                .newer_from_changelog(&id, *partition, local)
-                .unwrap_or_else(|| {
-                    tracing::info!(
-                        topic,
-                        partition,
-                        "no stored state for the partition: reading it from the beginning"
-                    );
-                    Shard::new(self.service.lock_shards().defs())
-                });
-            let offset = match shard.next_offset() {
-                Some(next) => Offset::Offset(next),
-                None => Offset::Beginning,
-            };
-            if let Err(e) = tpl.set_partition_offset(topic, *partition, offset) {
-                tracing::error!(topic, partition, error = %e, "cannot set the restore offset");
-            }
-            tracing::info!(
-                topic,
-                partition,
-                ?offset,
-                elapsed_ms = started.elapsed().as_millis() as u64,
-                "partition assigned and restored"
-            );
-            self.service.lock_shards().insert(id, shard);
-        }
-        self.service.add_restoring(-(partitions.len() as isize));
-    }
-
-    /// Save and drop the state of revoked partitions: the next owner restores it.
-    fn release(&self, tpl: &TopicPartitionList) {
-        let ids: Vec<String> = tpl
-            .elements()
-            .iter()
-            .map(|e| kafka_shard(e.topic(), e.partition()))
-            .collect();
-        if ids.is_empty() {
-            return;
-        }
-        flush_dead_letters(self.dead_letters.as_deref(), &self.service);
-        self.service.save_dirty(|id| ids.iter().any(|x| x == id));
-        if let Some(changelog) = self.changelog.get() {
-            publish_changed(&self.service, changelog, Some(&ids));
-        }
-        let mut shards = self.service.lock_shards();
-        for id in &ids {
-            shards.remove(id);
-        }
-        drop(shards);
-        for e in tpl.elements() {
-            // Another instance reports these partitions now.
-            let labels = [e.topic(), &e.partition().to_string()];
-            let _ = self
-                .service
-                .metrics()
-                .kafka_lag
-                .remove_label_values(&labels);
-            let _ = self
-                .service
-                .metrics()
-                .kafka_next_offset
-                .remove_label_values(&labels);
-        }
-        tracing::info!(partitions = ?ids, "partitions revoked; state saved and released");
-    }
-}
-
-/// Wait for dead letters to be delivered before offsets that follow them are saved, so a
-/// saved offset never skips an undelivered dead letter. Returns whether all were delivered.
-fn flush_dead_letters(producer: Option<&DeadLetterProducer>, service: &Service) -> bool {
-    let Some(p) = producer else { return true };
-    match p.flush(DEAD_LETTER_FLUSH) {
-        Ok(()) => true,
-        Err(e) => {
-            tracing::warn!(error = %e, "dead letters not yet delivered; postponing the state save");
-            service.metrics().dead_letter_errors.inc();
-            false
-        }
-    }
-}
 
 /// Start the consumer thread and the broker probe on `tracker`.
 pub fn start(
@@ -440,7 +172,7 @@ pub fn start(
 }
 
 /// Shard id of each (topic, partition) seen by the consumer.
-type ShardIds = HashMap<String, HashMap<i32, String>>;
+type ShardIds = HashMap<String, HashMap<i32, ShardId>>;
 
 struct LoopConfig {
     dead_letter_topic: Option<String>,
@@ -550,7 +282,7 @@ fn consume_loop(
         }
         if last_save.elapsed() >= cfg.snapshot_interval {
             if flush_dead_letters(dead_letters, service) {
-                service.save_dirty(|id| id.starts_with("kafka/"));
+                service.save_dirty(ShardId::is_kafka);
             }
             last_save = Instant::now();
         }
@@ -566,7 +298,7 @@ fn consume_loop(
         tracing::error!(
             "dead letters undelivered at shutdown; their events will be read again after restart"
         );
-    } else if !service.save_dirty(|id| id.starts_with("kafka/")) {
+    } else if !service.save_dirty(ShardId::is_kafka) {
         tracing::error!(
             "state could not be saved at shutdown; events since the last save will be read again"
         );
@@ -592,7 +324,7 @@ fn apply_messages(
             shard_ids
                 .entry(m.topic().to_string())
                 .or_default()
-                .insert(m.partition(), kafka_shard(m.topic(), m.partition()));
+                .insert(m.partition(), ShardId::kafka(m.topic(), m.partition()));
         }
     }
     let items: Vec<Item<'_>> = batch
@@ -645,7 +377,7 @@ fn commit_positions(consumer: &BaseConsumer<PartitionContext>, service: &Service
     let mut tpl = TopicPartitionList::new();
     for e in assigned.elements() {
         if let Some(next) = shards
-            .shard(&kafka_shard(e.topic(), e.partition()))
+            .shard(&ShardId::kafka(e.topic(), e.partition()))
             .and_then(|s| s.next_offset())
         {
             let _ = tpl.add_partition_offset(e.topic(), e.partition(), Offset::Offset(next));

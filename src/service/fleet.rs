@@ -146,9 +146,10 @@ impl FleetIndex {
                 continue;
             }
             // The quadrature runs outside the lock.
-            let summary = summaries
-                .exact(&snap)
-                .unwrap_or_else(|| Arc::new(summarize_rules_only(snap)));
+            let summary = summaries.exact(&snap).map_or_else(
+                || Arc::new(summarize_rules_only(snap)),
+                |r| Arc::clone(&r.summary),
+            );
             let verdict = Arc::new(Verdict::new(summary));
             self.lock()
                 .insert(verdict.summary.snapshot.def.id.clone(), verdict);
@@ -351,7 +352,7 @@ mod tests {
         let index = FleetIndex::default();
         // A summary the readers already share is reused, and the background work adds
         // nothing to their cache (it would look young there and hide newer events).
-        let shared = cache.summary(snaps[0].clone());
+        let shared = Arc::clone(&cache.reading(snaps[0].clone()).summary);
         assert_eq!(index.refresh(snaps.clone(), &cache), n);
         assert!(snaps[1..].iter().all(|s| cache.exact(s).is_none()));
         let first = index

@@ -29,9 +29,10 @@ use std::time::Duration;
 
 use crate::config::Config;
 use crate::decide::alerts::{Alert, AlertBook};
+use crate::decide::evaluation::Reading;
 use crate::event::Micros;
 use crate::state::cadence::Cadence;
-use crate::state::shards::{Shard, ShardImage, Shards, HTTP_SHARD};
+use crate::state::shards::{Shard, ShardId, ShardImage, Shards, HTTP_SHARD};
 use crate::state::ExperimentSnapshot;
 use crate::summary::ExperimentSummary;
 
@@ -221,7 +222,7 @@ impl Service {
             e => OpenError::Store(e),
         })?;
         if let Some(shard) = http_shard {
-            service.lock_shards().insert(HTTP_SHARD.to_string(), shard);
+            service.lock_shards().insert(ShardId::http(), shard);
             tracing::info!("restored the state of events posted over HTTP");
         }
         service.replay_http_wal().map_err(OpenError::Wal)?;
@@ -264,9 +265,10 @@ impl Service {
         &self.recorder
     }
 
-    /// The summary of `snapshot` for a reader, shared with other readers when recent.
-    pub fn summary(&self, snapshot: ExperimentSnapshot) -> Arc<ExperimentSummary> {
-        self.readings.summary(snapshot)
+    /// The reading (summary and findings) of `snapshot` for a reader, shared with other
+    /// readers when recent.
+    pub fn reading(&self, snapshot: ExperimentSnapshot) -> Arc<Reading> {
+        self.readings.reading(snapshot)
     }
 
     /// One refresh round of the fleet's verdicts (see [`fleet::FleetIndex::refresh`]): runs
@@ -547,7 +549,7 @@ impl Service {
     /// Write every changed shard accepted by `which` to the store. Images are taken under the
     /// lock (clearing the dirty mark), files written outside it; a failed write marks the
     /// shard dirty again so the next round retries. Returns whether all writes succeeded.
-    pub fn save_dirty(&self, which: impl Fn(&str) -> bool) -> bool {
+    pub fn save_dirty(&self, which: impl Fn(&ShardId) -> bool) -> bool {
         let Some(store) = &self.store else {
             return true;
         };
@@ -557,19 +559,19 @@ impl Service {
         // The HTTP shard's image is taken under the log's lock and the log sealed with it,
         // so the sealed segments hold exactly the events before the image's offset.
         let mut wal = match &self.http_wal {
-            Some(wal) if which(HTTP_SHARD) => Some(lock(wal)),
+            Some(wal) if which(&ShardId::http()) => Some(lock(wal)),
             _ => None,
         };
         let mut sealed = None;
-        let images: Vec<(String, ShardImage)> = {
+        let images: Vec<(ShardId, ShardImage)> = {
             let mut shards = self.lock_shards();
             shards
                 .ids()
                 .into_iter()
                 .filter(|id| which(id))
                 .filter_map(|id| {
-                    let image = shards.shard_mut(&id).take_unsaved()?;
-                    if id == HTTP_SHARD {
+                    let image = shards.shard_mut(id.as_str()).take_unsaved()?;
+                    if id.is_http() {
                         sealed = wal.as_mut().map(|w| w.seal());
                     }
                     Some((id, image))
@@ -580,14 +582,13 @@ impl Service {
         let mut all_ok = true;
         for (id, image) in images {
             let what = format!("state of shard {id}");
-            let saved = store.save(&id, &image);
+            let saved = store.save(id.as_str(), &image);
             self.health.note(&what, &saved);
             match saved {
                 Ok(()) => {
                     self.metrics.state_saves.with_label_values(&["ok"]).inc();
-                    store::crash_point("save-done", &store.path(&id));
-                    if let (Some(wal), Some(sealed), true) =
-                        (&self.http_wal, sealed, id == HTTP_SHARD)
+                    store::crash_point("save-done", &store.path(id.as_str()));
+                    if let (Some(wal), Some(sealed), true) = (&self.http_wal, sealed, id.is_http())
                     {
                         if let Err(e) = lock(wal).remove_sealed(sealed) {
                             tracing::warn!(error = %e, "cannot remove saved segments of the HTTP write-ahead log; they are skipped on replay and removed at the next save");
@@ -598,7 +599,7 @@ impl Service {
                     all_ok = false;
                     tracing::error!(shard = %id, error = %e, free_bytes = ?store::free_bytes(store.dir()), "cannot save state; will retry");
                     self.metrics.state_saves.with_label_values(&["error"]).inc();
-                    self.lock_shards().shard_mut(&id).mark_unsaved();
+                    self.lock_shards().shard_mut(id.as_str()).mark_unsaved();
                 }
             }
         }
@@ -607,7 +608,7 @@ impl Service {
 
     /// Store the HTTP shard if it changed; whether that succeeded.
     pub fn save_http_shard(&self) -> bool {
-        self.save_dirty(|id| id == HTTP_SHARD)
+        self.save_dirty(ShardId::is_http)
     }
 
     /// Read shard `id` from the store (if stored), reporting experiments that no longer fit.
@@ -654,8 +655,10 @@ impl Service {
     /// the Prometheus text format.
     pub fn scrape(&self) -> String {
         let snapshots = self.lock_shards().snapshots();
-        let summaries: Vec<Arc<ExperimentSummary>> =
-            snapshots.into_iter().map(|s| self.summary(s)).collect();
+        let summaries: Vec<Arc<ExperimentSummary>> = snapshots
+            .into_iter()
+            .map(|s| Arc::clone(&self.reading(s).summary))
+            .collect();
         let _scrape = lock(&self.metrics.scrape);
         self.metrics.set_experiment_gauges(&summaries);
         let failing = self.health.failing().len();

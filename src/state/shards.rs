@@ -13,15 +13,77 @@ use super::{Engine, ExperimentSnapshot, ExperimentState};
 use crate::event::{Event, Outcome, Reject};
 use crate::experiment::ExperimentDef;
 
-/// Names one input shard: `kafka/<topic>/<partition>`, `http`, `simulator`.
-pub type ShardId = String;
+/// Names one input shard: a Kafka partition, the events posted over HTTP, or the simulator.
+/// Its text form (`kafka/<topic>/<partition>`, `http`, `simulator`) names the shard's file and
+/// its changelog keys, so it is stable; the kind of a shard is asked here, never read off the
+/// text elsewhere.
+#[derive(Debug, Clone, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub struct ShardId(String);
 
-/// Shard of events posted over HTTP.
+/// The text form of the shard of events posted over HTTP (also its write-ahead log's name).
 pub const HTTP_SHARD: &str = "http";
 
-/// The shard id of a Kafka partition.
-pub fn kafka_shard(topic: &str, partition: i32) -> ShardId {
-    format!("kafka/{topic}/{partition}")
+const KAFKA_PREFIX: &str = "kafka/";
+
+impl ShardId {
+    /// The shard of Kafka partition `partition` of `topic`.
+    pub fn kafka(topic: &str, partition: i32) -> ShardId {
+        ShardId(format!("{KAFKA_PREFIX}{topic}/{partition}"))
+    }
+
+    /// The shard of events posted over HTTP.
+    pub fn http() -> ShardId {
+        ShardId(HTTP_SHARD.to_string())
+    }
+
+    /// Whether this is a Kafka partition's shard.
+    pub fn is_kafka(&self) -> bool {
+        self.0.starts_with(KAFKA_PREFIX)
+    }
+
+    /// Whether this is the shard of events posted over HTTP.
+    pub fn is_http(&self) -> bool {
+        self.0 == HTTP_SHARD
+    }
+
+    /// The input partition of a Kafka partition's shard.
+    pub fn kafka_partition(&self) -> Option<i32> {
+        let rest = self.0.strip_prefix(KAFKA_PREFIX)?;
+        rest.rsplit('/').next()?.parse().ok()
+    }
+
+    /// The text form.
+    pub fn as_str(&self) -> &str {
+        &self.0
+    }
+}
+
+/// A shard named by its text form (as sources hand events over, and as files and changelog
+/// keys store it).
+impl From<&str> for ShardId {
+    fn from(name: &str) -> ShardId {
+        ShardId(name.to_string())
+    }
+}
+
+/// Read as its text form wherever a name is enough (maps, files, keys, log fields).
+impl std::ops::Deref for ShardId {
+    type Target = str;
+    fn deref(&self) -> &str {
+        &self.0
+    }
+}
+
+impl std::borrow::Borrow<str> for ShardId {
+    fn borrow(&self) -> &str {
+        &self.0
+    }
+}
+
+impl std::fmt::Display for ShardId {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(&self.0)
+    }
 }
 
 /// One shard's state and the input position it reflects. The position and the state change
@@ -208,7 +270,8 @@ impl Shards {
     /// The shard `id`, created empty if absent.
     pub fn shard_mut(&mut self, id: &str) -> &mut Shard {
         if !self.shards.contains_key(id) {
-            self.shards.insert(id.to_string(), Shard::new(&self.defs));
+            self.shards
+                .insert(ShardId::from(id), Shard::new(&self.defs));
         }
         self.shards.get_mut(id).expect("inserted above")
     }
@@ -346,7 +409,7 @@ impl Shards {
         for (shard_id, shard) in &self.shards {
             if Some(shard_id.as_str()) == held {
                 if let Some(next) = shard.next_offset {
-                    positions.push((shard_id.clone(), next));
+                    positions.push((shard_id.to_string(), next));
                 }
                 continue;
             }
@@ -355,7 +418,7 @@ impl Shards {
                 if !other.is_empty() {
                     snap.merge(&other);
                     if let Some(next) = shard.next_offset {
-                        positions.push((shard_id.clone(), next));
+                        positions.push((shard_id.to_string(), next));
                     }
                 }
             }
@@ -367,7 +430,7 @@ impl Shards {
             for other in snaps.iter().filter(|s| s.def.id == id) {
                 snap.merge(other);
                 if let Some(next) = next {
-                    positions.push((shard_id.clone(), *next));
+                    positions.push((shard_id.to_string(), *next));
                 }
             }
         }

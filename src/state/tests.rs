@@ -760,3 +760,21 @@ mod attribution {
         assert_eq!(ids, vec!["crumb-checkout", "loaf-labels"]);
     }
 }
+
+#[test]
+fn shard_ids_keep_their_stored_text_form_and_say_their_kind() {
+    // The text forms name files and changelog keys written by earlier versions.
+    let k = shards::ShardId::kafka("exp-events", 3);
+    assert_eq!(k.as_str(), "kafka/exp-events/3");
+    assert!(k.is_kafka() && !k.is_http());
+    assert_eq!(k.kafka_partition(), Some(3));
+    assert_eq!(
+        shards::ShardId::from("kafka/a/b/12").kafka_partition(),
+        Some(12)
+    );
+    let h = shards::ShardId::http();
+    assert_eq!(h.as_str(), shards::HTTP_SHARD);
+    assert!(h.is_http() && !h.is_kafka());
+    assert_eq!(h.kafka_partition(), None);
+    assert_eq!(shards::ShardId::from("simulator").kafka_partition(), None);
+}

@@ -90,8 +90,8 @@ async fn experiment(
     let now = crate::service::now_micros();
     let evidence = service.with_alerts(|book| book.evidence().subset(&snapshot.def.state_key()));
     let rendered = super::blocking(move || {
-        let summary = service.summary(snapshot);
-        let mut findings = crate::decide::evaluate(&summary);
+        let reading = service.reading(snapshot);
+        let (summary, mut findings) = (Arc::clone(&reading.summary), reading.findings.clone());
         crate::decide::add_evidence_findings(&summary, &evidence, &mut findings);
         let standings = crate::decide::standing::standings(&summary, &findings, Some(&evidence));
         page::experiment_main(&page::ExperimentView {
