@@ -429,6 +429,7 @@ fn ingest_into(
                 shard: "bench-0",
                 offset: Some((c * BATCH + j) as i64),
                 bytes: b,
+                mapping: None,
             })
             .collect();
         let report = posteriord::service::ingest::apply_batch_due(

@@ -64,6 +64,21 @@ pub enum Command {
     },
     /// Simulate what an experiment's stopping rules will decide with its traffic, before launch.
     Plan(PlanArgs),
+    /// Show how the first lines of a sample file read under a `[[source]]` mapping: each
+    /// line's fields, what it reads as, and what applying it in order would do.
+    ReadSample {
+        /// The TOML config file (its `[[source]]` and experiments).
+        #[arg(long)]
+        config: PathBuf,
+        /// The `[[source]]` whose mapping to use.
+        #[arg(long)]
+        source: String,
+        /// How many lines to read.
+        #[arg(long, default_value_t = 20)]
+        lines: usize,
+        /// The sample file (NDJSON); `-` is standard input.
+        file: String,
+    },
     /// Feed recorded NDJSON events through the service's pipeline and print every decision.
     Replay {
         /// The TOML config file (experiments and `[alerts]` cadence).
@@ -189,6 +204,12 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
             events,
             json,
         } => replay(&config, &events, json),
+        Command::ReadSample {
+            config,
+            source,
+            lines,
+            file,
+        } => read_sample(&config, &source, lines, &file),
     }
 }
 
@@ -253,6 +274,7 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
         },
         shutdown_grace: Duration::from_secs(config::DEFAULT_SHUTDOWN_GRACE_SECS),
         history_arm_points: config::DEFAULT_HISTORY_ARM_POINTS,
+        sources: Vec::new(),
     };
     // Refused before anything starts, as `serve` does in load_config.
     crate::http::guard::check_exposure(&config.http, config.http.addr)
@@ -335,7 +357,7 @@ fn serve(path: &std::path::Path) -> anyhow::Result<()> {
 fn check_config(path: &std::path::Path) -> anyhow::Result<()> {
     let config = load_config(path)?;
     println!(
-        "{}: ok ({} experiment{}, Kafka {})",
+        "{}: ok ({} experiment{}, {} source mapping{}, Kafka {})",
         path.display(),
         config.experiments.len(),
         if config.experiments.len() == 1 {
@@ -343,6 +365,8 @@ fn check_config(path: &std::path::Path) -> anyhow::Result<()> {
         } else {
             "s"
         },
+        config.sources.len(),
+        if config.sources.len() == 1 { "" } else { "s" },
         if config.kafka.is_some() {
             "configured"
         } else {
@@ -726,6 +750,43 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
         print!("{sweep_text}");
         println!("{}", crate::doc::CAUTION);
     }
+    Ok(())
+}
+
+fn read_sample(
+    config: &std::path::Path,
+    source: &str,
+    lines: usize,
+    file: &str,
+) -> anyhow::Result<()> {
+    let config = load_config(config)?;
+    let Some(source) = config.source(source) else {
+        let known: Vec<&str> = config
+            .sources
+            .iter()
+            .map(|s| s.mapping.name.as_str())
+            .collect();
+        return Err(UsageError(format!(
+            "no [[source]] named `{source}` in the config (it has: {})",
+            if known.is_empty() {
+                "none".to_string()
+            } else {
+                known.join(", ")
+            }
+        ))
+        .into());
+    };
+    let input: Box<dyn std::io::BufRead> = if file == "-" {
+        Box::new(std::io::BufReader::new(std::io::stdin()))
+    } else {
+        Box::new(std::io::BufReader::new(
+            std::fs::File::open(file)
+                .map_err(|e| UsageError(format!("cannot read {file}: {e}")))?,
+        ))
+    };
+    let report = crate::sample::read_sample(&config, &source.mapping, input, lines)
+        .map_err(|e| UsageError(format!("cannot read {file}: {e}")))?;
+    print!("{}", crate::sample::to_text(&report));
     Ok(())
 }
 

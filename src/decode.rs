@@ -250,7 +250,7 @@ fn validate(raw: RawEvent<'_>) -> Result<Event<'_>, Reject> {
     let Some(kind) = raw.kind else {
         return Err(Reject::new(
             RejectReason::UnknownType,
-            "an event needs `type`: exposure, conversion, defect or tally",
+            "an event needs `type`: exposure, conversion, defect, outcome or tally",
         ));
     };
     let kind: &str = &kind.0;
@@ -258,11 +258,13 @@ fn validate(raw: RawEvent<'_>) -> Result<Event<'_>, Reject> {
         "exposure" | "conversion" | "defect" | "tally" => {
             required(raw.experiment, "experiment", kind)?
         }
+        // An outcome may name its experiment; without one it is attributed through exposures.
+        "outcome" => raw.experiment.map_or(Cow::Borrowed(""), |t| t.0),
         other => {
             return Err(Reject::new(
                 RejectReason::UnknownType,
                 format!(
-                    "unknown event type `{other}`; expected exposure, conversion, defect or tally"
+                    "unknown event type `{other}`; expected exposure, conversion, defect, outcome or tally"
                 ),
             ))
         }
@@ -277,6 +279,15 @@ fn validate(raw: RawEvent<'_>) -> Result<Event<'_>, Reject> {
         "exposure" => EventBody::Exposure {
             variant: required(raw.variant, "variant", kind)?,
             unit: required(raw.unit, "unit", kind)?,
+        },
+        "outcome" => EventBody::Outcome {
+            metric: required(raw.metric, "metric", kind)?,
+            unit: required(raw.unit, "unit", kind)?,
+            count: match raw.count {
+                Some(n) => non_negative(n, "count")?,
+                None => 1,
+            },
+            exposure: exposure_value(raw.exposure)?,
         },
         "conversion" => EventBody::Conversion {
             metric: required(raw.metric, "metric", kind)?,
@@ -343,6 +354,99 @@ fn validate(raw: RawEvent<'_>) -> Result<Event<'_>, Reject> {
         time,
         body,
     })
+}
+
+/// The built-in encoding of `event`, which [`decode_event`] reads back as the same event (how
+/// events read under a mapping are logged: the HTTP write-ahead log holds the built-in format).
+pub fn encode_event(event: &Event<'_>) -> Vec<u8> {
+    use serde_json::{json, Map, Value};
+    let mut m = Map::new();
+    let mut put = |k: &str, v: Value| {
+        m.insert(k.to_string(), v);
+    };
+    if !event.experiment.is_empty() {
+        put("experiment", json!(event.experiment));
+    }
+    if let Some(id) = &event.id {
+        put("id", json!(id));
+    }
+    if let Some(t) = event.time {
+        put("time", json!(format_time(t)));
+    }
+    match &event.body {
+        EventBody::Exposure { variant, unit } => {
+            put("type", json!("exposure"));
+            put("variant", json!(variant));
+            put("unit", json!(unit));
+        }
+        EventBody::Conversion { metric, unit } => {
+            put("type", json!("conversion"));
+            put("metric", json!(metric));
+            put("unit", json!(unit));
+        }
+        EventBody::Outcome {
+            metric,
+            unit,
+            count,
+            exposure,
+        } => {
+            put("type", json!("outcome"));
+            put("metric", json!(metric));
+            put("unit", json!(unit));
+            put("count", json!(count));
+            if let Some(x) = exposure {
+                put("exposure", json!(x));
+            }
+        }
+        EventBody::Defect {
+            metric,
+            target,
+            count,
+            exposure,
+        } => {
+            put("type", json!("defect"));
+            put("metric", json!(metric));
+            match target {
+                Target::Unit(u) => put("unit", json!(u)),
+                Target::Variant(v) => put("variant", json!(v)),
+            }
+            put("count", json!(count));
+            if let Some(x) = exposure {
+                put("exposure", json!(x));
+            }
+        }
+        EventBody::Tally {
+            metric,
+            variant,
+            amounts,
+        } => {
+            put("type", json!("tally"));
+            put("metric", json!(metric));
+            put("variant", json!(variant));
+            match amounts {
+                TallyAmounts::Trials { trials, successes } => {
+                    put("trials", json!(trials));
+                    put("successes", json!(successes));
+                }
+                TallyAmounts::Defects { count, exposure } => {
+                    put("count", json!(count));
+                    if let Some(x) = exposure {
+                        put("exposure", json!(x));
+                    }
+                }
+            }
+        }
+    }
+    serde_json::to_vec(&Value::Object(m)).expect("a JSON map always encodes")
+}
+
+/// RFC 3339 in UTC with microseconds, which [`parse_time`] reads back exactly.
+pub fn format_time(micros: Micros) -> String {
+    let t = time::OffsetDateTime::from_unix_timestamp_nanos(i128::from(micros) * 1_000)
+        .unwrap_or(time::OffsetDateTime::UNIX_EPOCH);
+    let (y, mo, d) = (t.year(), t.month() as u8, t.day());
+    let (h, mi, s, us) = (t.hour(), t.minute(), t.second(), t.microsecond());
+    format!("{y:04}-{mo:02}-{d:02}T{h:02}:{mi:02}:{s:02}.{us:06}Z")
 }
 
 /// Where an event sat in a request body, for error reports.
@@ -534,6 +638,48 @@ mod tests {
             "x".repeat(DEFAULT_MAX_EVENT_BYTES)
         );
         assert_eq!(reason(&big), RejectReason::TooLarge);
+    }
+
+    #[test]
+    fn outcomes_may_name_no_experiment_and_every_event_round_trips() {
+        let lines = [
+            format!(r#"{{"type":"outcome","metric":"buy","unit":"u1",{T}}}"#),
+            format!(r#"{{"type":"outcome","experiment":"x","metric":"crash","unit":"u1","count":3,"exposure":2.5,"id":"e",{T}}}"#),
+            format!(r#"{{"type":"exposure","experiment":"crumb","variant":"control","unit":"u1",{T}}}"#),
+            format!(r#"{{"type":"defect","experiment":"x","metric":"m","variant":"v","count":1,{T}}}"#),
+            r#"{"type":"tally","experiment":"x","metric":"buy","variant":"v","trials":10,"successes":2}"#.to_string(),
+            r#"{"type":"conversion","experiment":"x","metric":"buy","unit":"u","time":"1999-12-31T23:59:59.123456-05:00"}"#.to_string(),
+        ];
+        for line in &lines {
+            let e = decode_event(line.as_bytes(), DEFAULT_MAX_EVENT_BYTES).unwrap();
+            let bytes = encode_event(&e);
+            assert_eq!(
+                decode_event(&bytes, DEFAULT_MAX_EVENT_BYTES).unwrap(),
+                e,
+                "{line}"
+            );
+        }
+        let e = decode_event(lines[0].as_bytes(), DEFAULT_MAX_EVENT_BYTES).unwrap();
+        assert!(e.attributed());
+        assert_eq!(
+            e.body,
+            EventBody::Outcome {
+                metric: "buy".into(),
+                unit: "u1".into(),
+                count: 1,
+                exposure: None
+            }
+        );
+        assert_eq!(
+            reason(&format!(
+                r#"{{"type":"outcome","metric":"buy","unit":"u1","count":-1,{T}}}"#
+            )),
+            RejectReason::NegativeValue
+        );
+        assert_eq!(
+            reason(&format!(r#"{{"type":"outcome","unit":"u1",{T}}}"#)),
+            RejectReason::MissingField
+        );
     }
 
     #[test]

@@ -82,7 +82,7 @@ pub fn time_text(micros: i64) -> Option<String> {
 
 fn outcomes(snap: &ExperimentSnapshot) -> Value {
     let mut map = serde_json::Map::new();
-    for o in Outcome::ALL {
+    for o in Outcome::PER_EXPERIMENT {
         map.insert(o.as_str().into(), json!(snap.outcomes.get(o)));
     }
     Value::Object(map)

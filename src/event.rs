@@ -12,7 +12,8 @@ pub type Micros = i64;
 /// One decoded event, not yet checked against the experiment definitions.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Event<'a> {
-    /// Experiment the event belongs to.
+    /// Experiment the event belongs to. Empty only for an [`EventBody::Outcome`] that names no
+    /// experiment: it is attributed through the unit's exposures (see [`Event::attributed`]).
     pub experiment: Cow<'a, str>,
     /// Optional producer-chosen id; two events with the same id are applied once.
     pub id: Option<Cow<'a, str>>,
@@ -50,6 +51,20 @@ pub enum EventBody<'a> {
         /// Exposure reported with the defects (`exposure = "reported"` metrics).
         exposure: Option<f64>,
     },
+    /// Something a unit did on a metric, from a stream that need not know any experiment
+    /// (a purchase, a crash). With an experiment it counts in that one; without, in every
+    /// experiment defining the metric that exposed the unit at or before the event's time.
+    /// On a conversion metric it is a conversion; on a defect-rate metric, `count` defects.
+    Outcome {
+        /// Metric the outcome is for.
+        metric: Cow<'a, str>,
+        /// The unit it happened to.
+        unit: Cow<'a, str>,
+        /// Number of defects (defect-rate metrics; 1 when the source maps no count).
+        count: u64,
+        /// Exposure reported with the defects (`exposure = "reported"` metrics).
+        exposure: Option<f64>,
+    },
     /// Pre-aggregated increments from an upstream job.
     Tally {
         /// Metric the increments are for.
@@ -59,6 +74,13 @@ pub enum EventBody<'a> {
         /// The increments.
         amounts: TallyAmounts,
     },
+}
+
+impl Event<'_> {
+    /// Whether the event names no experiment and is attributed through exposures.
+    pub fn attributed(&self) -> bool {
+        self.experiment.is_empty() && matches!(self.body, EventBody::Outcome { .. })
+    }
 }
 
 /// Who a defect event is attributed to.
@@ -104,11 +126,35 @@ pub enum Outcome {
     Orphan,
     /// The unit had already converted on this metric.
     DuplicateConversion,
+    /// A mapped event whose name maps to no metric and is no exposure: not for posteriord.
+    Ignored,
+    /// An outcome naming no experiment, for a unit no experiment defining its metric exposed.
+    Unexposed,
+    /// An outcome naming no experiment, earlier than the unit's first exposure in every
+    /// experiment defining its metric.
+    BeforeExposure,
+    /// An outcome naming no experiment, later than every such experiment's attribution window.
+    OutsideWindow,
 }
 
 impl Outcome {
     /// Every outcome, in reporting order.
-    pub const ALL: [Outcome; 6] = [
+    pub const ALL: [Outcome; 10] = [
+        Outcome::Applied,
+        Outcome::DuplicateId,
+        Outcome::DuplicateExposure,
+        Outcome::Crossover,
+        Outcome::Orphan,
+        Outcome::DuplicateConversion,
+        Outcome::Ignored,
+        Outcome::Unexposed,
+        Outcome::BeforeExposure,
+        Outcome::OutsideWindow,
+    ];
+
+    /// The outcomes counted per experiment (a prefix of `ALL`); the others belong to no
+    /// experiment and are counted per source only.
+    pub const PER_EXPERIMENT: [Outcome; 6] = [
         Outcome::Applied,
         Outcome::DuplicateId,
         Outcome::DuplicateExposure,
@@ -126,6 +172,10 @@ impl Outcome {
             Outcome::Crossover => "crossover",
             Outcome::Orphan => "orphan",
             Outcome::DuplicateConversion => "duplicate_conversion",
+            Outcome::Ignored => "ignored",
+            Outcome::Unexposed => "unexposed",
+            Outcome::BeforeExposure => "before_exposure",
+            Outcome::OutsideWindow => "outside_window",
         }
     }
 }

@@ -48,6 +48,9 @@ pub struct ExperimentRules {
     /// Event-time span after which an experiment with neither ship nor equivalence is
     /// recorded as inconclusive (µs); `None` = no limit.
     pub max_duration: Option<i64>,
+    /// Outcomes naming no experiment count only this long (µs) after the unit's first
+    /// exposure; `None` = no limit.
+    pub attribution_window: Option<i64>,
     /// Event-time span before `ship` or `equivalent` may hold (µs); 0 = none. Harm rules are
     /// not held back by it.
     pub min_duration: i64,
@@ -62,6 +65,7 @@ impl Default for ExperimentRules {
             max_crossover_share: DEFAULT_MAX_CROSSOVER_SHARE,
             equivalence_probability: DEFAULT_EQUIVALENCE_PROBABILITY,
             max_duration: None,
+            attribution_window: None,
             min_duration: DEFAULT_MIN_DURATION,
         }
     }

@@ -130,6 +130,22 @@ impl Progress for indicatif::ProgressBar {
     }
 }
 
+/// An input written `SOURCE=FILE`, where SOURCE names a `[[source]]` of the config, reads
+/// under that source's mapping; any other input reads in the built-in format.
+fn with_source<'c>(
+    config: &'c Config,
+    input: &Input,
+) -> (Option<&'c crate::mapping::Mapping>, Input) {
+    if let Input::File(p) = input {
+        if let Some((source, path)) = p.to_str().and_then(|s| s.split_once('=')) {
+            if let Some(s) = config.source(source) {
+                return (Some(&s.mapping), Input::parse(path));
+            }
+        }
+    }
+    (None, input.clone())
+}
+
 /// Replay `inputs`, in order, through the pipeline configured by `config`.
 pub fn replay(
     config: &Config,
@@ -152,6 +168,8 @@ pub fn replay(
     };
     let mut offset: i64 = 0;
     for input in inputs {
+        let (mapping, input) = with_source(config, input);
+        let input = &input;
         let name = input.name();
         let read_err = |source| ReplayError::Read {
             name: name.clone(),
@@ -194,6 +212,7 @@ pub fn replay(
                     shard: REPLAY_SHARD,
                     offset: Some(offset + i as i64),
                     bytes,
+                    mapping,
                 })
                 .collect();
             offset += items.len() as i64;

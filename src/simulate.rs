@@ -339,6 +339,7 @@ fn items(lines: &[String]) -> Vec<crate::service::ingest::Item<'_>> {
             shard: SIMULATOR_SHARD,
             offset: None,
             bytes: l.as_bytes(),
+            mapping: None,
         })
         .collect()
 }
@@ -383,7 +384,7 @@ mod tests {
         let shards = Mutex::new(Shards::new(demo_experiments()));
         let metrics = Metrics::new();
         let mut generator = Generator::new(demo_scenarios(), 1);
-        let mut totals = [0u64; Outcome::ALL.len()];
+        let mut totals = [0u64; Outcome::PER_EXPERIMENT.len()];
         for _ in 0..200 {
             let lines = generator.tick(20);
             let report = crate::service::ingest::apply_batch(
@@ -394,12 +395,12 @@ mod tests {
                 1 << 16,
             );
             assert_eq!(report.n_rejected(), 0, "{:?}", report.rejects().next());
-            for (i, o) in Outcome::ALL.iter().enumerate() {
+            for (i, o) in Outcome::PER_EXPERIMENT.iter().enumerate() {
                 totals[i] += report.count(*o);
             }
         }
         // DuplicateConversion is not simulated; every other outcome must show up.
-        for (i, o) in Outcome::ALL.iter().enumerate() {
+        for (i, o) in Outcome::PER_EXPERIMENT.iter().enumerate() {
             if *o != Outcome::DuplicateConversion {
                 assert!(totals[i] > 0, "no {o:?} in simulated traffic");
             }

@@ -199,7 +199,9 @@ fn build_context() -> PathBuf {
     let chosen = std::env::var_os("POSTERIORD_CONTAINER_TEST_BINARY")
         .or_else(|| (!release).then(|| env!("CARGO_BIN_EXE_posteriord").into()));
     if let Some(bin) = chosen {
-        println!("the image carries {bin:?} (set POSTERIORD_CONTAINER_RELEASE=1 for the release build)");
+        println!(
+            "the image carries {bin:?} (set POSTERIORD_CONTAINER_RELEASE=1 for the release build)"
+        );
         std::fs::copy(bin, bin_dir.join("posteriord")).unwrap();
         return ctx;
     }

@@ -68,6 +68,7 @@ fn check_batch(shards: &Mutex<Shards>, metrics: &Metrics, lines: &[Vec<u8>]) -> 
             shard: "http",
             offset: None,
             bytes: b,
+            mapping: None,
         })
         .collect();
     let report = apply_batch(shards, metrics, Source::Http, &items, 4096);

@@ -67,6 +67,24 @@ pub struct Config {
     /// `[history] arm_points`: how many arm-points (one variant's numbers at one evaluation)
     /// each experiment's history keeps across its metrics.
     pub history_arm_points: usize,
+    /// `[[source]]`: field mappings for a team's own events, by name.
+    pub sources: Vec<SourceConfig>,
+}
+
+/// One `[[source]]`: a mapping and the Kafka topics read with it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SourceConfig {
+    /// How the source's events read.
+    pub mapping: crate::mapping::Mapping,
+    /// Kafka topics whose events are read with this mapping.
+    pub topics: Vec<String>,
+}
+
+impl Config {
+    /// The source called `name`.
+    pub fn source(&self, name: &str) -> Option<&SourceConfig> {
+        self.sources.iter().find(|s| s.mapping.name == name)
+    }
 }
 
 /// Default `[history] arm_points`: about 230 KiB per experiment once full.
@@ -327,6 +345,7 @@ struct RuleKeys<'a> {
     max_crossover_share: &'a Option<Spanned<f64>>,
     equivalence_probability: &'a Option<Spanned<f64>>,
     max_duration_days: &'a Option<Spanned<f64>>,
+    attribution_window_hours: &'a Option<Spanned<f64>>,
     min_duration_days: &'a Option<Spanned<f64>>,
 }
 
@@ -471,6 +490,22 @@ impl Ctx<'_> {
             }
             experiments.push(def);
         }
+        let mut sources: Vec<SourceConfig> = Vec::new();
+        for (i, s) in raw.source.into_iter().enumerate() {
+            let span = s.span();
+            let source = self.source(i, span.clone(), s.into_inner())?;
+            if sources
+                .iter()
+                .any(|x| x.mapping.name == source.mapping.name)
+            {
+                return Err(self.err(
+                    span,
+                    format!("source[{i}].name"),
+                    format!("source name `{}` is used twice", source.mapping.name),
+                ));
+            }
+            sources.push(source);
+        }
         let secs = |v: &Option<Spanned<i64>>,
                     key: &str,
                     default: u64|
@@ -590,6 +625,7 @@ impl Ctx<'_> {
             alerts,
             shutdown_grace,
             history_arm_points,
+            sources,
         })
     }
 
@@ -848,6 +884,7 @@ impl Ctx<'_> {
                 max_crossover_share: &e.max_crossover_share,
                 equivalence_probability: &e.equivalence_probability,
                 max_duration_days: &e.max_duration_days,
+                attribution_window_hours: &e.attribution_window_hours,
                 min_duration_days: &e.min_duration_days,
             },
             &metrics,
@@ -860,6 +897,125 @@ impl Ctx<'_> {
             metrics,
             rules,
         })
+    }
+
+    fn source(
+        &self,
+        i: usize,
+        span: Range<usize>,
+        s: raw::RawSource,
+    ) -> Result<SourceConfig, ConfigError> {
+        use crate::mapping::{Field, FieldSource, Mapping, TimeFormat};
+        let key = format!("source[{i}]");
+        let name = s.name.get_ref().trim().to_string();
+        if name.is_empty() || name.len() > 100 {
+            return Err(self.err(
+                s.name.span(),
+                format!("{key}.name"),
+                "must be 1 to 100 characters",
+            ));
+        }
+        for (k, v) in &s.constants {
+            if !["event", "experiment", "variant"].contains(&k.as_str()) {
+                return Err(self.err(
+                    v.span(),
+                    format!("{key}.constants.{k}"),
+                    "only `event`, `experiment` and `variant` may be constants",
+                ));
+            }
+        }
+        let paths = [
+            &s.unit,
+            &s.time,
+            &s.event,
+            &s.experiment,
+            &s.variant,
+            &s.count,
+            &s.exposure,
+            &s.id,
+        ];
+        let mut fields = Vec::new();
+        let mut spans = Vec::new();
+        for ((k, _), path) in Field::ALL.iter().zip(paths) {
+            let constant = s.constants.get(*k);
+            fields.push(match (path, constant) {
+                (Some(p), Some(_)) => {
+                    return Err(self.err(
+                        p.span(),
+                        format!("{key}.{k}"),
+                        format!("is both a path and `constants.{k}`; keep one"),
+                    ))
+                }
+                (Some(p), None) => FieldSource::Path(p.get_ref().clone()),
+                (None, Some(c)) => FieldSource::Constant(c.get_ref().clone()),
+                (None, None) => FieldSource::Absent,
+            });
+            spans.push(
+                path.as_ref()
+                    .map(|p| p.span())
+                    .or_else(|| constant.map(|c| c.span())),
+            );
+        }
+        let time_format = match &s.time_format {
+            None => TimeFormat::Rfc3339,
+            Some(f) => TimeFormat::ALL
+                .iter()
+                .find(|(n, _)| n == f.get_ref())
+                .map(|(_, t)| *t)
+                .ok_or_else(|| {
+                    self.err(
+                        f.span(),
+                        format!("{key}.time_format"),
+                        format!(
+                            "`{}` is not a time format; use rfc3339, epoch_seconds, epoch_millis or epoch_micros",
+                            f.get_ref()
+                        ),
+                    )
+                })?,
+        };
+        let exposures = s
+            .exposures
+            .as_ref()
+            .map(|e| e.get_ref().clone())
+            .unwrap_or_default();
+        let mut metrics = Vec::new();
+        for (event, metric) in &s.metrics {
+            if metric.get_ref().trim().is_empty() {
+                return Err(self.err(
+                    metric.span(),
+                    format!("{key}.metrics.{event}"),
+                    "must name a metric",
+                ));
+            }
+            metrics.push((event.clone(), metric.get_ref().clone()));
+        }
+        let mapping =
+            Mapping::new(&name, fields, time_format, exposures, metrics).map_err(|e| {
+                let at = Field::ALL
+                    .iter()
+                    .position(|(k, _)| *k == e.key)
+                    .and_then(|f| spans[f].clone())
+                    .or_else(|| match e.key.as_str() {
+                        "exposures" => s.exposures.as_ref().map(|x| x.span()),
+                        _ => None,
+                    })
+                    .unwrap_or_else(|| span.clone());
+                self.err(at, format!("{key}.{}", e.key), e.message)
+            })?;
+        let mut topics = Vec::new();
+        if let Some(t) = &s.topics {
+            for topic in t.get_ref() {
+                if topic.get_ref().trim().is_empty() {
+                    return Err(self.err(
+                        topic.span(),
+                        format!("{key}.topics"),
+                        "a topic name must not be empty",
+                    ));
+                }
+                topics.push(topic.get_ref().clone());
+            }
+        }
+        Ok(SourceConfig { mapping, topics })
     }
 
     fn experiment_rules(
@@ -936,6 +1092,24 @@ impl Ctx<'_> {
                 ))
             }
         };
+        let attribution_window = match e.attribution_window_hours {
+            None => None,
+            Some(h)
+                if h.get_ref().is_finite() && *h.get_ref() > 0.0 && *h.get_ref() <= 87_600.0 =>
+            {
+                Some((*h.get_ref() * 3_600.0 * 1e6) as i64)
+            }
+            Some(h) => {
+                return Err(self.err(
+                    h.span(),
+                    format!("{key}.attribution_window_hours"),
+                    format!(
+                        "must be a positive number of hours (at most 87600), got {}",
+                        h.get_ref()
+                    ),
+                ))
+            }
+        };
         let min_duration = match e.min_duration_days {
             None => DEFAULT_MIN_DURATION,
             Some(d) if d.get_ref().is_finite() && *d.get_ref() >= 0.0 && *d.get_ref() <= 3650.0 => {
@@ -978,6 +1152,7 @@ impl Ctx<'_> {
                 1.0,
             )?,
             max_duration,
+            attribution_window,
         })
     }
 

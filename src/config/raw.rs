@@ -22,6 +22,30 @@ pub(super) struct RawConfig {
     pub shutdown: RawShutdown,
     #[serde(default)]
     pub history: RawHistory,
+    #[serde(default)]
+    pub source: Vec<Spanned<RawSource>>,
+}
+
+/// `[[source]]`: a field mapping for a team's own events (see `crate::mapping`).
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawSource {
+    pub name: Spanned<String>,
+    pub topics: Option<Spanned<Vec<Spanned<String>>>>,
+    pub unit: Option<Spanned<String>>,
+    pub time: Option<Spanned<String>>,
+    pub event: Option<Spanned<String>>,
+    pub experiment: Option<Spanned<String>>,
+    pub variant: Option<Spanned<String>>,
+    pub count: Option<Spanned<String>>,
+    pub exposure: Option<Spanned<String>>,
+    pub id: Option<Spanned<String>>,
+    pub time_format: Option<Spanned<String>>,
+    pub exposures: Option<Spanned<Vec<String>>>,
+    #[serde(default)]
+    pub constants: BTreeMap<String, Spanned<String>>,
+    #[serde(default)]
+    pub metrics: BTreeMap<String, Spanned<String>>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -115,6 +139,7 @@ pub(super) struct RawExperiment {
     pub max_crossover_share: Option<Spanned<f64>>,
     pub equivalence_probability: Option<Spanned<f64>>,
     pub max_duration_days: Option<Spanned<f64>>,
+    pub attribution_window_hours: Option<Spanned<f64>>,
     pub min_duration_days: Option<Spanned<f64>>,
 }
 

@@ -345,3 +345,55 @@ fn the_history_budget_is_checked_with_its_key_and_line() {
     assert_eq!(err.key, "history.arm_points", "{err}");
     assert_eq!(err.line, Some(line_of(&text, "arm_points =")), "{err}");
 }
+
+#[test]
+fn source_mappings_are_checked_with_key_and_line() {
+    let base = "[[source]]\nname = \"tickets\"\nunit = \"rider_id\"\ntime = \"ts\"\nevent = \"kind\"\nmetrics = { \"ticket.bought\" = \"purchase\" }\n";
+    let c = parse(base).unwrap();
+    assert_eq!(c.sources.len(), 1);
+    assert_eq!(
+        c.source("tickets")
+            .unwrap()
+            .mapping
+            .metric_of("ticket.bought"),
+        Some("purchase")
+    );
+    let cases: [(&str, &str, &str); 6] = [
+        (
+            "time_format = \"epoch_hours\"\n",
+            "source[0].time_format",
+            "time_format",
+        ),
+        ("count = \"rider_id\"\n", "source[0].count", "count ="),
+        (
+            "constants = { count = \"1\" }\n",
+            "source[0].constants.count",
+            "constants",
+        ),
+        ("variant = \"a..b\"\n", "source[0].variant", "variant ="),
+        (
+            "exposures = [\"ticket.bought\"]\n",
+            "source[0].experiment",
+            "[[source]]",
+        ),
+        (
+            "constants = { event = \"x\" }\n",
+            "source[0].event",
+            "event =",
+        ),
+    ];
+    for (extra, key, line_with) in cases {
+        let text = format!("{base}{extra}");
+        let e = error(&text);
+        assert_eq!(e.key, key, "{extra}: {e}");
+        assert_eq!(e.line, Some(line_of(&text, line_with)), "{extra}: {e}");
+    }
+    let no_unit = base.replace("unit = \"rider_id\"\n", "");
+    assert_eq!(error(&no_unit).key, "source[0].unit");
+    let twice = format!("{base}{base}");
+    assert_eq!(error(&twice).key, "source[1].name");
+    let window = "[[experiment]]\nid = \"x\"\nvariants = [ { name = \"a\" }, { name = \"b\" } ]\nattribution_window_hours = -2\n[[experiment.metric]]\nname = \"m\"\nkind = \"conversion\"\n";
+    let e = error(window);
+    assert_eq!(e.key, "experiment[0].attribution_window_hours");
+    assert_eq!(e.line, Some(4));
+}

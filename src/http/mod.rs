@@ -162,14 +162,38 @@ enum IngestFailure {
     NotDurable,
 }
 
-async fn ingest(State(service): State<Arc<Service>>, body: Bytes) -> Response {
+/// `POST /v1/events?source=NAME`: the events are in the shape of a configured `[[source]]`.
+#[derive(Debug, serde::Deserialize)]
+struct IngestQuery {
+    source: Option<String>,
+}
+
+async fn ingest(
+    State(service): State<Arc<Service>>,
+    axum::extract::Query(query): axum::extract::Query<IngestQuery>,
+    body: Bytes,
+) -> Response {
+    if let Some(name) = &query.source {
+        if service.mapping(name).is_none() {
+            return error(
+                StatusCode::BAD_REQUEST,
+                "unknown_source",
+                &format!("no [[source]] named `{name}` is configured"),
+            );
+        }
+    }
     let result = blocking(move || {
         let items = match split_body(&body) {
             Ok(items) => items,
             Err(e) => return Err(IngestFailure::BadBody(e.to_string())),
         };
         let bytes: Vec<&[u8]> = items.iter().map(|(_, b)| *b).collect();
-        let report = match service.ingest_http(&bytes) {
+        let mapping = query.source.as_deref().and_then(|n| service.mapping(n));
+        let report = match mapping {
+            Some(m) => service.ingest_http_mapped(m, &bytes),
+            None => service.ingest_http(&bytes),
+        };
+        let report = match report {
             Ok(r) => r,
             Err(e) => {
                 tracing::error!(error = %e, "cannot log posted events; refusing the request");

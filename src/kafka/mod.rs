@@ -333,6 +333,7 @@ fn apply_messages(
             shard: shard_ids[m.topic()][&m.partition()].as_str(),
             offset: Some(m.offset()),
             bytes: m.payload().unwrap_or_default(),
+            mapping: None,
         })
         .collect();
     let report = service.apply(Source::Kafka, &items);

@@ -140,7 +140,7 @@ pub struct PutOutcome {
 
 fn totals_json(s: &ExperimentSnapshot) -> Value {
     let mut outcomes = Map::new();
-    for o in Outcome::ALL {
+    for o in Outcome::PER_EXPERIMENT {
         outcomes.insert(o.as_str().into(), json!(s.outcomes.get(o)));
     }
     json!({
@@ -179,7 +179,7 @@ fn snapshot_from_json(def: &Arc<ExperimentDef>, v: &Value) -> Option<ExperimentS
         }
     }
     let mut outcomes = OutcomeCounts::default();
-    for (i, o) in Outcome::ALL.iter().enumerate() {
+    for (i, o) in Outcome::PER_EXPERIMENT.iter().enumerate() {
         outcomes.0[i] = v["outcomes"][o.as_str()].as_u64().unwrap_or(0);
     }
     let shapes_ok = units.len() == n

@@ -6,6 +6,7 @@ use std::sync::Mutex;
 use super::metrics::{Metrics, Source};
 use crate::decode::decode_event;
 use crate::event::{Event, Outcome, Reject};
+use crate::mapping::Mapping;
 use crate::state::cadence::Cadence;
 use crate::state::shards::Shards;
 use crate::state::ExperimentSnapshot;
@@ -23,6 +24,19 @@ pub struct Item<'a> {
     pub offset: Option<i64>,
     /// The encoded event.
     pub bytes: &'a [u8],
+    /// How the event reads: a source's field mapping, or `None` for the built-in format.
+    pub mapping: Option<&'a Mapping>,
+}
+
+/// Decode one item under its mapping; `Ok(None)` for a mapped event that maps to nothing.
+pub fn decode_item<'a>(
+    item: &Item<'a>,
+    max_event_bytes: usize,
+) -> Result<Option<Event<'a>>, Reject> {
+    match item.mapping {
+        None => decode_event(item.bytes, max_event_bytes).map(Some),
+        Some(m) => m.decode(item.bytes, max_event_bytes),
+    }
 }
 
 /// What happened to each event of a batch, in batch order.
@@ -94,9 +108,9 @@ pub fn apply_batch_due(
 ) -> BatchReport {
     let mut due = Vec::new();
     // `Option` so that a refused event's reason can be taken out for the report.
-    let mut decoded: Vec<Option<Result<Event<'_>, Reject>>> = items
+    let mut decoded: Vec<Option<Result<Option<Event<'_>>, Reject>>> = items
         .iter()
-        .map(|item| Some(decode_event(item.bytes, max_event_bytes)))
+        .map(|item| Some(decode_item(item, max_event_bytes)))
         .collect();
     let results: Vec<Option<Result<Outcome, Reject>>> = {
         let mut shards = shards
@@ -121,7 +135,7 @@ pub fn apply_batch_due(
                 // applied: unit tables outgrow the caches and a batch's units are unrelated,
                 // so without this nearly every new unit waits for memory.
                 if j + PREFETCH_AHEAD < run_end {
-                    if let Some(Ok(event)) = &decoded[j + PREFETCH_AHEAD] {
+                    if let Some(Ok(Some(event))) = &decoded[j + PREFETCH_AHEAD] {
                         prepared[j + PREFETCH_AHEAD] = shard.prepare(event);
                     }
                 }
@@ -135,7 +149,11 @@ pub fn apply_batch_due(
                 // Applied in place: an event is ~150 bytes, and moving each one out of the
                 // batch cost more than the copy is worth.
                 let event = match &decoded[j] {
-                    Some(Ok(event)) => event,
+                    Some(Ok(Some(event))) => event,
+                    Some(Ok(None)) => {
+                        results.push(Some(Ok(Outcome::Ignored)));
+                        continue;
+                    }
                     _ => {
                         let reject = match decoded[j].take() {
                             Some(Err(reject)) => reject,
@@ -149,10 +167,7 @@ pub fn apply_batch_due(
                     results.push(Some(shard.apply_prepared(event, prepared)));
                     continue;
                 };
-                let (result, snap) = shard.apply_due(event, prepared, cadence);
-                if let Some(snap) = snap {
-                    run_due.push(snap);
-                }
+                let result = shard.apply_due(event, prepared, cadence, &mut run_due);
                 results.push(Some(result));
             }
             // The other shards did not change during this run, so adding their totals now

@@ -86,6 +86,8 @@ pub struct Service {
     metrics: Metrics,
     /// Largest accepted encoded event.
     max_event_bytes: usize,
+    /// `[[source]]` mappings, by name.
+    sources: Vec<crate::config::SourceConfig>,
     /// `Some` when Kafka is configured: whether its brokers answered the last probe.
     kafka_reachable: Option<AtomicBool>,
     /// Partitions being restored; readiness is false while any is.
@@ -150,6 +152,7 @@ impl Service {
             shards: Mutex::new(Shards::new(config.experiments.iter().cloned())),
             metrics: Metrics::new(),
             max_event_bytes: config.max_event_bytes(),
+            sources: config.sources.clone(),
             kafka_reachable: config.kafka.as_ref().map(|_| AtomicBool::new(false)),
             restoring: AtomicUsize::new(0),
             store: None,
@@ -356,6 +359,7 @@ impl Service {
                     shard: HTTP_SHARD,
                     offset: first.map(|f| f + i as i64),
                     bytes,
+                    mapping: None,
                 })
                 .collect()
         };
@@ -378,6 +382,58 @@ impl Service {
         Ok(self.apply(Source::Http, &batch(Some(first))))
     }
 
+    /// The mapping of source `name`.
+    pub fn mapping(&self, name: &str) -> Option<&crate::mapping::Mapping> {
+        self.sources
+            .iter()
+            .find(|s| s.mapping.name == name)
+            .map(|s| &s.mapping)
+    }
+
+    /// [`Service::ingest_http`] for events in a source's own shape: each is read under
+    /// `mapping` first and what it reads as is logged and applied in the built-in format (the
+    /// write-ahead log's), so a restart re-applies exactly what was read. Refused and ignored
+    /// events are counted here and never logged.
+    pub fn ingest_http_mapped(
+        &self,
+        mapping: &crate::mapping::Mapping,
+        items: &[&[u8]],
+    ) -> Result<BatchReport, StoreError> {
+        let mut results: Vec<Option<Result<crate::event::Outcome, crate::event::Reject>>> =
+            Vec::with_capacity(items.len());
+        let mut encoded = Vec::new();
+        let mut at = Vec::new();
+        for (i, bytes) in items.iter().enumerate() {
+            match mapping.decode(bytes, self.max_event_bytes) {
+                Ok(Some(event)) => {
+                    encoded.push(crate::decode::encode_event(&event));
+                    at.push(i);
+                    results.push(None);
+                }
+                Ok(None) => {
+                    self.metrics
+                        .count_outcome(Source::Http, crate::event::Outcome::Ignored, 1);
+                    results.push(Some(Ok(crate::event::Outcome::Ignored)));
+                }
+                Err(reject) => {
+                    self.metrics.count_reject(Source::Http, reject.reason);
+                    results.push(Some(Err(reject)));
+                }
+            }
+        }
+        let refs: Vec<&[u8]> = encoded.iter().map(Vec::as_slice).collect();
+        let mut report = if refs.is_empty() {
+            BatchReport::default()
+        } else {
+            self.ingest_http(&refs)?
+        };
+        for (i, r) in at.into_iter().zip(report.results.drain(..)) {
+            results[i] = r;
+        }
+        report.results = results;
+        Ok(report)
+    }
+
     /// Re-apply logged HTTP events that the stored HTTP shard does not hold yet. Reads the
     /// log where it is and writes nothing, so it needs no free space.
     fn replay_http_wal(&self) -> Result<(), StoreError> {
@@ -395,6 +451,7 @@ impl Service {
                     shard: HTTP_SHARD,
                     offset: Some((r.first_seq + i as u64) as i64),
                     bytes,
+                    mapping: None,
                 })
             })
             .collect();
@@ -535,8 +592,7 @@ impl Service {
                 Ok(()) => {
                     self.metrics.state_saves.with_label_values(&["ok"]).inc();
                     store::crash_point("save-done", &store.path(id.as_str()));
-                    if let (Some(wal), Some(sealed), true) =
-                        (&self.http_wal, sealed, id.is_http())
+                    if let (Some(wal), Some(sealed), true) = (&self.http_wal, sealed, id.is_http())
                     {
                         if let Err(e) = lock(wal).remove_sealed(sealed) {
                             tracing::warn!(error = %e, "cannot remove saved segments of the HTTP write-ahead log; they are skipped on replay and removed at the next save");

@@ -6,6 +6,7 @@
 
 pub mod cadence;
 pub mod image;
+pub mod members;
 pub mod shards;
 pub mod units;
 
@@ -43,26 +44,26 @@ pub enum MetricTotals {
     Defect(Vec<DefectTotals>),
 }
 
-/// How many events ended in each [`Outcome`], indexed like `Outcome::ALL`.
+/// How many events ended in each per-experiment [`Outcome`], indexed like
+/// `Outcome::PER_EXPERIMENT`.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
-pub struct OutcomeCounts(pub [u64; Outcome::ALL.len()]);
+pub struct OutcomeCounts(pub [u64; Outcome::PER_EXPERIMENT.len()]);
 
 impl OutcomeCounts {
-    /// Count of one outcome.
+    /// Count of one outcome (0 for outcomes that belong to no experiment).
     pub fn get(&self, outcome: Outcome) -> u64 {
-        self.0[outcome_index(outcome)]
+        outcome_index(outcome).map_or(0, |i| self.0[i])
     }
 
     fn bump(&mut self, outcome: Outcome) {
-        self.0[outcome_index(outcome)] += 1;
+        if let Some(i) = outcome_index(outcome) {
+            self.0[i] += 1;
+        }
     }
 }
 
-fn outcome_index(outcome: Outcome) -> usize {
-    Outcome::ALL
-        .iter()
-        .position(|o| *o == outcome)
-        .expect("every outcome is listed in Outcome::ALL")
+fn outcome_index(outcome: Outcome) -> Option<usize> {
+    Outcome::PER_EXPERIMENT.iter().position(|o| *o == outcome)
 }
 
 /// A copy of one experiment's totals, cheap enough to take under the engine lock.
@@ -300,7 +301,9 @@ impl ExperimentState {
     #[inline]
     fn hashes(event: &Event<'_>) -> Hashes {
         let unit = match &event.body {
-            EventBody::Exposure { unit, .. } | EventBody::Conversion { unit, .. } => Some(unit),
+            EventBody::Exposure { unit, .. }
+            | EventBody::Conversion { unit, .. }
+            | EventBody::Outcome { unit, .. } => Some(unit),
             EventBody::Defect {
                 target: Target::Unit(unit),
                 ..
@@ -400,6 +403,27 @@ impl ExperimentState {
                     metric,
                     bit,
                     unit: unit_key(unit),
+                })
+            }
+            EventBody::Outcome {
+                metric,
+                unit,
+                count,
+                exposure,
+            } => {
+                let metric = self.metric(metric)?;
+                Ok(match self.conversion_bit[metric] {
+                    Some(bit) => Resolved::Conversion {
+                        metric,
+                        bit,
+                        unit: unit_key(unit),
+                    },
+                    None => Resolved::UnitDefect {
+                        metric,
+                        unit: unit_key(unit),
+                        count: *count,
+                        exposure: self.defect_exposure(metric, *exposure, "defect")?,
+                    },
                 })
             }
             EventBody::Defect {
@@ -627,6 +651,11 @@ pub struct Engine {
     /// SipHash over the name. An id whose hash another id already took is in `collided`.
     index: HashMap<u64, usize, PassThrough>,
     collided: Vec<usize>,
+    /// Every unit's memberships (experiment position, second of first exposure), for outcomes
+    /// that name no experiment.
+    members: members::Members,
+    /// The memberships of the outcome being attributed (kept to reuse its allocation).
+    scratch: Vec<(u32, members::ExposureSecs)>,
 }
 
 impl Engine {
@@ -674,8 +703,17 @@ impl Engine {
     }
 
     /// Replace the state of one experiment (restore from a stored image).
+    ///
+    /// Its units rejoin the membership index as exposed at second 0: images do not carry
+    /// exposure times yet, so after a restore an outcome cannot be found to precede the
+    /// exposure of a unit exposed before the image was taken.
     pub fn replace(&mut self, state: ExperimentState) {
         if let Some(idx) = self.position(&state.def.id) {
+            let x = idx as u32;
+            self.members.retain_map(|m| (m != x).then_some(m));
+            for (unit, _) in state.units.iter() {
+                self.members.insert(unit, x, 0);
+            }
             self.experiments[idx] = state;
         }
     }
@@ -690,13 +728,16 @@ impl Engine {
             return None;
         };
         let state = &mut self.experiments[idx];
+        let x = idx as u32;
         if state.def.generation == def.generation {
             if let Err(m) = state.redefine(Arc::clone(&def)) {
                 *state = ExperimentState::new(def);
+                self.members.retain_map(|m| (m != x).then_some(m));
                 return Some(m);
             }
         } else {
             *state = ExperimentState::new(def);
+            self.members.retain_map(|m| (m != x).then_some(m));
         }
         None
     }
@@ -705,8 +746,24 @@ impl Engine {
     pub fn remove(&mut self, id: &str) -> Option<ExperimentState> {
         let idx = self.position(id)?;
         let state = self.experiments.remove(idx);
+        let x = idx as u32;
+        self.members.retain_map(|m| match m.cmp(&x) {
+            std::cmp::Ordering::Less => Some(m),
+            std::cmp::Ordering::Equal => None,
+            std::cmp::Ordering::Greater => Some(m - 1),
+        });
         self.reindex();
         Some(state)
+    }
+
+    /// Number of (unit, experiment) memberships in the index.
+    pub fn n_memberships(&self) -> usize {
+        self.members.len()
+    }
+
+    /// Heap bytes of the membership index.
+    pub fn membership_bytes(&self) -> usize {
+        self.members.heap_bytes()
     }
 
     /// Apply one decoded event.
@@ -719,6 +776,12 @@ impl Engine {
     /// `None` for an unknown experiment.
     #[inline]
     pub fn prepare(&self, event: &Event<'_>) -> Option<Prepared> {
+        if event.attributed() {
+            if let EventBody::Outcome { unit, .. } = &event.body {
+                self.members.prefetch(key_hash(unit));
+            }
+            return None;
+        }
         let idx = self.position(&event.experiment)?;
         let hashes = ExperimentState::hashes(event);
         self.experiments[idx].prefetch(&hashes);
@@ -731,13 +794,122 @@ impl Engine {
         event: &Event<'_>,
         prepared: Option<Prepared>,
     ) -> Result<Outcome, Reject> {
+        self.apply_inner(event, prepared, None, &mut Vec::new())
+    }
+
+    /// The one application path: attribution for outcomes naming no experiment, the named
+    /// experiment otherwise; with a cadence, the snapshot of each experiment made due.
+    fn apply_inner(
+        &mut self,
+        event: &Event<'_>,
+        prepared: Option<Prepared>,
+        cadence: Option<&cadence::Cadence>,
+        due: &mut Vec<ExperimentSnapshot>,
+    ) -> Result<Outcome, Reject> {
+        if event.attributed() {
+            return self.attribute(event, cadence, due);
+        }
         let Some((idx, hashes)) = self.locate(event, prepared) else {
             return Err(Reject::new(
                 RejectReason::UnknownExperiment,
                 format!("no experiment `{}` is configured", event.experiment),
             ));
         };
-        self.experiments[idx].apply_hashed(event, hashes)
+        let e = &mut self.experiments[idx];
+        let r = e.apply_hashed(event, hashes);
+        if let (Ok(Outcome::Applied), EventBody::Exposure { .. }, Some(unit)) =
+            (&r, &event.body, hashes.unit)
+        {
+            let secs = members::exposure_secs(event.time.unwrap_or(0));
+            self.members.insert(unit, idx as u32, secs);
+        }
+        if let Some(cadence) = cadence {
+            let e = &mut self.experiments[idx];
+            if r.is_ok() && e.clock.tick(cadence, event.time) {
+                due.push(e.snapshot());
+            }
+        }
+        r
+    }
+
+    /// Apply an outcome naming no experiment to every experiment that defines its metric and
+    /// exposed its unit at or before its time (compared at whole seconds), within the
+    /// experiment's attribution window if it has one.
+    ///
+    /// Returns `Applied` when it counted anywhere; otherwise the nearest miss, in the order
+    /// duplicate conversion (or id), outside the window, before the exposure, unexposed; a
+    /// reject only when every experiment that would take it refused it.
+    fn attribute(
+        &mut self,
+        event: &Event<'_>,
+        cadence: Option<&cadence::Cadence>,
+        due: &mut Vec<ExperimentSnapshot>,
+    ) -> Result<Outcome, Reject> {
+        let EventBody::Outcome { metric, .. } = &event.body else {
+            unreachable!("attributed() holds only for outcomes");
+        };
+        let Some(time) = event.time else {
+            return Err(Reject::new(
+                RejectReason::MissingField,
+                "an outcome naming no experiment needs a time, to compare with the unit's exposures",
+            ));
+        };
+        let hashes = ExperimentState::hashes(event);
+        let unit = hashes.unit.expect("an outcome names its unit");
+        let at = members::exposure_secs(time);
+        let mut found = std::mem::take(&mut self.scratch);
+        found.clear();
+        self.members.for_each(unit, |x, secs| found.push((x, secs)));
+        fn rank(o: Outcome) -> u8 {
+            match o {
+                Outcome::Applied => 4,
+                Outcome::DuplicateConversion | Outcome::DuplicateId => 3,
+                Outcome::OutsideWindow => 2,
+                Outcome::BeforeExposure => 1,
+                _ => 0,
+            }
+        }
+        let mut best = Outcome::Unexposed;
+        let mut refused = None;
+        for &(x, secs) in &found {
+            let e = &mut self.experiments[x as usize];
+            if e.def.metric_index(metric).is_none() {
+                continue;
+            }
+            let outcome = if secs > at {
+                Outcome::BeforeExposure
+            } else if e
+                .def
+                .rules
+                .attribution_window
+                .is_some_and(|w| i64::from(at - secs) * 1_000_000 > w)
+            {
+                Outcome::OutsideWindow
+            } else {
+                match e.apply_hashed(event, hashes) {
+                    Ok(o) => {
+                        if let Some(cadence) = cadence {
+                            if e.clock.tick(cadence, event.time) {
+                                due.push(e.snapshot());
+                            }
+                        }
+                        o
+                    }
+                    Err(r) => {
+                        refused.get_or_insert(r);
+                        continue;
+                    }
+                }
+            };
+            if rank(outcome) > rank(best) {
+                best = outcome;
+            }
+        }
+        self.scratch = found;
+        match refused {
+            Some(r) if rank(best) < rank(Outcome::DuplicateConversion) => Err(r),
+            _ => Ok(best),
+        }
     }
 
     fn locate(&self, event: &Event<'_>, prepared: Option<Prepared>) -> Option<(usize, Hashes)> {
@@ -757,19 +929,17 @@ impl Engine {
     /// `cadence`, return the experiment's snapshot as of this event. O(1) and allocation-free
     /// unless due (the snapshot copies totals, never the unit table). `prepared` is what
     /// [`Engine::prepare`] found for this event, if it was looked up ahead.
+    ///
+    /// An outcome naming no experiment can make several experiments due: each snapshot is
+    /// pushed on `due`.
     pub fn apply_due(
         &mut self,
         event: &Event<'_>,
         prepared: Option<Prepared>,
         cadence: &cadence::Cadence,
-    ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
-        let Some((idx, hashes)) = self.locate(event, prepared) else {
-            return (self.apply(event), None);
-        };
-        let e = &mut self.experiments[idx];
-        let r = e.apply_hashed(event, hashes);
-        let due = r.is_ok() && e.clock.tick(cadence, event.time);
-        (r, due.then(|| e.snapshot()))
+        due: &mut Vec<ExperimentSnapshot>,
+    ) -> Result<Outcome, Reject> {
+        self.apply_inner(event, prepared, Some(cadence), due)
     }
 
     /// The experiment called `id`.

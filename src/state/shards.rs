@@ -170,19 +170,20 @@ impl Shard {
         r
     }
 
-    /// [`Shard::apply`], also returning the experiment's snapshot when the event makes it due
+    /// [`Shard::apply`], also pushing the snapshot of each experiment the event makes due
     /// under `cadence` (see [`Engine::apply_due`]).
     pub fn apply_due(
         &mut self,
         event: &Event<'_>,
         prepared: Option<crate::state::Prepared>,
         cadence: &super::cadence::Cadence,
-    ) -> (Result<Outcome, Reject>, Option<ExperimentSnapshot>) {
-        let (r, due) = self.engine.apply_due(event, prepared, cadence);
+        due: &mut Vec<ExperimentSnapshot>,
+    ) -> Result<Outcome, Reject> {
+        let r = self.engine.apply_due(event, prepared, cadence, due);
         if r.is_ok() {
             self.dirty = true;
         }
-        (r, due)
+        r
     }
 }
 

@@ -500,14 +500,15 @@ fn a_due_event_yields_the_snapshot_as_of_that_event_and_rejects_do_not_count() {
     let names = ["u1", "u2", "u3", "u4", "u5", "u6"];
     let mut due = Vec::new();
     for (i, unit) in names.iter().enumerate() {
-        let (r, snap) = engine.apply_due(&exposure("control", unit), None, &cadence);
+        let mut snaps = Vec::new();
+        let r = engine.apply_due(&exposure("control", unit), None, &cadence, &mut snaps);
         assert_eq!(r, Ok(Outcome::Applied));
-        if let Some(s) = snap {
+        if let Some(s) = snaps.pop() {
             due.push((i, s.units[0]));
         }
         // An invalid event changes nothing and does not advance the cadence.
-        let (r, snap) = engine.apply_due(&exposure("no-such-arm", unit), None, &cadence);
-        assert!(r.is_err() && snap.is_none());
+        let r = engine.apply_due(&exposure("no-such-arm", unit), None, &cadence, &mut snaps);
+        assert!(r.is_err() && snaps.is_empty());
     }
     assert_eq!(due, vec![(2, 3), (5, 6)]);
 }
@@ -534,6 +535,230 @@ fn a_due_snapshot_merged_from_one_shard_equals_the_merged_snapshot() {
     shards.merge_others("kafka/t/0", &mut snap);
     assert_eq!(snap, shards.snapshot("crumb-checkout").unwrap());
     assert_eq!(snap.units, vec![1, 1]);
+}
+
+/// Attribution through exposures: three invented bakery experiments, two defining `purchase`.
+mod attribution {
+    use super::*;
+
+    const T0: Micros = 1_767_225_600_000_000; // 2026-01-01T00:00:00Z (date -u -d @1767225600)
+    const SEC: Micros = 1_000_000;
+
+    fn def(id: &str, window_hours: Option<i64>) -> ExperimentDef {
+        let mut d = bakery();
+        d.id = id.into();
+        d.rules.attribution_window = window_hours.map(|h| h * 3_600 * SEC);
+        d
+    }
+
+    fn engine() -> Engine {
+        let mut only_crash = def("oven-timer", None);
+        only_crash.metrics.retain(|m| m.name == "payment-error");
+        only_crash.rules.primary = 0;
+        Engine::new([
+            def("crumb-checkout", None),
+            def("loaf-labels", Some(1)),
+            only_crash,
+        ])
+    }
+
+    fn expose(
+        e: &mut Engine,
+        exp: &'static str,
+        variant: &'static str,
+        unit: &'static str,
+        t: Micros,
+    ) {
+        let r = e.apply(&Event {
+            experiment: exp.into(),
+            id: None,
+            time: Some(t),
+            body: EventBody::Exposure {
+                variant: variant.into(),
+                unit: unit.into(),
+            },
+        });
+        assert_eq!(r, Ok(Outcome::Applied));
+    }
+
+    fn outcome(metric: &'static str, unit: &'static str, t: Micros, count: u64) -> Event<'static> {
+        Event {
+            experiment: "".into(),
+            id: None,
+            time: Some(t),
+            body: EventBody::Outcome {
+                metric: metric.into(),
+                unit: unit.into(),
+                count,
+                exposure: None,
+            },
+        }
+    }
+
+    fn successes(e: &Engine, exp: &str) -> Vec<u64> {
+        match &e.experiment(exp).unwrap().snapshot().metrics[0] {
+            MetricTotals::Conversion(v) => v.iter().map(|t| t.successes).collect(),
+            other => panic!("{other:?}"),
+        }
+    }
+
+    fn defects(e: &Engine, exp: &str) -> Vec<u64> {
+        let snap = e.experiment(exp).unwrap().snapshot();
+        let i = snap.def.metric_index("payment-error").unwrap();
+        match &snap.metrics[i] {
+            MetricTotals::Defect(v) => v.iter().map(|t| t.count).collect(),
+            other => panic!("{other:?}"),
+        }
+    }
+
+    #[test]
+    fn an_outcome_counts_in_every_experiment_that_exposed_the_unit_before_it() {
+        let mut e = engine();
+        expose(&mut e, "crumb-checkout", "short-copy", "ann", T0);
+        expose(&mut e, "loaf-labels", "control", "ann", T0 + 10 * SEC);
+        expose(&mut e, "oven-timer", "control", "ann", T0);
+        assert_eq!(e.n_memberships(), 3);
+        // At T0 + 5 s ann is in crumb-checkout only; oven-timer has no `purchase`.
+        assert_eq!(
+            e.apply(&outcome("purchase", "ann", T0 + 5 * SEC, 1)),
+            Ok(Outcome::Applied)
+        );
+        assert_eq!(successes(&e, "crumb-checkout"), vec![0, 1]);
+        assert_eq!(successes(&e, "loaf-labels"), vec![0, 0]);
+        // Later she is in both: the conversion counts once per experiment.
+        assert_eq!(
+            e.apply(&outcome("purchase", "ann", T0 + 20 * SEC, 1)),
+            Ok(Outcome::Applied)
+        );
+        assert_eq!(successes(&e, "crumb-checkout"), vec![0, 1]);
+        assert_eq!(successes(&e, "loaf-labels"), vec![1, 0]);
+        assert_eq!(
+            e.apply(&outcome("purchase", "ann", T0 + 30 * SEC, 1)),
+            Ok(Outcome::DuplicateConversion)
+        );
+        // Defects count each time, in all three experiments, with their count.
+        for _ in 0..2 {
+            assert_eq!(
+                e.apply(&outcome("payment-error", "ann", T0 + 40 * SEC, 3)),
+                Ok(Outcome::Applied)
+            );
+        }
+        assert_eq!(defects(&e, "crumb-checkout"), vec![0, 6]);
+        assert_eq!(defects(&e, "loaf-labels"), vec![6, 0]);
+        assert_eq!(defects(&e, "oven-timer"), vec![6, 0]);
+        let applied = e.experiment("loaf-labels").unwrap().snapshot().outcomes;
+        assert_eq!(applied.get(Outcome::Applied), 1 + 1 + 2);
+        assert_eq!(applied.get(Outcome::DuplicateConversion), 1);
+    }
+
+    #[test]
+    fn misses_are_told_apart_and_change_nothing() {
+        let mut e = engine();
+        assert_eq!(
+            e.apply(&outcome("purchase", "bob", T0, 1)),
+            Ok(Outcome::Unexposed)
+        );
+        expose(&mut e, "oven-timer", "control", "bob", T0);
+        // In an experiment, but not one defining the metric.
+        assert_eq!(
+            e.apply(&outcome("purchase", "bob", T0, 1)),
+            Ok(Outcome::Unexposed)
+        );
+        expose(&mut e, "crumb-checkout", "control", "bob", T0 + 60 * SEC);
+        assert_eq!(
+            e.apply(&outcome("purchase", "bob", T0 + 59 * SEC, 1)),
+            Ok(Outcome::BeforeExposure)
+        );
+        // Exposure times are kept to the second: the same second counts.
+        expose(&mut e, "loaf-labels", "control", "cy", T0 + 500_000);
+        assert_eq!(
+            e.apply(&outcome("purchase", "cy", T0 + 100_000, 1)),
+            Ok(Outcome::Applied)
+        );
+        // loaf-labels attributes for one hour after the exposure, inclusive.
+        expose(&mut e, "loaf-labels", "short-copy", "dee", T0);
+        assert_eq!(
+            e.apply(&outcome("payment-error", "dee", T0 + 3_601 * SEC, 1)),
+            Ok(Outcome::OutsideWindow)
+        );
+        assert_eq!(
+            e.apply(&outcome("payment-error", "dee", T0 + 3_600 * SEC, 1)),
+            Ok(Outcome::Applied)
+        );
+        assert_eq!(defects(&e, "loaf-labels"), vec![0, 1]);
+        assert_eq!(successes(&e, "crumb-checkout"), vec![0, 0]);
+        // No time: refused, since it cannot be compared with exposures.
+        let mut timeless = outcome("purchase", "bob", T0, 1);
+        timeless.time = None;
+        assert_eq!(
+            e.apply(&timeless).unwrap_err().reason,
+            RejectReason::MissingField
+        );
+        // Misses are no experiment's outcome.
+        let snap = e.experiment("crumb-checkout").unwrap().snapshot();
+        assert_eq!(snap.outcomes.get(Outcome::BeforeExposure), 0);
+    }
+
+    #[test]
+    fn an_outcome_naming_its_experiment_counts_there_only() {
+        let mut e = engine();
+        expose(&mut e, "crumb-checkout", "control", "eve", T0);
+        expose(&mut e, "loaf-labels", "control", "eve", T0);
+        let mut o = outcome("purchase", "eve", T0, 1);
+        o.experiment = "loaf-labels".into();
+        assert_eq!(e.apply(&o), Ok(Outcome::Applied));
+        assert_eq!(successes(&e, "loaf-labels"), vec![1, 0]);
+        assert_eq!(successes(&e, "crumb-checkout"), vec![0, 0]);
+        o.body = EventBody::Outcome {
+            metric: "purchase".into(),
+            unit: "nobody".into(),
+            count: 1,
+            exposure: None,
+        };
+        assert_eq!(e.apply(&o), Ok(Outcome::Orphan));
+    }
+
+    #[test]
+    fn removing_an_experiment_keeps_the_others_attributing() {
+        let mut e = engine();
+        expose(&mut e, "crumb-checkout", "control", "fay", T0);
+        expose(&mut e, "loaf-labels", "short-copy", "fay", T0);
+        assert!(e.remove("crumb-checkout").is_some());
+        assert_eq!(e.n_memberships(), 1);
+        assert_eq!(
+            e.apply(&outcome("purchase", "fay", T0, 1)),
+            Ok(Outcome::Applied)
+        );
+        assert_eq!(successes(&e, "loaf-labels"), vec![0, 1]);
+    }
+
+    #[test]
+    fn an_attributed_outcome_can_make_several_experiments_due() {
+        use crate::state::cadence::Cadence;
+        let mut e = engine();
+        let cadence = Cadence::new(i64::MAX, 2);
+        let mut due = Vec::new();
+        for exp in ["crumb-checkout", "loaf-labels"] {
+            let x = Event {
+                experiment: exp.into(),
+                id: None,
+                time: Some(T0),
+                body: EventBody::Exposure {
+                    variant: "control".into(),
+                    unit: "gil".into(),
+                },
+            };
+            assert_eq!(
+                e.apply_due(&x, None, &cadence, &mut due),
+                Ok(Outcome::Applied)
+            );
+        }
+        assert!(due.is_empty());
+        let r = e.apply_due(&outcome("purchase", "gil", T0, 1), None, &cadence, &mut due);
+        assert_eq!(r, Ok(Outcome::Applied));
+        let ids: Vec<_> = due.iter().map(|s| s.def.id.clone()).collect();
+        assert_eq!(ids, vec!["crumb-checkout", "loaf-labels"]);
+    }
 }
 
 #[test]

@@ -350,12 +350,12 @@ impl UnitTable {
         }
         let home = Self::home(hash, cap);
         let at: *const Entry = &self.entries[home];
-        prefetch_read(at.cast());
+        prefetch_ptr(at.cast());
         // Probes run a few entries past home; fetch the next line too when they cross it.
         let end = (home + 3).min(cap - 1);
         let last: *const Entry = &self.entries[end];
         if (last as usize) / 64 != (at as usize) / 64 {
-            prefetch_read(last.cast());
+            prefetch_ptr(last.cast());
         }
     }
 
@@ -414,7 +414,7 @@ impl IdSet {
 }
 
 #[inline]
-fn prefetch_read(ptr: *const i8) {
+pub(super) fn prefetch_ptr(ptr: *const i8) {
     #[cfg(target_arch = "x86_64")]
     // SAFETY: a prefetch is only a hint; it never faults, whatever the address.
     unsafe {
