@@ -790,20 +790,12 @@ fn definitions_travel_between_instances_on_the_changelog() {
     let seed = [exposure("crumb-checkout-copy", "control", "s-0").to_string()];
     assert_eq!(produce(&brokers, &topic, 4, &seed, scratch.path()), 1);
     let experiments = CONFIG.split("[[experiment]]").nth(1).unwrap();
-    let config = format!(
-        r#"[http]
-addr = "127.0.0.1:0"
-[store]
-snapshot_interval_ms = 300
-[kafka]
-brokers = "{brokers}"
-topics = ["{topic}"]
-group = "{group}"
-changelog_interval_ms = 300
-[kafka.properties]
-"session.timeout.ms" = 6000
-"heartbeat.interval.ms" = 1000
-[[experiment]]{experiments}"#
+    let config = common::kafka::service_config(
+        &brokers,
+        &topic,
+        &group,
+        6000,
+        &format!("[[experiment]]{experiments}"),
     );
     let dir = |i: usize| scratch.path().join(format!("state-{i}"));
     let a = Service::start_in(&config, Some(&dir(0)), &[]);

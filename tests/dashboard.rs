@@ -10,110 +10,9 @@ use std::path::PathBuf;
 use std::process::{Command, Stdio};
 use std::time::Duration;
 
+use common::browser::{attr, browser, chromium, dump_dom, tags};
 use common::{bin, client, signal, wait_exit, wait_for, Service};
 use serde_json::Value;
-
-/// Headless Chromium, or a clear failure: this test is never skipped.
-fn chromium() -> PathBuf {
-    for name in ["chromium", "chromium-browser"] {
-        if let Ok(out) = Command::new("sh")
-            .args(["-c", &format!("command -v {name}")])
-            .output()
-        {
-            let path = String::from_utf8_lossy(&out.stdout).trim().to_string();
-            if out.status.success() && !path.is_empty() {
-                return PathBuf::from(path);
-            }
-        }
-    }
-    panic!(
-        "headless Chromium is required for the dashboard test and was not found on PATH; \
-         install the Debian package `chromium` (tests/run.sh does this when it is missing)"
-    );
-}
-
-/// Flags for a headless run in a container (no sandbox as root, no GPU, no first-run noise).
-fn browser(profile: &std::path::Path) -> Command {
-    let mut cmd = Command::new(chromium());
-    cmd.args([
-        "--headless",
-        "--no-sandbox",
-        "--disable-gpu",
-        "--disable-dev-shm-usage",
-        "--hide-scrollbars",
-        "--no-first-run",
-        "--mute-audio",
-    ])
-    .arg(format!("--user-data-dir={}", profile.display()))
-    .stderr(Stdio::null());
-    cmd
-}
-
-/// The DOM after the page ran for `budget_ms` of virtual time (so the refresh script had its
-/// turns), as Chromium serialises it.
-fn dump_dom(url: &str, budget_ms: u32, profile: &std::path::Path) -> String {
-    let out = browser(profile)
-        .arg(format!("--virtual-time-budget={budget_ms}"))
-        .arg("--dump-dom")
-        .arg(url)
-        .output()
-        .expect("run chromium");
-    assert!(
-        out.status.success(),
-        "chromium --dump-dom failed: {:?}",
-        out.status
-    );
-    String::from_utf8(out.stdout).expect("utf-8 DOM")
-}
-
-/// Start tags named `tag` whose attributes include every `(name, value)` of `with`, each
-/// returned as its attribute list. A small scanner is enough: Chromium serialises the DOM with
-/// double-quoted attributes and escapes `"` inside them.
-fn tags<'a>(dom: &'a str, tag: &str, with: &[(&str, &str)]) -> Vec<Vec<(String, String)>> {
-    let open = format!("<{tag} ");
-    let mut out = Vec::new();
-    let mut rest: &'a str = dom;
-    while let Some(i) = rest.find(&open) {
-        let after = &rest[i + open.len()..];
-        let end = after.find('>').unwrap_or(after.len());
-        let attrs = attributes(&after[..end]);
-        if with
-            .iter()
-            .all(|(k, v)| attrs.iter().any(|(a, b)| a == k && b == v))
-        {
-            out.push(attrs);
-        }
-        rest = &after[end..];
-    }
-    out
-}
-
-fn attributes(s: &str) -> Vec<(String, String)> {
-    let mut out = Vec::new();
-    let mut rest = s;
-    while let Some(eq) = rest.find("=\"") {
-        let name = rest[..eq]
-            .trim()
-            .rsplit(' ')
-            .next()
-            .unwrap_or("")
-            .to_string();
-        let value_start = eq + 2;
-        let Some(len) = rest[value_start..].find('"') else {
-            break;
-        };
-        out.push((name, rest[value_start..value_start + len].to_string()));
-        rest = &rest[value_start + len + 1..];
-    }
-    out
-}
-
-fn attr<'a>(attrs: &'a [(String, String)], name: &str) -> Option<&'a str> {
-    attrs
-        .iter()
-        .find(|(k, _)| k == name)
-        .map(|(_, v)| v.as_str())
-}
 
 /// The part of `dom` inside the `<svg>` of plot `kind` for `metric`.
 fn plot<'a>(dom: &'a str, kind: &str, metric: &str) -> &'a str {
@@ -223,7 +122,7 @@ fn the_demo_dashboard_shows_every_plot_in_a_real_browser() {
 
     let profile = dir.path().join("chromium-profile");
     // The list page: one row per experiment the API lists, each linking to its page.
-    let list = dump_dom(&dashboard, 1000, &profile);
+    let list = dump_dom(&dashboard, Some(1000));
     for e in &experiments {
         let id = e["id"].as_str().unwrap();
         assert_eq!(
@@ -252,7 +151,7 @@ fn the_demo_dashboard_shows_every_plot_in_a_real_browser() {
             .map(|m| m["name"].as_str().unwrap().to_string())
             .collect();
         assert!(variants.len() >= 2 && !metrics.is_empty());
-        let dom = dump_dom(&format!("{base}/experiments/{id}"), 12_000, &profile);
+        let dom = dump_dom(&format!("{base}/experiments/{id}"), Some(12_000));
         let main = tags(&dom, "main", &[]);
         let refreshed: u32 = attr(&main[0], "data-refreshed").unwrap().parse().unwrap();
         assert!(refreshed >= 1, "the page never refreshed its main part");
@@ -563,8 +462,7 @@ fn the_plotted_intervals_are_the_api_numbers_in_a_real_browser() {
         .unwrap()
         .clone();
     let lift = &purchase["variants"][1]["lift"]["interval"];
-    let profile = service.dir.path().join("chromium-profile");
-    let dom = dump_dom(&service.url("/experiments/checkout-copy"), 500, &profile);
+    let dom = dump_dom(&service.url("/experiments/checkout-copy"), Some(500));
     // The interval bar under the lift curve is `compare`'s lift interval, to the last digit.
     let bars = tags(
         plot(&dom, "lift", "purchase"),

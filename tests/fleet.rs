@@ -52,7 +52,9 @@ fn fleet_config() -> String {
         String::from("[http]\naddr = \"127.0.0.1:0\"\n\n[alerts]\nevaluate_every_events = 100\n\n");
     for i in 0..N {
         s.push_str(&format!(
-            "[[experiment]]\nid = \"{}\"\nvariants = [ {{ name = \"control\" }}, {{ name = \"pear\" }}, {{ name = \"quince\" }} ]\n[[experiment.metric]]\nname = \"sprouted\"\nkind = \"conversion\"\n",
+            // Every event carries the one time T, so no minimum duration can pass: 0 lets the
+            // ready group's ship rule hold on the data alone.
+            "[[experiment]]\nid = \"{}\"\nvariants = [ {{ name = \"control\" }}, {{ name = \"pear\" }}, {{ name = \"quince\" }} ]\nmin_duration_days = 0\n[[experiment.metric]]\nname = \"sprouted\"\nkind = \"conversion\"\n",
             id(i)
         ));
         match group(i) {

@@ -10,7 +10,7 @@ mod common;
 use std::collections::BTreeMap;
 use std::time::Duration;
 
-use common::kafka::{consume_within, produce, unique, Cluster};
+use common::kafka::{consume_within, produce, service_config, unique, Cluster};
 use common::{total_seen, wait_for, workload, Service, TEST_EXPERIMENTS};
 use serde_json::Value;
 
@@ -62,24 +62,19 @@ fn a_broker_killed_and_restarted_loses_and_repeats_nothing() {
         produce(&brokers, &topic, 4, first, scratch.path()),
         first.len()
     );
-    let config = format!(
-        r#"[http]
-addr = "127.0.0.1:0"
-[store]
-snapshot_interval_ms = 300
-[kafka]
-brokers = "{brokers}"
-topics = ["{topic}"]
-group = "{group}"
-changelog_interval_ms = 300
-[kafka.properties]
-"session.timeout.ms" = 10000
-[alerts]
+    let config = service_config(
+        &brokers,
+        &topic,
+        &group,
+        10_000,
+        &format!(
+            r#"[alerts]
 evaluate_every_secs = 1
 evaluate_every_events = 200
 [alerts.kafka]
 topic = "{alerts}"
 {TEST_EXPERIMENTS}{FERRY_EXPERIMENT}"#
+        ),
     );
     let service = Service::start_in(&config, Some(&scratch.path().join("state")), &[]);
     wait_for(

@@ -187,8 +187,8 @@ group = "{group}"
             (text.contains(&offset_line) && queued == done && queued > 0).then_some(())
         },
     );
-    let (_, live) = service.get("/v1/alerts");
-    let live: Vec<Value> = live["alerts"]
+    let (_, live) = service.get("/v1/alerts?limit=1000");
+    let mut live: Vec<Value> = live["alerts"]
         .as_array()
         .unwrap()
         .iter()
@@ -200,12 +200,20 @@ group = "{group}"
     let config_file = scratch.path().join("posteriord.toml");
     std::fs::write(&config_file, &config).unwrap();
     let replayed = replay_json(&config_file, &[&file]);
-    let offline: Vec<Value> = replayed["alerts"]
+    let mut offline: Vec<Value> = replayed["alerts"]
         .as_array()
         .unwrap()
         .iter()
         .map(comparable)
         .collect();
+    // The API lists alerts by opening time, then id; replay in the order they were raised.
+    // Alerts opened at the same event time are compared in the API's order.
+    for list in [&mut live, &mut offline] {
+        list.sort_by(|a, b| {
+            let key = |x: &Value| (x["opened_at"].to_string(), x["id"].to_string());
+            key(a).cmp(&key(b))
+        });
+    }
     let rules: Vec<&str> = offline.iter().filter_map(|a| a["rule"].as_str()).collect();
     eprintln!(
         "{} alerts live, {} in replay ({rules:?}); {} evaluations in replay",

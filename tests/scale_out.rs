@@ -13,7 +13,7 @@ mod common;
 
 use std::time::Duration;
 
-use common::kafka::{brokers, produce, unique};
+use common::kafka::{brokers, produce, service_config, unique};
 use common::{
     observed, seen, signal, wait_exit, wait_for, workload, Service, SPECS, TEST_EXPERIMENTS,
 };
@@ -42,21 +42,7 @@ fn a_killed_instance_s_partitions_move_with_their_exact_state() {
         produce(&brokers, &topic, 6, first, scratch.path()),
         first.len()
     );
-    let config = format!(
-        r#"[http]
-addr = "127.0.0.1:0"
-[store]
-snapshot_interval_ms = 300
-[kafka]
-brokers = "{brokers}"
-topics = ["{topic}"]
-group = "{group}"
-changelog_interval_ms = 300
-[kafka.properties]
-"session.timeout.ms" = 6000
-"heartbeat.interval.ms" = 1000
-{TEST_EXPERIMENTS}"#
-    );
+    let config = service_config(&brokers, &topic, &group, 6000, TEST_EXPERIMENTS);
     let dirs: Vec<_> = (0..4)
         .map(|i| scratch.path().join(format!("state-{i}")))
         .collect();
@@ -202,21 +188,7 @@ fn a_static_member_restarted_within_its_session_timeout_gets_its_partitions_back
     );
     // A session timeout far longer than the restart takes: Apache Kafka keeps a static
     // member's assignment for it until then, without a rebalance of the others.
-    let config = format!(
-        r#"[http]
-addr = "127.0.0.1:0"
-[store]
-snapshot_interval_ms = 300
-[kafka]
-brokers = "{brokers}"
-topics = ["{topic}"]
-group = "{group}"
-changelog_interval_ms = 300
-[kafka.properties]
-"session.timeout.ms" = 30000
-"heartbeat.interval.ms" = 1000
-{TEST_EXPERIMENTS}"#
-    );
+    let config = service_config(&brokers, &topic, &group, 30_000, TEST_EXPERIMENTS);
     let dirs: Vec<_> = (0..3)
         .map(|i| scratch.path().join(format!("state-{i}")))
         .collect();
@@ -237,13 +209,13 @@ changelog_interval_ms = 300
             (applied >= first.len() as u64).then_some(())
         },
     );
-    // Let the group settle: all six partitions held, each by one instance.
+    // Let the group settle: all three members joined, the six partitions split between them.
     wait_for(
-        Duration::from_secs(60),
-        "the six partitions to be held",
+        Duration::from_secs(90),
+        "the six partitions to be split between the three instances",
         || {
-            let held: usize = instances.iter().map(|s| held(s).len()).sum();
-            (held == 6).then_some(())
+            let held: Vec<usize> = instances.iter().map(|s| held(s).len()).collect();
+            (held.iter().sum::<usize>() == 6 && held.iter().all(|&n| n > 0)).then_some(())
         },
     );
     let victim = 1;

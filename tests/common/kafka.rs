@@ -200,3 +200,30 @@ impl Drop for Cluster {
             .status();
     }
 }
+
+/// A `serve` configuration consuming `topic` as member of `group` on `brokers`: state saved
+/// and published to the changelog every 300 ms (so kills land between, during and right after
+/// saves), the given session timeout, then `rest` (further sections and the experiments).
+pub fn service_config(
+    brokers: &str,
+    topic: &str,
+    group: &str,
+    session_timeout_ms: u32,
+    rest: &str,
+) -> String {
+    format!(
+        r#"[http]
+addr = "127.0.0.1:0"
+[store]
+snapshot_interval_ms = 300
+[kafka]
+brokers = "{brokers}"
+topics = ["{topic}"]
+group = "{group}"
+changelog_interval_ms = 300
+[kafka.properties]
+"session.timeout.ms" = {session_timeout_ms}
+"heartbeat.interval.ms" = 1000
+{rest}"#
+    )
+}
