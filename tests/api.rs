@@ -901,7 +901,7 @@ fn lists_page_by_cursor_with_filters_and_fit_the_schema() {
         assert_eq!(r.body["limit"], 2);
         for e in r.body["experiments"].as_array().unwrap() {
             ids.push(e["id"].as_str().unwrap().to_string());
-            assert_eq!(e["state"], "learning", "no data yet");
+            assert_eq!(e["state"], "gathering", "no data yet");
             assert_eq!(e["open_alerts"], 0);
         }
         match r.body["next"].as_str() {

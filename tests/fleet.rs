@@ -6,7 +6,7 @@
 //! The expected states come from how the test built each experiment's data, not from the
 //! service: harm (one arm converts at a fifth of the control's rate), data quality (exposures
 //! 3:1:1 against equal weights), ready (one arm converts three times as often, with a ship
-//! rule), decided (ready, and its recorded decision acknowledged here), learning (no data).
+//! rule), decided (ready, and its recorded decision acknowledged here), gathering (no data).
 
 mod common;
 
@@ -24,7 +24,7 @@ enum Group {
     Harm,
     Quality,
     Ready,
-    Learning,
+    Gathering,
 }
 
 /// The test's own design of experiment `i`.
@@ -33,7 +33,7 @@ fn group(i: usize) -> Group {
         (true, false, false) => Group::Harm,
         (false, true, false) => Group::Quality,
         (false, false, true) => Group::Ready,
-        (false, false, false) => Group::Learning,
+        (false, false, false) => Group::Gathering,
         _ => panic!("experiment {i} is in two groups; fix the design"),
     }
 }
@@ -82,7 +82,7 @@ fn events_for(i: usize) -> Vec<Value> {
         Group::Harm => ([150, 150, 150], [75, 15, 75]),
         Group::Quality => ([300, 100, 100], [0, 0, 0]),
         Group::Ready => ([150, 150, 150], [15, 15, 45]),
-        Group::Learning => return Vec::new(),
+        Group::Gathering => return Vec::new(),
     };
     let exp = id(i);
     let mut out = Vec::new();
@@ -253,7 +253,7 @@ fn the_overview_shows_five_thousand_experiments_in_a_real_browser() {
     assert_eq!(count(&dom, "data_quality"), 20);
     assert_eq!(count(&dom, "ready"), 15);
     assert_eq!(count(&dom, "decided"), 10);
-    assert_eq!(count(&dom, "learning"), N - 13 - 20 - 25);
+    assert_eq!(count(&dom, "gathering"), N - 13 - 20 - 25);
     let open_alerts = walk(&svc, "/v1/alerts?limit=1000", "alerts")
         .iter()
         .filter(|a| a["state"] == "open" || a["state"] == "easing")
@@ -271,7 +271,7 @@ fn the_overview_shows_five_thousand_experiments_in_a_real_browser() {
         "{states:?}"
     );
     assert!(states[33..48].iter().all(|s| *s == "ready"), "{states:?}");
-    assert!(states[48..].iter().all(|s| *s == "learning"), "{states:?}");
+    assert!(states[48..].iter().all(|s| *s == "gathering"), "{states:?}");
     // Every count links to its filtered list, which holds that many.
     let link = tags(&dom, "a", &[("data-count", "data_quality")]);
     let href = attr(&link[0], "href").unwrap().replace("&amp;", "&");
@@ -301,19 +301,19 @@ fn the_overview_shows_five_thousand_experiments_in_a_real_browser() {
     let dom = dump_dom(&format!("{base}/?q=4321"), None);
     assert_eq!(
         rows(&dom),
-        [("orchard-4321".to_string(), "learning".to_string())]
+        [("orchard-4321".to_string(), "gathering".to_string())]
     );
     let dom = dump_dom(&format!("{base}/?q=ORCHARD-12"), None);
     let got: Vec<String> = rows(&dom).into_iter().map(|r| r.0).collect();
     assert_eq!(attr(&showing(&dom), "data-matched"), Some("100"));
-    // Needs a person first: harm, data quality, ready, then learning, then decided; by id
+    // Needs a person first: harm, data quality, ready, then gathering, then decided; by id
     // within each (open alerts tie at one or zero within a state here).
     let rank = |i: usize| match group(i) {
         Group::Harm => 0,
         Group::Quality => 1,
         Group::Ready if decided.contains(&id(i)) => 4,
         Group::Ready => 2,
-        Group::Learning => 3,
+        Group::Gathering => 3,
     };
     let mut want_search: Vec<usize> = (1200..1300).collect();
     want_search.sort_by_key(|&i| (rank(i), id(i)));
@@ -327,14 +327,14 @@ fn the_overview_shows_five_thousand_experiments_in_a_real_browser() {
     let href = attr(&next[0], "href").unwrap().replace("&amp;", "&");
     assert_eq!(href, "/?page=2");
     let dom = dump_dom(&format!("{base}{href}"), None);
-    let learning: Vec<String> = (0..N)
-        .filter(|&i| group(i) == Group::Learning)
+    let gathering: Vec<String> = (0..N)
+        .filter(|&i| group(i) == Group::Gathering)
         .map(id)
         .collect();
     let second: Vec<(String, String)> = rows(&dom);
-    let want_second: Vec<(String, String)> = learning[2..52]
+    let want_second: Vec<(String, String)> = gathering[2..52]
         .iter()
-        .map(|i| (i.clone(), "learning".to_string()))
+        .map(|i| (i.clone(), "gathering".to_string()))
         .collect();
     assert_eq!(second, want_second);
     assert_eq!(attr(&showing(&dom), "data-page"), Some("2"));

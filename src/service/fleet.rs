@@ -32,7 +32,7 @@ pub enum Standing {
     /// A person acknowledged a recorded final decision.
     Decided,
     /// None of the above: the experiment is still gathering evidence (or has none yet).
-    Learning,
+    Gathering,
 }
 
 impl Standing {
@@ -41,7 +41,7 @@ impl Standing {
         Standing::Harm,
         Standing::Quality,
         Standing::Ready,
-        Standing::Learning,
+        Standing::Gathering,
         Standing::Decided,
     ];
 
@@ -52,7 +52,7 @@ impl Standing {
             Standing::Quality => "data_quality",
             Standing::Ready => "ready",
             Standing::Decided => "decided",
-            Standing::Learning => "learning",
+            Standing::Gathering => "gathering",
         }
     }
 
@@ -68,7 +68,7 @@ impl Standing {
             Standing::Quality => "check the data first",
             Standing::Ready => "ready for a decision",
             Standing::Decided => "decided",
-            Standing::Learning => "gathering evidence",
+            Standing::Gathering => "gathering evidence",
         }
     }
 
@@ -83,7 +83,7 @@ impl Standing {
             Standing::Harm => 0,
             Standing::Quality => 1,
             Standing::Ready => 2,
-            Standing::Learning => 3,
+            Standing::Gathering => 3,
             Standing::Decided => 4,
         }
     }
@@ -224,7 +224,7 @@ pub fn standing(rules: &[Rule], alerts: &AlertFacts) -> Standing {
     } else if alerts.acknowledged_decision {
         Standing::Decided
     } else {
-        Standing::Learning
+        Standing::Gathering
     }
 }
 
@@ -400,7 +400,7 @@ mod tests {
     #[test]
     fn standing_follows_the_rules_then_the_people() {
         let none = AlertFacts::default();
-        assert_eq!(standing(&[], &none), Standing::Learning);
+        assert_eq!(standing(&[], &none), Standing::Gathering);
         assert_eq!(
             standing(&[Rule::SampleRatio, Rule::Harm], &none),
             Standing::Harm

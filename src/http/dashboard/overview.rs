@@ -189,7 +189,7 @@ fn chip_class(s: Standing) -> &'static str {
         Standing::Quality => "quality",
         Standing::Ready => "ready",
         Standing::Decided => "decided",
-        Standing::Learning => "watching",
+        Standing::Gathering => "watching",
     }
 }
 

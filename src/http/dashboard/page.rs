@@ -136,7 +136,7 @@ pub fn glance(
         if summary.snapshot.units.iter().all(|&u| u == 0) {
             out.push(("idle", "waiting for data"));
         } else {
-            out.push(("watching", "still learning"));
+            out.push(("watching", "still gathering evidence"));
         }
     }
     out

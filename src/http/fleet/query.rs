@@ -469,7 +469,7 @@ mod tests {
         loop {
             let rows = names
                 .iter()
-                .map(|n| (facts(n, Standing::Learning, 0, 0), n.as_str()))
+                .map(|n| (facts(n, Standing::Gathering, 0, 0), n.as_str()))
                 .collect();
             let p = page(rows, &Filter::default(), Order::Id, from.as_ref(), 5);
             assert_eq!(p.matched, 23);
@@ -487,7 +487,7 @@ mod tests {
     #[test]
     fn attention_puts_people_first_then_alerts_then_id() {
         let rows = vec![
-            (facts("d", Standing::Learning, 3, 10), "d"),
+            (facts("d", Standing::Gathering, 3, 10), "d"),
             (facts("c", Standing::Ready, 0, 10), "c"),
             (facts("b", Standing::Harm, 1, 10), "b"),
             (facts("a", Standing::Harm, 2, 10), "a"),
@@ -503,7 +503,7 @@ mod tests {
         let rows = || {
             vec![
                 (facts("Crumb-Banner", Standing::Harm, 1, 5), "1"),
-                (facts("crumb-copy", Standing::Learning, 0, 5), "2"),
+                (facts("crumb-copy", Standing::Gathering, 0, 5), "2"),
                 (facts("orchard", Standing::Harm, 0, 5), "3"),
             ]
         };
