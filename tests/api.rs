@@ -138,7 +138,7 @@ fn conversion(exp: &str, metric: &str, unit: &str) -> Value {
     json!({"type": "conversion", "experiment": exp, "metric": metric, "unit": unit, "time": T})
 }
 
-fn seed_tray(variants: &[&str], metrics: &[(&str, &str)]) -> Value {
+fn planter_tray(variants: &[&str], metrics: &[(&str, &str)]) -> Value {
     json!({
         "variants": variants.iter().map(|v| json!({"name": v})).collect::<Vec<_>>(),
         "metric": metrics.iter().map(|(n, k)| json!({"name": n, "kind": k})).collect::<Vec<_>>(),
@@ -181,7 +181,7 @@ fn writes_need_a_token_and_reads_are_open_by_default() {
         "PUT",
         "/v1/experiments/{id}",
         "/v1/experiments/orchard-sprout-tray",
-        Some(seed_tray(&["control", "tray"], &[("plant", "conversion")]).to_string()),
+        Some(planter_tray(&["control", "tray"], &[("plant", "conversion")]).to_string()),
         None,
     );
     assert_error(&r, 401, "unauthenticated");
@@ -411,7 +411,7 @@ fn experiments_defined_at_run_time_persist_extend_restart_and_archive() {
 
     let r = put(
         &mut api,
-        seed_tray(&["control", "tray"], &[("plant", "conversion")]),
+        planter_tray(&["control", "tray"], &[("plant", "conversion")]),
     );
     assert_eq!(r.status, 201, "{}", r.body);
     assert_eq!(r.body["created"], true);
@@ -433,7 +433,7 @@ fn experiments_defined_at_run_time_persist_extend_restart_and_archive() {
     // Appending a variant and a metric keeps the counts.
     let r = put(
         &mut api,
-        seed_tray(
+        planter_tray(
             &["control", "tray", "tray-xl"],
             &[("plant", "conversion"), ("app-crash", "defect_rate")],
         ),
@@ -447,7 +447,7 @@ fn experiments_defined_at_run_time_persist_extend_restart_and_archive() {
     assert_eq!(doc["metrics"][1]["variants"][1]["exposure"], 2.0);
 
     // Changing a running metric's prior needs "restart": true.
-    let mut reprior = seed_tray(
+    let mut reprior = planter_tray(
         &["control", "tray", "tray-xl"],
         &[("plant", "conversion"), ("app-crash", "defect_rate")],
     );
@@ -483,7 +483,7 @@ fn experiments_defined_at_run_time_persist_extend_restart_and_archive() {
     assert_eq!(old.body["archive"]["reason"], "restarted");
 
     // Errors name the JSON key; the file's experiments are not the API's to change.
-    let mut bad = seed_tray(&["control", "tray"], &[("plant", "conversion")]);
+    let mut bad = planter_tray(&["control", "tray"], &[("plant", "conversion")]);
     bad["variants"][1]["weight"] = json!(-0.5);
     let r = api.call(
         "PUT",
@@ -507,7 +507,7 @@ fn experiments_defined_at_run_time_persist_extend_restart_and_archive() {
         "PUT",
         route,
         "/v1/experiments/crumb-checkout-copy",
-        Some(seed_tray(&["a", "b"], &[("m", "conversion")]).to_string()),
+        Some(planter_tray(&["a", "b"], &[("m", "conversion")]).to_string()),
     );
     assert_error(&r, 409, "defined_in_config");
     let r = api.call("DELETE", route, "/v1/experiments/crumb-checkout-copy", None);
@@ -519,7 +519,7 @@ fn experiments_defined_at_run_time_persist_extend_restart_and_archive() {
         "PUT",
         route,
         mulch,
-        Some(seed_tray(&["control", "mulch"], &[("plant", "conversion")]).to_string()),
+        Some(planter_tray(&["control", "mulch"], &[("plant", "conversion")]).to_string()),
     );
     assert_eq!(r.status, 201);
     let r = api.call(
@@ -569,7 +569,7 @@ fn experiments_defined_at_run_time_persist_extend_restart_and_archive() {
     // A re-created id starts empty: stored state of an older generation never returns.
     let r = put(
         &mut api,
-        seed_tray(&["control", "tray"], &[("plant", "conversion")]),
+        planter_tray(&["control", "tray"], &[("plant", "conversion")]),
     );
     assert_eq!(r.status, 201);
     assert_eq!(r.body["experiment"]["units"], 0);
@@ -603,7 +603,7 @@ fn a_crash_after_a_restart_never_brings_the_old_state_back() {
         "/v1/experiments/{id}",
         "/v1/experiments/orchard-sprout-tray",
     );
-    let body = seed_tray(&["control", "tray"], &[("plant", "conversion")]);
+    let body = planter_tray(&["control", "tray"], &[("plant", "conversion")]);
     assert_eq!(
         api.call("PUT", route, path, Some(body.to_string())).status,
         201
@@ -812,7 +812,7 @@ fn definitions_travel_between_instances_on_the_changelog() {
             "PUT",
             "/v1/experiments/{id}",
             &format!("/v1/experiments/{id}"),
-            Some(seed_tray(&["control", "tray"], &[("plant", "conversion")]).to_string()),
+            Some(planter_tray(&["control", "tray"], &[("plant", "conversion")]).to_string()),
         );
         assert_eq!(r.status, 201, "{}", r.body);
     }
@@ -887,7 +887,7 @@ fn lists_page_by_cursor_with_filters_and_fit_the_schema() {
             "PUT",
             "/v1/experiments/{id}",
             &format!("/v1/experiments/{id}"),
-            Some(seed_tray(&["control", "tray"], &[("plant", "conversion")]).to_string()),
+            Some(planter_tray(&["control", "tray"], &[("plant", "conversion")]).to_string()),
         );
         assert_eq!(r.status, 201, "{}", r.body);
     }

@@ -324,9 +324,9 @@ mod tests {
     use super::*;
     use crate::decide::Finding;
 
-    /// Three experiments of an invented seed shop, defined as over the API, with no events.
+    /// Three experiments of an invented plant nursery, defined as over the API, with no events.
     fn summaries_of() -> (SummaryCache, Vec<ExperimentSnapshot>) {
-        let defs: Vec<ExperimentDef> = ["seed-tray", "seed-label", "seed-bag"]
+        let defs: Vec<ExperimentDef> = ["nursery-tray", "nursery-label", "nursery-bag"]
             .into_iter()
             .map(|id| {
                 crate::config::experiment_from_json(
