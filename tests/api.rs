@@ -817,8 +817,10 @@ fn definitions_travel_between_instances_on_the_changelog() {
         assert_eq!(r.status, 201, "{}", r.body);
     }
     for id in &ids {
+        // Generous: on a broker that has just started, the changelog topic's first
+        // publication can take a while (seen once at 30 s on a loaded machine).
         common::wait_for(
-            Duration::from_secs(30),
+            Duration::from_secs(90),
             "the definition on the other instance",
             || (b.get(&format!("/v1/experiments/{id}")).0 == 200).then_some(()),
         );
