@@ -818,7 +818,7 @@ fn definitions_travel_between_instances_on_the_changelog() {
     }
     for id in &ids {
         // Generous: on a broker that has just started, the changelog topic's first
-        // publication can take a while (seen once at 30 s on a loaded machine).
+        // publication can take a while (this test failed once right after a broker start).
         common::wait_for(
             Duration::from_secs(90),
             "the definition on the other instance",
