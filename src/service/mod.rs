@@ -130,6 +130,20 @@ pub struct Service {
     failures_logged: Mutex<std::collections::HashSet<(String, String, String)>>,
 }
 
+/// The experiment the service's unit tests count, defined as over the API.
+#[cfg(test)]
+fn test_checkout_copy() -> crate::experiment::ExperimentDef {
+    crate::config::experiment_from_json(
+        "crumb-checkout-copy",
+        &serde_json::json!({
+            "variants": [{"name": "control"}, {"name": "short-copy"}],
+            "metric": [{"name": "purchase", "kind": "conversion"},
+                       {"name": "payment-error", "kind": "defect_rate", "exposure": "reported"}]
+        }),
+    )
+    .unwrap()
+}
+
 /// Wall-clock time in microseconds since the epoch.
 pub fn now_micros() -> Micros {
     (time::OffsetDateTime::now_utc().unix_timestamp_nanos() / 1_000) as i64

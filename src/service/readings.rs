@@ -75,21 +75,9 @@ impl SummaryCache {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::experiment::ExperimentDef;
     use crate::state::Engine;
 
-    /// The experiment these tests count, defined as over the API.
-    fn checkout_copy() -> ExperimentDef {
-        crate::config::experiment_from_json(
-            "crumb-checkout-copy",
-            &serde_json::json!({
-                "variants": [{"name": "control"}, {"name": "short-copy"}],
-                "metric": [{"name": "purchase", "kind": "conversion"},
-                           {"name": "payment-error", "kind": "defect_rate", "exposure": "reported"}]
-            }),
-        )
-        .unwrap()
-    }
+    use crate::service::test_checkout_copy as checkout_copy;
 
     fn snapshot_after(n_units: usize) -> ExperimentSnapshot {
         let defs = vec![checkout_copy()];

@@ -951,18 +951,7 @@ mod tests {
     use crate::event::{Event, EventBody};
     use std::borrow::Cow;
 
-    /// The experiment these tests count, defined as over the API.
-    fn checkout_copy() -> ExperimentDef {
-        crate::config::experiment_from_json(
-            "crumb-checkout-copy",
-            &serde_json::json!({
-                "variants": [{"name": "control"}, {"name": "short-copy"}],
-                "metric": [{"name": "purchase", "kind": "conversion"},
-                           {"name": "payment-error", "kind": "defect_rate", "exposure": "reported"}]
-            }),
-        )
-        .unwrap()
-    }
+    use crate::service::test_checkout_copy as checkout_copy;
 
     fn defs() -> Vec<Arc<ExperimentDef>> {
         vec![Arc::new(checkout_copy())]

@@ -27,21 +27,14 @@ pub const PAGE_SIZE: usize = 50;
 /// Distinct metric names offered as suggestions in the metric field, at most.
 const METRIC_SUGGESTIONS: usize = 200;
 
-/// The query of `/`: the list parameters of the API, a page number and `part`.
+/// The query of `/`: the list parameters of the API, a page number and `part`. (Every
+/// field is text, so flattening [`ListParams`] works here, unlike for the API's list query
+/// with its typed `archived`.)
 #[derive(Debug, Default, Clone, serde::Deserialize)]
 pub struct OverviewQuery {
-    /// See [`ListParams::state`].
-    pub state: Option<String>,
-    /// See [`ListParams::rule`].
-    pub rule: Option<String>,
-    /// See [`ListParams::metric`].
-    pub metric: Option<String>,
-    /// See [`ListParams::q`].
-    pub q: Option<String>,
-    /// See [`ListParams::alerting`].
-    pub alerting: Option<String>,
-    /// See [`ListParams::sort`].
-    pub sort: Option<String>,
+    /// The filters and order, as the API takes them.
+    #[serde(flatten)]
+    pub list: ListParams,
     /// Page number, from 1.
     pub page: Option<String>,
     /// `main`: only the main part, for the refresh script.
@@ -49,17 +42,6 @@ pub struct OverviewQuery {
 }
 
 impl OverviewQuery {
-    fn list(&self) -> ListParams {
-        ListParams {
-            state: self.state.clone(),
-            rule: self.rule.clone(),
-            metric: self.metric.clone(),
-            q: self.q.clone(),
-            alerting: self.alerting.clone(),
-            sort: self.sort.clone(),
-        }
-    }
-
     fn page(&self) -> Result<usize, QueryError> {
         match self.page.as_deref().filter(|p| !p.is_empty()) {
             None => Ok(1),
@@ -90,7 +72,7 @@ pub async fn overview(
     let part = Part {
         part: q.part.clone(),
     };
-    let list = q.list();
+    let list = &q.list;
     let asked = (|| {
         Ok::<_, QueryError>(Asked {
             filter: list.filter()?,
@@ -122,7 +104,7 @@ pub async fn overview(
     if wants_main(&part) {
         return html(status, main);
     }
-    let mut refresh = link(&list, None);
+    let mut refresh = link(list, None);
     refresh.push_str(if refresh.contains('?') { "&" } else { "?" });
     refresh.push_str("part=main");
     html(
