@@ -121,8 +121,19 @@ pub async fn run(
             tracing::warn!(topic, error = %e, "cannot check or create the alerts topic now");
         }
     }
-    if !config.alerts.webhooks.is_empty() || config.alerts.kafka_topic.is_some() {
-        let sinks = crate::sinks::Sinks::new(&config.alerts, config.kafka.as_ref())?;
+    // Everything that can fail on configuration is built before the first task is spawned,
+    // so such an error returns at once instead of leaving tasks running.
+    let sinks = if !config.alerts.webhooks.is_empty() || config.alerts.kafka_topic.is_some() {
+        Some(crate::sinks::Sinks::new(
+            &config.alerts,
+            config.kafka.as_ref(),
+        )?)
+    } else {
+        None
+    };
+    let auth = crate::http::guard::Auth::new(&config.http, listener.local_addr()?)?;
+    let router = crate::http::router(Arc::clone(&service), &config.http, auth);
+    if let Some(sinks) = sinks {
         tracker.spawn(crate::sinks::deliver_loop(
             Arc::clone(&service),
             sinks,
@@ -139,8 +150,15 @@ pub async fn run(
         tracker.spawn(save_http_shard(Arc::clone(&service), shutdown.clone()));
     }
     if let Some(kafka) = &config.kafka {
-        crate::kafka::start(kafka, Arc::clone(&service), shutdown.clone(), &tracker)
-            .context("cannot start the Kafka consumer")?;
+        if let Err(e) = crate::kafka::start(kafka, Arc::clone(&service), shutdown.clone(), &tracker)
+        {
+            // The evaluator and the other tasks are already running: stop and await them, or
+            // the blocking ones would keep the process alive after this error.
+            shutdown.cancel();
+            tracker.close();
+            tracker.wait().await;
+            return Err(anyhow::Error::new(e).context("cannot start the Kafka consumer"));
+        }
     }
     if let Some(sim) = options.simulate {
         tracker.spawn(crate::simulate::run(
@@ -149,8 +167,6 @@ pub async fn run(
             shutdown.clone(),
         ));
     }
-    let auth = crate::http::guard::Auth::new(&config.http, listener.local_addr()?)?;
-    let router = crate::http::router(Arc::clone(&service), &config.http, auth);
     let served = crate::http::serve(listener, router, shutdown.clone()).await;
     // If the server stopped on its own (an accept error), the other tasks must stop too.
     shutdown.cancel();

@@ -190,3 +190,40 @@ fn with_the_brokers_unreachable_sigterm_still_drains_within_the_grace_period() {
         started.elapsed()
     );
 }
+
+#[test]
+fn serve_refuses_an_unknown_kafka_client_property_naming_it_before_starting() {
+    // librdkafka's own property table decides what is unknown; the config file names the key.
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("posteriord.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "[http]\naddr = \"127.0.0.1:0\"\n[kafka]\nbrokers = \"127.0.0.1:9\"\ntopics = [\"t\"]\n\
+             [kafka.properties]\n\"no.such.client.property\" = \"on\"\n{}",
+            common::TEST_EXPERIMENTS
+        ),
+    )
+    .unwrap();
+    let mut child = Command::new(bin())
+        .arg("serve")
+        .arg("--config")
+        .arg(&config)
+        .env("POSTERIORD_STORE_DIR", dir.path().join("state"))
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let status = wait_exit(&mut child, Duration::from_secs(30));
+    if status.is_none() {
+        child.kill().ok();
+    }
+    let mut stderr = String::new();
+    std::io::Read::read_to_string(&mut child.stderr.take().unwrap(), &mut stderr).unwrap();
+    let status = status.unwrap_or_else(|| panic!("serve did not end; stderr:\n{stderr}"));
+    assert_eq!(status.code(), Some(2), "{stderr}");
+    assert!(
+        stderr.contains("kafka.properties") && stderr.contains("no.such.client.property"),
+        "{stderr}"
+    );
+}

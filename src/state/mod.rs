@@ -7,6 +7,7 @@
 pub mod cadence;
 pub mod image;
 pub mod members;
+pub mod partials;
 pub mod shards;
 pub mod units;
 
