@@ -690,7 +690,7 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
         let eval = timing.evaluating_ns as f64;
         let sim = timing.simulating_ns as f64;
         eprintln!(
-            "bench: {} simulations in {:.2} s wall on {} threads = {:.1} sims/s ({:.1} sims/s per thread); {} looks, {:.2} µs per look (thread time); evaluation {:.1}% of thread time, simulation {:.1}%",
+            "bench: {} simulations in {:.2} s wall on {} threads = {:.1} sims/s ({:.1} sims/s per thread); {} looks, {:.2} µs per look (thread time); evaluation {:.1}% of thread time, simulation {:.1}%; evaluation/simulation = {:.2}x; metric evaluations decided by the look-to-look bound {} of {}",
             opts.scenarios.len() * opts.sims,
             wall.as_secs_f64(),
             threads,
@@ -700,6 +700,9 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             (eval + sim) / 1e3 / timing.looks.max(1) as f64,
             100.0 * eval / (eval + sim).max(1.0),
             100.0 * sim / (eval + sim).max(1.0),
+            eval / sim.max(1.0),
+            timing.metrics_skipped,
+            timing.metrics_skipped + timing.metrics_computed,
         );
     }
     if let Some(path) = &args.svg {

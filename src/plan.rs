@@ -17,6 +17,7 @@ use serde_json::{json, Value};
 
 use crate::decide::alerts::{AlertBook, AlertChange};
 use crate::decide::evaluation::assess_rules_only;
+use crate::decide::screen::Screen;
 use crate::decide::Rule;
 use crate::event::{Micros, Outcome};
 use crate::experiment::{ExperimentDef, MetricKind};
@@ -190,6 +191,11 @@ pub struct Timing {
     pub simulating_ns: u128,
     /// Looks evaluated.
     pub looks: u64,
+    /// Metric evaluations decided by the look-to-look bound, without quadrature
+    /// (`decide::screen`).
+    pub metrics_skipped: u64,
+    /// Metric evaluations computed exactly.
+    pub metrics_computed: u64,
 }
 
 /// The ends of every run of one scenario, in run order.
@@ -334,6 +340,18 @@ pub fn simulate_run(
     run: usize,
     timing: &mut Timing,
 ) -> RunEnd {
+    simulate_run_with(opts, scenario_index, run, timing, true)
+}
+
+/// [`simulate_run`], with the look-to-look bound (`screened`, the default: the same findings
+/// at every look, see `decide::screen`) or with every look computed exactly.
+fn simulate_run_with(
+    opts: &PlanOptions,
+    scenario_index: usize,
+    run: usize,
+    timing: &mut Timing,
+    screened: bool,
+) -> RunEnd {
     let t_start = std::time::Instant::now();
     let mut evaluating = std::time::Duration::ZERO;
     let scenario = &opts.scenarios[scenario_index];
@@ -352,6 +370,7 @@ pub fn simulate_run(
     let regret = |arm: usize| (best - rates[p][arm]).abs();
     let mut rng = StdRng::seed_from_u64(run_seed(opts.seed, scenario_index, run));
     let mut book = AlertBook::without_intervals(opts.hold_down);
+    let mut screen = Screen::new();
     // The anytime-valid processes followed over the whole plan, also after the decision
     // (they read totals only, so following them costs no quadrature).
     let mut shadow = crate::decide::betting::EvidenceBook::new(false);
@@ -473,8 +492,14 @@ pub fn simulate_run(
         looks += 1;
         let t_eval = std::time::Instant::now();
         // The service's evaluation step without the lift quantiles, which only the history
-        // reads (the decisions are the same bit for bit: src/decide/tests.rs).
-        let mut evaluation = assess_rules_only(snapshot);
+        // reads (the decisions are the same bit for bit: src/decide/tests.rs), and without
+        // the quadrature of metrics whose rules an earlier look's values and a proven bound
+        // already decide (the same findings: decide::screen, tested below).
+        let mut evaluation = if screened {
+            screen.assess(snapshot)
+        } else {
+            assess_rules_only(snapshot)
+        };
         evaluation.fold_into(&mut book);
         evaluating += t_eval.elapsed();
         let total_units: u64 = units.iter().sum();
@@ -499,6 +524,8 @@ pub fn simulate_run(
         }
     }
     account(timing, t_start, evaluating, looks);
+    timing.metrics_skipped += screen.skipped;
+    timing.metrics_computed += screen.computed;
     let mut end = decided.unwrap_or(RunEnd {
         ending: Ending::Inconclusive,
         elapsed: horizon,
@@ -693,6 +720,8 @@ pub fn run(opts: &PlanOptions, progress: &dyn Progress) -> (Vec<ScenarioResult>,
                 t.evaluating_ns += local.evaluating_ns;
                 t.simulating_ns += local.simulating_ns;
                 t.looks += local.looks;
+                t.metrics_skipped += local.metrics_skipped;
+                t.metrics_computed += local.metrics_computed;
             });
         }
     });
@@ -1253,6 +1282,77 @@ mod tests {
             .flat_map(|s| (0..1000).map(move |r| run_seed(7, s, r)))
             .collect();
         assert_eq!(seeds.len(), 3000);
+    }
+
+    /// The look-to-look bound must not change a single decision: whole simulated runs, with
+    /// the exact path at every look against the screened one, over A/A, a harmful and a
+    /// helpful variant, on a conversion metric (harm at 0.99, equivalence on the primary) and
+    /// a defect-rate guardrail with a harm margin.
+    #[test]
+    fn screened_runs_end_exactly_like_runs_computed_at_every_look() {
+        let mut d = def();
+        d.metrics[0].rules.harm = Some(crate::experiment::HarmRule {
+            probability: 0.99,
+            margin: 0.0,
+        });
+        d.metrics.push(MetricDef {
+            name: "wilted-seedlings".into(),
+            kind: MetricKind::DefectRate(crate::experiment::ExposureBasis::Units),
+            prior: Prior::Gamma {
+                shape: 1.0,
+                rate: 1.0,
+            },
+            variant_priors: vec![None, None],
+            rules: MetricRules {
+                harm: Some(crate::experiment::HarmRule {
+                    probability: 0.95,
+                    margin: 0.1,
+                }),
+                ..MetricRules::default()
+            },
+        });
+        d.rules.guardrails = vec![1];
+        let aa = Scenario {
+            name: "A/A".into(),
+            effects: Vec::new(),
+        };
+        let effect = |metric: usize, relative: f64| Scenario {
+            name: format!("{relative}"),
+            effects: vec![Effect {
+                variant: 1,
+                metric,
+                relative,
+            }],
+        };
+        let opts = PlanOptions {
+            def: Arc::new(d),
+            cadence: crate::state::cadence::Cadence::new(HOUR, 100_000_000),
+            hold_down: 0,
+            sims: 3,
+            seed: 11,
+            units_per_day: 4000.0,
+            days: 6.0,
+            step: HOUR,
+            single_look: false,
+            baselines: vec![0.05, 0.02],
+            scenarios: vec![aa, effect(0, -0.2), effect(0, 0.1), effect(1, 0.5)],
+            threads: 1,
+            max_false_harm: 0.05,
+            max_wrong_ship: 0.05,
+        };
+        let mut skipped = 0;
+        for s in 0..opts.scenarios.len() {
+            for r in 0..opts.sims {
+                let mut exact = Timing::default();
+                let mut screened = Timing::default();
+                let a = simulate_run_with(&opts, s, r, &mut exact, false);
+                let b = simulate_run_with(&opts, s, r, &mut screened, true);
+                assert_eq!(a, b, "scenario {s}, run {r}");
+                skipped += screened.metrics_skipped;
+            }
+        }
+        // The bound must also be doing something, or this test proves nothing.
+        assert!(skipped > 100, "only {skipped} metric evaluations skipped");
     }
 
     #[test]

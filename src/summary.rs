@@ -91,6 +91,26 @@ enum Detail {
 }
 
 fn summarize_with(snapshot: ExperimentSnapshot, level: f64, detail: Detail) -> ExperimentSummary {
+    summarize_selected(snapshot, level, detail, &mut |_, _| true)
+}
+
+/// [`summarize_rules_only`] for the metrics `compute(metric, posteriors)` selects; the others
+/// keep their posteriors and get `arms: Err(StatsError::NotComputed)`. For a caller that has
+/// already proved that no rule reading those metrics' numbers can hold (`decide::screen`).
+/// The computed metrics equal [`summarize_rules_only`]'s bit for bit.
+pub fn summarize_rules_only_selected(
+    snapshot: ExperimentSnapshot,
+    compute: &mut dyn FnMut(usize, &Result<Arms, StatsError>) -> bool,
+) -> ExperimentSummary {
+    summarize_selected(snapshot, DEFAULT_LEVEL, Detail::Rules, compute)
+}
+
+fn summarize_selected(
+    snapshot: ExperimentSnapshot,
+    level: f64,
+    detail: Detail,
+    compute: &mut dyn FnMut(usize, &Result<Arms, StatsError>) -> bool,
+) -> ExperimentSummary {
     let def = &snapshot.def;
     let metrics = def
         .metrics
@@ -109,9 +129,13 @@ fn summarize_with(snapshot: ExperimentSnapshot, level: f64, detail: Detail) -> E
                 equivalence: detail == Detail::Full || i == def.rules.primary,
             };
             let posteriors = posteriors(m, totals);
-            let arms = match &posteriors {
-                Ok(p) => stats::compare(p, &options),
-                Err(e) => Err(e.clone()),
+            let arms = if !compute(i, &posteriors) {
+                Err(StatsError::NotComputed)
+            } else {
+                match &posteriors {
+                    Ok(p) => stats::compare(p, &options),
+                    Err(e) => Err(e.clone()),
+                }
             };
             MetricSummary { posteriors, arms }
         })

@@ -12,6 +12,7 @@
 pub mod alerts;
 pub mod betting;
 pub mod evaluation;
+pub mod screen;
 pub mod standing;
 
 use crate::event::Outcome;

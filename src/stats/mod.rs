@@ -9,6 +9,7 @@
 //! - `arms`: [`compare`] for 2..=64 arms, and [`decide`] (P(best), loss and P(beats
 //!   control) only) for frequent re-evaluation.
 //! - `srm`: [`sample_ratio_mismatch`].
+//! - `drift`: [`shift_bound`], how far any posterior probability can move between two looks.
 //! - `density`: posterior and lift densities for plots ([`posterior_density`], [`lift_density`]).
 //!
 //! **Invariant:** nothing here does I/O, allocates threads, or knows about async runtimes,
@@ -17,6 +18,7 @@
 
 mod arms;
 mod density;
+mod drift;
 mod grid;
 mod posterior;
 mod special;
@@ -24,6 +26,7 @@ mod srm;
 
 pub use arms::{compare, decide, ArmSummary, Arms, CompareOptions, Decision, Lift, MAX_ARMS};
 pub use density::{lift_density, plot_range, posterior_density, PLOT_TAIL};
+pub use drift::shift_bound;
 pub use posterior::{Beta, Gamma, MAX_LEVEL, MAX_RATE, MAX_SHAPE, MIN_RATE, MIN_SHAPE};
 pub use srm::{sample_ratio_mismatch, SampleRatio, SRM_P_THRESHOLD};
 
@@ -102,6 +105,10 @@ pub enum StatsError {
     /// caller's (every accepted input is answered; docs/methods.md lists the ranges).
     #[error("numerical failure in the statistics core: {0}")]
     Numerical(&'static str),
+    /// Deliberately not computed: an earlier look's exact values and a proven bound on how far
+    /// they can have moved ([`shift_bound`]) already decide every rule that reads them.
+    #[error("not computed: an earlier look's values and a proven bound already decide every rule that reads them")]
+    NotComputed,
 }
 
 impl StatsError {

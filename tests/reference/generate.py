@@ -16,6 +16,16 @@ Two kinds of case:
   mpmath.betainc / mpmath.gammainc.
   Quantiles by mpmath.findroot on those CDFs. Gamma lift quantiles use the exact identity
   lam_v/lam_c = (r_c/r_v) W/(1-W), W ~ Beta(a_v, a_c).
+* "gamma2": two Gamma arms by closed forms only, at 60 digits (no quadrature at all), for
+  shapes so small that the quadrature above does not finish (Gamma(1e-4, r): its log-density
+  window spans ~1e5 units of ln(lambda), and the bisection to 1e-30 never ends). With
+  X = r_i lam_i ~ Gamma(a_i, 1) independent, W = X_i/(X_i + X_j) ~ Beta(a_i, a_j), so
+  P(lam_i < c lam_j) = I_{c r_i/(r_j + c r_i)}(a_i, a_j) (../shared/METHODS.md section 1.2);
+  expected losses by the identity of METHODS section 1.3,
+  E[(lam_i - lam_j)+] = (a_i/r_i) P(lam_i+ > lam_j) - (a_j/r_j) P(lam_i > lam_j+), whose
+  cancellation 60 digits absorb; quantiles by bisection in ln(x) (no derivative, so flat
+  tails e^-16000 below the mean are no obstacle). Upper tails are taken as
+  betainc(a, b, x, 1), never 1 - lower.
 * "scipy": shapes of 1e5 and more (mpmath.betainc's hypergeometric series stops converging
   there, and exact binomial sums take too long at 40 digits). Double
   precision: scipy.special.betainc/betaincc (Boost, ~1e-12 relative at these sizes, cf.
@@ -100,7 +110,7 @@ CASES = [
     conv("tiny_prior_no_data", "prior Beta(2e-4, 2e-4) before any traffic", (2e-4, 2e-4),
          [(0, 0), (0, 0)]),
     defect("tiny_prior_no_defects", "prior Gamma(1e-4, 1): no crash yet in one arm", (1e-4, 1),
-           [(0, 10.0), (5, 10.0)], control=1),
+           [(0, 10.0), (5, 10.0)], control=1, kind="gamma2"),
     conv("extreme_level", "bakery banner at interval level 1 - 1e-10", (1, 1),
          [(530, 48), (512, 61)], level=0.9999999999),
 ]
@@ -529,6 +539,92 @@ def sp_case(case):
     return out
 
 
+# ---------------------------------------------------------------- two Gamma arms, closed forms
+def _bisect_log(f, lo, hi, iters=400):
+    """Root of an increasing f on [e^lo, e^hi] by bisection in ln(x)."""
+    lo, hi = mp.mpf(lo), mp.mpf(hi)
+    for _ in range(iters):
+        mid = (lo + hi) / 2
+        if f(mp.exp(mid)) < 0:
+            lo = mid
+        else:
+            hi = mid
+        if hi - lo < mp.mpf(10) ** -45 * max(1, abs(lo)):
+            break
+    return mp.exp((lo + hi) / 2)
+
+
+def gamma2_case(case):
+    assert case["metric"] == "defect_rate" and len(case["params"]) == 2
+    with mp.workdps(60):
+        (a0, r0), (a1, r1) = [(mp.mpf(a), mp.mpf(b)) for a, b in case["params"]]
+        a, r = [a0, a1], [r0, r1]
+        c = case["control"]
+
+        def below(i, j, cc, ai=None, aj=None):
+            """P(lam_i < cc lam_j), lam_i ~ Gamma(ai, r_i), lam_j ~ Gamma(aj, r_j)."""
+            ai = a[i] if ai is None else ai
+            aj = a[j] if aj is None else aj
+            x = cc * r[i] / (r[j] + cc * r[i])
+            return mp.betainc(ai, aj, 0, x, regularized=True)
+
+        def above(i, j, cc, ai=None, aj=None):
+            """P(lam_i > cc lam_j), directly from the upper tail."""
+            ai = a[i] if ai is None else ai
+            aj = a[j] if aj is None else aj
+            x = cc * r[i] / (r[j] + cc * r[i])
+            return mp.betainc(ai, aj, x, 1, regularized=True)
+
+        out = dict(prob_best=[], expected_loss=[], prob_beats_control=[], interval=[],
+                   lift_mean=[], lift_interval=[], prob_practically_equivalent=[],
+                   prob_harm=[])
+        level = mp.mpf(case["level"])
+        lo_q, hi_q = (1 - level) / 2, (1 + level) / 2
+        for i in range(2):
+            j = 1 - i
+            out["prob_best"].append(below(i, j, 1))
+            loss = (a[i] / r[i]) * above(i, j, 1, ai=a[i] + 1) \
+                - (a[j] / r[j]) * above(i, j, 1, aj=a[j] + 1)
+            out["expected_loss"].append(loss)
+
+            def cdf(x, i=i):
+                return mp.gammainc(a[i], 0, r[i] * x, regularized=True)
+
+            def sf(x, i=i):
+                return mp.gammainc(a[i], r[i] * x, mp.inf, regularized=True)
+
+            ends = []
+            for q in (lo_q, hi_q):
+                f = (lambda x, q=q: cdf(x) - q) if q < 0.5 else (lambda x, q=q: (1 - q) - sf(x))
+                ends.append(_bisect_log(f, -10 ** 6, 50))
+            out["interval"].append(ends)
+            if i == c:
+                for key in ("prob_beats_control", "lift_mean", "lift_interval",
+                            "prob_practically_equivalent", "prob_harm"):
+                    out[key].append(None)
+                continue
+            out["prob_beats_control"].append(below(i, c, 1))
+            inv = r[c] / (a[c] - 1) if a[c] > 1 else None
+            out["lift_mean"].append(a[i] / r[i] * inv - 1 if inv is not None else None)
+            # lam_i/lam_c = (r_c/r_i) W/(1-W), W ~ Beta(a_i, a_c): quantiles of W by bisection
+            # in ln(W/(1-W)).
+            lift = []
+            for q in (lo_q, hi_q):
+                def f(odds, q=q):
+                    w = odds / (1 + odds)
+                    if q < 0.5:
+                        return mp.betainc(a[i], a[c], 0, w, regularized=True) - q
+                    return (1 - q) - mp.betainc(a[i], a[c], w, 1, regularized=True)
+                odds = _bisect_log(f, -10 ** 6, 10 ** 4)
+                lift.append(r[c] / r[i] * odds - 1)
+            out["lift_interval"].append(lift)
+            rope, harm = mp.mpf(case["rope"]), mp.mpf(case["harm_margin"])
+            lower = below(i, c, 1 - rope) if rope < 1 else mp.mpf(0)
+            out["prob_practically_equivalent"].append(below(i, c, 1 + rope) - lower)
+            out["prob_harm"].append(above(i, c, 1 + harm))
+        return out
+
+
 def to_json(v):
     """Numbers to JSON; values beyond double range (a lift quantile of e^1000) become null,
     which the Rust test reads as "must be infinite or beyond 1e300"."""
@@ -547,7 +643,12 @@ def main():
         if only and case["id"] not in only:
             continue
         print(f"computing {case['id']} ...", file=sys.stderr)
-        res = mp_case(case) if case["kind"] == "mpmath" else sp_case(case)
+        if case["kind"] == "mpmath":
+            res = mp_case(case)
+        elif case["kind"] == "gamma2":
+            res = gamma2_case(case)
+        else:
+            res = sp_case(case)
         case = dict(case)
         case["expect"] = {key: to_json(val) for key, val in res.items()}
         out.append(case)

@@ -1,0 +1,139 @@
+//! Looks decided without quadrature: the exact values of an earlier look plus a proven bound
+//! on how far they can have moved since ([`crate::stats::shift_bound`]).
+//!
+//! A rule's probability P at this look and its exact value P₀ at the anchor look (the last
+//! look that computed the metric) differ by at most D = TV(variant) + TV(control), the total
+//! variation distances between each arm's anchor and current posterior (docs/methods.md §9
+//! has the proof). The exact path itself is within `EXACT_ERROR` of the true value (1e-9
+//! documented, ≤ 2.1e-10 verified against mpmath), so when P̂₀ + D + 2·`EXACT_ERROR` is below
+//! the threshold, the exact path run now would also find P̂ below it: the rule cannot hold,
+//! and the metric's quadrature is skipped. Otherwise the metric is computed exactly, and that
+//! look becomes its new anchor.
+//!
+//! Which rules read a metric's numbers (`evaluate`): `harm` reads P(harm) of each variant;
+//! on the primary metric `equivalent` reads the smallest ROPE probability (it cannot hold when
+//! one variant's is proven below its threshold) and `ship` reads expected losses, which are
+//! not probabilities and have no such bound — a primary metric with a `ship` rule is always
+//! computed. Guardrail numbers are read only by `ship`. Findings are therefore the same as the
+//! exact path's on every look; `plan`'s tests compare whole simulated runs both ways.
+
+use crate::state::ExperimentSnapshot;
+use crate::stats::{shift_bound, Arms};
+use crate::summary::summarize_rules_only_selected;
+
+use super::evaluation::{evaluation_time, Evaluation};
+
+/// Allowance for the exact path's error on one probability. docs/methods.md §5 promises
+/// ≤ 1e-9 and verifies ≤ 2.1e-10 against mpmath; ten times the promise is kept in hand.
+pub const EXACT_ERROR: f64 = 1e-8;
+
+/// One metric's exact values at its anchor look.
+#[derive(Debug, Clone)]
+struct Anchor {
+    posteriors: Arms,
+    harm: Vec<Option<f64>>,
+    rope: Vec<Option<f64>>,
+}
+
+/// Per-experiment state of the screen: one anchor per metric, and counts for `--bench`.
+#[derive(Debug, Clone, Default)]
+pub struct Screen {
+    anchors: Vec<Option<Anchor>>,
+    /// Metric evaluations skipped because the bound decided them.
+    pub skipped: u64,
+    /// Metric evaluations computed exactly.
+    pub computed: u64,
+}
+
+impl Screen {
+    /// A screen with no anchors: the first look of every metric is computed exactly.
+    pub fn new() -> Self {
+        Self::default()
+    }
+
+    /// Summarize `snapshot` with the rules' inputs, computing only the metrics whose rules
+    /// the bound cannot decide, and evaluate the rules (as
+    /// [`super::evaluation::assess_rules_only`], with the same findings).
+    pub fn assess(&mut self, snapshot: ExperimentSnapshot) -> Evaluation {
+        let def = std::sync::Arc::clone(&snapshot.def);
+        let n_metrics = def.metrics.len();
+        if self.anchors.len() != n_metrics {
+            self.anchors = vec![None; n_metrics];
+        }
+        let at = evaluation_time(&snapshot);
+        let anchors = &self.anchors;
+        let (mut skipped, mut computed) = (0u64, 0u64);
+        let summary = summarize_rules_only_selected(snapshot, &mut |m, posteriors| {
+            let quiet = match (posteriors, &anchors[m]) {
+                (Ok(now), Some(anchor)) => silent(&def, m, anchor, now),
+                _ => false,
+            };
+            if quiet {
+                skipped += 1;
+            } else {
+                computed += 1;
+            }
+            !quiet
+        });
+        self.skipped += skipped;
+        self.computed += computed;
+        for (m, metric) in summary.metrics.iter().enumerate() {
+            if let (Ok(posteriors), Ok(arms)) = (&metric.posteriors, &metric.arms) {
+                self.anchors[m] = Some(Anchor {
+                    posteriors: posteriors.clone(),
+                    harm: arms.iter().map(|a| a.prob_harm).collect(),
+                    rope: arms.iter().map(|a| a.prob_practically_equivalent).collect(),
+                });
+            }
+        }
+        let findings = super::evaluate(&summary);
+        Evaluation {
+            summary,
+            findings,
+            changes: Vec::new(),
+            at,
+        }
+    }
+}
+
+/// True when no rule reading metric `m`'s numbers can hold at posteriors `now`, proven from
+/// the anchor's exact values and the shift bound.
+fn silent(def: &crate::experiment::ExperimentDef, m: usize, anchor: &Anchor, now: &Arms) -> bool {
+    let metric = &def.metrics[m];
+    let primary = m == def.rules.primary;
+    if primary && metric.rules.ship.is_some() {
+        return false;
+    }
+    let c = def.control;
+    let k = now.len();
+    let Some(moved_c) = shift_bound(&anchor.posteriors, now, c) else {
+        return false;
+    };
+    let mut moved = Vec::with_capacity(k);
+    for v in 0..k {
+        match shift_bound(&anchor.posteriors, now, v) {
+            Some(d) => moved.push(d + moved_c),
+            None => return false,
+        }
+    }
+    let below = |value: Option<f64>, v: usize, threshold: f64| {
+        value.is_some_and(|p| p + moved[v] + 2.0 * EXACT_ERROR < threshold)
+    };
+    if let Some(rule) = metric.rules.harm {
+        let all_below = (0..k)
+            .filter(|&v| v != c)
+            .all(|v| below(anchor.harm[v], v, rule.probability));
+        if !all_below {
+            return false;
+        }
+    }
+    if primary {
+        let one_below = (0..k)
+            .filter(|&v| v != c)
+            .any(|v| below(anchor.rope[v], v, def.rules.equivalence_probability));
+        if !one_below {
+            return false;
+        }
+    }
+    true
+}
