@@ -176,7 +176,10 @@ fn alerts_reach_a_receiver_that_was_down_signed_and_once_per_id() {
         .duration_since(std::time::UNIX_EPOCH)
         .unwrap()
         .as_secs() as i64;
-    assert!((now - sent).abs() < 120, "timestamp {sent} is the attempt's, now {now}");
+    assert!(
+        (now - sent).abs() < 120,
+        "timestamp {sent} is the attempt's, now {now}"
+    );
     assert_eq!(r["path"], "/hooks/experiments");
     assert!(r["content_type"]
         .as_str()

@@ -1551,7 +1551,9 @@ pub fn webhook_key(value: &str) -> Result<Vec<u8>, String> {
     // Receivers' libraries accept the base64 with or without its `=` padding.
     let key = base64::engine::general_purpose::STANDARD_NO_PAD
         .decode(encoded.trim_end_matches('='))
-        .map_err(|e| format!("starts with `{WEBHOOK_SECRET_PREFIX}` but the rest is not base64 ({e})"))?;
+        .map_err(|e| {
+            format!("starts with `{WEBHOOK_SECRET_PREFIX}` but the rest is not base64 ({e})")
+        })?;
     if key.is_empty() {
         return Err(format!("holds `{WEBHOOK_SECRET_PREFIX}` with an empty key"));
     }

@@ -408,11 +408,21 @@ fn webhook_secrets_in_the_standard_webhooks_form_are_decoded_and_bad_ones_named(
     let c = Config::parse(&text, "test.toml", &env("whsec_b3JjaGFyZA==")).unwrap();
     assert_eq!(c.alerts.webhooks[0].secret, b"orchard");
     let c = Config::parse(&text, "test.toml", &env("whsec_b3JjaGFyZA")).unwrap();
-    assert_eq!(c.alerts.webhooks[0].secret, b"orchard", "padding is optional");
+    assert_eq!(
+        c.alerts.webhooks[0].secret, b"orchard",
+        "padding is optional"
+    );
     let c = Config::parse(&text, "test.toml", &env("orchard")).unwrap();
     assert_eq!(c.alerts.webhooks[0].secret, b"orchard");
     let err = Config::parse(&text, "test.toml", &env("whsec_not base64!")).unwrap_err();
-    assert_eq!(err.line, Some(line_of(&text, "secret_env = \"ORCHARD_HOOK\"")), "{err}");
-    assert!(err.to_string().contains("alerts.webhook[0].secret_env"), "{err}");
+    assert_eq!(
+        err.line,
+        Some(line_of(&text, "secret_env = \"ORCHARD_HOOK\"")),
+        "{err}"
+    );
+    assert!(
+        err.to_string().contains("alerts.webhook[0].secret_env"),
+        "{err}"
+    );
     assert!(err.to_string().contains("not base64"), "{err}");
 }
