@@ -15,6 +15,35 @@ use crate::app::{self, RunOptions};
 use crate::config::{self, Config, HttpConfig, StoreConfig};
 use crate::simulate::{self, SimulateOptions};
 
+/// Writes a command's output to standard output and returns the write's error instead of
+/// panicking as `print!` does, so a reader that closes the pipe early (`| head`) ends the
+/// command quietly: `main` exits 0 on a broken pipe, as command-line filters do.
+macro_rules! out {
+    ($($arg:tt)*) => {{
+        use std::io::Write as _;
+        let mut o = std::io::stdout().lock();
+        write!(o, $($arg)*).and_then(|()| o.flush())
+    }};
+}
+
+/// [`out!`] with a newline.
+macro_rules! outln {
+    ($($arg:tt)*) => {{
+        use std::io::Write as _;
+        let mut o = std::io::stdout().lock();
+        writeln!(o, $($arg)*).and_then(|()| o.flush())
+    }};
+}
+
+/// Whether `e` is standard output's reader having gone away (`EPIPE`), which ends a command
+/// quietly with success rather than as a failure.
+pub fn is_broken_pipe(e: &anyhow::Error) -> bool {
+    e.chain().any(|c| {
+        c.downcast_ref::<std::io::Error>()
+            .is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe)
+    })
+}
+
 /// Continuous, exact Bayesian monitoring of online experiments.
 #[derive(Debug, Parser)]
 #[command(name = "posteriord", version, about, long_about = None)]
@@ -51,16 +80,21 @@ pub enum Command {
     },
     /// Check a config file; exit 0 when valid, else name the key and line and exit 2.
     CheckConfig {
-        /// The TOML config file.
-        file: PathBuf,
+        /// The TOML config file (as for every other command).
+        #[arg(long, required_unless_present = "file", conflicts_with = "file")]
+        config: Option<PathBuf>,
+        /// The TOML config file, given without `--config`.
+        #[arg(value_name = "FILE")]
+        file: Option<PathBuf>,
     },
     /// Compare variants from counts given as JSON (a file, or standard input).
+    #[command(after_long_help = crate::compare::HELP)]
     Compare {
         /// Input JSON file; standard input when absent.
         file: Option<PathBuf>,
-        /// Output format.
-        #[arg(long, value_enum, default_value_t = CompareFormat::Json)]
-        format: CompareFormat,
+        /// Output: `json` for machines, `text` (a table) for people.
+        #[arg(long, value_enum, default_value_t = OutputFormat::Json)]
+        format: OutputFormat,
     },
     /// Simulate what an experiment's stopping rules will decide with its traffic, before launch.
     Plan(PlanArgs),
@@ -87,8 +121,11 @@ pub enum Command {
         /// NDJSON event files, in order; `-` is standard input.
         #[arg(required = true)]
         events: Vec<String>,
-        /// JSON for machines instead of text.
-        #[arg(long)]
+        /// Output: `text` for people, `json` for machines.
+        #[arg(long, value_enum, default_value_t = OutputFormat::Text)]
+        format: OutputFormat,
+        /// The same as `--format json` (kept for scripts written before `--format`).
+        #[arg(long, hide = true, conflicts_with = "format")]
         json: bool,
     },
 }
@@ -143,8 +180,11 @@ pub struct PlanArgs {
     /// Flag scenarios whose share of runs shipping the wrong way exceeds this.
     #[arg(long, default_value_t = crate::plan::DEFAULT_MAX_WRONG_SHIP)]
     pub max_wrong_ship: f64,
-    /// JSON for machines instead of a table.
-    #[arg(long)]
+    /// Output: `text` for people, `json` for machines.
+    #[arg(long, value_enum, default_value_t = OutputFormat::Text)]
+    pub format: OutputFormat,
+    /// The same as `--format json` (kept for scripts written before `--format`).
+    #[arg(long, hide = true, conflicts_with = "format")]
     pub json: bool,
     /// Also write an SVG plot of decision shares over time to this file.
     #[arg(long)]
@@ -157,13 +197,14 @@ pub struct PlanArgs {
     pub bench: bool,
 }
 
-/// Output format of `compare`.
-#[derive(Debug, Clone, Copy, ValueEnum)]
-pub enum CompareFormat {
+/// What a command prints: the one `--format` switch of `compare`, `plan` and `replay`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum OutputFormat {
+    /// Text (tables) for people.
+    #[value(alias = "table")]
+    Text,
     /// JSON for machines.
     Json,
-    /// A table for people.
-    Table,
 }
 
 /// Bad input or configuration: the message is for the user, the exit code is 2.
@@ -196,14 +237,20 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
             )
         }
         Command::Serve { config } => serve(&config),
-        Command::CheckConfig { file } => check_config(&file),
+        Command::CheckConfig { config, file } => {
+            let path = config.or(file).ok_or_else(|| {
+                UsageError("check-config needs a config file: --config FILE".into())
+            })?;
+            check_config(&path)
+        }
         Command::Compare { file, format } => compare(file, format),
         Command::Plan(args) => plan(args),
         Command::Replay {
             config,
             events,
+            format,
             json,
-        } => replay(&config, &events, json),
+        } => replay(&config, &events, json || format == OutputFormat::Json),
         Command::ReadSample {
             config,
             source,
@@ -283,14 +330,14 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
         let listener = app::bind(config.http.addr).await?;
         let bound = listener.local_addr()?;
         // The dashboard comes first: it is what a person opening the demo wants.
-        println!("dashboard: http://{bound}/");
-        println!("posteriord demo: simulated traffic for the invented bakery Crumb & Co and the gardening app Pocket Orchard");
-        println!("  experiments: http://{bound}/v1/experiments");
+        let _ = outln!("dashboard: http://{bound}/");
+        let _ = outln!("posteriord demo: simulated traffic for the invented bakery Crumb & Co and the gardening app Pocket Orchard");
+        let _ = outln!("  experiments: http://{bound}/v1/experiments");
         for e in &config.experiments {
-            println!("  {:<28} http://{bound}/experiments/{}", e.id, e.id);
+            let _ = outln!("  {:<28} http://{bound}/experiments/{}", e.id, e.id);
         }
-        println!("  metrics:     http://{bound}/metrics");
-        println!("  stop with Ctrl-C{}", duration.map_or(String::new(), |d| format!(" (or wait {} s)", d.as_secs())));
+        let _ = outln!("  metrics:     http://{bound}/metrics");
+        let _ = outln!("  stop with Ctrl-C{}", duration.map_or(String::new(), |d| format!(" (or wait {} s)", d.as_secs())));
         let shutdown = CancellationToken::new();
         tokio::spawn(cancel_on_signal(shutdown.clone()));
         if let Some(d) = duration {
@@ -329,7 +376,7 @@ fn serve(path: &std::path::Path) -> anyhow::Result<()> {
     let result = rt.block_on(async move {
         let listener = app::bind(config.http.addr).await?;
         let bound = listener.local_addr()?;
-        println!("posteriord listening on http://{bound}");
+        let _ = outln!("posteriord listening on http://{bound}");
         tracing::info!(addr = %bound, experiments = config.experiments.len(), kafka = config.kafka.is_some(), "serving");
         let shutdown = CancellationToken::new();
         tokio::spawn(cancel_on_signal(shutdown.clone()));
@@ -356,7 +403,7 @@ fn serve(path: &std::path::Path) -> anyhow::Result<()> {
 
 fn check_config(path: &std::path::Path) -> anyhow::Result<()> {
     let config = load_config(path)?;
-    println!(
+    outln!(
         "{}: ok ({} experiment{}, {} source mapping{}, Kafka {})",
         path.display(),
         config.experiments.len(),
@@ -372,7 +419,7 @@ fn check_config(path: &std::path::Path) -> anyhow::Result<()> {
         } else {
             "not configured"
         }
-    );
+    )?;
     for def in &config.experiments {
         for w in crate::decide::standing::config_warnings(def) {
             eprintln!("warning: {w}");
@@ -381,7 +428,7 @@ fn check_config(path: &std::path::Path) -> anyhow::Result<()> {
     Ok(())
 }
 
-fn compare(file: Option<PathBuf>, format: CompareFormat) -> anyhow::Result<()> {
+fn compare(file: Option<PathBuf>, format: OutputFormat) -> anyhow::Result<()> {
     let input = match &file {
         Some(path) => std::fs::read_to_string(path)
             .map_err(|e| UsageError(format!("cannot read {}: {e}", path.display())))?,
@@ -394,8 +441,8 @@ fn compare(file: Option<PathBuf>, format: CompareFormat) -> anyhow::Result<()> {
         }
     };
     let format = match format {
-        CompareFormat::Json => crate::compare::Format::Json,
-        CompareFormat::Table => crate::compare::Format::Table,
+        OutputFormat::Json => crate::compare::Format::Json,
+        OutputFormat::Text => crate::compare::Format::Table,
     };
     let output = crate::compare::run(&input, format).map_err(|e| -> anyhow::Error {
         if e.is_input_error() {
@@ -404,9 +451,9 @@ fn compare(file: Option<PathBuf>, format: CompareFormat) -> anyhow::Result<()> {
             e.into()
         }
     })?;
-    print!("{output}");
+    out!("{output}")?;
     if !output.ends_with('\n') {
-        println!();
+        outln!("")?;
     }
     Ok(())
 }
@@ -711,7 +758,7 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
         std::fs::write(path, svg).with_context(|| format!("cannot write {}", path.display()))?;
     }
     let def = &opts.def;
-    if args.json {
+    if args.json || args.format == OutputFormat::Json {
         let doc = serde_json::json!({
             "experiment": def.id,
             "primary_metric": def.metrics[def.rules.primary].name,
@@ -727,9 +774,9 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             "sweeps": sweep_docs,
             "caution": crate::doc::CAUTION,
         });
-        println!("{}", serde_json::to_string_pretty(&doc)?);
+        outln!("{}", serde_json::to_string_pretty(&doc)?)?;
     } else {
-        println!(
+        outln!(
             "plan for `{}`: {} runs per scenario, {} units/day for {} days, {} (seed {})\n",
             def.id,
             opts.sims,
@@ -746,12 +793,12 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
                 )
             },
             opts.seed
-        );
+        )?;
         for r in &results {
-            println!("{}", plan::scenario_table(&opts, r));
+            outln!("{}", plan::scenario_table(&opts, r))?;
         }
-        print!("{sweep_text}");
-        println!("{}", crate::doc::CAUTION);
+        out!("{sweep_text}")?;
+        outln!("{}", crate::doc::CAUTION)?;
     }
     Ok(())
 }
@@ -789,7 +836,7 @@ fn read_sample(
     };
     let report = crate::sample::read_sample(&config, &source.mapping, input, lines)
         .map_err(|e| UsageError(format!("cannot read {file}: {e}")))?;
-    print!("{}", crate::sample::to_text(&report));
+    out!("{}", crate::sample::to_text(&report))?;
     Ok(())
 }
 
@@ -817,12 +864,12 @@ fn replay(config: &std::path::Path, events: &[String], json: bool) -> anyhow::Re
         crate::replay::replay(&config, &inputs, &bar).map_err(|e| UsageError(e.to_string()))?;
     bar.finish_and_clear();
     if json {
-        println!(
+        outln!(
             "{}",
             serde_json::to_string_pretty(&crate::replay::to_json(&report))?
-        );
+        )?;
     } else {
-        print!("{}", crate::replay::to_text(&report));
+        out!("{}", crate::replay::to_text(&report))?;
     }
     Ok(())
 }

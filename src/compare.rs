@@ -22,6 +22,29 @@ use serde::{Deserialize, Serialize};
 
 use crate::stats::{self, ArmSummary, Arms, CompareOptions, StatsError};
 
+/// The input and output of `posteriord compare`, shown by `posteriord compare --help`
+/// (docs/compare.md has the full schema).
+pub const HELP: &str = r#"Input (a JSON object; a file or standard input):
+  {"kind": "conversion",                      conversion | defect_rate (the config's `kind`)
+   "prior": {"alpha": 1, "beta": 1},          conversion: alpha, beta; defect_rate: shape, rate
+   "control": "control",                      optional; default: the first variant
+   "interval": 0.95,                          optional; probability inside the credible interval
+   "rope": 0.01,                              optional; ±relative lift counted as no difference
+   "harm_margin": 0.0,                        optional; relative margin of the harm probability
+   "variants": [                              2 to 64 variants
+     {"name": "control",   "trials": 1000, "successes": 112},
+     {"name": "tall-pots", "trials": 1000, "successes": 131}]}
+  Defect rates: variants with "count" (defects) and "exposure" (units of exposure).
+  Any variant may carry its own "prior". Unknown fields are refused.
+
+Output (--format json, the default): per variant its posterior ({alpha, beta} or
+{shape, rate}), mean, sd, interval, prob_best, expected_loss, prob_better_than_control,
+lift {mean, interval}, prob_practically_equivalent and prob_harm (null for the control).
+--format text prints the same as a table, rates in %, lifts in relative %.
+
+Posteriors assume the model (independent units, a stable rate per variant) and clean data:
+check the sample ratio and data quality before acting on the numbers."#;
+
 /// Output format of `posteriord compare`.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Format {
@@ -82,7 +105,8 @@ impl CompareError {
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 struct RawInput {
-    metric: String,
+    #[serde(alias = "metric")]
+    kind: String,
     prior: Option<RawPrior>,
     control: Option<String>,
     interval: Option<f64>,
@@ -128,7 +152,7 @@ impl Metric {
 
 #[derive(Serialize)]
 struct Output {
-    metric: &'static str,
+    kind: &'static str,
     control: String,
     rope: f64,
     harm_margin: f64,
@@ -181,19 +205,91 @@ struct OutVariant {
     prob_harm: Option<f64>,
 }
 
+/// The input read in the user's terms: the shape is checked on the JSON value first, so a
+/// wrong shape is named as the user wrote it (an array, a missing `variants`), never as our
+/// internal types.
+fn parse_input(input: &str) -> Result<RawInput, CompareError> {
+    let value: serde_json::Value = serde_json::from_str(input)?;
+    let Some(object) = value.as_object() else {
+        return Err(invalid(format!(
+            "the input must be one JSON object such as {{\"kind\": \"conversion\", \"prior\": {{...}}, \"variants\": [...]}}, not {} (see posteriord compare --help)",
+            json_kind(&value)
+        )));
+    };
+    if !object.contains_key("kind") && !object.contains_key("metric") {
+        return Err(invalid(
+            "missing field `kind` (\"conversion\" or \"defect_rate\")",
+        ));
+    }
+    match object.get("variants") {
+        None => {
+            return Err(invalid(
+                "missing field `variants` (a list of 2 to 64 variants)",
+            ))
+        }
+        Some(serde_json::Value::Array(vs)) => {
+            for (i, v) in vs.iter().enumerate() {
+                if !v.is_object() {
+                    return Err(invalid(format!(
+                        "variant #{} must be an object such as {{\"name\": \"control\", \"trials\": 1000, \"successes\": 112}}, not {}",
+                        i + 1,
+                        json_kind(v)
+                    )));
+                }
+            }
+        }
+        Some(other) => {
+            return Err(invalid(format!(
+                "`variants` must be a list of variant objects, not {}",
+                json_kind(other)
+            )))
+        }
+    }
+    if let Some(p) = object
+        .get("prior")
+        .filter(|p| !p.is_object() && !p.is_null())
+    {
+        return Err(invalid(format!(
+            "`prior` must be an object such as {{\"alpha\": 1, \"beta\": 1}}, not {}",
+            json_kind(p)
+        )));
+    }
+    serde_json::from_value(value).map_err(|e| {
+        // Whatever serde still finds (a wrong type, an unknown field) is said without the
+        // names of our own structs.
+        invalid(
+            e.to_string()
+                .replace("struct RawInput", "the input object")
+                .replace("struct RawVariant", "a variant object")
+                .replace("struct RawPrior", "a prior object"),
+        )
+    })
+}
+
+fn json_kind(v: &serde_json::Value) -> &'static str {
+    match v {
+        serde_json::Value::Null => "null",
+        serde_json::Value::Bool(_) => "true or false",
+        serde_json::Value::Number(_) => "a number",
+        serde_json::Value::String(_) => "a string",
+        serde_json::Value::Array(_) => "a list",
+        serde_json::Value::Object(_) => "an object",
+    }
+}
+
 fn invalid(msg: impl Into<String>) -> CompareError {
     CompareError::Invalid(msg.into())
 }
 
 /// Run `posteriord compare` on the input JSON text and render the report.
 pub fn run(input: &str, format: Format) -> Result<String, CompareError> {
-    let raw: RawInput = serde_json::from_str(input)?;
-    let metric = match raw.metric.as_str() {
+    let raw = parse_input(input)?;
+    let metric = match raw.kind.as_str() {
         "conversion" => Metric::Conversion,
         "defect_rate" => Metric::DefectRate,
         other => {
             return Err(invalid(format!(
-                "unknown metric {other:?}; expected \"conversion\" or \"defect_rate\""
+                "unknown kind {other:?}; expected \"conversion\" or \"defect_rate\""
             )))
         }
     };
@@ -251,7 +347,7 @@ pub fn run(input: &str, format: Format) -> Result<String, CompareError> {
         .map(|(i, (v, s))| out_variant(&v.name, posterior_of(&arms, i), s))
         .collect();
     let output = Output {
-        metric: metric.name(),
+        kind: metric.name(),
         control: control_name,
         rope: opts.rope,
         harm_margin: opts.harm_margin,
@@ -422,7 +518,7 @@ fn render_table(out: &Output, metric: Metric, level: f64) -> String {
     let _ = writeln!(
         text,
         "metric: {} ({direction}); control: {}; ROPE: ±{}% lift; harm margin: {}%",
-        out.metric,
+        out.kind,
         out.control,
         trim_number(out.rope * 100.0),
         trim_number(out.harm_margin * 100.0)

@@ -29,6 +29,8 @@ fn main() -> ExitCode {
     init_logging();
     match cli::run(cli) {
         Ok(()) => ExitCode::SUCCESS,
+        // The reader of standard output is gone (`| head`): nothing is left to say to anyone.
+        Err(e) if cli::is_broken_pipe(&e) => ExitCode::SUCCESS,
         Err(e) if e.downcast_ref::<UsageError>().is_some() => {
             eprintln!("posteriord: {e}");
             ExitCode::from(2)

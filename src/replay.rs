@@ -244,16 +244,10 @@ pub fn replay(
                     None => {}
                 }
             }
-            // Due snapshots are in input order; each carries the replay shard's position just
-            // past the event that made it due, which maps back to that event's line.
-            let batch_start = offset - items.len() as i64;
-            for snapshot in batch.due {
-                let line = snapshot
-                    .positions
-                    .iter()
-                    .find(|(s, _)| s == REPLAY_SHARD)
-                    .and_then(|(_, next)| numbers.get((*next - 1 - batch_start) as usize).copied())
-                    .unwrap_or(0);
+            // Due snapshots are in input order, each with the batch index of the event that
+            // made it due, which maps back to that event's line.
+            for (snapshot, item) in batch.due.into_iter().zip(batch.due_items) {
+                let line = numbers.get(item).copied().unwrap_or(0);
                 report.evaluations += 1;
                 let evaluation = evaluate_snapshot(&mut report.book, snapshot);
                 for change in evaluation.changes {
@@ -318,6 +312,59 @@ pub fn to_json(report: &ReplayReport) -> Value {
             .collect::<Vec<_>>(),
         "caution": crate::doc::CAUTION,
     })
+}
+
+/// Each variant by name with its units and, per metric, its final posterior: the
+/// distribution's parameters, the posterior mean and the credible interval, conversion rates
+/// in % and defect rates per unit of exposure.
+fn final_posteriors(summary: &crate::summary::ExperimentSummary) -> String {
+    use std::fmt::Write;
+    let snap = &summary.snapshot;
+    let def = &snap.def;
+    let mut out = String::new();
+    for (v, variant) in def.variants.iter().enumerate() {
+        let _ = writeln!(
+            out,
+            "    {}{}: {} units",
+            variant.name,
+            if v == def.control { " (control)" } else { "" },
+            snap.units.get(v).copied().unwrap_or(0)
+        );
+        for (metric, ms) in def.metrics.iter().zip(&summary.metrics) {
+            let params = match ms.posteriors.as_ref() {
+                Ok(crate::stats::Arms::Beta(b)) => b
+                    .get(v)
+                    .map(|p| format!("Beta({}, {})", p.alpha(), p.beta())),
+                Ok(crate::stats::Arms::Gamma(g)) => g
+                    .get(v)
+                    .map(|p| format!("Gamma({}, {})", p.shape(), p.rate())),
+                Err(e) => Some(format!("not computed: {e}")),
+            };
+            let numbers = ms.arms.as_ref().ok().and_then(|a| a.get(v)).map(|a| {
+                let level = a.interval.level * 100.0;
+                match metric.kind {
+                    crate::experiment::MetricKind::Conversion => format!(
+                        "posterior mean {:.3}%, {level:.0}% interval {:.3}% to {:.3}%",
+                        a.mean * 100.0,
+                        a.interval.lower * 100.0,
+                        a.interval.upper * 100.0
+                    ),
+                    crate::experiment::MetricKind::DefectRate(_) => format!(
+                        "posterior mean {:.4e}, {level:.0}% interval {:.4e} to {:.4e} per unit of exposure",
+                        a.mean, a.interval.lower, a.interval.upper
+                    ),
+                }
+            });
+            let _ = writeln!(
+                out,
+                "      {:<16} {}{}",
+                metric.name,
+                params.unwrap_or_default(),
+                numbers.map(|n| format!("; {n}")).unwrap_or_default()
+            );
+        }
+    }
+    out
 }
 
 /// The report as text for a person.
@@ -391,9 +438,8 @@ pub fn to_text(report: &ReplayReport) -> String {
         let snap = &summary.snapshot;
         let _ = writeln!(
             out,
-            "  {}: units {:?}; rules holding now: {}",
+            "  {}: rules holding now: {}",
             snap.def.id,
-            snap.units,
             if findings.is_empty() {
                 "none".to_string()
             } else {
@@ -405,6 +451,7 @@ pub fn to_text(report: &ReplayReport) -> String {
             }
         );
         let def = &snap.def;
+        out.push_str(&final_posteriors(summary));
         for st in
             crate::decide::standing::standings(summary, findings, Some(report.book.evidence()))
         {

@@ -1,8 +1,12 @@
 //! Alert sinks: the deliveries the service's alert desk holds, sent as CloudEvents 1.0 JSON to
-//! signed webhooks and to a Kafka topic, with the event's stable id as the idempotency key.
-//! Delivery is at least once; receivers drop repeats by the `id` of the event (also sent as
-//! `idempotency-key`). Each alert carries the caution that posteriors assume the model and that
-//! data quality comes first.
+//! webhooks signed per the Standard Webhooks specification and to a Kafka topic, with the
+//! event's stable id as the idempotency key. Delivery is at least once; receivers drop repeats
+//! by the `id` of the event (also sent as `webhook-id`). Each alert carries the caution that
+//! posteriors assume the model and that data quality comes first.
+//!
+//! The signature is written here with the `hmac`, `sha2` and `base64` crates: it is three
+//! headers and one MAC, and the Standard Webhooks libraries for Rust bring an HTTP stack of
+//! their own.
 
 use std::sync::Arc;
 use std::time::Duration;
@@ -16,21 +20,32 @@ use crate::config::{AlertsConfig, KafkaConfig};
 use crate::service::alerts::Delivery;
 use crate::service::{now_micros, Service};
 
-/// Header carrying `sha256=<hex HMAC-SHA256 of the body>` keyed with the webhook's secret.
-pub const SIGNATURE_HEADER: &str = "posteriord-signature";
-/// Header carrying the event id, for receivers that deduplicate on a header.
-pub const IDEMPOTENCY_HEADER: &str = "idempotency-key";
+/// Standard Webhooks: the message id, the same for every attempt (the CloudEvent's `id`).
+pub const ID_HEADER: &str = "webhook-id";
+/// Standard Webhooks: the attempt's time in whole seconds since the Unix epoch.
+pub const TIMESTAMP_HEADER: &str = "webhook-timestamp";
+/// Standard Webhooks: `v1,<base64 HMAC-SHA256 of "{id}.{timestamp}.{body}">`.
+pub const SIGNATURE_HEADER: &str = "webhook-signature";
 /// Longest wait between two attempts of one delivery.
 const MAX_BACKOFF: Duration = Duration::from_secs(60);
 /// How often the delivery loop looks for due deliveries.
 const DELIVERY_TICK: Duration = Duration::from_millis(250);
 
-/// Hex HMAC-SHA256 of `body` under `secret`.
-pub fn sign(secret: &[u8], body: &[u8]) -> String {
-    let mut mac = Hmac::<Sha256>::new_from_slice(secret).expect("HMAC takes keys of any length");
+/// The `webhook-signature` value for one attempt: `v1,` and the base64 HMAC-SHA256, keyed
+/// with the webhook's key, of `{id}.{timestamp}.{body}` (Standard Webhooks, version 1).
+pub fn sign(key: &[u8], id: &str, timestamp: i64, body: &[u8]) -> String {
+    use base64::Engine;
+    let mut mac = Hmac::<Sha256>::new_from_slice(key).expect("HMAC takes keys of any length");
+    mac.update(id.as_bytes());
+    mac.update(b".");
+    mac.update(timestamp.to_string().as_bytes());
+    mac.update(b".");
     mac.update(body);
     let bytes = mac.finalize().into_bytes();
-    bytes.iter().map(|b| format!("{b:02x}")).collect()
+    format!(
+        "v1,{}",
+        base64::engine::general_purpose::STANDARD.encode(bytes)
+    )
 }
 
 /// Wait before attempt `attempts + 1`: exponential from 0.5 s, capped, with full jitter so
@@ -94,7 +109,10 @@ impl Sinks {
                 .ok()
                 .and_then(|i| self.webhooks.get(i))
                 .ok_or_else(|| format!("sink {} is no longer configured", d.sink))?;
-            let signature = format!("sha256={}", sign(&hook.secret, d.body.as_bytes()));
+            // The time of this attempt, not of the alert: receivers refuse timestamps far from
+            // their clock, and a retry after an outage must still verify.
+            let timestamp = now_micros().div_euclid(1_000_000);
+            let signature = sign(&hook.secret, &d.event_id, timestamp, d.body.as_bytes());
             let r = self
                 .http
                 .post(&hook.url)
@@ -102,8 +120,9 @@ impl Sinks {
                     "content-type",
                     "application/cloudevents+json; charset=utf-8",
                 )
+                .header(ID_HEADER, &d.event_id)
+                .header(TIMESTAMP_HEADER, timestamp.to_string())
                 .header(SIGNATURE_HEADER, signature)
-                .header(IDEMPOTENCY_HEADER, &d.event_id)
                 .body(d.body.clone())
                 .send()
                 .await
@@ -175,11 +194,19 @@ mod tests {
     use super::*;
 
     #[test]
-    fn hmac_matches_the_rfc_4231_test_vector() {
-        // RFC 4231, test case 2: key "Jefe", data "what do ya want for nothing?".
+    fn signature_matches_the_standard_webhooks_reference_vector() {
+        // The example message of the Standard Webhooks reference libraries (values from memory
+        // of their test suites), checked against the PyPI `standardwebhooks` 1.1.0 verifier:
+        // `Webhook(secret).sign(id, 1614265330, body)` gives the same string.
+        let key = crate::config::webhook_key("whsec_MfKQ9r8GKYqrTwjUPD8ILPZIo2LaLaSw").unwrap();
         assert_eq!(
-            sign(b"Jefe", b"what do ya want for nothing?"),
-            "5bdcc146bf60754e6a042426089575c75a003f089d2739839dec58b964ec3843"
+            sign(
+                &key,
+                "msg_p5jXN8AQM9LWM0D4loKWxJek",
+                1614265330,
+                br#"{"test": 2432232314}"#
+            ),
+            "v1,g0hM9SsE+OTPJTGt/tmIKtSyZlE3uFJELVlNIOLJ1OE="
         );
     }
 

@@ -1,6 +1,6 @@
 //! Alert delivery end to end, over real HTTP and a real broker: a webhook receiver that is down
-//! at first (a Python http.server checking signatures with Python's hmac module, the
-//! independent HMAC-SHA256 implementation), a crash between raising and delivering, and the
+//! at first (a Python http.server checking the Standard Webhooks signatures with the independent
+//! verifier from PyPI, `standardwebhooks`), a crash between raising and delivering, and the
 //! Kafka alerts topic read back with the independent client (Python confluent-kafka).
 
 mod common;
@@ -13,7 +13,19 @@ use std::time::Duration;
 use common::{signal, wait_exit, wait_for, Service};
 use serde_json::Value;
 
+/// A secret as operators often set one: any string, used as the key's raw bytes.
 const SECRET: &str = "crumb-and-co-hook-key";
+/// A secret in the Standard Webhooks form: `whsec_` and the base64 of the key.
+const WHSEC_SECRET: &str = "whsec_UG9ja2V0T3JjaGFyZC1ob29rLWtleS0yNA==";
+
+/// The `whsec_` form a receiver is given for the raw-bytes secret (docs/decisions.md).
+fn whsec_of_raw(secret: &str) -> String {
+    use base64::Engine;
+    format!(
+        "whsec_{}",
+        base64::engine::general_purpose::STANDARD.encode(secret.as_bytes())
+    )
+}
 
 fn free_port() -> u16 {
     std::net::TcpListener::bind("127.0.0.1:0")
@@ -29,12 +41,13 @@ struct Receiver {
 }
 
 impl Receiver {
-    fn start(port: u16, dir: &Path) -> Receiver {
+    /// A receiver verifying with `whsec`, the Standard Webhooks form of the key.
+    fn start(port: u16, dir: &Path, whsec: &str) -> Receiver {
         let out = dir.join(format!("received-{port}.ndjson"));
         let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/receiver.py");
         let child = Command::new("python3")
             .arg(script)
-            .args(["--port", &port.to_string(), "--secret", SECRET])
+            .args(["--port", &port.to_string(), "--secret", whsec])
             .arg("--out")
             .arg(&out)
             .stdout(Stdio::null())
@@ -118,6 +131,7 @@ fn event_ids(records: &[Value]) -> BTreeSet<String> {
 }
 
 const ENV: [(&str, &str); 1] = [("CRUMB_HOOK_SECRET", SECRET)];
+const ENV_WHSEC: [(&str, &str); 1] = [("CRUMB_HOOK_SECRET", WHSEC_SECRET)];
 
 #[test]
 fn alerts_reach_a_receiver_that_was_down_signed_and_once_per_id() {
@@ -136,23 +150,36 @@ fn alerts_reach_a_receiver_that_was_down_signed_and_once_per_id() {
             })
             .then_some(())
     });
-    let receiver = Receiver::start(port, dir.path());
+    let receiver = Receiver::start(port, dir.path(), &whsec_of_raw(SECRET));
     wait_for(Duration::from_secs(90), "the alert to be delivered", || {
         (!receiver.records().is_empty()).then_some(())
     });
     // Later evaluations and retries must not deliver it again under another id.
     std::thread::sleep(Duration::from_secs(3));
     let records = receiver.records();
+    // The independent verifier accepts every delivery and refuses it under another key.
     assert!(
-        records.iter().all(|r| r["valid"] == true),
-        "signatures verified by Python's hmac: {records:?}"
+        records
+            .iter()
+            .all(|r| r["valid"] == true && r["valid_with_other_secret"] == false),
+        "signatures verified by PyPI standardwebhooks: {records:?}"
     );
     assert_eq!(
         event_ids(&records),
         BTreeSet::from([format!("{id}.opened")])
     );
     let r = &records[0];
-    assert_eq!(r["idempotency_key"], format!("{id}.opened"));
+    assert_eq!(r["webhook_id"], format!("{id}.opened"));
+    assert!(r["webhook_signature"].as_str().unwrap().starts_with("v1,"));
+    let sent: i64 = r["webhook_timestamp"].as_str().unwrap().parse().unwrap();
+    let now = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap()
+        .as_secs() as i64;
+    assert!(
+        (now - sent).abs() < 120,
+        "timestamp {sent} is the attempt's, now {now}"
+    );
     assert_eq!(r["path"], "/hooks/experiments");
     assert!(r["content_type"]
         .as_str()
@@ -187,17 +214,23 @@ fn an_alert_raised_before_a_crash_is_delivered_after_restart_with_the_same_id() 
     let dir = tempfile::tempdir().unwrap();
     let state = dir.path().join("state");
     let port = free_port();
-    let mut service = Service::start_in(&config(port, ""), Some(&state), &ENV);
+    let mut service = Service::start_in(&config(port, ""), Some(&state), &ENV_WHSEC);
     assert_eq!(service.post("/v1/events", harmful_events()).0, 200);
     let id = open_harm_alert(&service);
     signal(service.child.id(), "KILL");
     wait_exit(&mut service.child, Duration::from_secs(10)).expect("killed");
-    let receiver = Receiver::start(port, dir.path());
-    let service = Service::start_in(&config(port, ""), Some(&state), &ENV);
+    // This time the secret is given in the Standard Webhooks form, as the receiver holds it.
+    let receiver = Receiver::start(port, dir.path(), WHSEC_SECRET);
+    let service = Service::start_in(&config(port, ""), Some(&state), &ENV_WHSEC);
     wait_for(
         Duration::from_secs(60),
         "the alert to be delivered after the restart",
         || (!receiver.records().is_empty()).then_some(()),
+    );
+    assert!(
+        receiver.records().iter().all(|r| r["valid"] == true),
+        "signatures verified by PyPI standardwebhooks: {:?}",
+        receiver.records()
     );
     // Evaluations after the restart see the restored alert: no second alert, no new id.
     std::thread::sleep(Duration::from_secs(4));

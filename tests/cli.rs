@@ -191,6 +191,136 @@ fn with_the_brokers_unreachable_sigterm_still_drains_within_the_grace_period() {
     );
 }
 
+/// Runs posteriord with standard output on a real pipe whose reading end is already closed,
+/// as after `| head -c 1` has read its byte and gone: every write fails with EPIPE. Returns
+/// the exit code and standard error.
+fn run_into_closed_pipe(args: &[&str], stdin: Option<&str>) -> (Option<i32>, String) {
+    use std::io::Write;
+    use std::os::fd::FromRawFd;
+    let mut fds = [0; 2];
+    // SAFETY: pipe(2) fills both descriptors on success; each is owned exactly once below.
+    assert_eq!(unsafe { libc::pipe(fds.as_mut_ptr()) }, 0, "pipe(2)");
+    // SAFETY: fds[0] and fds[1] are open descriptors that nothing else owns.
+    let (reader, writer) = unsafe {
+        (
+            std::os::fd::OwnedFd::from_raw_fd(fds[0]),
+            std::os::fd::OwnedFd::from_raw_fd(fds[1]),
+        )
+    };
+    drop(reader);
+    let mut child = Command::new(bin())
+        .args(args)
+        .stdin(if stdin.is_some() {
+            Stdio::piped()
+        } else {
+            Stdio::null()
+        })
+        .stdout(Stdio::from(writer))
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    if let Some(text) = stdin {
+        child
+            .stdin
+            .take()
+            .unwrap()
+            .write_all(text.as_bytes())
+            .unwrap();
+    }
+    let out = child.wait_with_output().unwrap();
+    (
+        out.status.code(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+#[test]
+fn every_command_ends_quietly_with_exit_0_when_its_reader_closes_the_pipe() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("orchard.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "{}\n[[source]]\nname = \"taps\"\nunit = \"who\"\ntime = \"at\"\nevent = \"what\"\nmetrics = {{ \"bought\" = \"purchase\" }}\n",
+            common::TEST_EXPERIMENTS
+        ),
+    )
+    .unwrap();
+    let events = dir.path().join("events.ndjson");
+    let mut lines = String::new();
+    for i in 0..300 {
+        for arm in ["control", "short-copy"] {
+            lines.push_str(&format!(
+                "{{\"type\":\"exposure\",\"experiment\":\"checkout-copy\",\"variant\":\"{arm}\",\"unit\":\"{arm}-{i}\",\"time\":\"2026-05-02T10:00:00Z\"}}\n"
+            ));
+        }
+    }
+    std::fs::write(&events, lines).unwrap();
+    let sample = dir.path().join("taps.ndjson");
+    std::fs::write(
+        &sample,
+        "{\"who\":\"u-1\",\"at\":\"2026-05-02T10:00:00Z\",\"what\":\"bought\"}\n",
+    )
+    .unwrap();
+    let compare_input = r#"{"kind":"conversion","prior":{"alpha":1,"beta":1},"variants":[{"name":"control","trials":1000,"successes":112},{"name":"tall-pots","trials":1000,"successes":131}]}"#;
+    let config = config.to_str().unwrap();
+    let events = events.to_str().unwrap();
+    let sample = sample.to_str().unwrap();
+    let cases: Vec<(Vec<&str>, Option<&str>)> = vec![
+        (vec!["check-config", config], None),
+        (vec!["check-config", "--config", config], None),
+        (
+            vec!["replay", "--config", config, "--format", "json", events],
+            None,
+        ),
+        (vec!["replay", "--config", config, "--json", events], None),
+        (vec!["replay", "--config", config, events], None),
+        (vec!["compare"], Some(compare_input)),
+        (vec!["compare", "--format", "table"], Some(compare_input)),
+        (
+            vec![
+                "plan",
+                "--config",
+                config,
+                "--experiment",
+                "checkout-copy",
+                "--sims",
+                "4",
+                "--units-per-day",
+                "200",
+                "--days",
+                "1",
+                "--baseline",
+                "purchase=0.10",
+                "--baseline",
+                "payment-error=0.01",
+                "--format",
+                "json",
+            ],
+            None,
+        ),
+        (
+            vec![
+                "read-sample",
+                "--config",
+                config,
+                "--source",
+                "taps",
+                sample,
+            ],
+            None,
+        ),
+    ];
+    for (args, stdin) in cases {
+        let (code, stderr) = run_into_closed_pipe(&args, stdin);
+        assert_eq!(code, Some(0), "{args:?}: {stderr}");
+        assert!(
+            !stderr.contains("panicked") && !stderr.contains("Broken pipe"),
+            "{args:?} is not quiet: {stderr}"
+        );
+    }
+}
+
 #[test]
 fn serve_refuses_an_unknown_kafka_client_property_naming_it_before_starting() {
     // librdkafka's own property table decides what is unknown; the config file names the key.

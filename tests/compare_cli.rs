@@ -207,7 +207,11 @@ fn table_format_is_for_people() {
 fn bad_input_gives_clear_messages() {
     let cases: Vec<(String, &str)> = vec![
         ("not json".into(), "invalid input"),
-        (r#"{"metric":"revenue","prior":{"alpha":1,"beta":1},"variants":[]}"#.into(), "unknown metric \"revenue\""),
+        (r#"{"metric":"revenue","prior":{"alpha":1,"beta":1},"variants":[]}"#.into(), "unknown kind \"revenue\""),
+        (r#"[{"kind":"conversion"}]"#.into(), "the input must be one JSON object"),
+        (r#"{"kind":"conversion","prior":{"alpha":1,"beta":1},"variants":[5,6]}"#.into(), "variant #1 must be an object"),
+        (r#"{"kind":"conversion","prior":{"alpha":1,"beta":1}}"#.into(), "missing field `variants`"),
+        (r#"{"kind":"conversion","prior":[1,1],"variants":[{"name":"a","trials":10,"successes":1},{"name":"b","trials":10,"successes":1}]}"#.into(), "`prior` must be an object"),
         (r#"{"metric":"conversion","prior":{"alpha":1,"beta":1},"variants":[{"name":"a","trials":1,"successes":0}]}"#.into(), "between 2 and 64 variants"),
         (r#"{"metric":"conversion","prior":{"alpha":1,"beta":1},"variants":[{"name":"a","trials":10,"successes":11},{"name":"b","trials":10,"successes":1}]}"#.into(), "successes (11) exceed trials (10)"),
         (r#"{"metric":"conversion","prior":{"alpha":1,"beta":1},"variants":[{"name":"a","trials":10,"sucesses":1},{"name":"b","trials":10,"successes":1}]}"#.into(), "unknown field `sucesses`"),
@@ -228,6 +232,8 @@ fn bad_input_gives_clear_messages() {
             msg.contains(needle),
             "{input}\n→ {msg}\n(expected to contain {needle:?})"
         );
+        // In the user's terms: never the names of our own types.
+        assert!(!msg.contains("Raw") && !msg.contains("struct"), "{msg}");
     }
     let many: Vec<Value> = (0..65)
         .map(|i| json!({"name": format!("v{i}"), "trials": 10, "successes": 1}))
@@ -238,6 +244,10 @@ fn bad_input_gives_clear_messages() {
     assert!(msg.contains("got 65"), "{msg}");
     assert!(matches!(
         run("[]", Format::Json),
+        Err(CompareError::Invalid(_))
+    ));
+    assert!(matches!(
+        run("{\"kind\":", Format::Json),
         Err(CompareError::Json(_))
     ));
 }

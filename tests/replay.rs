@@ -306,3 +306,104 @@ fn bad_and_truncated_lines_are_reported_with_their_line_numbers() {
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("missing.ndjson"));
 }
+
+/// The alert changes of a replay as (alert id, change) pairs.
+fn changes(doc: &Value) -> Vec<(String, String)> {
+    doc["decisions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|d| {
+            (
+                d["id"].as_str().unwrap().to_string(),
+                d["change"].as_str().unwrap().to_string(),
+            )
+        })
+        .collect()
+}
+
+#[test]
+fn each_decision_names_the_line_of_the_event_that_made_it_due() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("posteriord.toml");
+    std::fs::write(
+        &config,
+        format!("[http]\naddr = \"127.0.0.1:0\"\n{EXPERIMENT}"),
+    )
+    .unwrap();
+    let lines = stream(6, 3000);
+    let file = dir.path().join("recorded.ndjson");
+    std::fs::write(&file, lines.join("\n")).unwrap();
+    let doc = replay_json(&config, &[&file]);
+    let decisions = doc["decisions"].as_array().unwrap().clone();
+    assert!(decisions.len() >= 2, "{decisions:?}");
+    let named: Vec<u64> = decisions
+        .iter()
+        .map(|d| d["line"].as_u64().unwrap())
+        .collect();
+    assert!(
+        named.iter().all(|&n| n >= 1 && n < lines.len() as u64),
+        "lines {named:?} of {}",
+        lines.len()
+    );
+    // Independent of how replay counts: the file cut just before the named line does not
+    // yet make the decision, and the file cut just after it does.
+    for d in decisions.iter().take(3) {
+        let n = d["line"].as_u64().unwrap() as usize;
+        let key = (
+            d["id"].as_str().unwrap().to_string(),
+            d["change"].as_str().unwrap().to_string(),
+        );
+        let cut = |upto: usize| {
+            let path = dir.path().join(format!("first-{upto}.ndjson"));
+            std::fs::write(&path, lines[..upto].join("\n")).unwrap();
+            changes(&replay_json(&config, &[&path]))
+        };
+        assert!(
+            !cut(n - 1).contains(&key),
+            "{key:?} already before line {n}"
+        );
+        assert!(cut(n).contains(&key), "{key:?} not made by line {n}");
+        // The named line is an event of the decision's experiment.
+        assert!(
+            lines[n - 1].contains(d["experiment"].as_str().unwrap()),
+            "line {n}: {}",
+            lines[n - 1]
+        );
+    }
+
+    // The text names the same places, and the final state lists variants by name with
+    // their final posteriors.
+    let out = Command::new(common::bin())
+        .args(["replay", "--config"])
+        .arg(&config)
+        .arg(&file)
+        .output()
+        .unwrap();
+    assert!(out.status.success());
+    let shown = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        shown.contains(&format!("(at {}:{})", file.display(), named[0])),
+        "{shown}"
+    );
+    let units = &doc["experiments"];
+    let crumb = units
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|e| e["id"] == "crumb-checkout")
+        .unwrap();
+    let short = &crumb["variants"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|v| v["name"] == "short-copy")
+        .unwrap()["units"];
+    assert!(
+        shown.contains(&format!("    short-copy: {short} units")),
+        "{shown}"
+    );
+    assert!(shown.contains("    control (control): "), "{shown}");
+    assert!(shown.contains("purchase         Beta("), "{shown}");
+    assert!(shown.contains("posterior mean "), "{shown}");
+}

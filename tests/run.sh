@@ -21,6 +21,7 @@ SCIPY_VERSION=1.17.1
 PYYAML_VERSION=6.0.3
 SCHEMATHESIS_VERSION=4.32.5
 JSONSCHEMA_VERSION=4.26.0
+STANDARDWEBHOOKS_VERSION=1.1.0
 CARGO_FUZZ_VERSION=0.13.2
 
 step() { printf '\n==> %s\n' "$*"; }
@@ -44,6 +45,8 @@ pip_install yaml "PyYAML==$PYYAML_VERSION"
 # (also one of its dependencies) checks the replies the API tests recorded.
 pip_install schemathesis "schemathesis==$SCHEMATHESIS_VERSION"
 pip_install jsonschema "jsonschema==$JSONSCHEMA_VERSION"
+# tests/alerts.rs: the independent Standard Webhooks verifier checks every delivery's signature.
+pip_install standardwebhooks "standardwebhooks==$STANDARDWEBHOOKS_VERSION"
 
 # tests/deploy.rs: promtool (Debian's prometheus package) and systemd-analyze.
 APT_UPDATED=""

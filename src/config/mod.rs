@@ -115,9 +115,10 @@ pub struct AlertsConfig {
 pub struct WebhookConfig {
     /// Where alert events are POSTed.
     pub url: String,
-    /// Name of the environment variable holding the HMAC key.
+    /// Name of the environment variable holding the signing secret.
     pub secret_env: String,
-    /// The HMAC key (never logged).
+    /// The HMAC-SHA256 key (never logged): the bytes after `whsec_` base64-decoded when the
+    /// variable holds a Standard Webhooks secret, else the variable's bytes as they are.
     pub secret: Vec<u8>,
 }
 
@@ -534,12 +535,18 @@ impl Ctx<'_> {
             let var = w.secret_env.get_ref();
             let secret = env.iter().find(|(k, _)| k == var).map(|(_, v)| v.clone());
             let secret = match secret {
-                Some(s) if !s.is_empty() => s.into_bytes(),
+                Some(s) if !s.is_empty() => webhook_key(&s).map_err(|why| {
+                    self.err(
+                        w.secret_env.span(),
+                        format!("alerts.webhook[{i}].secret_env"),
+                        format!("the environment variable {var} {why}"),
+                    )
+                })?,
                 _ => {
                     return Err(self.err(
                         w.secret_env.span(),
                         format!("alerts.webhook[{i}].secret_env"),
-                        format!("the environment variable {var} (the webhook's HMAC key) is not set or empty"),
+                        format!("the environment variable {var} (the webhook's signing secret) is not set or empty"),
                     ))
                 }
             };
@@ -1528,6 +1535,29 @@ fn apply_env(config: &mut Config, env: &[(String, String)]) -> Result<(), Config
         }
     }
     Ok(())
+}
+
+/// Prefix of a Standard Webhooks secret: `whsec_` followed by the base64 of the key.
+pub const WEBHOOK_SECRET_PREFIX: &str = "whsec_";
+
+/// The signing key a webhook secret stands for. A `whsec_<base64>` value (the Standard
+/// Webhooks form, shared with receivers as it is) is decoded; any other value is used as raw
+/// bytes, which receivers write as `whsec_` + base64 of those bytes.
+pub fn webhook_key(value: &str) -> Result<Vec<u8>, String> {
+    use base64::Engine;
+    let Some(encoded) = value.strip_prefix(WEBHOOK_SECRET_PREFIX) else {
+        return Ok(value.as_bytes().to_vec());
+    };
+    // Receivers' libraries accept the base64 with or without its `=` padding.
+    let key = base64::engine::general_purpose::STANDARD_NO_PAD
+        .decode(encoded.trim_end_matches('='))
+        .map_err(|e| {
+            format!("starts with `{WEBHOOK_SECRET_PREFIX}` but the rest is not base64 ({e})")
+        })?;
+    if key.is_empty() {
+        return Err(format!("holds `{WEBHOOK_SECRET_PREFIX}` with an empty key"));
+    }
+    Ok(key)
 }
 
 #[cfg(test)]

@@ -397,3 +397,32 @@ fn source_mappings_are_checked_with_key_and_line() {
     assert_eq!(e.key, "experiment[0].attribution_window_hours");
     assert_eq!(e.line, Some(4));
 }
+
+#[test]
+fn webhook_secrets_in_the_standard_webhooks_form_are_decoded_and_bad_ones_named() {
+    let text = format!(
+        "{EXAMPLE}\n[[alerts.webhook]]\nurl = \"http://127.0.0.1:9/hook\"\nsecret_env = \"ORCHARD_HOOK\"\n"
+    );
+    // `whsec_` + base64("orchard"): the key is the decoded bytes; other values are raw bytes.
+    let env = |v: &str| vec![("ORCHARD_HOOK".to_string(), v.to_string())];
+    let c = Config::parse(&text, "test.toml", &env("whsec_b3JjaGFyZA==")).unwrap();
+    assert_eq!(c.alerts.webhooks[0].secret, b"orchard");
+    let c = Config::parse(&text, "test.toml", &env("whsec_b3JjaGFyZA")).unwrap();
+    assert_eq!(
+        c.alerts.webhooks[0].secret, b"orchard",
+        "padding is optional"
+    );
+    let c = Config::parse(&text, "test.toml", &env("orchard")).unwrap();
+    assert_eq!(c.alerts.webhooks[0].secret, b"orchard");
+    let err = Config::parse(&text, "test.toml", &env("whsec_not base64!")).unwrap_err();
+    assert_eq!(
+        err.line,
+        Some(line_of(&text, "secret_env = \"ORCHARD_HOOK\"")),
+        "{err}"
+    );
+    assert!(
+        err.to_string().contains("alerts.webhook[0].secret_env"),
+        "{err}"
+    );
+    assert!(err.to_string().contains("not base64"), "{err}");
+}

@@ -68,8 +68,34 @@ pub fn router(
         .merge(dashboard::routes())
         .fallback(not_found)
         .layer(DefaultBodyLimit::max(http.max_body_bytes))
-        .with_state(service);
+        .with_state(service.clone());
+    // Outside the guards, so refused (401/403), timed-out and failed requests count too.
     guard::guard(routes, http, auth)
+        .layer(axum::middleware::from_fn_with_state(service, count_request))
+}
+
+/// Counts each request and its duration by method, route template and status. The template
+/// (`/v1/experiments/{id}`), not the path, so ids never become label values; paths no route
+/// matches count as `other`.
+async fn count_request(
+    State(service): State<Arc<Service>>,
+    request: axum::extract::Request,
+    next: axum::middleware::Next,
+) -> Response {
+    let started = std::time::Instant::now();
+    let method = request.method().as_str().to_owned();
+    let route = request
+        .extensions()
+        .get::<axum::extract::MatchedPath>()
+        .map_or_else(|| "other".to_owned(), |p| p.as_str().to_owned());
+    let response = next.run(request).await;
+    service.metrics().observe_http(
+        &method,
+        &route,
+        response.status().as_u16(),
+        started.elapsed().as_secs_f64(),
+    );
+    response
 }
 
 async fn openapi() -> Response {

@@ -48,6 +48,9 @@ pub struct BatchReport {
     /// Snapshots of experiments that became due for evaluation, each taken at the event that
     /// made it due, in input order (only with a cadence).
     pub due: Vec<ExperimentSnapshot>,
+    /// For each snapshot of `due`, the index in the batch of the event that made it due
+    /// (`replay` names that event's line).
+    pub due_items: Vec<usize>,
 }
 
 impl BatchReport {
@@ -107,6 +110,7 @@ pub fn apply_batch_due(
     cadence: Option<&Cadence>,
 ) -> BatchReport {
     let mut due = Vec::new();
+    let mut due_items = Vec::new();
     // `Option` so that a refused event's reason can be taken out for the report.
     let mut decoded: Vec<Option<Result<Option<Event<'_>>, Reject>>> = items
         .iter()
@@ -118,6 +122,7 @@ pub fn apply_batch_due(
             .unwrap_or_else(|poisoned| poisoned.into_inner());
         let mut results = Vec::with_capacity(items.len());
         let mut run_due = Vec::new();
+        let mut run_due_items = Vec::new();
         // What was looked up ahead for each event (none for the first few of a run).
         let mut prepared: Vec<Option<crate::state::Prepared>> = vec![None; items.len()];
         let mut i = 0;
@@ -168,6 +173,7 @@ pub fn apply_batch_due(
                     continue;
                 };
                 let result = shard.apply_due(event, prepared, cadence, &mut run_due);
+                run_due_items.resize(run_due.len(), j);
                 results.push(Some(result));
             }
             // The other shards did not change during this run, so adding their totals now
@@ -176,11 +182,16 @@ pub fn apply_batch_due(
                 shards.merge_others(name, &mut snap);
                 due.push(snap);
             }
+            due_items.append(&mut run_due_items);
             i = run_end;
         }
         results
     };
-    let report = BatchReport { results, due };
+    let report = BatchReport {
+        results,
+        due,
+        due_items,
+    };
     // One pass over the batch (most events are `applied`, the first outcome listed).
     let mut counts = [0u64; Outcome::ALL.len()];
     for r in &report.results {

@@ -2,7 +2,8 @@
 //! refreshed from the engine at each scrape (so they are never staler than the scrape itself).
 
 use prometheus::{
-    Encoder, GaugeVec, IntCounterVec, IntGauge, IntGaugeVec, Opts, Registry, TextEncoder,
+    Encoder, GaugeVec, HistogramOpts, HistogramVec, IntCounterVec, IntGauge, IntGaugeVec, Opts,
+    Registry, TextEncoder,
 };
 
 use crate::event::{Outcome, RejectReason};
@@ -41,8 +42,13 @@ pub struct Metrics {
     pub events: IntCounterVec,
     /// Refused events by source and reason.
     pub rejected: IntCounterVec,
-    /// 1 while the configured Kafka cluster answers metadata requests.
-    pub kafka_reachable: IntGauge,
+    /// 1 while the configured Kafka cluster answers metadata requests; no series at all when
+    /// no Kafka is configured, so no rule fires on a component deliberately absent.
+    kafka_reachable: IntGaugeVec,
+    /// HTTP requests by method, route template and status.
+    http_requests: IntCounterVec,
+    /// HTTP request durations by method, route template and status.
+    http_duration: HistogramVec,
     /// Exposed units per experiment and variant.
     pub variant_units: IntGaugeVec,
     /// Messages between the next offset to apply and the partition's high watermark.
@@ -90,6 +96,10 @@ pub struct Metrics {
     pub expected_loss: GaugeVec,
     /// P(variant beats the control); absent for the control.
     pub prob_beats_control: GaugeVec,
+    /// P(variant worse than control by more than the harm margin); absent for the control.
+    pub prob_harm: GaugeVec,
+    /// p-value of the sample-ratio test per experiment.
+    pub sample_ratio_p_value: GaugeVec,
 }
 
 fn counter_vec(registry: &Registry, name: &str, help: &str, labels: &[&str]) -> IntCounterVec {
@@ -149,10 +159,52 @@ impl Metrics {
                 .expect("metric registered once");
             c
         };
-        let kafka_reachable = int_gauge(
+        let kafka_reachable = int_gauge_vec(
             "posteriord_kafka_reachable",
-            "1 while the configured Kafka cluster answers metadata requests.",
+            "1 while the configured Kafka cluster answers metadata requests, 0 while it does not; absent when no Kafka is configured.",
+            &[],
         );
+        let build_info = int_gauge_vec(
+            "posteriord_build_info",
+            "Always 1; the labels say which build runs.",
+            &["version", "os", "arch"],
+        );
+        build_info
+            .with_label_values(&[
+                env!("CARGO_PKG_VERSION"),
+                std::env::consts::OS,
+                std::env::consts::ARCH,
+            ])
+            .set(1);
+        let http_requests = counter_vec(
+            &registry,
+            "posteriord_http_requests_total",
+            "HTTP requests answered, by method, route template (unmatched paths as `other`) and status code.",
+            &["method", "route", "status"],
+        );
+        let http_duration = HistogramVec::new(
+            HistogramOpts::new(
+                "posteriord_http_request_duration_seconds",
+                "Time from receiving an HTTP request to its response head, by method, route template and status code.",
+            )
+            // From 1 ms (a probe) to 10 s (the request timeout's order).
+            .buckets(vec![
+                0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0,
+            ]),
+            &["method", "route", "status"],
+        )
+        .expect("valid metric definition");
+        registry
+            .register(Box::new(http_duration.clone()))
+            .expect("metric registered once");
+        // CPU, memory, open files and start time of this process, under the names every
+        // Prometheus client library uses (`process_*`), from the prometheus crate's collector.
+        #[cfg(target_os = "linux")]
+        registry
+            .register(Box::new(
+                prometheus::process_collector::ProcessCollector::for_self(),
+            ))
+            .expect("process collector registered once");
         let variant_units = int_gauge_vec(
             "posteriord_variant_units",
             "Exposed units per experiment variant.",
@@ -301,6 +353,20 @@ impl Metrics {
                 "Posterior probability that the variant is better than the control.",
                 ARM,
             ),
+            prob_harm: gauge_vec(
+                &registry,
+                "posteriord_prob_harm",
+                "Posterior probability that the variant is worse than the control by more than the harm margin (relative).",
+                ARM,
+            ),
+            sample_ratio_p_value: gauge_vec(
+                &registry,
+                "posteriord_sample_ratio_p_value",
+                "p-value of the chi-square test of the units per variant against the configured weights (sample ratio mismatch when small).",
+                &["experiment"],
+            ),
+            http_requests,
+            http_duration,
             registry,
             scrape: std::sync::Mutex::new(()),
             events,
@@ -337,6 +403,34 @@ impl Metrics {
             .inc();
     }
 
+    /// [`Metrics::new`], with the Kafka reachability gauge at 0 (until the first probe
+    /// answers) when Kafka is configured, and without it when not.
+    pub fn with_kafka(kafka: bool) -> Metrics {
+        let m = Metrics::new();
+        if kafka {
+            m.kafka_reachable.with_label_values(&[] as &[&str]).set(0);
+        }
+        m
+    }
+
+    /// The latest Kafka probe's answer.
+    pub fn set_kafka_reachable(&self, reachable: bool) {
+        self.kafka_reachable
+            .with_label_values(&[] as &[&str])
+            .set(i64::from(reachable));
+    }
+
+    /// Count one answered HTTP request. `route` is the route's template (`/v1/experiments/{id}`),
+    /// never the path itself, so ids do not become label values.
+    pub fn observe_http(&self, method: &str, route: &str, status: u16, seconds: f64) {
+        let status = status.to_string();
+        let labels = [method, route, status.as_str()];
+        self.http_requests.with_label_values(&labels).inc();
+        self.http_duration
+            .with_label_values(&labels)
+            .observe(seconds);
+    }
+
     /// Rebuild the per-experiment gauges from `summaries`: cleared first, so an experiment
     /// that was deleted or redefined leaves no stale series behind. Callers hold `scrape`.
     pub fn set_experiment_gauges(&self, summaries: &[std::sync::Arc<ExperimentSummary>]) {
@@ -349,6 +443,8 @@ impl Metrics {
             &m.prob_best,
             &m.expected_loss,
             &m.prob_beats_control,
+            &m.prob_harm,
+            &m.sample_ratio_p_value,
         ] {
             g.reset();
         }
@@ -358,6 +454,11 @@ impl Metrics {
                 m.variant_units
                     .with_label_values(&[def.id.as_str(), v.name.as_str()])
                     .set(*units as i64);
+            }
+            if let Some(Ok(sr)) = &s.sample_ratio {
+                m.sample_ratio_p_value
+                    .with_label_values(&[def.id.as_str()])
+                    .set(sr.p_value);
             }
             for (metric, ms) in def.metrics.iter().zip(&s.metrics) {
                 let Ok(arms) = &ms.arms else { continue };
@@ -376,6 +477,9 @@ impl Metrics {
                         .set(a.expected_loss);
                     if let Some(p) = a.prob_beats_control {
                         m.prob_beats_control.with_label_values(&labels).set(p);
+                    }
+                    if let Some(p) = a.prob_harm {
+                        m.prob_harm.with_label_values(&labels).set(p);
                     }
                 }
             }

@@ -164,7 +164,7 @@ impl Service {
             due,
             evaluation_queue: Mutex::new(Some(queue)),
             shards: Mutex::new(Shards::new(config.experiments.iter().cloned())),
-            metrics: Metrics::new(),
+            metrics: Metrics::with_kafka(config.kafka.is_some()),
             max_event_bytes: config.max_event_bytes(),
             sources: config.sources.clone(),
             kafka_reachable: config.kafka.as_ref().map(|_| AtomicBool::new(false)),
@@ -560,7 +560,7 @@ impl Service {
     pub fn set_kafka_reachable(&self, reachable: bool) {
         if let Some(b) = &self.kafka_reachable {
             b.store(reachable, Ordering::Relaxed);
-            self.metrics.kafka_reachable.set(i64::from(reachable));
+            self.metrics.set_kafka_reachable(reachable);
         }
     }
 

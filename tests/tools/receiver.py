@@ -1,34 +1,47 @@
 #!/usr/bin/env python3
 """Webhook receiver for posteriord's alert tests: a real HTTP server that checks each request's
-signature with Python's own hmac module (the independent implementation of HMAC-SHA256 the
-tests name) and appends one JSON line per request to a file.
+Standard Webhooks signature with the independent verifier from PyPI (`standardwebhooks`) and
+appends one JSON line per request to a file. As a check that the check can fail, it also asks
+the verifier with a different secret, which must refuse.
 
-usage: receiver.py --port P --secret S --out FILE
+usage: receiver.py --port P --secret whsec_... --out FILE
 """
 import argparse
-import hashlib
-import hmac
+import base64
 import json
 from http.server import BaseHTTPRequestHandler, HTTPServer
+
+from standardwebhooks.webhooks import Webhook, WebhookVerificationError
+
+
+def verifies(hook, body, headers):
+    try:
+        hook.verify(body, headers)
+        return True
+    except WebhookVerificationError:
+        return False
 
 
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--port", type=int, required=True)
-    ap.add_argument("--secret", required=True)
+    ap.add_argument("--secret", required=True, help="the whsec_<base64> form of the key")
     ap.add_argument("--out", required=True)
     args = ap.parse_args()
-    secret = args.secret.encode()
+    hook = Webhook(args.secret)
+    other = Webhook("whsec_" + base64.b64encode(b"some other key").decode())
 
     class Handler(BaseHTTPRequestHandler):
         def do_POST(self):
             body = self.rfile.read(int(self.headers.get("content-length", "0")))
-            expected = "sha256=" + hmac.new(secret, body, hashlib.sha256).hexdigest()
-            got = self.headers.get("posteriord-signature", "")
+            headers = {k: v for k, v in self.headers.items()}
             record = {
                 "path": self.path,
-                "valid": hmac.compare_digest(expected, got),
-                "idempotency_key": self.headers.get("idempotency-key"),
+                "valid": verifies(hook, body, headers),
+                "valid_with_other_secret": verifies(other, body, headers),
+                "webhook_id": self.headers.get("webhook-id"),
+                "webhook_timestamp": self.headers.get("webhook-timestamp"),
+                "webhook_signature": self.headers.get("webhook-signature"),
                 "content_type": self.headers.get("content-type"),
                 "event": json.loads(body),
             }
