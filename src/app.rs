@@ -139,6 +139,9 @@ pub async fn run(
         tracker.spawn(save_http_shard(Arc::clone(&service), shutdown.clone()));
     }
     if let Some(kafka) = &config.kafka {
+        crate::kafka::check_co_partitioned(kafka, service.mapped_topics(), shutdown.clone())
+            .await
+            .context("cannot consume the [[source]] topics")?;
         crate::kafka::start(kafka, Arc::clone(&service), shutdown.clone(), &tracker)
             .context("cannot start the Kafka consumer")?;
     }
