@@ -202,7 +202,7 @@ fn bad_lines_are_refused_counted_and_dead_lettered_and_the_rest_counts() {
     let by_source = |name: &str, outcome: &str| {
         service.metric_sum(
             "posteriord_mapped_events_total",
-            &format!(r#"source_name="{name}",outcome="{outcome}""#),
+            &format!(r#"outcome="{outcome}",source_name="{name}""#),
         )
     };
     assert_eq!(by_source("pebble-rides", "ignored"), ignored);
