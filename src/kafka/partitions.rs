@@ -220,7 +220,7 @@ impl PartitionContext {
             if let Err(e) = tpl.set_partition_offset(topic, *partition, offset) {
                 tracing::error!(topic, partition, error = %e, "cannot set the restore offset");
             }
-            tracing::info!(topic, partition, shard = %id, ?offset, "partition assigned");
+            tracing::info!(topic, partition, shard = %id, ?offset, "partition assigned and restored");
         }
         self.service.add_restoring(-(partitions.len() as isize));
     }
