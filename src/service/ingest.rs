@@ -215,11 +215,15 @@ pub fn apply_batch_due(
     // One pass over the batch (most events are `applied`, the first outcome listed).
     let mut counts = [0u64; Outcome::ALL.len()];
     let decided = report.released.iter().map(|(_, r)| r);
-    for r in report.results.iter().flatten().chain(decided.clone()) {
-        if let Ok(o) = r {
-            if let Some(i) = Outcome::ALL.iter().position(|x| x == o) {
-                counts[i] += 1;
-            }
+    for o in report
+        .results
+        .iter()
+        .flatten()
+        .chain(decided.clone())
+        .flatten()
+    {
+        if let Some(i) = Outcome::ALL.iter().position(|x| x == o) {
+            counts[i] += 1;
         }
     }
     for (outcome, n) in Outcome::ALL.into_iter().zip(counts) {
