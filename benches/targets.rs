@@ -430,6 +430,7 @@ fn ingest_into(
                 offset: Some((c * BATCH + j) as i64),
                 bytes: b,
                 mapping: None,
+                topic: None,
             })
             .collect();
         let report = posteriord::service::ingest::apply_batch_due(

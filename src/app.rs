@@ -150,14 +150,20 @@ pub async fn run(
         tracker.spawn(save_http_shard(Arc::clone(&service), shutdown.clone()));
     }
     if let Some(kafka) = &config.kafka {
-        if let Err(e) = crate::kafka::start(kafka, Arc::clone(&service), shutdown.clone(), &tracker)
-        {
+        let started = async {
+            crate::kafka::check_co_partitioned(kafka, service.mapped_topics(), shutdown.clone())
+                .await
+                .context("cannot consume the [[source]] topics")?;
+            crate::kafka::start(kafka, Arc::clone(&service), shutdown.clone(), &tracker)
+                .context("cannot start the Kafka consumer")
+        };
+        if let Err(e) = started.await {
             // The evaluator and the other tasks are already running: stop and await them, or
             // the blocking ones would keep the process alive after this error.
             shutdown.cancel();
             tracker.close();
             tracker.wait().await;
-            return Err(anyhow::Error::new(e).context("cannot start the Kafka consumer"));
+            return Err(e);
         }
     }
     if let Some(sim) = options.simulate {

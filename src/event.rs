@@ -77,6 +77,62 @@ pub enum EventBody<'a> {
 }
 
 impl Event<'_> {
+    /// The event with every borrowed name copied (to keep it past its input buffer).
+    pub fn into_owned(self) -> Event<'static> {
+        fn own(c: Cow<'_, str>) -> Cow<'static, str> {
+            Cow::Owned(c.into_owned())
+        }
+        Event {
+            experiment: own(self.experiment),
+            id: self.id.map(own),
+            time: self.time,
+            body: match self.body {
+                EventBody::Exposure { variant, unit } => EventBody::Exposure {
+                    variant: own(variant),
+                    unit: own(unit),
+                },
+                EventBody::Conversion { metric, unit } => EventBody::Conversion {
+                    metric: own(metric),
+                    unit: own(unit),
+                },
+                EventBody::Defect {
+                    metric,
+                    target,
+                    count,
+                    exposure,
+                } => EventBody::Defect {
+                    metric: own(metric),
+                    target: match target {
+                        Target::Unit(u) => Target::Unit(own(u)),
+                        Target::Variant(v) => Target::Variant(own(v)),
+                    },
+                    count,
+                    exposure,
+                },
+                EventBody::Outcome {
+                    metric,
+                    unit,
+                    count,
+                    exposure,
+                } => EventBody::Outcome {
+                    metric: own(metric),
+                    unit: own(unit),
+                    count,
+                    exposure,
+                },
+                EventBody::Tally {
+                    metric,
+                    variant,
+                    amounts,
+                } => EventBody::Tally {
+                    metric: own(metric),
+                    variant: own(variant),
+                    amounts,
+                },
+            },
+        }
+    }
+
     /// Whether the event names no experiment and is attributed through exposures.
     pub fn attributed(&self) -> bool {
         self.experiment.is_empty() && matches!(self.body, EventBody::Outcome { .. })
@@ -135,11 +191,15 @@ pub enum Outcome {
     BeforeExposure,
     /// An outcome naming no experiment, later than every such experiment's attribution window.
     OutsideWindow,
+    /// An outcome naming no experiment, read from a co-partitioned topic before the assignment
+    /// stream of its partition reached its time: kept in the shard's state and decided when
+    /// the assignments catch up (or the lateness bound passes), under its final outcome.
+    Held,
 }
 
 impl Outcome {
     /// Every outcome, in reporting order.
-    pub const ALL: [Outcome; 10] = [
+    pub const ALL: [Outcome; 11] = [
         Outcome::Applied,
         Outcome::DuplicateId,
         Outcome::DuplicateExposure,
@@ -150,6 +210,7 @@ impl Outcome {
         Outcome::Unexposed,
         Outcome::BeforeExposure,
         Outcome::OutsideWindow,
+        Outcome::Held,
     ];
 
     /// The outcomes counted per experiment (a prefix of `ALL`); the others belong to no
@@ -176,6 +237,7 @@ impl Outcome {
             Outcome::Unexposed => "unexposed",
             Outcome::BeforeExposure => "before_exposure",
             Outcome::OutsideWindow => "outside_window",
+            Outcome::Held => "held",
         }
     }
 }

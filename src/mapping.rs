@@ -301,6 +301,12 @@ impl Mapping {
         }
     }
 
+    /// Whether the source names exposures (an assignment stream, whose event times drive the
+    /// watermark of co-partitioned topics).
+    pub fn names_exposures(&self) -> bool {
+        !self.exposures.is_empty()
+    }
+
     /// Every metric the mapping names.
     pub fn metrics(&self) -> impl Iterator<Item = &str> {
         self.metrics.iter().map(|(_, m)| m.as_str())

@@ -213,6 +213,7 @@ pub fn replay(
                     offset: Some(offset + i as i64),
                     bytes,
                     mapping,
+                    topic: None,
                 })
                 .collect();
             offset += items.len() as i64;

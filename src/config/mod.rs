@@ -249,9 +249,16 @@ pub struct KafkaConfig {
     /// How often changed partition state is published to the changelog (also on revocation
     /// and shutdown).
     pub changelog_interval: std::time::Duration,
+    /// How far (event time) the business topics of co-partitioned `[[source]]`s may run
+    /// ahead of the assignment topic before an outcome held for its exposure is decided on
+    /// the exposures read so far.
+    pub outcome_lateness: std::time::Duration,
     /// librdkafka properties passed through unchanged.
     pub properties: BTreeMap<String, String>,
 }
+
+/// Default `[kafka] outcome_lateness_secs` (see docs/events.md for why five minutes).
+pub const DEFAULT_OUTCOME_LATENESS_SECS: u64 = 300;
 
 /// `[store]`.
 #[derive(Debug, Clone, PartialEq)]
@@ -454,6 +461,14 @@ impl Ctx<'_> {
                 }
             },
         };
+        // Where a missing list of topics is reported: at `topics` if given (empty), else at
+        // the section.
+        let kafka_span = raw.kafka.as_ref().map(|k| {
+            k.get_ref()
+                .topics
+                .as_ref()
+                .map_or_else(|| k.span(), |t| t.span())
+        });
         let kafka = raw.kafka.map(|k| self.kafka(k)).transpose()?;
         let snapshot_interval = match &raw.store.snapshot_interval_ms {
             None => std::time::Duration::from_millis(DEFAULT_SNAPSHOT_INTERVAL_MS),
@@ -491,6 +506,16 @@ impl Ctx<'_> {
             }
             experiments.push(def);
         }
+        let raw_source_spans: Vec<Range<usize>> = raw
+            .source
+            .iter()
+            .map(|s| {
+                s.get_ref()
+                    .topics
+                    .as_ref()
+                    .map_or_else(|| s.span(), |t| t.span())
+            })
+            .collect();
         let mut sources: Vec<SourceConfig> = Vec::new();
         for (i, s) in raw.source.into_iter().enumerate() {
             let span = s.span();
@@ -507,6 +532,7 @@ impl Ctx<'_> {
             }
             sources.push(source);
         }
+        self.check_source_topics(&raw_source_spans, kafka.as_ref(), kafka_span, &sources)?;
         let secs = |v: &Option<Spanned<i64>>,
                     key: &str,
                     default: u64|
@@ -636,6 +662,57 @@ impl Ctx<'_> {
         })
     }
 
+    /// Topics of `[[source]]`s are read from `[kafka]`'s brokers, each by one source, none
+    /// also in the built-in format or used for dead letters or the changelog; `[kafka]` needs
+    /// topics of one kind or the other.
+    fn check_source_topics(
+        &self,
+        spans: &[Range<usize>],
+        kafka: Option<&KafkaConfig>,
+        kafka_span: Option<Range<usize>>,
+        sources: &[SourceConfig],
+    ) -> Result<(), ConfigError> {
+        let mut seen: Vec<&str> = Vec::new();
+        for (i, s) in sources.iter().enumerate() {
+            let key = format!("source[{i}].topics");
+            if s.topics.is_empty() {
+                continue;
+            }
+            let Some(k) = kafka else {
+                return Err(self.err(
+                    spans[i].clone(),
+                    key,
+                    "topics are read from the brokers of a [kafka] section, and there is none",
+                ));
+            };
+            for t in &s.topics {
+                let clash = if k.topics.contains(t) {
+                    Some("is also in kafka.topics (read in the built-in format)")
+                } else if seen.contains(&t.as_str()) {
+                    Some("is listed by another [[source]]; a topic reads under one mapping")
+                } else if k.dead_letter_topic.as_ref() == Some(t) || k.changelog_topic == *t {
+                    Some("is the dead-letter or changelog topic")
+                } else {
+                    None
+                };
+                if let Some(why) = clash {
+                    return Err(self.err(spans[i].clone(), key, format!("topic `{t}` {why}")));
+                }
+                seen.push(t);
+            }
+        }
+        if let (Some(k), Some(span)) = (kafka, kafka_span) {
+            if k.topics.is_empty() && seen.is_empty() {
+                return Err(self.err(
+                    span,
+                    "kafka.topics",
+                    "is required in [kafka], e.g. topics = [\"exp-events\"] (or list a [[source]]'s topics)",
+                ));
+            }
+        }
+        Ok(())
+    }
+
     fn positive_size(&self, v: &Spanned<i64>, key: &str) -> Result<usize, ConfigError> {
         match usize::try_from(*v.get_ref()) {
             Ok(n) if n > 0 => Ok(n),
@@ -657,19 +734,14 @@ impl Ctx<'_> {
                 ))
             }
         };
+        // Empty only when `[[source]]`s list the topics (checked once they are read).
         let topics = match k.topics {
-            None => {
-                return Err(self.err(
-                    span,
-                    "kafka.topics",
-                    "is required in [kafka], e.g. topics = [\"exp-events\"]",
-                ))
-            }
+            None => Vec::new(),
             Some(t) => {
                 let tspan = t.span();
                 let list: Vec<String> =
                     t.into_inner().into_iter().map(|s| s.into_inner()).collect();
-                if list.is_empty() || list.iter().any(|s| s.trim().is_empty()) {
+                if list.iter().any(|s| s.trim().is_empty()) {
                     return Err(self.err(
                         tspan,
                         "kafka.topics",
@@ -728,6 +800,19 @@ impl Ctx<'_> {
                 }
             },
         };
+        let outcome_lateness = match &k.outcome_lateness_secs {
+            None => std::time::Duration::from_secs(DEFAULT_OUTCOME_LATENESS_SECS),
+            Some(v) => match u64::try_from(*v.get_ref()) {
+                Ok(s) if s <= 7 * 86_400 => std::time::Duration::from_secs(s),
+                _ => {
+                    return Err(self.err(
+                        v.span(),
+                        "kafka.outcome_lateness_secs",
+                        "must be between 0 and 604800 seconds",
+                    ))
+                }
+            },
+        };
         let mut properties = BTreeMap::new();
         for (name, value) in k.properties {
             let text = match value.into_inner() {
@@ -746,6 +831,7 @@ impl Ctx<'_> {
             dead_letter_topic,
             changelog_topic,
             changelog_interval,
+            outcome_lateness,
             properties,
         })
     }
@@ -1497,6 +1583,7 @@ fn apply_env(config: &mut Config, env: &[(String, String)]) -> Result<(), Config
             dead_letter_topic: None,
             changelog_topic: format!("{DEFAULT_KAFKA_GROUP}-changelog"),
             changelog_interval: std::time::Duration::from_millis(DEFAULT_CHANGELOG_INTERVAL_MS),
+            outcome_lateness: std::time::Duration::from_secs(DEFAULT_OUTCOME_LATENESS_SECS),
             properties: BTreeMap::new(),
         });
     }

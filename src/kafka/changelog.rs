@@ -510,7 +510,7 @@ pub fn follow(
 }
 
 /// Partition count of input `topics` (the largest), for sizing the changelog.
-pub fn input_partitions(cfg: &KafkaConfig) -> Result<i32, KafkaError> {
+pub fn input_partitions(cfg: &KafkaConfig, mapped: &[String]) -> Result<i32, KafkaError> {
     let consumer: BaseConsumer = connection_config(cfg)
         .set("group.id", "posteriord-metadata")
         .create()?;
@@ -518,7 +518,7 @@ pub fn input_partitions(cfg: &KafkaConfig) -> Result<i32, KafkaError> {
     Ok(md
         .topics()
         .iter()
-        .filter(|t| cfg.topics.iter().any(|x| x == t.name()))
+        .filter(|t| cfg.topics.iter().chain(mapped).any(|x| x == t.name()))
         .map(|t| t.partitions().len() as i32)
         .max()
         .unwrap_or(1))
@@ -548,7 +548,7 @@ mod tests {
     fn only_complete_generations_count_and_tombstones_remove() {
         let image = ShardImage {
             next_offset: Some(10),
-            experiments: vec![],
+            ..ShardImage::default()
         };
         let bytes = crate::service::store::encode(&image);
         let (a, b) = bytes.split_at(bytes.len() / 2);

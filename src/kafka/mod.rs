@@ -39,6 +39,74 @@ use crate::service::metrics::Source;
 use crate::service::Service;
 use crate::state::shards::ShardId;
 
+/// The librdkafka property naming the partition assignor.
+const ASSIGNMENT_STRATEGY: &str = "partition.assignment.strategy";
+
+/// Why the co-partitioned topics of the `[[source]]`s cannot be consumed.
+#[derive(Debug, thiserror::Error)]
+pub enum CoPartitionError {
+    /// The topics differ in partition count.
+    #[error("the unit-keyed topics of [[source]] must have the same partition count (partition i of each is read together), but they have: {0}; repartition them to one count")]
+    Mismatch(String),
+    /// A topic is not on the brokers.
+    #[error("topic `{0}` of a [[source]] does not exist on the brokers")]
+    Missing(String),
+}
+
+/// Check at start-up that the co-partitioned (mapped) `topics` exist and have one partition
+/// count, which is returned; waits for the brokers to answer (`None` if `shutdown` comes
+/// first). A mismatch is refused: partition i of one topic and partition i of another would
+/// hold different units, and outcomes would look unexposed.
+pub async fn check_co_partitioned(
+    cfg: &KafkaConfig,
+    topics: Vec<String>,
+    shutdown: CancellationToken,
+) -> Result<Option<i32>, CoPartitionError> {
+    if topics.is_empty() {
+        return Ok(None);
+    }
+    let cfg = cfg.clone();
+    let check = move || {
+        let mut logged = false;
+        loop {
+            if shutdown.is_cancelled() {
+                return Ok(None);
+            }
+            let probe: Result<BaseConsumer, KafkaError> = client::connection_config(&cfg)
+                .set("group.id", "posteriord-metadata")
+                .create();
+            let md = probe.and_then(|p| p.fetch_metadata(None, Duration::from_secs(3)));
+            let md = match md {
+                Ok(md) => md,
+                Err(e) => {
+                    if !logged {
+                        tracing::warn!(error = %e, "cannot read the partition counts of the [[source]] topics yet; retrying");
+                        logged = true;
+                    }
+                    std::thread::sleep(Duration::from_millis(500));
+                    continue;
+                }
+            };
+            let mut counts = Vec::new();
+            for t in &topics {
+                match md.topics().iter().find(|x| x.name() == t) {
+                    Some(x) if x.error().is_none() && !x.partitions().is_empty() => {
+                        counts.push((t.clone(), x.partitions().len() as i32))
+                    }
+                    _ => return Err(CoPartitionError::Missing(t.clone())),
+                }
+            }
+            if counts.iter().any(|(_, n)| *n != counts[0].1) {
+                let list: Vec<String> = counts.iter().map(|(t, n)| format!("`{t}` {n}")).collect();
+                return Err(CoPartitionError::Mismatch(list.join(", ")));
+            }
+            tracing::info!(topics = ?topics, partitions = counts[0].1, "co-partitioned [[source]] topics checked");
+            return Ok(Some(counts[0].1));
+        }
+    };
+    tokio::task::spawn_blocking(check).await.unwrap_or(Ok(None))
+}
+
 /// Most messages applied under one lock.
 const MAX_BATCH: usize = 2_000;
 /// How long a batch may wait to fill up before it is applied anyway.
@@ -67,8 +135,22 @@ pub fn start(
         dead_letters: dead_letters.clone(),
         changelog: Arc::clone(&changelog),
     };
-    let consumer: BaseConsumer<PartitionContext> =
-        client_config(cfg).create_with_context(context)?;
+    let mut consumer_config = client_config(cfg);
+    if !service.mapped_topics().is_empty() {
+        // Partition i of every co-partitioned topic must go to the same member; the range
+        // assignor gives each member the same partition indices of topics of equal size.
+        if cfg
+            .properties
+            .get(ASSIGNMENT_STRATEGY)
+            .is_some_and(|s| s != "range")
+        {
+            tracing::warn!(
+                "ignoring kafka.properties.{ASSIGNMENT_STRATEGY}: co-partitioned [[source]] topics need the range assignor"
+            );
+        }
+        consumer_config.set(ASSIGNMENT_STRATEGY, "range");
+    }
+    let consumer: BaseConsumer<PartitionContext> = consumer_config.create_with_context(context)?;
 
     let mut probe_config = client_config(cfg);
     probe_config.set("statistics.interval.ms", "0");
@@ -119,7 +201,7 @@ pub fn start(
                 std::thread::sleep(Duration::from_millis(100));
                 continue;
             }
-            let partitions = changelog::input_partitions(&kafka_cfg).unwrap_or(1);
+            let partitions = changelog::input_partitions(&kafka_cfg, &service.mapped_topics()).unwrap_or(1);
             match handle.block_on(Changelog::open(&kafka_cfg, &kafka_cfg.changelog_topic, partitions)) {
                 Ok(c) => {
                     tracing::info!(topic = c.topic(), partitions = c.n_partitions(), "changelog ready");
@@ -160,12 +242,18 @@ pub fn start(
             }
         }
         let Some(c) = changelog.get() else { return };
-        let topics: Vec<&str> = kafka_cfg.topics.iter().map(String::as_str).collect();
+        let mapped = service.mapped_topics();
+        let topics: Vec<&str> = kafka_cfg
+            .topics
+            .iter()
+            .chain(&mapped)
+            .map(String::as_str)
+            .collect();
         if let Err(e) = consumer.subscribe(&topics) {
             tracing::error!(error = %e, "cannot subscribe");
             return;
         }
-        tracing::info!(brokers = %kafka_cfg.brokers, topics = ?kafka_cfg.topics, group = %kafka_cfg.group, "kafka consumer subscribed");
+        tracing::info!(brokers = %kafka_cfg.brokers, topics = ?topics, group = %kafka_cfg.group, "kafka consumer subscribed");
         consume_loop(&consumer, &service, dead_letters.as_deref(), c, &loop_cfg, &shutdown)
     });
     Ok(())
@@ -324,19 +412,31 @@ fn apply_messages(
             shard_ids
                 .entry(m.topic().to_string())
                 .or_default()
-                .insert(m.partition(), ShardId::kafka(m.topic(), m.partition()));
+                .insert(m.partition(), service.kafka_shard(m.topic(), m.partition()));
         }
     }
     let items: Vec<Item<'_>> = batch
         .iter()
-        .map(|m| Item {
-            shard: shard_ids[m.topic()][&m.partition()].as_str(),
-            offset: Some(m.offset()),
-            bytes: m.payload().unwrap_or_default(),
-            mapping: None,
+        .map(|m| {
+            // A mapped topic is read under its source's mapping, into the shard of its
+            // partition index, with its own offset there.
+            let mapping = service.topic_mapping(m.topic());
+            Item {
+                shard: shard_ids[m.topic()][&m.partition()].as_str(),
+                offset: Some(m.offset()),
+                bytes: m.payload().unwrap_or_default(),
+                mapping,
+                topic: mapping.map(|_| m.topic()),
+            }
         })
         .collect();
     let report = service.apply(Source::Kafka, &items);
+    for (why, r) in &report.released {
+        if let Err(reject) = r {
+            // A held outcome refused when decided: its message was consumed long ago.
+            tracing::warn!(?why, reason = reject.reason.as_str(), message = %reject.message, "held outcome refused when decided");
+        }
+    }
     for (i, reject) in report.rejects() {
         let m = &batch[i];
         tracing::debug!(
@@ -376,10 +476,14 @@ fn commit_positions(consumer: &BaseConsumer<PartitionContext>, service: &Service
     let shards = service.lock_shards();
     let mut tpl = TopicPartitionList::new();
     for e in assigned.elements() {
-        if let Some(next) = shards
-            .shard(&ShardId::kafka(e.topic(), e.partition()))
-            .and_then(|s| s.next_offset())
-        {
+        let id = service.kafka_shard(e.topic(), e.partition());
+        let next = shards
+            .shard(&id)
+            .and_then(|s| match id.is_co_partitioned() {
+                true => s.stream_offset(e.topic()),
+                false => s.next_offset(),
+            });
+        if let Some(next) = next {
             let _ = tpl.add_partition_offset(e.topic(), e.partition(), Offset::Offset(next));
         }
     }

@@ -93,10 +93,15 @@ impl ClientContext for PartitionContext {
                 if *partition < 0 {
                     continue; // librdkafka's internal "unassigned" partition
                 }
-                let Some(shard) = shards.shard(&ShardId::kafka(topic, *partition)) else {
+                let id = self.service.kafka_shard(topic, *partition);
+                let Some(shard) = shards.shard(&id) else {
                     continue;
                 };
-                let next = shard.next_offset().unwrap_or(0);
+                let next = match id.is_co_partitioned() {
+                    true => shard.stream_offset(topic),
+                    false => shard.next_offset(),
+                }
+                .unwrap_or(0);
                 let partition_label = partition.to_string();
                 let labels = [topic.as_str(), partition_label.as_str()];
                 if p.hi_offset >= 0 {
@@ -193,54 +198,77 @@ impl PartitionContext {
             .collect();
         self.service.add_restoring(partitions.len() as isize);
         for (topic, partition) in &partitions {
-            let id = ShardId::kafka(topic, *partition);
-            let started = Instant::now();
-            let local = match self.service.load_shard(&id) {
-                Ok(local) => local,
-                Err(e) => {
-                    // The damaged file is kept for inspection; the changelog or a re-read
-                    // from the beginning rebuilds the state exactly.
-                    tracing::error!(topic, partition, error = %e, "stored state unreadable; ignoring it");
-                    self.service.set_aside_damaged(&id);
-                    None
+            let id = self.service.kafka_shard(topic, *partition);
+            // A co-partitioned shard covers partition i of several topics: restored once
+            // (with its first topic), then each topic seeks to its own stored offset.
+            let present = self.service.lock_shards().shard(&id).is_some();
+            if !present {
+                self.restore_shard(&id, topic, *partition);
+            }
+            let next = {
+                let shards = self.service.lock_shards();
+                let shard = shards.shard(&id);
+                match id.is_co_partitioned() {
+                    true => shard.and_then(|s| s.stream_offset(topic)),
+                    false => shard.and_then(Shard::next_offset),
                 }
             };
-            let shard = self
-                .newer_from_changelog(&id, *partition, local)
-                .unwrap_or_else(|| {
-                    tracing::info!(
-                        topic,
-                        partition,
-                        "no stored state for the partition: reading it from the beginning"
-                    );
-                    Shard::new(self.service.lock_shards().defs())
-                });
-            let offset = match shard.next_offset() {
+            let offset = match next {
                 Some(next) => Offset::Offset(next),
                 None => Offset::Beginning,
             };
             if let Err(e) = tpl.set_partition_offset(topic, *partition, offset) {
                 tracing::error!(topic, partition, error = %e, "cannot set the restore offset");
             }
-            tracing::info!(
-                topic,
-                partition,
-                ?offset,
-                elapsed_ms = started.elapsed().as_millis() as u64,
-                "partition assigned and restored"
-            );
-            self.service.lock_shards().insert(id, shard);
+            tracing::info!(topic, partition, shard = %id, ?offset, "partition assigned and restored");
         }
         self.service.add_restoring(-(partitions.len() as isize));
     }
 
+    /// Load shard `id` (the newer of the local file and the changelog, else empty) and put
+    /// it in place.
+    fn restore_shard(&self, id: &ShardId, topic: &str, partition: i32) {
+        let started = Instant::now();
+        let local = match self.service.load_shard(id) {
+            Ok(local) => local,
+            Err(e) => {
+                // The damaged file is kept for inspection; the changelog or a re-read
+                // from the beginning rebuilds the state exactly.
+                tracing::error!(topic, partition, error = %e, "stored state unreadable; ignoring it");
+                self.service.set_aside_damaged(id);
+                None
+            }
+        };
+        let shard = self
+            .newer_from_changelog(id, partition, local)
+            .unwrap_or_else(|| {
+                tracing::info!(
+                    topic,
+                    partition,
+                    shard = %id,
+                    "no stored state for the partition: reading it from the beginning"
+                );
+                Shard::new(self.service.lock_shards().defs())
+            });
+        tracing::info!(
+            shard = %id,
+            next_offset = ?shard.next_offset(),
+            held = shard.n_held(),
+            elapsed_ms = started.elapsed().as_millis() as u64,
+            "partition state restored"
+        );
+        self.service.lock_shards().insert(id.clone(), shard);
+    }
+
     /// Save and drop the state of revoked partitions: the next owner restores it.
     fn release(&self, tpl: &TopicPartitionList) {
-        let ids: Vec<ShardId> = tpl
+        let mut ids: Vec<ShardId> = tpl
             .elements()
             .iter()
-            .map(|e| ShardId::kafka(e.topic(), e.partition()))
+            .map(|e| self.service.kafka_shard(e.topic(), e.partition()))
             .collect();
+        ids.sort();
+        ids.dedup();
         if ids.is_empty() {
             return;
         }

@@ -49,6 +49,12 @@ pub struct Metrics {
     http_requests: IntCounterVec,
     /// HTTP request durations by method, route template and status.
     http_duration: HistogramVec,
+    /// Events read under a `[[source]]` mapping, by the source's name and outcome (or
+    /// `rejected`): how many lines of each of a team's streams were ignored, for instance.
+    pub mapped_events: IntCounterVec,
+    /// Outcomes held for the assignments of co-partitioned topics and then decided, by why
+    /// (`watermark`: the assignments caught up; `lateness`: the bound passed first).
+    pub held_decided: IntCounterVec,
     /// Exposed units per experiment and variant.
     pub variant_units: IntGaugeVec,
     /// Messages between the next offset to apply and the partition's high watermark.
@@ -136,6 +142,18 @@ impl Metrics {
             "posteriord_events_rejected_total",
             "Refused events by source and reason.",
             &["source", "reason"],
+        );
+        let mapped_events = counter_vec(
+            &registry,
+            "posteriord_mapped_events_total",
+            "Events read under a [[source]] mapping, by source name and outcome (or rejected).",
+            &["source_name", "outcome"],
+        );
+        let held_decided = counter_vec(
+            &registry,
+            "posteriord_held_outcomes_decided_total",
+            "Outcomes of co-partitioned topics held for their assignments, then decided: by why (watermark, lateness).",
+            &["why"],
         );
         let int_gauge_vec = |name: &str, help: &str, labels: &[&str]| {
             let g =
@@ -371,6 +389,8 @@ impl Metrics {
             scrape: std::sync::Mutex::new(()),
             events,
             rejected,
+            mapped_events,
+            held_decided,
             kafka_reachable,
             variant_units,
         };

@@ -163,7 +163,15 @@ impl Service {
             cadence: config.alerts.cadence(),
             due,
             evaluation_queue: Mutex::new(Some(queue)),
-            shards: Mutex::new(Shards::new(config.experiments.iter().cloned())),
+            shards: Mutex::new({
+                let mut shards = Shards::new(config.experiments.iter().cloned());
+                if let Some(k) = &config.kafka {
+                    shards.set_lateness(
+                        i64::try_from(k.outcome_lateness.as_micros()).unwrap_or(i64::MAX),
+                    );
+                }
+                shards
+            }),
             metrics: Metrics::with_kafka(config.kafka.is_some()),
             max_event_bytes: config.max_event_bytes(),
             sources: config.sources.clone(),
@@ -374,6 +382,7 @@ impl Service {
                     offset: first.map(|f| f + i as i64),
                     bytes,
                     mapping: None,
+                    topic: None,
                 })
                 .collect()
         };
@@ -402,6 +411,29 @@ impl Service {
             .iter()
             .find(|s| s.mapping.name == name)
             .map(|s| &s.mapping)
+    }
+
+    /// The mapping Kafka topic `topic` is read under, if a `[[source]]` lists it.
+    pub fn topic_mapping(&self, topic: &str) -> Option<&crate::mapping::Mapping> {
+        self.sources
+            .iter()
+            .find(|s| s.topics.iter().any(|t| t == topic))
+            .map(|s| &s.mapping)
+    }
+
+    /// Every Kafka topic a `[[source]]` lists: the co-partitioned, unit-keyed input topics.
+    pub fn mapped_topics(&self) -> Vec<String> {
+        self.sources.iter().flat_map(|s| s.topics.clone()).collect()
+    }
+
+    /// The shard that partition `partition` of input topic `topic` feeds: one per partition
+    /// index for all co-partitioned (mapped) topics, one per partition for the others.
+    pub fn kafka_shard(&self, topic: &str, partition: i32) -> ShardId {
+        if self.topic_mapping(topic).is_some() {
+            ShardId::co_partitioned(partition)
+        } else {
+            ShardId::kafka(topic, partition)
+        }
     }
 
     /// [`Service::ingest_http`] for events in a source's own shape: each is read under
@@ -466,6 +498,7 @@ impl Service {
                     offset: Some((r.first_seq + i as u64) as i64),
                     bytes,
                     mapping: None,
+                    topic: None,
                 })
             })
             .collect();
@@ -658,6 +691,7 @@ impl Service {
     /// experiments that no longer fit.
     pub fn shard_from_image(&self, id: &str, image: ShardImage) -> Shard {
         let defs = self.lock_shards().defs().to_vec();
+        store::warn_if_without_exposures(id, &image);
         let (shard, mismatches) = Shard::from_image(&defs, image);
         for m in &mismatches {
             tracing::error!(

@@ -16,14 +16,18 @@ use std::io::{self, Write};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
-use crate::event::Outcome;
+use crate::event::{Event, EventBody, Outcome};
 use crate::experiment::{ExperimentDef, ExposureBasis, MetricKind};
-use crate::state::image::{ExperimentImage, ImageMismatch, UnitRecord};
+use crate::state::image::{ExperimentImage, ExposureRecord, ImageMismatch, UnitRecord};
 use crate::state::shards::{Shard, ShardImage};
 use crate::state::{ConversionTotals, DefectTotals, MetricTotals, OutcomeCounts};
 
 const MAGIC: &[u8; 8] = b"PSTDSHRD";
-const VERSION: u32 = 2;
+/// 3 added each unit's exposure second and the co-partitioned shards' topic offsets,
+/// watermarks and held outcomes; version 2 is still read (see [`decode`]).
+const VERSION: u32 = 3;
+/// The previous version, read with no exposure times (units count as exposed since the epoch).
+const VERSION_WITHOUT_EXPOSURES: u32 = 2;
 const NONE_I64: i64 = i64::MIN;
 
 /// Store failures.
@@ -111,8 +115,20 @@ impl Store {
         })?;
         // Not needed any more; freeing it before the tables are built lowers the peak.
         drop(bytes);
+        warn_if_without_exposures(id, &image);
         let (shard, mismatches) = Shard::from_image(defs, image);
         Ok(Some(Loaded { shard, mismatches }))
+    }
+}
+
+/// Log, once per restore, that `image` is of the format without exposure times: its units
+/// count as exposed since the epoch, so an outcome before such a unit's real exposure counts.
+pub fn warn_if_without_exposures(id: &str, image: &ShardImage) {
+    if image.experiments.iter().any(|e| e.exposures.is_none()) {
+        tracing::warn!(
+            shard = id,
+            "stored state of format version {VERSION_WITHOUT_EXPOSURES} keeps no exposure times: its units count as exposed since the epoch until the next save (outcomes before their real exposure may count)"
+        );
     }
 }
 
@@ -728,9 +744,16 @@ pub fn encode(image: &ShardImage) -> Vec<u8> {
 
 /// Write the encoding of `image` to `out`.
 fn write_image<W: Write>(image: &ShardImage, out: W) -> io::Result<W> {
+    write_image_as(image, out, VERSION)
+}
+
+/// Write the encoding of `image` in format `version` ([`VERSION`], or the previous one for
+/// tests of reading it).
+fn write_image_as<W: Write>(image: &ShardImage, out: W, version: u32) -> io::Result<W> {
+    let current = version == VERSION;
     let mut w = Writer::new(out);
     w.put(MAGIC);
-    w.u32(VERSION);
+    w.u32(version);
     w.i64(image.next_offset.unwrap_or(NONE_I64));
     w.len(image.experiments.len());
     for e in &image.experiments {
@@ -777,6 +800,50 @@ fn write_image<W: Write>(image: &ShardImage, out: W) -> io::Result<W> {
         }
         w.i64(e.last_event_time.unwrap_or(NONE_I64));
         w.i64(e.first_event_time.unwrap_or(NONE_I64));
+        if !current {
+            continue;
+        }
+        match &e.exposures {
+            None => w.u8(0),
+            Some(records) => {
+                w.u8(1);
+                w.len(records.len());
+                for &ExposureRecord { key, secs } in records {
+                    w.u64(key);
+                    w.u32(secs);
+                }
+            }
+        }
+    }
+    if !current {
+        return w.finish();
+    }
+    w.len(image.streams.len());
+    for (topic, next) in &image.streams {
+        w.str(topic);
+        w.i64(*next);
+    }
+    w.i64(image.watermark.unwrap_or(NONE_I64));
+    w.i64(image.outcome_mark.unwrap_or(NONE_I64));
+    w.len(image.held.len());
+    for event in &image.held {
+        let EventBody::Outcome {
+            metric,
+            unit,
+            count,
+            exposure,
+        } = &event.body
+        else {
+            unreachable!("only outcomes naming no experiment are held");
+        };
+        w.i64(event.time.unwrap_or(NONE_I64));
+        w.str(metric);
+        w.str(unit);
+        w.u64(*count);
+        w.u8(u8::from(exposure.is_some()));
+        w.f64(exposure.unwrap_or(0.0));
+        w.u8(u8::from(event.id.is_some()));
+        w.str(event.id.as_deref().unwrap_or(""));
     }
     w.finish()
 }
@@ -853,11 +920,12 @@ pub fn decode(bytes: &[u8]) -> Result<ShardImage, String> {
         return Err("not a posteriord shard file".into());
     }
     let version = r.u32()?;
-    if version != VERSION {
+    if version != VERSION && version != VERSION_WITHOUT_EXPOSURES {
         return Err(format!(
-            "format version {version}; this build reads {VERSION}"
+            "format version {version}; this build reads {VERSION_WITHOUT_EXPOSURES} and {VERSION}"
         ));
     }
+    let current = version == VERSION;
     let next_offset = opt(r.i64()?);
     let n_experiments = r.len(8)?;
     let mut experiments = Vec::with_capacity(n_experiments);
@@ -923,6 +991,20 @@ pub fn decode(bytes: &[u8]) -> Result<ShardImage, String> {
         }
         let last_event_time = opt(r.i64()?);
         let first_event_time = opt(r.i64()?);
+        let exposures = match current && r.u8()? == 1 {
+            false => None,
+            true => {
+                let n = r.len(12)?;
+                let mut records = Vec::with_capacity(n);
+                for _ in 0..n {
+                    records.push(ExposureRecord {
+                        key: r.u64()?,
+                        secs: r.u32()?,
+                    });
+                }
+                Some(records)
+            }
+        };
         experiments.push(ExperimentImage {
             id,
             variants,
@@ -934,15 +1016,49 @@ pub fn decode(bytes: &[u8]) -> Result<ShardImage, String> {
             outcomes,
             last_event_time,
             first_event_time,
+            exposures,
         });
+    }
+    let mut image = ShardImage {
+        next_offset,
+        experiments,
+        ..ShardImage::default()
+    };
+    if current {
+        let n = r.len(12)?;
+        for _ in 0..n {
+            let topic = r.str()?;
+            image.streams.push((topic, r.i64()?));
+        }
+        image.watermark = opt(r.i64()?);
+        image.outcome_mark = opt(r.i64()?);
+        let n = r.len(40)?;
+        for _ in 0..n {
+            let time = opt(r.i64()?);
+            let metric = r.str()?;
+            let unit = r.str()?;
+            let count = r.u64()?;
+            let has_exposure = r.u8()? == 1;
+            let exposure = r.f64()?;
+            let has_id = r.u8()? == 1;
+            let id = r.str()?;
+            image.held.push(Event {
+                experiment: "".into(),
+                id: has_id.then(|| id.into()),
+                time,
+                body: EventBody::Outcome {
+                    metric: metric.into(),
+                    unit: unit.into(),
+                    count,
+                    exposure: has_exposure.then_some(exposure),
+                },
+            });
+        }
     }
     if r.pos != body.len() {
         return Err(format!("{} unexpected trailing bytes", body.len() - r.pos));
     }
-    Ok(ShardImage {
-        next_offset,
-        experiments,
-    })
+    Ok(image)
 }
 
 #[cfg(test)]
@@ -1003,6 +1119,7 @@ mod tests {
         for img in a.experiments.iter_mut().chain(b.experiments.iter_mut()) {
             img.units.sort_unstable();
             img.seen_ids.sort_unstable();
+            img.exposures.as_mut().expect("kept").sort_unstable();
         }
         assert_eq!(a, b);
         // Restored dedup state still works: the same id is a duplicate.
@@ -1018,6 +1135,124 @@ mod tests {
         };
         assert_eq!(restored.apply(&again), Ok(Outcome::DuplicateId));
         assert!(store.load("kafka/other/0", &defs()).unwrap().is_none());
+    }
+
+    /// An outcome naming no experiment, for unit `unit` at `secs`.
+    fn outcome(unit: &str, secs: i64) -> Event<'static> {
+        Event {
+            experiment: Cow::Borrowed(""),
+            id: None,
+            time: Some(secs * 1_000_000),
+            body: EventBody::Outcome {
+                metric: Cow::Borrowed("purchase"),
+                unit: Cow::Owned(unit.to_string()),
+                count: 1,
+                exposure: None,
+            },
+        }
+    }
+
+    /// A shard where unit `late` was exposed at second 5 000 and unit `early` at second 100.
+    fn exposed_shard() -> Shard {
+        let mut shard = Shard::new(&defs());
+        for (unit, secs) in [("early", 100), ("late", 5_000)] {
+            let e = Event {
+                experiment: Cow::Borrowed("crumb-checkout-copy"),
+                id: None,
+                time: Some(secs * 1_000_000),
+                body: EventBody::Exposure {
+                    variant: Cow::Borrowed("control"),
+                    unit: Cow::Borrowed(unit),
+                },
+            };
+            assert_eq!(shard.apply(&e), Ok(Outcome::Applied));
+        }
+        shard
+    }
+
+    #[test]
+    fn exposure_times_survive_a_restart() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::open(dir.path()).unwrap();
+        store
+            .save("kafka/+units/0", &exposed_shard().image())
+            .unwrap();
+        let mut restored = store
+            .load("kafka/+units/0", &defs())
+            .unwrap()
+            .unwrap()
+            .shard;
+        // Before the exposure of `late` (second 5 000): not counted, as before the restart.
+        assert_eq!(
+            restored.apply(&outcome("late", 4_000)),
+            Ok(Outcome::BeforeExposure)
+        );
+        assert_eq!(
+            restored.apply(&outcome("early", 4_000)),
+            Ok(Outcome::Applied)
+        );
+        assert_eq!(
+            restored.apply(&outcome("late", 5_000)),
+            Ok(Outcome::Applied)
+        );
+        let e = restored.engine().experiment("crumb-checkout-copy").unwrap();
+        let purchase = &e.snapshot().metrics[0];
+        let MetricTotals::Conversion(v) = purchase else {
+            panic!("purchase is a conversion metric")
+        };
+        assert_eq!(v[0].successes, 2);
+    }
+
+    #[test]
+    fn images_of_the_previous_version_restore_with_units_exposed_since_the_epoch() {
+        let mut image = exposed_shard().image();
+        image.next_offset = Some(7);
+        let mut bytes = Vec::new();
+        bytes = write_image_as(&image, bytes, VERSION_WITHOUT_EXPOSURES).unwrap();
+        let old = decode(&bytes).unwrap();
+        assert_eq!(old.next_offset, Some(7));
+        assert!(old.experiments.iter().all(|e| e.exposures.is_none()));
+        let (mut shard, mismatches) = Shard::from_image(&defs(), old);
+        assert!(mismatches.is_empty());
+        // The old behaviour, as documented: the exposure time is unknown, so it counts.
+        assert_eq!(shard.apply(&outcome("late", 4_000)), Ok(Outcome::Applied));
+        // The next save writes the current version, with the times as they now stand.
+        let again = decode(&encode(&shard.image())).unwrap();
+        assert!(again.experiments.iter().all(|e| e.exposures.is_some()));
+    }
+
+    #[test]
+    fn co_partitioned_positions_and_held_outcomes_survive_a_restart() {
+        let mut shard = exposed_shard();
+        assert!(shard.advance_stream("rides", 41));
+        assert!(shard.advance_stream("assignments", 9));
+        assert!(!shard.advance_stream("rides", 12), "already applied");
+        assert_eq!(shard.next_offset(), Some(42 + 10));
+        shard.note_assignment_time(6_000_000_000);
+        let mut held = outcome("late", 7_000);
+        held.id = Some(Cow::Borrowed("ride-9"));
+        shard.hold(held.clone().into_owned());
+        shard.note_outcome_time(7_000_000_000);
+        let bytes = encode(&shard.image());
+        let image = decode(&bytes).unwrap();
+        assert_eq!(
+            image.streams,
+            vec![("assignments".into(), 10), ("rides".into(), 42)]
+        );
+        assert_eq!(image.watermark, Some(6_000_000_000));
+        assert_eq!(image.outcome_mark, Some(7_000_000_000));
+        assert_eq!(image.held, vec![held.clone()]);
+        let (mut restored, _) = Shard::from_image(&defs(), image);
+        assert_eq!(restored.stream_offset("rides"), Some(42));
+        assert_eq!(restored.n_held(), 1);
+        assert!(
+            restored.take_releasable(300_000_000).is_empty(),
+            "still ahead of the watermark"
+        );
+        restored.note_assignment_time(7_001_000_000);
+        let out = restored.take_releasable(300_000_000);
+        assert_eq!(out.len(), 1);
+        assert_eq!(out[0].0, held);
     }
 
     fn seqs(wal: &Wal) -> Vec<(u64, usize)> {

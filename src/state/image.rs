@@ -20,6 +20,17 @@ pub struct UnitRecord {
     pub raw: u32,
 }
 
+/// One membership of an image: the unit's id hash and the second of its first exposure
+/// ([`super::members::ExposureSecs`]), packed to 12 bytes like [`UnitRecord`].
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
+#[repr(C, packed(4))]
+pub struct ExposureRecord {
+    /// Hash of the unit id.
+    pub key: u64,
+    /// Second of the unit's first exposure in the experiment.
+    pub secs: u32,
+}
+
 /// The complete state of one experiment as plain data.
 #[derive(Debug, Clone, PartialEq)]
 pub struct ExperimentImage {
@@ -43,6 +54,10 @@ pub struct ExperimentImage {
     pub last_event_time: Option<Micros>,
     /// Earliest event time seen.
     pub first_event_time: Option<Micros>,
+    /// The second of each exposed unit's first exposure (the shard's membership index for
+    /// this experiment), or `None` from a format that did not keep them: those units then
+    /// count as exposed since the epoch.
+    pub exposures: Option<Vec<ExposureRecord>>,
 }
 
 /// Why an image does not fit the configured definition.
@@ -119,6 +134,8 @@ impl ExperimentState {
             outcomes: self.outcomes,
             last_event_time: self.last_event_time,
             first_event_time: self.first_event_time,
+            // The shard's engine holds the memberships and fills these in.
+            exposures: None,
         }
     }
 

@@ -703,20 +703,46 @@ impl Engine {
             .find(|&i| self.experiments[i].def.id == id)
     }
 
-    /// Replace the state of one experiment (restore from a stored image).
+    /// Replace the state of one experiment (restore from a stored image), with its units'
+    /// exposure seconds as the image kept them.
     ///
-    /// Its units rejoin the membership index as exposed at second 0: images do not carry
-    /// exposure times yet, so after a restore an outcome cannot be found to precede the
-    /// exposure of a unit exposed before the image was taken.
-    pub fn replace(&mut self, state: ExperimentState) {
+    /// `exposures: None` (an image of a format that did not keep them): the units rejoin the
+    /// membership index as exposed at second 0, so an outcome cannot be found to precede the
+    /// exposure of a unit exposed before that image was taken.
+    pub fn replace(
+        &mut self,
+        state: ExperimentState,
+        exposures: Option<Vec<image::ExposureRecord>>,
+    ) {
         if let Some(idx) = self.position(&state.def.id) {
             let x = idx as u32;
             self.members.retain_map(|m| (m != x).then_some(m));
-            for (unit, _) in state.units.iter() {
-                self.members.insert(unit, x, 0);
+            match exposures {
+                Some(records) => {
+                    for image::ExposureRecord { key, secs } in records {
+                        self.members.insert(key, x, secs);
+                    }
+                }
+                None => {
+                    for (unit, _) in state.units.iter() {
+                        self.members.insert(unit, x, 0);
+                    }
+                }
             }
             self.experiments[idx] = state;
         }
+    }
+
+    /// The membership index split by experiment position: each experiment's units with the
+    /// second of their first exposure (one pass over the index, for images).
+    pub fn exposures_by_experiment(&self) -> Vec<Vec<image::ExposureRecord>> {
+        let mut out = vec![Vec::new(); self.experiments.len()];
+        for (key, x, secs) in self.members.iter() {
+            if let Some(v) = out.get_mut(x as usize) {
+                v.push(image::ExposureRecord { key, secs });
+            }
+        }
+        out
     }
 
     /// Watch `def` too, or redefine the experiment of that id: a new generation starts empty,

@@ -9,8 +9,9 @@ use std::collections::BTreeMap;
 use std::sync::Arc;
 
 use super::image::{ExperimentImage, ImageMismatch};
+use super::members::exposure_secs;
 use super::{Engine, ExperimentSnapshot, ExperimentState};
-use crate::event::{Event, Outcome, Reject};
+use crate::event::{Event, Micros, Outcome, Reject};
 use crate::experiment::ExperimentDef;
 
 /// Names one input shard: a Kafka partition, the events posted over HTTP, or the simulator.
@@ -25,7 +26,23 @@ pub const HTTP_SHARD: &str = "http";
 
 const KAFKA_PREFIX: &str = "kafka/";
 
+/// The name standing for the topic in the shards of co-partitioned topics: `+` cannot occur
+/// in a Kafka topic name, so it never clashes with a topic's own shard.
+const CO_PARTITIONED: &str = "+units";
+
 impl ShardId {
+    /// The shard of partition `partition` of every co-partitioned (unit-keyed) input topic.
+    pub fn co_partitioned(partition: i32) -> ShardId {
+        ShardId(format!("{KAFKA_PREFIX}{CO_PARTITIONED}/{partition}"))
+    }
+
+    /// Whether this shard covers one partition index of the co-partitioned topics.
+    pub fn is_co_partitioned(&self) -> bool {
+        self.0.strip_prefix(KAFKA_PREFIX).is_some_and(|rest| {
+            rest.starts_with(CO_PARTITIONED) && rest[CO_PARTITIONED.len()..].starts_with('/')
+        })
+    }
+
     /// The shard of Kafka partition `partition` of `topic`.
     pub fn kafka(topic: &str, partition: i32) -> ShardId {
         ShardId(format!("{KAFKA_PREFIX}{topic}/{partition}"))
@@ -93,10 +110,32 @@ impl std::fmt::Display for ShardId {
 pub struct Shard {
     /// The shard's experiments.
     engine: Engine,
-    /// Next input offset to apply (Kafka shards); everything before it is in `engine`.
+    /// Next input offset to apply (Kafka shards); everything before it is in `engine`. For a
+    /// co-partitioned shard, the sum of `streams`' offsets: it only grows, so it orders two
+    /// images of the shard as a single topic's offset does.
     next_offset: Option<i64>,
     /// Whether anything changed since the shard was last stored.
     dirty: bool,
+    /// Co-partitioned shards: the next offset of each input topic covered.
+    streams: BTreeMap<String, i64>,
+    /// Co-partitioned shards: the latest event time read on the assignment topics.
+    watermark: Option<Micros>,
+    /// Co-partitioned shards: the latest time of an outcome read on the other topics.
+    outcome_mark: Option<Micros>,
+    /// Outcomes read before the assignments reached their time, by (time, arrival).
+    held: BTreeMap<(Micros, u64), Event<'static>>,
+    /// Arrival counter of `held`.
+    held_seq: u64,
+}
+
+/// Why a held outcome is decided now.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Release {
+    /// The assignment stream's watermark passed the outcome's second.
+    Watermark,
+    /// The other streams moved on by more than the lateness bound while the assignments did
+    /// not reach the outcome: it is decided on the exposures known now.
+    Lateness,
 }
 
 impl Shard {
@@ -106,7 +145,103 @@ impl Shard {
             engine: Engine::with_defs(defs.iter().cloned()),
             next_offset: None,
             dirty: false,
+            streams: BTreeMap::new(),
+            watermark: None,
+            outcome_mark: None,
+            held: BTreeMap::new(),
+            held_seq: 0,
         }
+    }
+
+    /// Move the position of input topic `topic` past `offset` (co-partitioned shards, which
+    /// cover several topics): `false` (and no change) when the shard already holds it.
+    #[inline]
+    pub fn advance_stream(&mut self, topic: &str, offset: i64) -> bool {
+        let next = match self.streams.get_mut(topic) {
+            Some(next) if offset < *next => return false,
+            Some(next) => {
+                let was = *next;
+                *next = offset + 1;
+                offset + 1 - was
+            }
+            None => {
+                self.streams.insert(topic.to_string(), offset + 1);
+                offset + 1
+            }
+        };
+        self.next_offset = Some(self.next_offset.unwrap_or(0) + next);
+        self.dirty = true;
+        true
+    }
+
+    /// Next offset of input topic `topic` in a co-partitioned shard.
+    pub fn stream_offset(&self, topic: &str) -> Option<i64> {
+        self.streams.get(topic).copied()
+    }
+
+    /// The latest event time read on the assignment topics (co-partitioned shards).
+    pub fn watermark(&self) -> Option<Micros> {
+        self.watermark
+    }
+
+    /// An event at `time` was read on an assignment topic.
+    pub fn note_assignment_time(&mut self, time: Micros) {
+        if self.watermark.is_none_or(|w| time > w) {
+            self.watermark = Some(time);
+            self.dirty = true;
+        }
+    }
+
+    /// Whether an outcome at `time` must wait: the assignments have not yet passed its
+    /// second (exposures count from their whole second, so all of that second must be read).
+    pub fn must_hold(&self, time: Micros) -> bool {
+        self.watermark
+            .is_none_or(|w| exposure_secs(w) <= exposure_secs(time))
+    }
+
+    /// Keep `event` (an outcome naming no experiment, with a time) until it can be decided.
+    pub fn hold(&mut self, event: Event<'static>) {
+        let time = event.time.unwrap_or(0);
+        self.held.insert((time, self.held_seq), event);
+        self.held_seq += 1;
+        self.dirty = true;
+    }
+
+    /// An outcome at `time` was read on a topic other than the assignments'.
+    pub fn note_outcome_time(&mut self, time: Micros) {
+        if self.outcome_mark.is_none_or(|m| time > m) {
+            self.outcome_mark = Some(time);
+            self.dirty = true;
+        }
+    }
+
+    /// Number of outcomes held.
+    pub fn n_held(&self) -> usize {
+        self.held.len()
+    }
+
+    /// Take out, earliest first, the held outcomes that can be decided now: those whose second
+    /// the watermark passed, and those more than `lateness` older than the latest outcome read.
+    pub fn take_releasable(&mut self, lateness: Micros) -> Vec<(Event<'static>, Release)> {
+        let mut out = Vec::new();
+        while let Some((&(time, _), _)) = self.held.first_key_value() {
+            let why = if !self.must_hold(time) {
+                Release::Watermark
+            } else if self
+                .outcome_mark
+                .is_some_and(|m| m.saturating_sub(time) > lateness)
+            {
+                Release::Lateness
+            } else {
+                break;
+            };
+            let (_, event) = self.held.pop_first().expect("peeked above");
+            out.push((event, why));
+        }
+        if !out.is_empty() {
+            self.dirty = true;
+        }
+        out
     }
 
     /// The shard's experiments.
@@ -188,25 +323,43 @@ impl Shard {
 }
 
 /// The complete state of one shard as plain data, for the store.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, Default)]
 pub struct ShardImage {
     /// Next input offset to apply.
     pub next_offset: Option<i64>,
     /// Every experiment that saw a valid event in this shard.
     pub experiments: Vec<ExperimentImage>,
+    /// Co-partitioned shards: each covered topic with its next offset.
+    pub streams: Vec<(String, i64)>,
+    /// Co-partitioned shards: latest event time read on the assignment topics.
+    pub watermark: Option<Micros>,
+    /// Co-partitioned shards: latest outcome time read on the other topics.
+    pub outcome_mark: Option<Micros>,
+    /// Outcomes held for the assignments to catch up, earliest first.
+    pub held: Vec<Event<'static>>,
 }
 
 impl Shard {
     /// The shard as an image (experiments without events are left out).
     pub fn image(&self) -> ShardImage {
+        let mut exposures = self.engine.exposures_by_experiment();
         ShardImage {
             next_offset: self.next_offset,
             experiments: self
                 .engine
                 .experiments()
-                .filter(|e| !e.snapshot().is_empty())
-                .map(|e| e.image())
+                .enumerate()
+                .filter(|(_, e)| !e.snapshot().is_empty())
+                .map(|(x, e)| {
+                    let mut image = e.image();
+                    image.exposures = Some(std::mem::take(&mut exposures[x]));
+                    image
+                })
                 .collect(),
+            streams: self.streams.iter().map(|(t, o)| (t.clone(), *o)).collect(),
+            watermark: self.watermark,
+            outcome_mark: self.outcome_mark,
+            held: self.held.values().cloned().collect(),
         }
     }
 
@@ -218,8 +371,16 @@ impl Shard {
     ) -> (Shard, Vec<ImageMismatch>) {
         let mut shard = Shard::new(defs);
         shard.next_offset = image.next_offset;
+        shard.streams = image.streams.into_iter().collect();
+        shard.watermark = image.watermark;
+        shard.outcome_mark = image.outcome_mark;
+        for event in image.held {
+            shard.hold(event);
+        }
+        shard.dirty = false;
         let mut mismatches = Vec::new();
-        for e in image.experiments {
+        for mut e in image.experiments {
+            let exposures = e.exposures.take();
             let Some(def) = defs.iter().find(|d| d.state_key() == e.id) else {
                 let base = e.id.split('~').next().unwrap_or_default();
                 let reason = if defs.iter().any(|d| d.id == base) {
@@ -234,7 +395,7 @@ impl Shard {
                 continue;
             };
             match ExperimentState::from_image(Arc::clone(def), e) {
-                Ok(state) => shard.engine.replace(state),
+                Ok(state) => shard.engine.replace(state, exposures),
                 Err(m) => mismatches.push(m),
             }
         }
@@ -250,7 +411,13 @@ pub struct Shards {
     /// Totals of shards owned by other instances, as last published in the changelog; used
     /// only for reading, and only for shard ids not held here.
     remote: BTreeMap<ShardId, (Option<i64>, Vec<ExperimentSnapshot>)>,
+    /// How far (event time) the other co-partitioned topics may run ahead of the assignments
+    /// before an outcome held for them is decided anyway.
+    lateness: Micros,
 }
+
+/// Default of [`Shards::lateness`]: five minutes (see docs/events.md).
+pub const DEFAULT_LATENESS: Micros = 300 * 1_000_000;
 
 impl Shards {
     /// No shards yet, over `defs`.
@@ -259,7 +426,18 @@ impl Shards {
             defs: defs.into_iter().map(Arc::new).collect(),
             shards: BTreeMap::new(),
             remote: BTreeMap::new(),
+            lateness: DEFAULT_LATENESS,
         }
+    }
+
+    /// The bound on holding outcomes for the assignments (see [`Shard::take_releasable`]).
+    pub fn lateness(&self) -> Micros {
+        self.lateness
+    }
+
+    /// Set [`Shards::lateness`].
+    pub fn set_lateness(&mut self, lateness: Micros) {
+        self.lateness = lateness;
     }
 
     /// The experiment definitions.

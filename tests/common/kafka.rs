@@ -42,19 +42,34 @@ pub fn spawn_producer(
     lines: &[String],
     dir: &Path,
 ) -> Child {
+    spawn_keyed_producer(brokers, topic, partitions, None, lines, dir)
+}
+
+/// [`spawn_producer`], keying each message by the value at dotted path `key` of its line
+/// (unit-keyed topics) instead of by its experiment.
+pub fn spawn_keyed_producer(
+    brokers: &str,
+    topic: &str,
+    partitions: u32,
+    key: Option<&str>,
+    lines: &[String],
+    dir: &Path,
+) -> Child {
     let file = dir.join(format!("{topic}-{}.ndjson", lines.len()));
     std::fs::write(&file, lines.join("\n") + "\n").unwrap();
-    Command::new("python3")
-        .arg(tool("produce.py"))
-        .args([
-            "--brokers",
-            brokers,
-            "--topic",
-            topic,
-            "--partitions",
-            &partitions.to_string(),
-        ])
-        .arg(&file)
+    let mut cmd = Command::new("python3");
+    cmd.arg(tool("produce.py")).args([
+        "--brokers",
+        brokers,
+        "--topic",
+        topic,
+        "--partitions",
+        &partitions.to_string(),
+    ]);
+    if let Some(key) = key {
+        cmd.args(["--key", key]);
+    }
+    cmd.arg(&file)
         .stdout(Stdio::piped())
         .stderr(Stdio::piped())
         .spawn()
@@ -64,6 +79,27 @@ pub fn spawn_producer(
 /// Produce `lines` with the independent client and wait; returns how many it delivered.
 pub fn produce(brokers: &str, topic: &str, partitions: u32, lines: &[String], dir: &Path) -> usize {
     let out = spawn_producer(brokers, topic, partitions, lines, dir)
+        .wait_with_output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "independent producer failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8_lossy(&out.stdout).trim().parse().unwrap()
+}
+
+/// [`produce`] keyed by the value at dotted path `key` of each line; returns how many it
+/// delivered.
+pub fn produce_keyed(
+    brokers: &str,
+    topic: &str,
+    partitions: u32,
+    key: &str,
+    lines: &[String],
+    dir: &Path,
+) -> usize {
+    let out = spawn_keyed_producer(brokers, topic, partitions, Some(key), lines, dir)
         .wait_with_output()
         .unwrap();
     assert!(

@@ -4,6 +4,7 @@
 
 pub mod browser;
 pub mod kafka;
+pub mod mapped;
 
 use std::collections::{HashMap, HashSet};
 use std::io::{BufRead, BufReader};

@@ -2,10 +2,11 @@
 """Independent Kafka producer for posteriord's tests (Python confluent-kafka, bundled librdkafka).
 
 Reads NDJSON events from a file and produces one message per line to a topic, keyed by the
-event's experiment id (the partitioning posteriord documents). Lines that are not JSON objects
-are produced as-is with no key, so tests can send poison messages too.
+event's experiment id (the partitioning posteriord documents), or with --key PATH by the value
+at a dotted path (a team's unit-keyed topics; lines without it get no key). Lines that are not
+JSON objects are produced as-is with no key, so tests can send poison messages too.
 
-usage: produce.py --brokers HOST:PORT --topic T [--partitions N] FILE
+usage: produce.py --brokers HOST:PORT --topic T [--partitions N] [--key PATH] FILE
 Prints the number of messages delivered; exits 1 if any delivery failed.
 """
 import argparse
@@ -26,11 +27,20 @@ def ensure_topic(brokers, topic, partitions):
         f.result(timeout=30)
 
 
+def key_at(obj, path):
+    for part in path.split("."):
+        if not isinstance(obj, dict) or part not in obj:
+            return None
+        obj = obj[part]
+    return str(obj).encode() if isinstance(obj, (str, int)) else None
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--brokers", required=True)
     ap.add_argument("--topic", required=True)
     ap.add_argument("--partitions", type=int, default=3)
+    ap.add_argument("--key", default=None, help="dotted path of the key in each line")
     ap.add_argument("file")
     args = ap.parse_args()
 
@@ -58,7 +68,9 @@ def main():
             key = None
             try:
                 obj = json.loads(line)
-                if isinstance(obj, dict) and isinstance(obj.get("experiment"), str):
+                if args.key is not None:
+                    key = key_at(obj, args.key)
+                elif isinstance(obj, dict) and isinstance(obj.get("experiment"), str):
                     key = obj["experiment"].encode()
             except ValueError:
                 pass
