@@ -275,6 +275,7 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
         shutdown_grace: Duration::from_secs(config::DEFAULT_SHUTDOWN_GRACE_SECS),
         history_arm_points: config::DEFAULT_HISTORY_ARM_POINTS,
         sources: Vec::new(),
+        event_time: Default::default(),
     };
     // Refused before anything starts, as `serve` does in load_config.
     crate::http::guard::check_exposure(&config.http, config.http.addr)

@@ -340,6 +340,7 @@ fn items(lines: &[String]) -> Vec<crate::service::ingest::Item<'_>> {
             offset: None,
             bytes: l.as_bytes(),
             mapping: None,
+            reference: None,
         })
         .collect()
 }

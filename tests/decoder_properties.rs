@@ -69,6 +69,7 @@ fn check_batch(shards: &Mutex<Shards>, metrics: &Metrics, lines: &[Vec<u8>]) -> 
             offset: None,
             bytes: b,
             mapping: None,
+            reference: None,
         })
         .collect();
     let report = apply_batch(shards, metrics, Source::Http, &items, 4096);

@@ -334,6 +334,9 @@ fn apply_messages(
             offset: Some(m.offset()),
             bytes: m.payload().unwrap_or_default(),
             mapping: None,
+            // The record's timestamp (producer create time or broker append time, as the
+            // topic is configured): stored in the log, so replay checks against the same.
+            reference: m.timestamp().to_millis().map(|ms| ms.saturating_mul(1_000)),
         })
         .collect();
     let report = service.apply(Source::Kafka, &items);

@@ -9,6 +9,7 @@ use crate::event::{Event, Outcome, Reject};
 use crate::mapping::Mapping;
 use crate::state::cadence::Cadence;
 use crate::state::shards::Shards;
+use crate::state::skew::TimeBounds;
 use crate::state::ExperimentSnapshot;
 
 /// How many events ahead of the one being applied to prefetch (enough to cover a memory
@@ -26,6 +27,11 @@ pub struct Item<'a> {
     pub bytes: &'a [u8],
     /// How the event reads: a source's field mapping, or `None` for the built-in format.
     pub mapping: Option<&'a Mapping>,
+    /// The time the event's time is checked against (`state::skew`), recorded where the
+    /// event entered a log so that replay sees the same: the Kafka record's timestamp, the
+    /// HTTP receive time kept in the write-ahead log, a replay line's reference column.
+    /// `None`: not checked (counted as unchecked).
+    pub reference: Option<crate::event::Micros>,
 }
 
 /// Decode one item under its mapping; `Ok(None)` for a mapped event that maps to nothing.
@@ -48,6 +54,9 @@ pub struct BatchReport {
     /// Snapshots of experiments that became due for evaluation, each taken at the event that
     /// made it due, in input order (only with a cadence).
     pub due: Vec<ExperimentSnapshot>,
+    /// Events whose time was beyond the source's bounds: refused ones also have their
+    /// reject in `results`; clamped ones were applied at their reference time.
+    pub skewed: Vec<super::clock::Skewed>,
 }
 
 impl BatchReport {
@@ -97,7 +106,8 @@ pub fn apply_batch(
 
 /// [`apply_batch`], and with a `cadence` also the snapshots of experiments that became due
 /// for evaluation (taken under the same lock, at the event that made them due), so decisions
-/// are a function of the event order alone.
+/// are a function of the event order alone. Event times are checked against the default
+/// [`TimeBounds`]; see [`apply_batch_checked`].
 pub fn apply_batch_due(
     shards: &Mutex<Shards>,
     metrics: &Metrics,
@@ -106,12 +116,39 @@ pub fn apply_batch_due(
     max_event_bytes: usize,
     cadence: Option<&Cadence>,
 ) -> BatchReport {
+    apply_batch_checked(
+        shards,
+        metrics,
+        source,
+        items,
+        max_event_bytes,
+        cadence,
+        &TimeBounds::default(),
+    )
+}
+
+/// [`apply_batch_due`] with the source's own event-time `bounds`: an event whose time is
+/// beyond them around its item's reference is refused (`time_ahead`, `time_behind`) or
+/// clamped to the reference before it reaches the state, so the experiment's counts,
+/// clock, cadence and duration only ever see times that passed.
+pub fn apply_batch_checked(
+    shards: &Mutex<Shards>,
+    metrics: &Metrics,
+    source: Source,
+    items: &[Item<'_>],
+    max_event_bytes: usize,
+    cadence: Option<&Cadence>,
+    bounds: &TimeBounds,
+) -> BatchReport {
     let mut due = Vec::new();
     // `Option` so that a refused event's reason can be taken out for the report.
     let mut decoded: Vec<Option<Result<Option<Event<'_>>, Reject>>> = items
         .iter()
         .map(|item| Some(decode_item(item, max_event_bytes)))
         .collect();
+    let (checked, skewed) =
+        super::clock::check_batch(&metrics.clock, source, bounds, items, &mut decoded);
+    metrics.count_clock(source, checked, &skewed);
     let results: Vec<Option<Result<Outcome, Reject>>> = {
         let mut shards = shards
             .lock()
@@ -180,7 +217,11 @@ pub fn apply_batch_due(
         }
         results
     };
-    let report = BatchReport { results, due };
+    let report = BatchReport {
+        results,
+        due,
+        skewed,
+    };
     // One pass over the batch (most events are `applied`, the first outcome listed).
     let mut counts = [0u64; Outcome::ALL.len()];
     for r in &report.results {
