@@ -105,34 +105,38 @@ pub struct Skewed {
     pub clamped: bool,
 }
 
+/// What the check found in one batch, before it is known which items were applied (an item
+/// already applied before — a redelivery after a seek — is not counted again).
+#[derive(Debug, Default)]
+pub struct BatchChecks {
+    /// Per checked item: its index and `time − reference` (µs).
+    checked: Vec<(usize, Micros)>,
+    /// Indices of timed items without a reference.
+    unchecked: Vec<usize>,
+    /// The skewed items.
+    pub skewed: Vec<Skewed>,
+}
+
 /// Check the time of each decoded event of a batch against its item's reference. Beyond
 /// `bounds`, an event is refused (its decode result becomes a `time_ahead` / `time_behind`
 /// reject, which the ingest path counts, reports and dead-letters like any other) or, with
 /// [`OnSkew::Clamp`], given the reference as its time. Events without a time, or whose item
-/// has no reference, pass unchanged (the latter are counted as unchecked). Returns how many
-/// were checked, and the skewed ones.
+/// has no reference, pass unchanged. Pure apart from `decoded`: [`record`] counts the
+/// findings once the batch is applied.
 pub fn check_batch(
-    health: &ClockHealth,
-    source: Source,
     bounds: &TimeBounds,
     items: &[Item<'_>],
     decoded: &mut [Option<Result<Option<Event<'_>>, Reject>>],
-) -> (u64, Vec<Skewed>) {
-    let mut skewed = Vec::new();
-    let mut checked = 0u64;
-    let mut unchecked = 0u64;
-    let mut largest_seen = [0 as Micros; 2];
+) -> BatchChecks {
+    let mut out = BatchChecks::default();
     for (i, (item, d)) in items.iter().zip(decoded.iter_mut()).enumerate() {
         let Some(Ok(Some(event))) = d else { continue };
         let Some(time) = event.time else { continue };
         let Some(reference) = item.reference else {
-            unchecked += 1;
+            out.unchecked.push(i);
             continue;
         };
-        checked += 1;
-        let diff = time.saturating_sub(reference);
-        let k = usize::from(diff < 0);
-        largest_seen[k] = largest_seen[k].max(diff.saturating_abs());
+        out.checked.push((i, time.saturating_sub(reference)));
         let Verdict::Skewed { direction, skew } = bounds.check(time, reference) else {
             continue;
         };
@@ -154,21 +158,48 @@ pub fn check_batch(
                 ),
             )));
         }
-        skewed.push(Skewed {
+        out.skewed.push(Skewed {
             index: i,
             direction,
             skew,
             clamped,
         });
     }
-    if checked == 0 && unchecked == 0 {
+    out
+}
+
+/// Count what [`check_batch`] found for the items `counted` says were not skipped, log the
+/// skewed ones (rate-limited), and return how many were checked and the skewed ones counted.
+pub fn record(
+    health: &ClockHealth,
+    source: Source,
+    checks: BatchChecks,
+    counted: impl Fn(usize) -> bool,
+) -> (u64, Vec<Skewed>) {
+    let BatchChecks {
+        checked,
+        unchecked,
+        mut skewed,
+    } = checks;
+    skewed.retain(|x| counted(x.index));
+    let mut n_checked = 0u64;
+    let mut largest_seen = [0 as Micros; 2];
+    for (i, diff) in checked {
+        if counted(i) {
+            n_checked += 1;
+            let k = usize::from(diff < 0);
+            largest_seen[k] = largest_seen[k].max(diff.saturating_abs());
+        }
+    }
+    let n_unchecked = unchecked.into_iter().filter(|&i| counted(i)).count() as u64;
+    if n_checked == 0 && n_unchecked == 0 {
         return (0, skewed);
     }
     let mut inner = health.inner.lock().unwrap_or_else(|p| p.into_inner());
     let s = slot(source);
     let tally = &mut inner.sources[s];
-    tally.checked += checked;
-    tally.unchecked += unchecked;
+    tally.checked += n_checked;
+    tally.unchecked += n_unchecked;
     for (kept, seen) in tally.largest_seen.iter_mut().zip(largest_seen) {
         *kept = (*kept).max(seen);
     }
@@ -200,7 +231,7 @@ pub fn check_batch(
             *skipped += skewed.len() as u64;
         }
     }
-    (checked, skewed)
+    (n_checked, skewed)
 }
 
 /// A duration for a person: seconds, hours or years, whichever reads best.
@@ -309,13 +340,8 @@ mod tests {
         };
         let health = ClockHealth::default();
         let mut decoded = decode();
-        let (checked, skewed) = check_batch(
-            &health,
-            Source::Http,
-            &TimeBounds::default(),
-            &items,
-            &mut decoded,
-        );
+        let checks = check_batch(&TimeBounds::default(), &items, &mut decoded);
+        let (checked, skewed) = record(&health, Source::Http, checks, |_| true);
         assert_eq!(checked, 3);
         assert_eq!(
             skewed
@@ -341,11 +367,14 @@ mod tests {
             ..TimeBounds::default()
         };
         let mut decoded = decode();
-        let (_, skewed) = check_batch(&health, Source::Kafka, &clamp, &items, &mut decoded);
+        let checks = check_batch(&clamp, &items, &mut decoded);
+        // Item 2 was applied before (a redelivery): not counted again.
+        let (checked, skewed) = record(&health, Source::Kafka, checks, |i| i != 2);
+        assert_eq!(checked, 2);
         assert!(skewed.iter().all(|s| s.clamped));
         for i in [1, 2] {
             assert!(matches!(&decoded[i], Some(Ok(Some(e))) if e.time == Some(now)));
         }
-        assert_eq!(health.of(Source::Kafka).clamped, [1, 1]);
+        assert_eq!(health.of(Source::Kafka).clamped, [1, 0]);
     }
 }

@@ -146,9 +146,7 @@ pub fn apply_batch_checked(
         .iter()
         .map(|item| Some(decode_item(item, max_event_bytes)))
         .collect();
-    let (checked, skewed) =
-        super::clock::check_batch(&metrics.clock, source, bounds, items, &mut decoded);
-    metrics.count_clock(source, checked, &skewed);
+    let checks = super::clock::check_batch(bounds, items, &mut decoded);
     let results: Vec<Option<Result<Outcome, Reject>>> = {
         let mut shards = shards
             .lock()
@@ -217,6 +215,10 @@ pub fn apply_batch_checked(
         }
         results
     };
+    // Counted only for items applied now: a redelivery was counted when first applied.
+    let (checked, skewed) =
+        super::clock::record(&metrics.clock, source, checks, |i| results[i].is_some());
+    metrics.count_clock(source, checked, &skewed);
     let report = BatchReport {
         results,
         due,

@@ -5,7 +5,11 @@ Reads NDJSON events from a file and produces one message per line to a topic, ke
 event's experiment id (the partitioning posteriord documents). Lines that are not JSON objects
 are produced as-is with no key, so tests can send poison messages too.
 
-usage: produce.py --brokers HOST:PORT --topic T [--partitions N] FILE
+With --timestamps, each line is `MILLIS<TAB>EVENT`: the message is produced with that record
+timestamp (producer create time, milliseconds since the epoch) — the reference posteriord
+checks event times against — and the same file is what `posteriord replay` reads.
+
+usage: produce.py --brokers HOST:PORT --topic T [--partitions N] [--timestamps] FILE
 Prints the number of messages delivered; exits 1 if any delivery failed.
 """
 import argparse
@@ -31,6 +35,7 @@ def main():
     ap.add_argument("--brokers", required=True)
     ap.add_argument("--topic", required=True)
     ap.add_argument("--partitions", type=int, default=3)
+    ap.add_argument("--timestamps", action="store_true")
     ap.add_argument("file")
     args = ap.parse_args()
 
@@ -55,6 +60,10 @@ def main():
             line = raw.rstrip(b"\n")
             if not line:
                 continue
+            timestamp = None
+            if args.timestamps:
+                millis, line = line.split(b"\t", 1)
+                timestamp = int(millis)
             key = None
             try:
                 obj = json.loads(line)
@@ -64,7 +73,11 @@ def main():
                 pass
             while True:
                 try:
-                    producer.produce(args.topic, value=line, key=key, on_delivery=on_delivery)
+                    if timestamp is None:
+                        producer.produce(args.topic, value=line, key=key, on_delivery=on_delivery)
+                    else:
+                        producer.produce(args.topic, value=line, key=key, timestamp=timestamp,
+                                         on_delivery=on_delivery)
                     break
                 except BufferError:
                     producer.poll(0.1)
