@@ -635,3 +635,53 @@ fn one_event_stamped_9999_neither_ends_nor_stalls_an_experiment() {
     );
     check(&service, true);
 }
+
+#[test]
+fn clamping_over_http_applies_at_the_receive_time_and_says_so() {
+    let config = format!(
+        "[http]\naddr = \"127.0.0.1:0\"\n[event_time.http]\non_skew = \"clamp\"\n{EXPERIMENT}"
+    );
+    let service =
+        Service::start_with_env(&config, &[("POSTERIORD_EVENT_TIME_MAX_BEHIND_DAYS", "7")]);
+    let now = now_s();
+    // 100 units with good clocks, 10 on a kiosk 3 hours ahead, 5 on a box set to 20 years ago.
+    let body: String = (0..115)
+        .map(|i| {
+            let t = match i {
+                0..100 => now - 200 + i,
+                100..110 => now + 3 * 3600,
+                _ => now - 20 * YEAR_S,
+            };
+            let variant = if i % 2 == 0 { "control" } else { "quick-tour" };
+            format!(
+                "{{\"type\":\"exposure\",\"experiment\":\"{EXPERIMENT_ID}\",\"variant\":\"{variant}\",\"unit\":\"cutting-{i}\",\"time\":\"{}\"}}\n",
+                rfc3339(t)
+            )
+        })
+        .collect();
+    let (status, reply) = service.post("/v1/events", body);
+    let received_by = now_s() + 1;
+    assert_eq!(status, 200, "{reply}");
+    assert_eq!(
+        (reply["applied"].as_u64(), reply["clamped"].as_u64()),
+        (Some(115), Some(15))
+    );
+    let doc = settled_doc(&service, 115);
+    // The kiosk's events count at their receive time, not three hours on.
+    let last = time::OffsetDateTime::parse(
+        doc["last_event_time"].as_str().unwrap(),
+        &time::format_description::well_known::Rfc3339,
+    )
+    .unwrap()
+    .unix_timestamp();
+    assert!(
+        (now..=received_by).contains(&last),
+        "{last} not in {now}..={received_by}"
+    );
+    let (_, clock) = service.get("/v1/event-time");
+    let http = &clock["sources"][0];
+    assert_eq!(http["clamped"]["ahead"], 10);
+    assert_eq!(http["clamped"]["behind"], 5);
+    assert_eq!(http["refused"]["ahead"], 0);
+    assert_eq!(http["bounds"]["on_skew"], "clamp");
+}

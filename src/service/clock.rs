@@ -105,38 +105,24 @@ pub struct Skewed {
     pub clamped: bool,
 }
 
-/// What the check found in one batch, before it is known which items were applied (an item
-/// already applied before — a redelivery after a seek — is not counted again).
-#[derive(Debug, Default)]
-pub struct BatchChecks {
-    /// Per checked item: its index and `time − reference` (µs).
-    checked: Vec<(usize, Micros)>,
-    /// Indices of timed items without a reference.
-    unchecked: Vec<usize>,
-    /// The skewed items.
-    pub skewed: Vec<Skewed>,
-}
-
 /// Check the time of each decoded event of a batch against its item's reference. Beyond
 /// `bounds`, an event is refused (its decode result becomes a `time_ahead` / `time_behind`
 /// reject, which the ingest path counts, reports and dead-letters like any other) or, with
 /// [`OnSkew::Clamp`], given the reference as its time. Events without a time, or whose item
-/// has no reference, pass unchanged. Pure apart from `decoded`: [`record`] counts the
-/// findings once the batch is applied.
+/// has no reference, pass unchanged. Changes only `decoded`: [`record`] counts the findings
+/// once the batch is applied. Allocates only for skewed events.
 pub fn check_batch(
     bounds: &TimeBounds,
     items: &[Item<'_>],
     decoded: &mut [Option<Result<Option<Event<'_>>, Reject>>],
-) -> BatchChecks {
-    let mut out = BatchChecks::default();
+) -> Vec<Skewed> {
+    let mut skewed = Vec::new();
     for (i, (item, d)) in items.iter().zip(decoded.iter_mut()).enumerate() {
-        let Some(Ok(Some(event))) = d else { continue };
-        let Some(time) = event.time else { continue };
         let Some(reference) = item.reference else {
-            out.unchecked.push(i);
             continue;
         };
-        out.checked.push((i, time.saturating_sub(reference)));
+        let Some(Ok(Some(event))) = d else { continue };
+        let Some(time) = event.time else { continue };
         let Verdict::Skewed { direction, skew } = bounds.check(time, reference) else {
             continue;
         };
@@ -158,40 +144,56 @@ pub fn check_batch(
                 ),
             )));
         }
-        out.skewed.push(Skewed {
+        skewed.push(Skewed {
             index: i,
             direction,
             skew,
             clamped,
         });
     }
-    out
+    skewed
 }
 
-/// Count what [`check_batch`] found for the items `counted` says were not skipped, log the
-/// skewed ones (rate-limited), and return how many were checked and the skewed ones counted.
-pub fn record(
+/// Count what [`check_batch`] found, for the items `counted` says were applied now (an item
+/// applied before — a redelivery after a seek — was counted then), log the skewed ones
+/// (rate-limited), and return how many were checked and the skewed ones counted.
+pub fn record<T>(
     health: &ClockHealth,
     source: Source,
-    checks: BatchChecks,
+    items: &[Item<'_>],
+    decoded: &[Option<Result<Option<Event<'_>>, T>>],
+    mut skewed: Vec<Skewed>,
     counted: impl Fn(usize) -> bool,
 ) -> (u64, Vec<Skewed>) {
-    let BatchChecks {
-        checked,
-        unchecked,
-        mut skewed,
-    } = checks;
     skewed.retain(|x| counted(x.index));
     let mut n_checked = 0u64;
+    let mut n_unchecked = 0u64;
     let mut largest_seen = [0 as Micros; 2];
-    for (i, diff) in checked {
-        if counted(i) {
-            n_checked += 1;
-            let k = usize::from(diff < 0);
-            largest_seen[k] = largest_seen[k].max(diff.saturating_abs());
+    // Events still decoded passed (or were clamped to a zero offset); the refused ones are
+    // rejects now and are counted from `skewed`.
+    for (i, (item, d)) in items.iter().zip(decoded).enumerate() {
+        let Some(Ok(Some(event))) = d else { continue };
+        let Some(time) = event.time else { continue };
+        if !counted(i) {
+            continue;
+        }
+        match item.reference {
+            None => n_unchecked += 1,
+            Some(reference) => {
+                n_checked += 1;
+                let diff = time.saturating_sub(reference);
+                let k = usize::from(diff < 0);
+                largest_seen[k] = largest_seen[k].max(diff.saturating_abs());
+            }
         }
     }
-    let n_unchecked = unchecked.into_iter().filter(|&i| counted(i)).count() as u64;
+    for x in &skewed {
+        if !x.clamped {
+            n_checked += 1;
+        }
+        let k = dir_slot(x.direction);
+        largest_seen[k] = largest_seen[k].max(x.skew);
+    }
     if n_checked == 0 && n_unchecked == 0 {
         return (0, skewed);
     }
@@ -340,8 +342,8 @@ mod tests {
         };
         let health = ClockHealth::default();
         let mut decoded = decode();
-        let checks = check_batch(&TimeBounds::default(), &items, &mut decoded);
-        let (checked, skewed) = record(&health, Source::Http, checks, |_| true);
+        let found = check_batch(&TimeBounds::default(), &items, &mut decoded);
+        let (checked, skewed) = record(&health, Source::Http, &items, &decoded, found, |_| true);
         assert_eq!(checked, 3);
         assert_eq!(
             skewed
@@ -367,9 +369,9 @@ mod tests {
             ..TimeBounds::default()
         };
         let mut decoded = decode();
-        let checks = check_batch(&clamp, &items, &mut decoded);
+        let found = check_batch(&clamp, &items, &mut decoded);
         // Item 2 was applied before (a redelivery): not counted again.
-        let (checked, skewed) = record(&health, Source::Kafka, checks, |i| i != 2);
+        let (checked, skewed) = record(&health, Source::Kafka, &items, &decoded, found, |i| i != 2);
         assert_eq!(checked, 2);
         assert!(skewed.iter().all(|s| s.clamped));
         for i in [1, 2] {

@@ -146,7 +146,7 @@ pub fn apply_batch_checked(
         .iter()
         .map(|item| Some(decode_item(item, max_event_bytes)))
         .collect();
-    let checks = super::clock::check_batch(bounds, items, &mut decoded);
+    let skewed = super::clock::check_batch(bounds, items, &mut decoded);
     let results: Vec<Option<Result<Outcome, Reject>>> = {
         let mut shards = shards
             .lock()
@@ -217,7 +217,9 @@ pub fn apply_batch_checked(
     };
     // Counted only for items applied now: a redelivery was counted when first applied.
     let (checked, skewed) =
-        super::clock::record(&metrics.clock, source, checks, |i| results[i].is_some());
+        super::clock::record(&metrics.clock, source, items, &decoded, skewed, |i| {
+            results[i].is_some()
+        });
     metrics.count_clock(source, checked, &skewed);
     let report = BatchReport {
         results,
