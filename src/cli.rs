@@ -84,7 +84,9 @@ pub enum Command {
         /// The TOML config file (experiments and `[alerts]` cadence).
         #[arg(long)]
         config: PathBuf,
-        /// NDJSON event files, in order; `-` is standard input.
+        /// NDJSON event files, in order; `-` is standard input. A line may start with its
+        /// reference time and a tab (a topic dump's record timestamp in ms, or RFC 3339), which
+        /// the event's time is checked against as live (docs/events.md, "Event time").
         #[arg(required = true)]
         events: Vec<String>,
         /// JSON for machines instead of text.
