@@ -118,7 +118,9 @@ pub enum Command {
         /// The TOML config file (experiments and `[alerts]` cadence).
         #[arg(long)]
         config: PathBuf,
-        /// NDJSON event files, in order; `-` is standard input.
+        /// NDJSON event files, in order; `-` is standard input. A line may start with its
+        /// reference time and a tab (a topic dump's record timestamp in ms, or RFC 3339), which
+        /// the event's time is checked against as live (docs/events.md, "Event time").
         #[arg(required = true)]
         events: Vec<String>,
         /// Output: `text` for people, `json` for machines.
@@ -322,6 +324,7 @@ fn demo(addr: SocketAddr, duration: Option<Duration>, sim: SimulateOptions) -> a
         shutdown_grace: Duration::from_secs(config::DEFAULT_SHUTDOWN_GRACE_SECS),
         history_arm_points: config::DEFAULT_HISTORY_ARM_POINTS,
         sources: Vec::new(),
+        event_time: Default::default(),
     };
     // Refused before anything starts, as `serve` does in load_config.
     crate::http::guard::check_exposure(&config.http, config.http.addr)

@@ -278,11 +278,19 @@ pub enum RejectReason {
     ExposureNotAllowed,
     /// The message is larger than the configured limit.
     TooLarge,
+    /// The event's time is further ahead of its reference time (the Kafka record's timestamp,
+    /// the HTTP receive time) than the source allows: the sender's clock runs ahead.
+    TimeAhead,
+    /// The event's time is further behind its reference time than the source's lateness
+    /// allows: a wrong clock, or data too old to count.
+    TimeBehind,
+    /// The event's time is before its experiment's configured start.
+    BeforeStart,
 }
 
 impl RejectReason {
     /// Every reason, in reporting order (so metrics can be pre-registered at zero).
-    pub const ALL: [RejectReason; 16] = [
+    pub const ALL: [RejectReason; 19] = [
         RejectReason::InvalidJson,
         RejectReason::NotAnObject,
         RejectReason::UnknownType,
@@ -299,6 +307,9 @@ impl RejectReason {
         RejectReason::ExposureRequired,
         RejectReason::ExposureNotAllowed,
         RejectReason::TooLarge,
+        RejectReason::TimeAhead,
+        RejectReason::TimeBehind,
+        RejectReason::BeforeStart,
     ];
 
     /// Stable snake_case name used in metrics labels, API errors and dead-letter headers.
@@ -320,6 +331,9 @@ impl RejectReason {
             RejectReason::ExposureRequired => "exposure_required",
             RejectReason::ExposureNotAllowed => "exposure_not_allowed",
             RejectReason::TooLarge => "too_large",
+            RejectReason::TimeAhead => "time_ahead",
+            RejectReason::TimeBehind => "time_behind",
+            RejectReason::BeforeStart => "before_start",
         }
     }
 }

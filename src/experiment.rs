@@ -54,6 +54,9 @@ pub struct ExperimentRules {
     /// Event-time span before `ship` or `equivalent` may hold (µs); 0 = none. Harm rules are
     /// not held back by it.
     pub min_duration: i64,
+    /// Configured start (µs since the epoch): events before it are refused (`before_start`)
+    /// and durations are measured from it; `None` = from the earliest accepted event time.
+    pub start: Option<i64>,
 }
 
 impl Default for ExperimentRules {
@@ -67,6 +70,24 @@ impl Default for ExperimentRules {
             max_duration: None,
             attribution_window: None,
             min_duration: DEFAULT_MIN_DURATION,
+            start: None,
+        }
+    }
+}
+
+impl ExperimentRules {
+    /// Where the experiment's duration is measured from: its configured start, else the
+    /// earliest accepted event time (`first`). Only times that passed the event-time check
+    /// reach the state, so neither end can be set by one wrong clock.
+    pub fn started(&self, first: Option<i64>) -> Option<i64> {
+        self.start.or(first)
+    }
+
+    /// Event time the experiment has run, from [`ExperimentRules::started`] to `last`.
+    pub fn ran(&self, first: Option<i64>, last: Option<i64>) -> Option<i64> {
+        match (self.started(first), last) {
+            (Some(s), Some(l)) => Some((l - s).max(0)),
+            _ => None,
         }
     }
 }
@@ -334,4 +355,23 @@ pub enum Prior {
         /// Prior pseudo-exposure.
         rate: f64,
     },
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn durations_run_from_the_configured_start_else_the_earliest_time() {
+        let day = 86_400 * 1_000_000i64;
+        let mut rules = ExperimentRules::default();
+        assert_eq!(rules.ran(Some(2 * day), Some(5 * day)), Some(3 * day));
+        assert_eq!(rules.ran(None, Some(5 * day)), None);
+        rules.start = Some(day);
+        assert_eq!(rules.ran(Some(2 * day), Some(5 * day)), Some(4 * day));
+        // No event time yet: nothing has run.
+        assert_eq!(rules.ran(None, None), None);
+        // Never negative.
+        assert_eq!(rules.ran(None, Some(0)), Some(0));
+    }
 }

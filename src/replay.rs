@@ -12,8 +12,10 @@ use serde_json::{json, Value};
 use crate::config::Config;
 use crate::decide::alerts::{AlertBook, AlertChange};
 use crate::decide::evaluation::{evaluate_snapshot, Reading};
+use crate::event::Micros;
 use crate::event::Outcome;
-use crate::service::ingest::{apply_batch_due, Item};
+use crate::service::clock::SourceClock;
+use crate::service::ingest::{apply_batch_checked, Item};
 use crate::service::metrics::{Metrics, Source};
 use crate::state::shards::Shards;
 
@@ -112,6 +114,47 @@ pub struct ReplayReport {
     pub book: AlertBook,
     /// Each experiment's reading (summary and the rules that hold) at the end of the input.
     pub experiments: Vec<Reading>,
+    /// What the event-time check found (`[event_time.kafka]` bounds).
+    pub clock: SourceClock,
+}
+
+/// A line's reference column, if it has one: `(reference, where the event starts)`.
+///
+/// A line is either an event (starting with `{`), or `REFERENCE<TAB>EVENT`, where REFERENCE
+/// is the time the event's time is checked against, as a topic dump prints a record's
+/// timestamp: integer milliseconds since the epoch, optionally labelled `CreateTime:` or
+/// `LogAppendTime:` (`kafka-console-consumer --property print.timestamp=true`; `-1` or
+/// `NoTimestampType:-1` for none), or an RFC 3339 time. Events without a reference are
+/// applied unchecked (see docs/events.md).
+pub fn split_reference(line: &[u8]) -> Result<(Option<Micros>, usize), String> {
+    let first = line
+        .iter()
+        .position(|b| !b.is_ascii_whitespace())
+        .unwrap_or(0);
+    if line.get(first) == Some(&b'{') {
+        return Ok((None, 0));
+    }
+    let Some(tab) = line.iter().position(|&b| b == b'\t') else {
+        // Not an event line either: the decoder says why.
+        return Ok((None, 0));
+    };
+    let column = std::str::from_utf8(&line[..tab])
+        .map_err(|_| "the reference column is not UTF-8".to_string())?
+        .trim();
+    let value = column
+        .strip_prefix("CreateTime:")
+        .or_else(|| column.strip_prefix("LogAppendTime:"))
+        .or_else(|| column.strip_prefix("NoTimestampType:"))
+        .unwrap_or(column);
+    let reference = if let Ok(ms) = value.parse::<i64>() {
+        (ms >= 0).then(|| ms.saturating_mul(1_000))
+    } else {
+        Some(
+            crate::decode::parse_time(value)
+                .map_err(|_| format!("reference column {column:?} is neither milliseconds since the epoch nor an RFC 3339 time"))?,
+        )
+    };
+    Ok((reference, tab + 1))
 }
 
 /// Observes progress, in bytes read.
@@ -165,6 +208,7 @@ pub fn replay(
         decisions: Vec::new(),
         book: config.alerts.alert_book(),
         experiments: Vec::new(),
+        clock: SourceClock::default(),
     };
     let mut offset: i64 = 0;
     for input in inputs {
@@ -185,6 +229,9 @@ pub fn replay(
             // One batch: its lines and their line numbers.
             let mut lines: Vec<Vec<u8>> = Vec::with_capacity(BATCH_LINES);
             let mut numbers: Vec<u64> = Vec::with_capacity(BATCH_LINES);
+            // Where each line's event starts (after its reference column) and the reference.
+            let mut starts: Vec<usize> = Vec::with_capacity(BATCH_LINES);
+            let mut references: Vec<Option<Micros>> = Vec::with_capacity(BATCH_LINES);
             let mut eof = false;
             while lines.len() < BATCH_LINES {
                 let mut buf = Vec::new();
@@ -202,8 +249,25 @@ pub fn replay(
                 if buf.iter().all(|b| b.is_ascii_whitespace()) {
                     continue;
                 }
-                lines.push(buf);
-                numbers.push(line_no);
+                match split_reference(&buf) {
+                    Ok((reference, at)) => {
+                        lines.push(buf);
+                        starts.push(at);
+                        references.push(reference);
+                        numbers.push(line_no);
+                    }
+                    Err(message) => {
+                        report.bad += 1;
+                        if report.bad_lines.len() < MAX_LISTED_BAD_LINES {
+                            report.bad_lines.push(BadLine {
+                                input: name.clone(),
+                                line: line_no,
+                                reason: "bad_reference",
+                                message,
+                            });
+                        }
+                    }
+                }
             }
             let items: Vec<Item<'_>> = lines
                 .iter()
@@ -211,19 +275,21 @@ pub fn replay(
                 .map(|(i, bytes)| Item {
                     shard: REPLAY_SHARD,
                     offset: Some(offset + i as i64),
-                    bytes,
+                    bytes: &bytes[starts[i]..],
                     mapping,
                     topic: None,
+                    reference: references[i],
                 })
                 .collect();
             offset += items.len() as i64;
-            let batch = apply_batch_due(
+            let batch = apply_batch_checked(
                 &shards,
                 &metrics,
                 Source::Kafka,
                 &items,
                 max_event_bytes,
                 Some(&cadence),
+                &config.event_time.kafka,
             );
             for (i, result) in batch.results.iter().enumerate() {
                 match result {
@@ -264,6 +330,7 @@ pub fn replay(
             }
         }
     }
+    report.clock = metrics.clock.of(Source::Kafka);
     let shards = shards.into_inner().unwrap_or_else(|p| p.into_inner());
     report.experiments = shards
         .snapshots()
@@ -304,6 +371,7 @@ pub fn to_json(report: &ReplayReport) -> Value {
             "input": b.input, "line": b.line, "reason": b.reason, "message": b.message,
         })).collect::<Vec<_>>(),
         "evaluations": report.evaluations,
+        "event_time": crate::service::clock::source_json(&report.clock),
         "decisions": report.decisions.iter().map(decision_doc).collect::<Vec<_>>(),
         "alerts": report.book.alerts().iter().map(crate::doc::alert).collect::<Vec<_>>(),
         "experiments": report
@@ -382,6 +450,21 @@ pub fn to_text(report: &ReplayReport) -> String {
         if report.bad == 1 { "" } else { "s" },
         report.evaluations
     );
+    let c = &report.clock;
+    if c.unchecked > 0 {
+        let _ = writeln!(
+            out,
+            "  {} timed events had no reference column and were applied unchecked (see docs/events.md)",
+            c.unchecked
+        );
+    }
+    if c.checked > 0 {
+        let _ = writeln!(
+            out,
+            "  event time: {} checked; refused {} ahead, {} behind; clamped {} ahead, {} behind",
+            c.checked, c.refused[0], c.refused[1], c.clamped[0], c.clamped[1]
+        );
+    }
     for b in &report.bad_lines {
         let _ = writeln!(
             out,

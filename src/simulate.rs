@@ -341,6 +341,7 @@ fn items(lines: &[String]) -> Vec<crate::service::ingest::Item<'_>> {
             bytes: l.as_bytes(),
             mapping: None,
             topic: None,
+            reference: None,
         })
         .collect()
 }

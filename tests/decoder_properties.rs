@@ -70,6 +70,7 @@ fn check_batch(shards: &Mutex<Shards>, metrics: &Metrics, lines: &[Vec<u8>]) -> 
             bytes: b,
             mapping: None,
             topic: None,
+            reference: None,
         })
         .collect();
     let report = apply_batch(shards, metrics, Source::Http, &items, 4096);

@@ -69,6 +69,19 @@ pub struct Config {
     pub history_arm_points: usize,
     /// `[[source]]`: field mappings for a team's own events, by name.
     pub sources: Vec<SourceConfig>,
+    /// `[event_time]`: how far event time may stray from its reference, per source.
+    pub event_time: EventTimeConfig,
+}
+
+/// `[event_time]`, resolved per source (the table's keys, overridden by `[event_time.http]`
+/// and `[event_time.kafka]`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct EventTimeConfig {
+    /// Events posted over HTTP, checked against their receive time.
+    pub http: crate::state::skew::TimeBounds,
+    /// Events read from Kafka, checked against their record's timestamp; also what `replay`
+    /// uses, since its inputs are topic dumps.
+    pub kafka: crate::state::skew::TimeBounds,
 }
 
 /// One `[[source]]`: a mapping and the Kafka topics read with it.
@@ -355,6 +368,7 @@ struct RuleKeys<'a> {
     max_duration_days: &'a Option<Spanned<f64>>,
     attribution_window_hours: &'a Option<Spanned<f64>>,
     min_duration_days: &'a Option<Spanned<f64>>,
+    start: &'a Option<Spanned<String>>,
 }
 
 struct Ctx<'a> {
@@ -659,6 +673,7 @@ impl Ctx<'_> {
             shutdown_grace,
             history_arm_points,
             sources,
+            event_time: self.event_time(&raw.event_time)?,
         })
     }
 
@@ -711,6 +726,75 @@ impl Ctx<'_> {
             }
         }
         Ok(())
+    }
+
+    /// `[event_time]` and its per-source tables.
+    fn event_time(&self, raw: &raw::RawEventTime) -> Result<EventTimeConfig, ConfigError> {
+        let base = self.time_bounds(
+            "event_time",
+            &raw::RawTimeBounds {
+                max_ahead_secs: raw.max_ahead_secs.clone(),
+                max_behind_days: raw.max_behind_days.clone(),
+                on_skew: raw.on_skew.clone(),
+            },
+            crate::state::skew::TimeBounds::default(),
+        )?;
+        let source = |name: &str, t: &Option<raw::RawTimeBounds>| match t {
+            None => Ok(base),
+            Some(t) => self.time_bounds(&format!("event_time.{name}"), t, base),
+        };
+        Ok(EventTimeConfig {
+            http: source("http", &raw.http)?,
+            kafka: source("kafka", &raw.kafka)?,
+        })
+    }
+
+    fn time_bounds(
+        &self,
+        key: &str,
+        raw: &raw::RawTimeBounds,
+        base: crate::state::skew::TimeBounds,
+    ) -> Result<crate::state::skew::TimeBounds, ConfigError> {
+        use crate::state::skew::OnSkew;
+        let mut b = base;
+        if let Some(v) = &raw.max_ahead_secs {
+            match *v.get_ref() {
+                n @ 1..=86_400 => b.max_ahead = n * 1_000_000,
+                _ => {
+                    return Err(self.err(
+                        v.span(),
+                        format!("{key}.max_ahead_secs"),
+                        "must be between 1 and 86400 seconds (how far a sender's clock may run ahead of the reference)",
+                    ))
+                }
+            }
+        }
+        if let Some(v) = &raw.max_behind_days {
+            let d = *v.get_ref();
+            if d.is_finite() && d > 0.0 && d <= 3650.0 {
+                b.max_behind = (d * 86_400.0 * 1e6) as i64;
+            } else {
+                return Err(self.err(
+                    v.span(),
+                    format!("{key}.max_behind_days"),
+                    format!("must be a positive number of days (at most 3650), got {d}"),
+                ));
+            }
+        }
+        if let Some(v) = &raw.on_skew {
+            b.on_skew = match v.get_ref().as_str() {
+                "refuse" => OnSkew::Refuse,
+                "clamp" => OnSkew::Clamp,
+                other => {
+                    return Err(self.err(
+                        v.span(),
+                        format!("{key}.on_skew"),
+                        format!("must be \"refuse\" or \"clamp\", got {other:?}"),
+                    ))
+                }
+            };
+        }
+        Ok(b)
     }
 
     fn positive_size(&self, v: &Spanned<i64>, key: &str) -> Result<usize, ConfigError> {
@@ -979,6 +1063,7 @@ impl Ctx<'_> {
                 max_duration_days: &e.max_duration_days,
                 attribution_window_hours: &e.attribution_window_hours,
                 min_duration_days: &e.min_duration_days,
+                start: &e.start,
             },
             &metrics,
         )?;
@@ -1216,6 +1301,19 @@ impl Ctx<'_> {
                 ))
             }
         };
+        let start = match e.start {
+            None => None,
+            Some(s) => Some(crate::decode::parse_time(s.get_ref()).map_err(|r| {
+                self.err(
+                    s.span(),
+                    format!("{key}.start"),
+                    format!(
+                        "must be an RFC 3339 time such as 2026-03-02T00:00:00Z ({})",
+                        r.message
+                    ),
+                )
+            })?),
+        };
         if let (Some(max), Some(d)) = (max_duration, e.min_duration_days) {
             if max < min_duration {
                 return Err(self.err(
@@ -1246,6 +1344,7 @@ impl Ctx<'_> {
             )?,
             max_duration,
             attribution_window,
+            start,
         })
     }
 
@@ -1550,6 +1649,22 @@ fn apply_env(config: &mut Config, env: &[(String, String)]) -> Result<(), Config
             "http.protect_reads",
             "protecting reads needs at least one token (http.token_file or POSTERIORD_API_TOKENS)",
         ));
+    }
+    if let Some(v) = get("POSTERIORD_EVENT_TIME_MAX_BEHIND_DAYS") {
+        // For every source: e.g. while a backlog older than the lateness is re-read.
+        match v.trim().parse::<f64>() {
+            Ok(d) if d.is_finite() && d > 0.0 && d <= 3650.0 => {
+                let behind = (d * 86_400.0 * 1e6) as i64;
+                config.event_time.http.max_behind = behind;
+                config.event_time.kafka.max_behind = behind;
+            }
+            _ => {
+                return Err(env_err(
+                    "POSTERIORD_EVENT_TIME_MAX_BEHIND_DAYS",
+                    format!("must be a positive number of days (at most 3650), got {v:?}"),
+                ))
+            }
+        }
     }
     if let Some(v) = get("POSTERIORD_STORE_DIR") {
         if v.trim().is_empty() {

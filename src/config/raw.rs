@@ -24,6 +24,28 @@ pub(super) struct RawConfig {
     pub history: RawHistory,
     #[serde(default)]
     pub source: Vec<Spanned<RawSource>>,
+    #[serde(default)]
+    pub event_time: RawEventTime,
+}
+
+/// `[event_time]`: how far event time may stray from its reference, with per-source
+/// overrides in `[event_time.http]` and `[event_time.kafka]`.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawEventTime {
+    pub max_ahead_secs: Option<Spanned<i64>>,
+    pub max_behind_days: Option<Spanned<f64>>,
+    pub on_skew: Option<Spanned<String>>,
+    pub http: Option<RawTimeBounds>,
+    pub kafka: Option<RawTimeBounds>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawTimeBounds {
+    pub max_ahead_secs: Option<Spanned<i64>>,
+    pub max_behind_days: Option<Spanned<f64>>,
+    pub on_skew: Option<Spanned<String>>,
 }
 
 /// `[[source]]`: a field mapping for a team's own events (see `crate::mapping`).
@@ -142,6 +164,7 @@ pub(super) struct RawExperiment {
     pub max_duration_days: Option<Spanned<f64>>,
     pub attribution_window_hours: Option<Spanned<f64>>,
     pub min_duration_days: Option<Spanned<f64>>,
+    pub start: Option<Spanned<String>>,
 }
 
 #[derive(Debug, Deserialize)]

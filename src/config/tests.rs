@@ -426,3 +426,83 @@ fn webhook_secrets_in_the_standard_webhooks_form_are_decoded_and_bad_ones_named(
     );
     assert!(err.to_string().contains("not base64"), "{err}");
 }
+
+#[test]
+fn event_time_bounds_resolve_per_source_and_bad_values_name_key_and_line() {
+    use crate::state::skew::{OnSkew, TimeBounds};
+    let c = parse(EXAMPLE).unwrap();
+    assert_eq!(c.event_time.http, TimeBounds::default());
+    assert_eq!(c.event_time.kafka, TimeBounds::default());
+    let text = format!(
+        "{EXAMPLE}\n[event_time]\nmax_ahead_secs = 60\nmax_behind_days = 2\n[event_time.kafka]\non_skew = \"clamp\"\nmax_behind_days = 0.5\n"
+    );
+    let c = parse(&text).unwrap();
+    let s = 1_000_000i64;
+    assert_eq!(
+        c.event_time.http,
+        TimeBounds {
+            max_ahead: 60 * s,
+            max_behind: 2 * 86_400 * s,
+            on_skew: OnSkew::Refuse
+        }
+    );
+    assert_eq!(
+        c.event_time.kafka,
+        TimeBounds {
+            max_ahead: 60 * s,
+            max_behind: 43_200 * s,
+            on_skew: OnSkew::Clamp
+        }
+    );
+    for (tail, key, needle) in [
+        (
+            "[event_time]\nmax_ahead_secs = 0\n",
+            "event_time.max_ahead_secs",
+            "max_ahead_secs =",
+        ),
+        (
+            "[event_time]\nmax_behind_days = -1.0\n",
+            "event_time.max_behind_days",
+            "max_behind_days =",
+        ),
+        (
+            "[event_time.http]\non_skew = \"ignore\"\n",
+            "event_time.http.on_skew",
+            "on_skew =",
+        ),
+        (
+            "[event_time]\nmax_lateness = 3\n",
+            "max_lateness",
+            "max_lateness =",
+        ),
+    ] {
+        let text = format!("{EXAMPLE}\n{tail}");
+        let err = error(&text);
+        assert_eq!(err.line, Some(line_of(&text, needle)), "{err}");
+        assert!(err.to_string().contains(key), "{err}");
+    }
+    // A configured start: parsed, and a bad one names its key and line.
+    let text = EXAMPLE.replace(
+        "control = \"control\"",
+        "control = \"control\"\nstart = \"2026-03-02T00:00:00Z\"",
+    );
+    let c = parse(&text).unwrap();
+    // 2026-03-02T00:00:00Z = 1772409600 s (Python `datetime(2026,3,2,tzinfo=timezone.utc).timestamp()`).
+    assert_eq!(c.experiments[0].rules.start, Some(1_772_409_600 * s));
+    let text = EXAMPLE.replace(
+        "control = \"control\"",
+        "control = \"control\"\nstart = \"March 2nd\"",
+    );
+    let err = error(&text);
+    assert_eq!(err.line, Some(line_of(&text, "start =")), "{err}");
+    assert!(err.to_string().contains("experiment[0].start"), "{err}");
+    // The environment override reaches every source.
+    let c = Config::parse(
+        EXAMPLE,
+        "test.toml",
+        &[("POSTERIORD_EVENT_TIME_MAX_BEHIND_DAYS".into(), "30".into())],
+    )
+    .unwrap();
+    assert_eq!(c.event_time.http.max_behind, 30 * 86_400 * s);
+    assert_eq!(c.event_time.kafka.max_behind, 30 * 86_400 * s);
+}

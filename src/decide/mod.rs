@@ -303,13 +303,14 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
         }
     }
     // Inconclusive: out of time by the events' own clock, with neither ship nor equivalence.
-    if let (Some(max), Some(first), Some(last)) =
-        (xr.max_duration, snap.first_event_time, snap.last_event_time)
-    {
+    // Measured from the experiment's start over times that passed the event-time check.
+    if let (Some(max), Some(ran)) = (
+        xr.max_duration,
+        xr.ran(snap.first_event_time, snap.last_event_time),
+    ) {
         let decided = out
             .iter()
             .any(|f| matches!(f.rule, Rule::Ship | Rule::Equivalent));
-        let ran = last - first;
         if ran >= max && !decided {
             let day = 86_400.0 * 1e6;
             out.push(Finding {
@@ -409,9 +410,10 @@ pub fn add_evidence_findings(
 /// ([`standing`]) and the minimum is not applied.
 pub fn long_enough(summary: &ExperimentSummary) -> bool {
     let snap = &summary.snapshot;
-    match (snap.first_event_time, snap.last_event_time) {
-        (Some(first), Some(last)) => last - first >= snap.def.rules.min_duration,
-        _ => true,
+    let rules = &snap.def.rules;
+    match rules.ran(snap.first_event_time, snap.last_event_time) {
+        Some(ran) => ran >= rules.min_duration,
+        None => true,
     }
 }
 

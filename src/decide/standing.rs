@@ -319,16 +319,15 @@ pub fn standings(
                 }
                 why.push(waiting_text(def, &b));
             }
-            if let (Some(first), Some(last)) = (snap.first_event_time, snap.last_event_time) {
+            if let Some(ran) = xr.ran(snap.first_event_time, snap.last_event_time) {
                 let day = 86_400e6;
-                if last - first < xr.min_duration {
+                if ran < xr.min_duration {
                     if s.progress.is_none() {
-                        s.progress =
-                            Some(((last - first) as f64 / day, xr.min_duration as f64 / day));
+                        s.progress = Some((ran as f64 / day, xr.min_duration as f64 / day));
                     }
                     why.push(format!(
                         "waiting for the minimum duration: {:.1} of {:.1} days",
-                        (last - first) as f64 / day,
+                        ran as f64 / day,
                         xr.min_duration as f64 / day
                     ));
                 }
@@ -426,9 +425,9 @@ pub fn standings(
         let mut s = standing(Rule::Inconclusive, Some(p), None);
         let day = 86_400e6;
         s.threshold = Some(max as f64 / day);
-        if let (Some(first), Some(last)) = (snap.first_event_time, snap.last_event_time) {
-            s.value = Some((last - first) as f64 / day);
-            s.progress = Some(((last - first) as f64 / day, max as f64 / day));
+        if let Some(ran) = xr.ran(snap.first_event_time, snap.last_event_time) {
+            s.value = Some(ran as f64 / day);
+            s.progress = Some((ran as f64 / day, max as f64 / day));
         }
         if let Some(f) = holds(Rule::Inconclusive, Some(p), None) {
             s.state = State::Holds;

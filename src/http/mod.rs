@@ -240,6 +240,9 @@ async fn ingest(
             "not_applied": not_applied,
             "rejected": errors.len(),
             "errors": errors,
+            // Applied at their receive time because their own was out of bounds
+            // (`[event_time.http] on_skew = "clamp"`).
+            "clamped": report.skewed.iter().filter(|s| s.clamped).count(),
         }))
     })
     .await;

@@ -427,6 +427,9 @@ fn apply_messages(
                 bytes: m.payload().unwrap_or_default(),
                 mapping,
                 topic: mapping.map(|_| m.topic()),
+                // The record's timestamp (producer create time or broker append time, as the
+                // topic is configured): stored in the log, so replay checks against the same.
+                reference: m.timestamp().to_millis().map(|ms| ms.saturating_mul(1_000)),
             }
         })
         .collect();

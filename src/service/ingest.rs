@@ -9,6 +9,7 @@ use crate::event::{Event, Outcome, Reject};
 use crate::mapping::Mapping;
 use crate::state::cadence::Cadence;
 use crate::state::shards::{Release, Shard, Shards};
+use crate::state::skew::TimeBounds;
 use crate::state::ExperimentSnapshot;
 
 /// How many events ahead of the one being applied to prefetch (enough to cover a memory
@@ -30,6 +31,11 @@ pub struct Item<'a> {
     /// topics (its offsets are kept per topic, and outcomes may wait for the assignments);
     /// `None` for every other shard.
     pub topic: Option<&'a str>,
+    /// The time the event's time is checked against (`state::skew`), recorded where the
+    /// event entered a log so that replay sees the same: the Kafka record's timestamp, the
+    /// HTTP receive time kept in the write-ahead log, a replay line's reference column.
+    /// `None`: not checked (counted as unchecked).
+    pub reference: Option<crate::event::Micros>,
 }
 
 /// Decode one item under its mapping; `Ok(None)` for a mapped event that maps to nothing.
@@ -58,6 +64,9 @@ pub struct BatchReport {
     /// Outcomes held earlier (in this batch or before) and decided during this batch, with
     /// why they were decided now and what deciding them did.
     pub released: Vec<(Release, Result<Outcome, Reject>)>,
+    /// Events whose time was beyond the source's bounds: refused ones also have their
+    /// reject in `results`; clamped ones were applied at their reference time.
+    pub skewed: Vec<super::clock::Skewed>,
 }
 
 impl BatchReport {
@@ -107,7 +116,8 @@ pub fn apply_batch(
 
 /// [`apply_batch`], and with a `cadence` also the snapshots of experiments that became due
 /// for evaluation (taken under the same lock, at the event that made them due), so decisions
-/// are a function of the event order alone.
+/// are a function of the event order alone. Event times are checked against the default
+/// [`TimeBounds`]; see [`apply_batch_checked`].
 pub fn apply_batch_due(
     shards: &Mutex<Shards>,
     metrics: &Metrics,
@@ -115,6 +125,30 @@ pub fn apply_batch_due(
     items: &[Item<'_>],
     max_event_bytes: usize,
     cadence: Option<&Cadence>,
+) -> BatchReport {
+    apply_batch_checked(
+        shards,
+        metrics,
+        source,
+        items,
+        max_event_bytes,
+        cadence,
+        &TimeBounds::default(),
+    )
+}
+
+/// [`apply_batch_due`] with the source's own event-time `bounds`: an event whose time is
+/// beyond them around its item's reference is refused (`time_ahead`, `time_behind`) or
+/// clamped to the reference before it reaches the state, so the experiment's counts,
+/// clock, cadence and duration only ever see times that passed.
+pub fn apply_batch_checked(
+    shards: &Mutex<Shards>,
+    metrics: &Metrics,
+    source: Source,
+    items: &[Item<'_>],
+    max_event_bytes: usize,
+    cadence: Option<&Cadence>,
+    bounds: &TimeBounds,
 ) -> BatchReport {
     let mut due = Vec::new();
     let mut due_items = Vec::new();
@@ -124,6 +158,7 @@ pub fn apply_batch_due(
         .iter()
         .map(|item| Some(decode_item(item, max_event_bytes)))
         .collect();
+    let skewed = super::clock::check_batch(bounds, items, &mut decoded);
     let results: Vec<Option<Result<Outcome, Reject>>> = {
         let mut shards = shards
             .lock()
@@ -215,11 +250,18 @@ pub fn apply_batch_due(
         }
         results
     };
+    // Counted only for items applied now: a redelivery was counted when first applied.
+    let (checked, skewed) =
+        super::clock::record(&metrics.clock, source, items, &decoded, skewed, |i| {
+            results[i].is_some()
+        });
+    metrics.count_clock(source, checked, &skewed);
     let report = BatchReport {
         results,
         due,
         due_items,
         released,
+        skewed,
     };
     // One pass over the batch (most events are `applied`, the first outcome listed).
     let mut counts = [0u64; Outcome::ALL.len()];
@@ -406,6 +448,7 @@ mod tests {
             bytes: bytes.as_bytes(),
             mapping: Some(if topic == "assign" { &assign } else { &sales }),
             topic: Some(topic),
+            reference: None,
         };
         let run = |items: &[Item<'_>]| apply_batch(&shards, &metrics, Source::Kafka, items, 4096);
         let r = run(&[

@@ -7,6 +7,7 @@ use prometheus::{
 };
 
 use crate::event::{Outcome, RejectReason};
+use crate::state::skew::Direction;
 use crate::summary::ExperimentSummary;
 
 /// Where an event came from; a label on the event counters.
@@ -106,6 +107,14 @@ pub struct Metrics {
     pub prob_harm: GaugeVec,
     /// p-value of the sample-ratio test per experiment.
     pub sample_ratio_p_value: GaugeVec,
+    /// Timed events checked against a reference time, by source.
+    pub event_time_checked: IntCounterVec,
+    /// Events whose time was beyond the source's bounds, by source, direction and action.
+    pub event_time_skewed: IntCounterVec,
+    /// Largest skew beyond the bounds seen, by source and direction (seconds).
+    pub event_time_largest_skew: GaugeVec,
+    /// What the checks found per source, for the API and the dashboard.
+    pub clock: super::clock::ClockHealth,
 }
 
 fn counter_vec(registry: &Registry, name: &str, help: &str, labels: &[&str]) -> IntCounterVec {
@@ -385,6 +394,25 @@ impl Metrics {
             ),
             http_requests,
             http_duration,
+            event_time_checked: counter_vec(
+                &registry,
+                "posteriord_event_time_checked_total",
+                "Timed events checked against their reference time (Kafka record timestamp, HTTP receive time), by source.",
+                &["source"],
+            ),
+            event_time_skewed: counter_vec(
+                &registry,
+                "posteriord_event_time_skewed_total",
+                "Events whose time was beyond the source's bounds around its reference time, by source, direction (ahead, behind) and action (refused, clamped).",
+                &["source", "direction", "action"],
+            ),
+            event_time_largest_skew: gauge_vec(
+                &registry,
+                "posteriord_event_time_largest_skew_seconds",
+                "Largest skew beyond the bounds seen since start, by source and direction.",
+                &["source", "direction"],
+            ),
+            clock: Default::default(),
             registry,
             scrape: std::sync::Mutex::new(()),
             events,
@@ -403,8 +431,42 @@ impl Metrics {
                 m.rejected
                     .with_label_values(&[source.as_str(), reason.as_str()]);
             }
+            m.event_time_checked.with_label_values(&[source.as_str()]);
+            for d in Direction::ALL {
+                for action in ["refused", "clamped"] {
+                    m.event_time_skewed
+                        .with_label_values(&[source.as_str(), d.as_str(), action]);
+                }
+                m.event_time_largest_skew
+                    .with_label_values(&[source.as_str(), d.as_str()]);
+            }
         }
         m
+    }
+
+    /// Count what the event-time check of one batch found (`skewed` from
+    /// `clock::check_batch`), after it updated `self.clock`.
+    pub fn count_clock(&self, source: Source, checked: u64, skewed: &[super::clock::Skewed]) {
+        if checked > 0 {
+            self.event_time_checked
+                .with_label_values(&[source.as_str()])
+                .inc_by(checked);
+        }
+        if skewed.is_empty() {
+            return;
+        }
+        for x in skewed {
+            let action = if x.clamped { "clamped" } else { "refused" };
+            self.event_time_skewed
+                .with_label_values(&[source.as_str(), x.direction.as_str(), action])
+                .inc();
+        }
+        let now = self.clock.of(source);
+        for (k, d) in Direction::ALL.into_iter().enumerate() {
+            self.event_time_largest_skew
+                .with_label_values(&[source.as_str(), d.as_str()])
+                .set(now.largest[k] as f64 / 1e6);
+        }
     }
 
     /// Count one valid event.

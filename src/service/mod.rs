@@ -14,6 +14,7 @@
 
 pub mod alerts;
 pub mod catalog;
+pub mod clock;
 mod evaluate;
 pub mod fleet;
 pub mod ingest;
@@ -121,6 +122,8 @@ pub struct Service {
     catalog_publisher: OnceLock<CatalogPublisher>,
     /// When experiments are due for evaluation, by event time and count.
     cadence: Cadence,
+    /// How far event time may stray from its reference, per source.
+    event_time: crate::config::EventTimeConfig,
     /// Snapshots of due experiments, to the evaluator.
     due: Sender<ExperimentSnapshot>,
     /// The evaluator's end of `due`, taken once by [`Service::run_evaluator`].
@@ -161,6 +164,7 @@ impl Service {
         let (due, queue) = std::sync::mpsc::channel();
         Service {
             cadence: config.alerts.cadence(),
+            event_time: config.event_time,
             due,
             evaluation_queue: Mutex::new(Some(queue)),
             shards: Mutex::new({
@@ -351,13 +355,14 @@ impl Service {
     /// Decode and apply a batch from `source` (see [`ingest::apply_batch`]) and queue the
     /// experiments it made due for evaluation, in input order.
     pub fn apply(&self, source: Source, items: &[Item<'_>]) -> BatchReport {
-        let mut report = ingest::apply_batch_due(
+        let mut report = ingest::apply_batch_checked(
             &self.shards,
             &self.metrics,
             source,
             items,
             self.max_event_bytes,
             Some(&self.cadence),
+            &self.time_bounds(source),
         );
         for snapshot in report.due.drain(..) {
             self.metrics
@@ -370,9 +375,29 @@ impl Service {
         report
     }
 
+    /// The event-time bounds of `source` (`[event_time]`; the simulator's events carry no
+    /// reference and are not checked).
+    pub fn time_bounds(&self, source: Source) -> crate::state::skew::TimeBounds {
+        match source {
+            Source::Http => self.event_time.http,
+            Source::Kafka | Source::Simulator => self.event_time.kafka,
+        }
+    }
+
     /// Log (durably, when a store is configured) and apply a batch of events posted over
     /// HTTP. Nothing is applied if logging fails, so an error reply means "not accepted".
+    /// The receive time is logged with the events: it is the reference their times are
+    /// checked against, now and when a restart re-applies the log.
     pub fn ingest_http(&self, items: &[&[u8]]) -> Result<BatchReport, StoreError> {
+        self.ingest_http_at(items, now_micros())
+    }
+
+    /// [`Service::ingest_http`] received at `received_at` (µs).
+    pub fn ingest_http_at(
+        &self,
+        items: &[&[u8]],
+        received_at: Micros,
+    ) -> Result<BatchReport, StoreError> {
         let batch = |first: Option<i64>| -> Vec<Item<'_>> {
             items
                 .iter()
@@ -383,6 +408,7 @@ impl Service {
                     bytes,
                     mapping: None,
                     topic: None,
+                    reference: Some(received_at),
                 })
                 .collect()
         };
@@ -395,7 +421,7 @@ impl Service {
             .shard_mut(HTTP_SHARD)
             .next_offset()
             .unwrap_or(0);
-        let logged = wal.append(first as u64, items);
+        let logged = wal.append(first as u64, received_at, items);
         self.health.note(HTTP_LOG, &logged);
         if logged.is_err() {
             self.refused_bytes
@@ -499,6 +525,9 @@ impl Service {
                     bytes,
                     mapping: None,
                     topic: None,
+                    // Records of the previous log version have none: applied unchecked,
+                    // as they were when first received.
+                    reference: r.received_at,
                 })
             })
             .collect();

@@ -295,11 +295,21 @@ pub struct WalRecord {
     pub first_seq: u64,
     /// The encoded events, in request order.
     pub events: Vec<Vec<u8>>,
+    /// When the request was received (µs since the epoch): the reference its events' times
+    /// are checked against, kept so a restart checks against the same. `None` for records
+    /// written before it was kept (`PWR2` and the per-event log).
+    pub received_at: Option<i64>,
 }
 
-const RECORD_MAGIC: &[u8; 4] = b"PWR2";
+/// Records with a receive time (written now).
+const RECORD_MAGIC: &[u8; 4] = b"PWR3";
+/// magic | first_seq u64 | count u32 | body length u32 | received_at i64 | CRC-32 of the
+/// previous 28 bytes.
+const HEADER: usize = 32;
+/// Records of the previous version, still read: no receive time.
+const RECORD_MAGIC_V2: &[u8; 4] = b"PWR2";
 /// magic | first_seq u64 | count u32 | body length u32 | CRC-32 of the previous 20 bytes.
-const HEADER: usize = 24;
+const HEADER_V2: usize = 24;
 /// Largest body a record may claim, so a damaged header cannot make us allocate wildly.
 const MAX_RECORD: usize = 1 << 30;
 
@@ -308,12 +318,15 @@ const MAX_RECORD: usize = 1 << 30;
 /// a failed append is cut back off the file, so a refused request leaves nothing a restart
 /// would apply.
 ///
-/// Record: `"PWR2" | u64 first sequence | u32 event count | u32 body length | u32 CRC of
-/// the header`, then the body (`u32 length | bytes` per event) and a `u32` CRC of the body.
+/// Record: `"PWR3" | u64 first sequence | u32 event count | u32 body length | i64 receive
+/// time (µs) | u32 CRC of the header`, then the body (`u32 length | bytes` per event) and a `u32` CRC of the body.
 /// The log is a series of segment files `<name>.wal.<n>`; a save of the shard seals the
 /// current segment (later appends start the next one), and once the saved file is durable
 /// the sealed segments are deleted. Nothing is ever copied, so a restart after a full disk
 /// needs no free space to read the log back.
+///
+/// Records of the previous version (`"PWR2"`, the same without the receive time) are still
+/// read, so an upgrade over a log that was not yet saved away loses nothing.
 ///
 /// Reading: a record cut short or failing its checksum at the very end of a segment is the
 /// trace of a crash during an append (that request was never answered) and is ignored; any
@@ -394,14 +407,15 @@ impl Wal {
             .sum()
     }
 
-    fn encode(first_seq: u64, items: &[&[u8]]) -> Vec<u8> {
+    fn encode(first_seq: u64, received_at: i64, items: &[&[u8]]) -> Vec<u8> {
         let body_len: usize = items.iter().map(|b| 4 + b.len()).sum();
         let mut out = Vec::with_capacity(HEADER + body_len + 4);
         out.extend_from_slice(RECORD_MAGIC);
         out.extend_from_slice(&first_seq.to_le_bytes());
         out.extend_from_slice(&(items.len() as u32).to_le_bytes());
         out.extend_from_slice(&(body_len as u32).to_le_bytes());
-        let crc = crc32fast::hash(&out[..20]);
+        out.extend_from_slice(&received_at.to_le_bytes());
+        let crc = crc32fast::hash(&out[..HEADER - 4]);
         out.extend_from_slice(&crc.to_le_bytes());
         for b in items {
             out.extend_from_slice(&(b.len() as u32).to_le_bytes());
@@ -417,10 +431,15 @@ impl Wal {
         (HEADER + items.iter().map(|b| 4 + b.len()).sum::<usize>() + 4) as u64
     }
 
-    /// Append the events of one request, numbered from `first_seq`, as one record and make
-    /// it durable. On error the file is cut back to where it was: nothing of the request
-    /// remains to be replayed.
-    pub fn append(&mut self, first_seq: u64, items: &[&[u8]]) -> Result<(), StoreError> {
+    /// Append the events of one request, numbered from `first_seq` and received at
+    /// `received_at` (µs), as one record and make it durable. On error the file is cut back
+    /// to where it was: nothing of the request remains to be replayed.
+    pub fn append(
+        &mut self,
+        first_seq: u64,
+        received_at: i64,
+        items: &[&[u8]],
+    ) -> Result<(), StoreError> {
         let path = self.segment_path(self.current);
         if let Some(len) = self.cut_pending {
             let f = fs::OpenOptions::new()
@@ -432,7 +451,7 @@ impl Wal {
                 .map_err(io_err(&path))?;
             self.cut_pending = None;
         }
-        let record = Wal::encode(first_seq, items);
+        let record = Wal::encode(first_seq, received_at, items);
         // Opened per append, not held: a file held open for writing would stop an operator
         // from remounting the directory read-only, and opening costs microseconds.
         let mut file = fs::OpenOptions::new()
@@ -589,27 +608,38 @@ fn read_segment(bytes: &[u8]) -> Result<(Vec<WalRecord>, bool), (usize, String)>
         // A torn end: the header or the body runs past the end of the file, or what
         // follows is zeros (the file was extended but the bytes never reached the disk, as
         // after a power cut), or the last record's checksum field was never written.
-        if rest.len() < HEADER || rest.iter().all(|&b| b == 0) {
+        if rest.len() < HEADER_V2 || rest.iter().all(|&b| b == 0) {
             return Ok((records, true));
         }
-        let header = &rest[..HEADER];
-        let header_ok = &header[..4] == RECORD_MAGIC
-            && crc32fast::hash(&header[..20])
-                == u32::from_le_bytes(header[20..24].try_into().expect("4 bytes"));
+        // The version is in the magic; each version's header has its own length.
+        let header_len = if &rest[..4] == RECORD_MAGIC {
+            HEADER
+        } else {
+            HEADER_V2
+        };
+        if rest.len() < header_len {
+            return Ok((records, true));
+        }
+        let header = &rest[..header_len];
+        let header_ok = (&header[..4] == RECORD_MAGIC || &header[..4] == RECORD_MAGIC_V2)
+            && crc32fast::hash(&header[..header_len - 4])
+                == u32::from_le_bytes(header[header_len - 4..].try_into().expect("4 bytes"));
         if !header_ok {
             return Err((pos, "a damaged record header".into()));
         }
         let first_seq = u64::from_le_bytes(header[4..12].try_into().expect("8 bytes"));
         let count = u32::from_le_bytes(header[12..16].try_into().expect("4 bytes")) as usize;
         let body_len = u32::from_le_bytes(header[16..20].try_into().expect("4 bytes")) as usize;
+        let received_at = (header_len == HEADER)
+            .then(|| i64::from_le_bytes(header[20..28].try_into().expect("8 bytes")));
         if body_len > MAX_RECORD {
             return Err((pos, format!("a record claiming {body_len} bytes")));
         }
-        let end = pos + HEADER + body_len + 4;
+        let end = pos + header_len + body_len + 4;
         if end > bytes.len() {
             return Ok((records, true));
         }
-        let body = &bytes[pos + HEADER..pos + HEADER + body_len];
+        let body = &bytes[pos + header_len..pos + header_len + body_len];
         let crc = u32::from_le_bytes(bytes[end - 4..end].try_into().expect("4 bytes"));
         if crc32fast::hash(body) != crc {
             if end == bytes.len() && crc == 0 {
@@ -632,7 +662,11 @@ fn read_segment(bytes: &[u8]) -> Result<(Vec<WalRecord>, bool), (usize, String)>
         if at != body.len() {
             return Err((pos, "a record with bytes after its events".into()));
         }
-        records.push(WalRecord { first_seq, events });
+        records.push(WalRecord {
+            first_seq,
+            events,
+            received_at,
+        });
         pos = end;
     }
     Ok((records, false))
@@ -660,6 +694,7 @@ fn read_legacy(bytes: &[u8]) -> (Vec<WalRecord>, bool) {
         records.push(WalRecord {
             first_seq: seq,
             events: vec![bytes[pos + 12..end].to_vec()],
+            received_at: None,
         });
         pos = end + 4;
     }
@@ -1268,9 +1303,9 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let store = Store::open(dir.path()).unwrap();
         let mut wal = Wal::open(&store, "http").unwrap();
-        wal.append(0, &[b"one", b"two"]).unwrap();
+        wal.append(0, 1_000, &[b"one", b"two"]).unwrap();
         let sealed = wal.seal();
-        wal.append(2, &[b"three"]).unwrap();
+        wal.append(2, 1_000 + 2, &[b"three"]).unwrap();
         assert_eq!(seqs(&wal), vec![(0, 2), (2, 1)]);
         let (records, torn) = wal.read().unwrap();
         assert_eq!(torn, 0);
@@ -1279,9 +1314,12 @@ mod tests {
         assert_eq!(seqs(&wal), vec![(2, 1)]);
         // A restart appends to a fresh segment and reads the old ones in place.
         let mut wal = Wal::open(&store, "http").unwrap();
-        wal.append(3, &[b"four", b"five"]).unwrap();
+        wal.append(3, 1_000 + 3, &[b"four", b"five"]).unwrap();
         assert_eq!(seqs(&wal), vec![(2, 1), (3, 2)]);
-        assert_eq!(Wal::record_bytes(&[b"four", b"five"]), 24 + 8 + 8 + 4);
+        assert_eq!(Wal::record_bytes(&[b"four", b"five"]), 32 + 8 + 8 + 4);
+        // Each record keeps its receive time.
+        let (records, _) = wal.read().unwrap();
+        assert_eq!(records[1].received_at, Some(1_003));
     }
 
     #[test]
@@ -1289,11 +1327,11 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let store = Store::open(dir.path()).unwrap();
         let mut wal = Wal::open(&store, "http").unwrap();
-        wal.append(0, &[b"alpha", b"beta"]).unwrap();
-        wal.append(2, &[b"gamma"]).unwrap();
+        wal.append(0, 1_000, &[b"alpha", b"beta"]).unwrap();
+        wal.append(2, 1_000 + 2, &[b"gamma"]).unwrap();
         let path = wal.segment_path(1);
         let good = std::fs::read(&path).unwrap();
-        let first_len = 24 + 4 + 5 + 4 + 4 + 4;
+        let first_len = 32 + 4 + 5 + 4 + 4 + 4;
         // Cut anywhere inside the last record: the trace of a crash mid-append.
         for cut in [
             first_len + 1,
@@ -1326,6 +1364,45 @@ mod tests {
     }
 
     #[test]
+    fn records_of_the_previous_version_are_read_without_a_receive_time() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::open(dir.path()).unwrap();
+        // A `PWR2` record as the previous version wrote it, then a current one after it.
+        let mut rec = Vec::new();
+        rec.extend_from_slice(RECORD_MAGIC_V2);
+        rec.extend_from_slice(&7u64.to_le_bytes());
+        rec.extend_from_slice(&1u32.to_le_bytes());
+        rec.extend_from_slice(&(4u32 + 3).to_le_bytes());
+        let crc = crc32fast::hash(&rec[..20]);
+        rec.extend_from_slice(&crc.to_le_bytes());
+        rec.extend_from_slice(&3u32.to_le_bytes());
+        rec.extend_from_slice(b"old");
+        let crc = crc32fast::hash(&rec[HEADER_V2..]);
+        rec.extend_from_slice(&crc.to_le_bytes());
+        rec.extend_from_slice(&Wal::encode(8, 42, &[b"new"]));
+        let path = Wal::open(&store, "http").unwrap().segment_path(1);
+        std::fs::write(path, &rec).unwrap();
+        let wal = Wal::open(&store, "http").unwrap();
+        let (records, torn) = wal.read().unwrap();
+        assert_eq!(torn, 0);
+        assert_eq!(
+            records,
+            vec![
+                WalRecord {
+                    first_seq: 7,
+                    events: vec![b"old".to_vec()],
+                    received_at: None
+                },
+                WalRecord {
+                    first_seq: 8,
+                    events: vec![b"new".to_vec()],
+                    received_at: Some(42)
+                },
+            ]
+        );
+    }
+
+    #[test]
     fn the_log_of_earlier_versions_is_read_and_removed_with_the_first_save() {
         let dir = tempfile::tempdir().unwrap();
         let store = Store::open(dir.path()).unwrap();
@@ -1341,7 +1418,7 @@ mod tests {
         let legacy = dir.path().join("shards/http.wal");
         std::fs::write(&legacy, &old).unwrap();
         let mut wal = Wal::open(&store, "http").unwrap();
-        wal.append(2, &[b"three"]).unwrap();
+        wal.append(2, 1_000 + 2, &[b"three"]).unwrap();
         assert_eq!(seqs(&wal), vec![(0, 1), (1, 1), (2, 1)]);
         let sealed = wal.seal();
         wal.remove_sealed(sealed).unwrap();

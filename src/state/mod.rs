@@ -9,6 +9,7 @@ pub mod image;
 pub mod members;
 pub mod partials;
 pub mod shards;
+pub mod skew;
 pub mod units;
 
 use std::collections::HashMap;
@@ -843,6 +844,20 @@ impl Engine {
             ));
         };
         let e = &mut self.experiments[idx];
+        // Before a configured start no event can belong to the experiment; refused before it
+        // touches the counts or the clock, so an early stamp cannot lengthen its duration.
+        if let (Some(start), Some(t)) = (e.def.rules.start, event.time) {
+            if t < start {
+                return Err(Reject::new(
+                    RejectReason::BeforeStart,
+                    format!(
+                        "time is {:.1} h before experiment `{}`'s configured start",
+                        (start - t) as f64 / 3.6e9,
+                        event.experiment
+                    ),
+                ));
+            }
+        }
         let r = e.apply_hashed(event, hashes);
         if let (Ok(Outcome::Applied), EventBody::Exposure { .. }, Some(unit)) =
             (&r, &event.body, hashes.unit)

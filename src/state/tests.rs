@@ -778,3 +778,27 @@ fn shard_ids_keep_their_stored_text_form_and_say_their_kind() {
     assert_eq!(h.kafka_partition(), None);
     assert_eq!(shards::ShardId::from("simulator").kafka_partition(), None);
 }
+
+#[test]
+fn events_before_a_configured_start_are_refused_and_change_nothing() {
+    let mut def = bakery();
+    def.rules.start = Some(1_000);
+    let mut engine = Engine::new([def.clone()]);
+    let at = |t: i64| Event {
+        experiment: Cow::Owned(def.id.clone()),
+        id: None,
+        time: Some(t),
+        body: EventBody::Exposure {
+            variant: Cow::Owned(def.variants[0].name.clone()),
+            unit: Cow::Borrowed("early-bird"),
+        },
+    };
+    let r = engine.apply(&at(999)).unwrap_err();
+    assert_eq!(r.reason, RejectReason::BeforeStart);
+    let snap = engine.experiment(&def.id).unwrap().snapshot();
+    assert_eq!(
+        (snap.first_event_time, snap.units.iter().sum::<u64>()),
+        (None, 0)
+    );
+    assert_eq!(engine.apply(&at(1_000)), Ok(Outcome::Applied));
+}

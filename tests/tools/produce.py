@@ -6,7 +6,11 @@ event's experiment id (the partitioning posteriord documents), or with --key PAT
 at a dotted path (a team's unit-keyed topics; lines without it get no key). Lines that are not
 JSON objects are produced as-is with no key, so tests can send poison messages too.
 
-usage: produce.py --brokers HOST:PORT --topic T [--partitions N] [--key PATH] FILE
+With --timestamps, each line is `MILLIS<TAB>EVENT`: the message is produced with that record
+timestamp (producer create time, milliseconds since the epoch) — the reference posteriord
+checks event times against — and the same file is what `posteriord replay` reads.
+
+usage: produce.py --brokers HOST:PORT --topic T [--partitions N] [--key PATH] [--timestamps] FILE
 Prints the number of messages delivered; exits 1 if any delivery failed.
 """
 import argparse
@@ -41,6 +45,7 @@ def main():
     ap.add_argument("--topic", required=True)
     ap.add_argument("--partitions", type=int, default=3)
     ap.add_argument("--key", default=None, help="dotted path of the key in each line")
+    ap.add_argument("--timestamps", action="store_true")
     ap.add_argument("file")
     args = ap.parse_args()
 
@@ -65,6 +70,10 @@ def main():
             line = raw.rstrip(b"\n")
             if not line:
                 continue
+            timestamp = None
+            if args.timestamps:
+                millis, line = line.split(b"\t", 1)
+                timestamp = int(millis)
             key = None
             try:
                 obj = json.loads(line)
@@ -76,7 +85,11 @@ def main():
                 pass
             while True:
                 try:
-                    producer.produce(args.topic, value=line, key=key, on_delivery=on_delivery)
+                    if timestamp is None:
+                        producer.produce(args.topic, value=line, key=key, on_delivery=on_delivery)
+                    else:
+                        producer.produce(args.topic, value=line, key=key, timestamp=timestamp,
+                                         on_delivery=on_delivery)
                     break
                 except BufferError:
                     producer.poll(0.1)

@@ -6,6 +6,7 @@
 //! the alerts, and the data-quality checks. `?part=main` returns only the main part, which the
 //! page's small inline script re-fetches every few seconds and swaps in.
 
+pub mod clock;
 mod markup;
 pub mod overview;
 pub mod page;
@@ -25,6 +26,7 @@ use crate::service::Service;
 pub fn routes() -> Router<Arc<Service>> {
     Router::new()
         .route("/", get(overview::overview))
+        .route("/v1/event-time", get(clock::get_event_time))
         .route("/experiments/{id}", get(experiment))
         .route(
             "/v1/experiments/{id}/history",

@@ -80,7 +80,8 @@ pub async fn overview(
             page: q.page()?,
         })
     })();
-    let (status, main) = match asked {
+    let clock_panel = super::clock::panel(&service);
+    let (status, mut main) = match asked {
         Err(e) => (
             StatusCode::BAD_REQUEST,
             format!(
@@ -101,6 +102,9 @@ pub async fn overview(
             }
         }
     };
+    if status == StatusCode::OK {
+        main.push_str(&clock_panel);
+    }
     if wants_main(&part) {
         return html(status, main);
     }
