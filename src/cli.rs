@@ -692,8 +692,8 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
         bar.skip(((tried - points.len()) * opts.sims) as u64);
         let best = plan::recommend(&points, *kind, *target);
         let (what, error) = match kind {
-            SweepKind::ThresholdOfCaring => ("threshold_of_caring", "false_ship"),
-            SweepKind::HarmProbability => ("harm_probability", "harm"),
+            SweepKind::ThresholdOfCaring => ("ship.threshold_of_caring", "false_ship"),
+            SweepKind::HarmProbability => ("harm.probability", "harm"),
         };
         sweep_docs.push(serde_json::json!({
             "parameter": what,

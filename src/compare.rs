@@ -199,7 +199,7 @@ struct OutVariant {
     interval: OutInterval,
     prob_best: f64,
     expected_loss: f64,
-    prob_beats_control: Option<f64>,
+    prob_better_than_control: Option<f64>,
     lift: Option<OutLift>,
     prob_practically_equivalent: Option<f64>,
     prob_harm: Option<f64>,
@@ -494,7 +494,7 @@ fn out_variant(name: &str, posterior: OutPosterior, s: &ArmSummary) -> OutVarian
         interval: s.interval.into(),
         prob_best: s.prob_best,
         expected_loss: s.expected_loss,
-        prob_beats_control: s.prob_beats_control,
+        prob_better_than_control: s.prob_better_than_control,
         lift: s.lift.map(|l| OutLift {
             mean: if l.mean.is_finite() {
                 Some(l.mean)
@@ -523,10 +523,6 @@ fn render_table(out: &Output, metric: Metric, level: f64) -> String {
         trim_number(out.rope * 100.0),
         trim_number(out.harm_margin * 100.0)
     );
-    let beats = match metric {
-        Metric::Conversion => "P(> control)",
-        Metric::DefectRate => "P(< control)",
-    };
     let header: Vec<String> = vec![
         "variant".into(),
         "posterior".into(),
@@ -534,10 +530,10 @@ fn render_table(out: &Output, metric: Metric, level: f64) -> String {
         format!("{pct} interval"),
         "P(best)".into(),
         "expected loss".into(),
-        beats.into(),
+        "P(better than control)".into(),
         "lift mean".into(),
         format!("lift {pct} interval"),
-        "P(in ROPE)".into(),
+        "P(practically equivalent)".into(),
         "P(harm)".into(),
     ];
     let mut rows = vec![header];
@@ -571,7 +567,7 @@ fn render_table(out: &Output, metric: Metric, level: f64) -> String {
             format!("[{:.6}, {:.6}]", v.interval.lower, v.interval.upper),
             format!("{:.4}", v.prob_best),
             format!("{:.3e}", v.expected_loss),
-            v.prob_beats_control
+            v.prob_better_than_control
                 .map(|p| format!("{p:.4}"))
                 .unwrap_or_else(dash),
             lift_mean,

@@ -330,7 +330,7 @@ fn history_route_over_real_http() {
             "mean",
             "prob_best",
             "expected_loss",
-            "prob_beats_control",
+            "prob_better_than_control",
             "prob_harm",
         ] {
             assert_eq!(arm[key], d[key], "{key} of arm {i}");

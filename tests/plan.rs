@@ -151,7 +151,7 @@ fn a_sweep_recommends_the_loosest_threshold_meeting_the_target_and_an_svg_is_dra
     ]);
     let doc: Value = serde_json::from_slice(&out).unwrap();
     let sweep = &doc["sweeps"][0];
-    assert_eq!(sweep["parameter"], "threshold_of_caring");
+    assert_eq!(sweep["parameter"], "ship.threshold_of_caring");
     let points = sweep["points"].as_array().unwrap();
     let rec = sweep["recommended"].as_f64().expect("a recommendation");
     for p in points {

@@ -116,6 +116,25 @@ pub struct Evidence {
     pub positions: Vec<(String, i64)>,
 }
 
+/// An arm's posterior, by family, so every document can name its parameters.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum PosteriorParams {
+    /// Beta(alpha, beta): a conversion metric.
+    Beta {
+        /// Prior alpha plus successes.
+        alpha: f64,
+        /// Prior beta plus failures.
+        beta: f64,
+    },
+    /// Gamma(shape, rate): a defect rate.
+    Gamma {
+        /// Prior shape plus defects.
+        shape: f64,
+        /// Prior rate plus exposure.
+        rate: f64,
+    },
+}
+
 /// One arm's posterior and exposed units.
 #[derive(Debug, Clone, PartialEq)]
 pub struct ArmEvidence {
@@ -123,9 +142,8 @@ pub struct ArmEvidence {
     pub variant: usize,
     /// Variant name.
     pub name: String,
-    /// Posterior parameters: (alpha, beta) for conversion, (shape, rate) for defect rates;
-    /// `None` for experiment-level rules.
-    pub posterior: Option<(f64, f64)>,
+    /// Posterior parameters; `None` for experiment-level rules.
+    pub posterior: Option<PosteriorParams>,
     /// Exposed units.
     pub units: u64,
 }
@@ -563,11 +581,17 @@ fn evidence_of(summary: &ExperimentSummary, f: &Finding) -> Evidence {
         Some(v) => vec![v],
         None => (0..snap.def.variants.len()).collect(),
     };
-    let posterior = |v: usize| -> Option<(f64, f64)> {
+    let posterior = |v: usize| -> Option<PosteriorParams> {
         let m = f.metric?;
         match summary.metrics[m].posteriors.as_ref().ok()? {
-            crate::stats::Arms::Beta(b) => b.get(v).map(|x| (x.alpha(), x.beta())),
-            crate::stats::Arms::Gamma(g) => g.get(v).map(|x| (x.shape(), x.rate())),
+            crate::stats::Arms::Beta(b) => b.get(v).map(|x| PosteriorParams::Beta {
+                alpha: x.alpha(),
+                beta: x.beta(),
+            }),
+            crate::stats::Arms::Gamma(g) => g.get(v).map(|x| PosteriorParams::Gamma {
+                shape: x.shape(),
+                rate: x.rate(),
+            }),
         }
     };
     Evidence {

@@ -62,7 +62,7 @@ td.num { font-variant-numeric:tabular-nums; text-align:right; }
 .chip.ship { background:#dcecf7; border-color:#0072B2; } .chip.ship::before { content:"▲"; }
 .chip.same { background:#e8e6f1; border-color:#6b5fa8; } .chip.same::before { content:"="; }
 .chip.out-of-time { background:#eeeeee; border-color:#777; } .chip.out-of-time::before { content:"⧗"; }
-.chip.watching { background:#eef3ea; border-color:#5d7a4f; } .chip.watching::before { content:"…"; }
+.chip.gathering { background:#eef3ea; border-color:#5d7a4f; } .chip.gathering::before { content:"…"; }
 .chip.idle { background:#f0f0f0; border-color:#999; } .chip.idle::before { content:"○"; }
 .swatch { display:inline-block; width:26px; height:0; border-top:3px solid; vertical-align:middle; margin-right:.4rem; }
 a { color:var(--accent); }
@@ -136,7 +136,7 @@ pub fn glance(
         if summary.snapshot.units.iter().all(|&u| u == 0) {
             out.push(("idle", "waiting for data"));
         } else {
-            out.push(("watching", "still gathering evidence"));
+            out.push(("gathering", "still gathering evidence"));
         }
     }
     out
@@ -378,7 +378,7 @@ fn numbers_table(
     arms: &[ArmSummary],
     higher: bool,
 ) {
-    s.push_str(r#"<table data-role="numbers"><thead><tr><th>variant</th><th>mean</th><th>95% interval</th><th>P(best)</th><th>expected loss</th><th>P(beats control)</th><th>lift (95% interval)</th><th>P(harm)</th></tr></thead><tbody>"#);
+    s.push_str(r#"<table data-role="numbers"><thead><tr><th>variant</th><th>posterior mean</th><th>95% interval</th><th>P(best)</th><th>expected loss</th><th>P(better than control)</th><th>lift (95% interval)</th><th>P(practically equivalent)</th><th>P(harm)</th></tr></thead><tbody>"#);
     for (i, a) in arms.iter().enumerate() {
         let lift = a.lift.map_or("—".into(), |l| {
             format!(
@@ -390,7 +390,7 @@ fn numbers_table(
         });
         let _ = write!(
             s,
-            r#"<tr data-variant="{}"><td>{}</td><td class="num">{}</td><td class="num">{} … {}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td></tr>"#,
+            r#"<tr data-variant="{}"><td>{}</td><td class="num">{}</td><td class="num">{} … {}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td></tr>"#,
             escape(&def.variants[i].name),
             escape(&def.variants[i].name),
             rate(a.mean, higher),
@@ -398,8 +398,9 @@ fn numbers_table(
             rate(a.interval.upper, higher),
             prob(a.prob_best),
             sci(a.expected_loss),
-            a.prob_beats_control.map_or("—".into(), prob),
+            a.prob_better_than_control.map_or("—".into(), prob),
             lift,
+            a.prob_practically_equivalent.map_or("—".into(), prob),
             a.prob_harm.map_or("—".into(), prob),
         );
     }
@@ -865,9 +866,9 @@ fn quality_section(s: &mut String, v: &ExperimentView) {
             "crossovers (unit seen in a second variant; kept in its first)",
         ),
         (Outcome::Orphan, "orphans (outcome of a never-exposed unit)"),
-        (Outcome::DuplicateExposure, "repeat exposures"),
-        (Outcome::DuplicateConversion, "repeat conversions"),
-        (Outcome::DuplicateId, "repeated event ids"),
+        (Outcome::DuplicateExposure, "duplicate exposures"),
+        (Outcome::DuplicateConversion, "duplicate conversions"),
+        (Outcome::DuplicateId, "duplicate event ids"),
     ] {
         let n = snap.outcomes.get(o);
         let extra = if matches!(o, Outcome::Crossover | Outcome::Orphan) {
