@@ -708,11 +708,21 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             sweep_text,
             "sweep of {what}: A/A {error} share per value (target ≤ {target})"
         );
+        // Each value in the unit of what it is compared with: a threshold of caring as a
+        // difference of the primary metric's rates, a harm probability as a probability.
+        let primary = opts.def.metrics[opts.def.rules.primary].kind;
+        let shown = |x: f64| match kind {
+            SweepKind::ThresholdOfCaring => format!(
+                "{x:.4e} ({})",
+                crate::decide::rate_difference_text(x, primary)
+            ),
+            SweepKind::HarmProbability => format!("{x}"),
+        };
         for p in &points {
             let _ = writeln!(
                 sweep_text,
-                "  {what} = {:<12.6e} {error} {:.4} ± {:.4}{}",
-                p.value,
+                "  {what} = {:<30} {error} {:.4} ± {:.4}{}",
+                shown(p.value),
                 p.error_share,
                 p.standard_error,
                 if Some(p.value) == best {
@@ -728,7 +738,7 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             best.map_or(
                 "none of the values tried meets the target; plan more units or fewer looks"
                     .to_string(),
-                |b| format!("{b:.6e}")
+                shown
             )
         );
     }

@@ -517,22 +517,32 @@ fn render_table(out: &Output, metric: Metric, level: f64) -> String {
     let mut text = String::new();
     let _ = writeln!(
         text,
-        "metric: {} ({direction}); control: {}; ROPE: ±{}% lift; harm margin: {}%",
+        "kind: {} ({direction}); control: {}; ROPE: ±{}% relative lift; harm margin: {}% relative",
         out.kind,
         out.control,
         trim_number(out.rope * 100.0),
         trim_number(out.harm_margin * 100.0)
     );
+    // Rates in % and their differences in percentage points for conversion; defect rates
+    // and their differences per unit of exposure.
+    let (unit, loss_unit) = match metric {
+        Metric::Conversion => ("", " (pp)"),
+        Metric::DefectRate => (" (per unit of exposure)", " (per unit of exposure)"),
+    };
+    let rate = |x: f64| match metric {
+        Metric::Conversion => format!("{:.3}%", x * 100.0),
+        Metric::DefectRate => format!("{x:.4e}"),
+    };
     let header: Vec<String> = vec![
         "variant".into(),
         "posterior".into(),
-        "mean".into(),
-        format!("{pct} interval"),
+        format!("posterior mean{unit}"),
+        format!("{pct} interval{unit}"),
         "P(best)".into(),
-        "expected loss".into(),
+        format!("expected loss{loss_unit}"),
         "P(better than control)".into(),
-        "lift mean".into(),
-        format!("lift {pct} interval"),
+        "lift mean (relative)".into(),
+        format!("lift {pct} interval (relative)"),
         "P(practically equivalent)".into(),
         "P(harm)".into(),
     ];
@@ -563,10 +573,13 @@ fn render_table(out: &Output, metric: Metric, level: f64) -> String {
         rows.push(vec![
             v.name.clone(),
             posterior,
-            format!("{:.6}", v.mean),
-            format!("[{:.6}, {:.6}]", v.interval.lower, v.interval.upper),
+            rate(v.mean),
+            format!("[{}, {}]", rate(v.interval.lower), rate(v.interval.upper)),
             format!("{:.4}", v.prob_best),
-            format!("{:.3e}", v.expected_loss),
+            match metric {
+                Metric::Conversion => format!("{:.4}", v.expected_loss * 100.0),
+                Metric::DefectRate => format!("{:.3e}", v.expected_loss),
+            },
             v.prob_better_than_control
                 .map(|p| format!("{p:.4}"))
                 .unwrap_or_else(dash),

@@ -63,7 +63,7 @@ pub fn alert(a: &crate::decide::alerts::Alert) -> Value {
         "value": a.finding.value,
         "threshold": a.finding.threshold,
         "test": a.finding.test,
-        "message": a.finding.message,
+        "message": a.message_now(),
         "evidence": evidence(&a.finding.evidence),
         "caution": CAUTION_SHORT,
     })

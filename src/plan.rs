@@ -963,28 +963,30 @@ pub fn scenario_table(opts: &PlanOptions, result: &ScenarioResult) -> String {
             num(&o["units_to_decision"]["p90"], 0),
         );
     }
+    let primary = &opts.def.metrics[opts.def.rules.primary];
     let _ = writeln!(
         out,
-        "  expected loss incurred: {:.3e} (in `{}` rate units; best true arm minus the arm kept)",
-        v["expected_loss_incurred"].as_f64().unwrap_or(0.0),
-        opts.def.metrics[opts.def.rules.primary].name
+        "  expected loss incurred: {} on `{}` (best true arm minus the arm kept)",
+        crate::decide::rate_difference_text(
+            v["expected_loss_incurred"].as_f64().unwrap_or(0.0),
+            primary.kind
+        ),
+        primary.name
     );
     for g in v["guardrail_harm_incurred"]
         .as_array()
         .into_iter()
         .flatten()
     {
-        let kind = g["kind"].as_str().unwrap_or("");
+        let kind = match g["kind"].as_str() {
+            Some("conversion") => MetricKind::Conversion,
+            _ => MetricKind::DefectRate(crate::experiment::ExposureBasis::Units),
+        };
         let _ = writeln!(
             out,
-            "  guardrail harm incurred on `{}`: {:.3e} ({}; kept arm minus control where worse)",
+            "  guardrail harm incurred on `{}`: {} (kept arm minus control where worse)",
             g["metric"].as_str().unwrap_or(""),
-            g["mean"].as_f64().unwrap_or(0.0),
-            if kind == "conversion" {
-                "conversion rate units"
-            } else {
-                "defects per unit of exposure"
-            }
+            crate::decide::rate_difference_text(g["mean"].as_f64().unwrap_or(0.0), kind),
         );
     }
     let rate = |x: &Value| {

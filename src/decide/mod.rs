@@ -250,7 +250,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                         def.variants[v].name,
                         def.variants[control].name,
                         metric.name,
-                        if rule.margin > 0.0 { format!(" by more than {:.1}%", rule.margin * 100.0) } else { String::new() },
+                        if rule.margin > 0.0 { format!(" by more than {:.1}% relative", rule.margin * 100.0) } else { String::new() },
                         p,
                         rule.probability
                     ),
@@ -308,7 +308,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                         threshold: xr.equivalence_probability,
                         test: Rule::Equivalent.test(),
                         message: format!(
-                            "every variant is within ±{:.1}% of `{}` on `{}` with probability ≥ {:.3}; more traffic is unlikely to change the choice",
+                            "every variant is within ±{:.1}% (relative) of `{}` on `{}` with probability ≥ {:.3}; more traffic is unlikely to change the choice",
                             primary.rules.rope * 100.0,
                             def.variants[control].name,
                             primary.name,
@@ -391,7 +391,7 @@ pub fn add_evidence_findings(
                     def.variants[v].name,
                     def.variants[def.control].name,
                     metric.name,
-                    if rule.margin > 0.0 { format!(" by more than {:.1}%", rule.margin * 100.0) } else { String::new() },
+                    if rule.margin > 0.0 { format!(" by more than {:.1}% relative", rule.margin * 100.0) } else { String::new() },
                     st.max_e_value,
                     1.0 / rule.alpha,
                     rule.alpha
@@ -616,10 +616,41 @@ fn ship_message(
     arm: &ArmSummary,
     threshold: f64,
 ) -> String {
-    format!(
-        "choosing `{}` on `{}` risks an expected loss of {:.3e} (below the threshold of caring {threshold:e}); posteriors assume the model and clean data, so review before shipping",
-        def.variants[v].name, def.metrics[metric].name, arm.expected_loss
-    )
+    let kind = def.metrics[metric].kind;
+    let loss = rate_difference_text(arm.expected_loss, kind);
+    let threshold = rate_difference_text(threshold, kind);
+    let name = &def.variants[v].name;
+    let metric = &def.metrics[metric].name;
+    if v == def.control {
+        // Keeping the control ships nothing: no shipping review to ask for.
+        format!(
+            "keeping the control `{name}` on `{metric}` risks an expected loss of {loss} (below the threshold of caring {threshold}): no variant is worth choosing over it; posteriors assume the model and clean data"
+        )
+    } else {
+        format!(
+            "choosing `{name}` on `{metric}` risks an expected loss of {loss} (below the threshold of caring {threshold}); posteriors assume the model and clean data, so review before shipping"
+        )
+    }
+}
+
+/// A difference of two rates (an expected loss, a threshold of caring) as people read it:
+/// percentage points for conversion, with three significant digits; defects per unit of
+/// exposure for defect rates.
+pub fn rate_difference_text(x: f64, kind: MetricKind) -> String {
+    match kind {
+        MetricKind::Conversion => {
+            let pp = x * 100.0;
+            if pp == 0.0 || !pp.is_finite() {
+                format!("{pp} pp")
+            } else if pp.abs() >= 1e-3 {
+                let digits = (2 - pp.abs().log10().floor() as i32).max(0) as usize;
+                format!("{pp:.digits$} pp")
+            } else {
+                format!("{pp:.2e} pp")
+            }
+        }
+        MetricKind::DefectRate(_) => format!("{x:.3e} per unit of exposure"),
+    }
 }
 
 #[cfg(test)]

@@ -319,7 +319,7 @@ fn metric_section(s: &mut String, v: &ExperimentView, m: usize) {
             return;
         }
     };
-    numbers_table(s, def, arms, higher);
+    numbers_table(s, def, &snap.metrics[m], arms, higher);
     s.push_str(r#"<div class="cards">"#);
     figure(
         s,
@@ -375,10 +375,26 @@ fn figure(s: &mut String, title: &str, hint: &str, svg: &str) {
 fn numbers_table(
     s: &mut String,
     def: &crate::experiment::ExperimentDef,
+    totals: &crate::state::MetricTotals,
     arms: &[ArmSummary],
     higher: bool,
 ) {
-    s.push_str(r#"<table data-role="numbers"><thead><tr><th>variant</th><th>posterior mean</th><th>95% interval</th><th>P(best)</th><th>expected loss</th><th>P(better than control)</th><th>lift (95% interval)</th><th>P(practically equivalent)</th><th>P(harm)</th></tr></thead><tbody>"#);
+    // One unit convention: conversion rates in %, their differences (expected loss) in
+    // percentage points; defect rates and their differences per unit of exposure; lifts in
+    // relative %; probabilities as probabilities. Raw counts beside the estimates.
+    let (counts, rates, loss) = if higher {
+        ("conversions / trials", "", "expected loss (pp)")
+    } else {
+        (
+            "defects / exposure",
+            " (per unit of exposure)",
+            "expected loss (per unit of exposure)",
+        )
+    };
+    let _ = write!(
+        s,
+        r#"<table data-role="numbers"><thead><tr><th>variant</th><th>{counts}</th><th>posterior mean{rates}</th><th>95% interval{rates}</th><th>P(best)</th><th>{loss}</th><th>P(better than control)</th><th>lift, relative (95% interval)</th><th>P(practically equivalent)</th><th>P(harm)</th></tr></thead><tbody>"#
+    );
     for (i, a) in arms.iter().enumerate() {
         let lift = a.lift.map_or("—".into(), |l| {
             format!(
@@ -388,16 +404,24 @@ fn numbers_table(
                 l.interval.upper * 100.0
             )
         });
+        let raw = match totals {
+            crate::state::MetricTotals::Conversion(t) => t
+                .get(i)
+                .map_or("—".into(), |t| format!("{} / {}", t.successes, t.trials)),
+            crate::state::MetricTotals::Defect(t) => t
+                .get(i)
+                .map_or("—".into(), |t| format!("{} / {}", t.count, t.exposure)),
+        };
         let _ = write!(
             s,
-            r#"<tr data-variant="{}"><td>{}</td><td class="num">{}</td><td class="num">{} … {}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td></tr>"#,
+            r#"<tr data-variant="{}"><td>{}</td><td class="num">{raw}</td><td class="num">{}</td><td class="num">{} … {}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td></tr>"#,
             escape(&def.variants[i].name),
             escape(&def.variants[i].name),
             rate(a.mean, higher),
             rate(a.interval.lower, higher),
             rate(a.interval.upper, higher),
             prob(a.prob_best),
-            sci(a.expected_loss),
+            difference(a.expected_loss, higher),
             a.prob_better_than_control.map_or("—".into(), prob),
             lift,
             a.prob_practically_equivalent.map_or("—".into(), prob),
@@ -405,6 +429,30 @@ fn numbers_table(
         );
     }
     s.push_str("</tbody></table>");
+}
+
+/// A difference of rates as shown: percentage points for conversion, per unit of exposure
+/// for defect rates.
+fn difference(x: f64, conversion: bool) -> String {
+    if !x.is_finite() {
+        "—".into()
+    } else if conversion {
+        format!("{} pp", short(x * 100.0))
+    } else {
+        sci(x)
+    }
+}
+
+/// Three significant digits, without exponent for everyday sizes.
+fn short(x: f64) -> String {
+    if x == 0.0 {
+        "0".into()
+    } else if x.abs() >= 1e-3 {
+        let digits = (2 - x.abs().log10().floor() as i32).max(0) as usize;
+        format!("{x:.digits$}")
+    } else {
+        format!("{x:.2e}")
+    }
 }
 
 fn linspace(lo: f64, hi: f64, n: usize) -> Vec<f64> {
@@ -574,6 +622,15 @@ enum TimeQuantity {
     ExpectedLoss,
 }
 
+/// The threshold of caring in the unit of the expected loss it is compared with.
+fn threshold_label(t: f64, conversion: bool) -> String {
+    if conversion {
+        format!("threshold of caring {} ({t})", difference(t, true))
+    } else {
+        format!("threshold of caring {t} per unit of exposure")
+    }
+}
+
 fn time_plot(
     def: &crate::experiment::ExperimentDef,
     metric: &str,
@@ -582,6 +639,11 @@ fn time_plot(
     q: TimeQuantity,
     threshold: Option<f64>,
 ) -> String {
+    let conversion = def
+        .metrics
+        .iter()
+        .find(|m| m.name == metric)
+        .is_some_and(|m| m.kind == crate::experiment::MetricKind::Conversion);
     let (t0, t1) = match (points.first(), points.last()) {
         (Some(a), Some(b)) if b.at > a.since => (secs(a.since), secs(b.at)),
         (Some(a), _) => (secs(a.at) - 1.0, secs(a.at) + 1.0),
@@ -635,7 +697,7 @@ fn time_plot(
             value: t,
             horizontal: true,
             role: "threshold",
-            label: format!("threshold of caring {t:e}"),
+            label: threshold_label(t, conversion),
         })
         .into_iter()
         .collect();
@@ -662,7 +724,10 @@ fn time_plot(
             scale,
             label: match q {
                 TimeQuantity::ProbBest => "P(best)".into(),
-                TimeQuantity::ExpectedLoss => "expected loss (rate units)".into(),
+                TimeQuantity::ExpectedLoss if conversion => {
+                    "expected loss (rate difference; 0.01 = 1 pp)".into()
+                }
+                TimeQuantity::ExpectedLoss => "expected loss (per unit of exposure)".into(),
             },
             fmt: Fmt::Plain,
         },
