@@ -1,6 +1,6 @@
 //! Benchmarks of the statistics core: exact quadrature against a 1e5-draw Monte Carlo
 //! estimator of the same decision quantities, and the cost of a full `compare` (and of the
-//! P(best)/loss/P(beats control)-only `decide`) for 2..64 arms.
+//! P(best)/loss/P(better than control)-only `decide`) for 2..64 arms.
 //!
 //! Run with `cargo bench --bench stats`. Before the criterion groups it prints, from one run,
 //! the speed ratio (Monte Carlo time / exact time) and the error ratio (Monte Carlo error /
@@ -133,7 +133,7 @@ fn print_ratios() {
         "  speed ratio MC/exact: {:.1}x",
         t_mc.as_secs_f64() / t_exact.as_secs_f64()
     );
-    println!("  decide (P(best), loss, P(beats control) only): {t_decide:?}");
+    println!("  decide (P(best), loss, P(better than control) only): {t_decide:?}");
     println!(
         "  speed ratio MC/decide: {:.1}x",
         t_mc.as_secs_f64() / t_decide.as_secs_f64()

@@ -695,8 +695,8 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
         bar.skip(((tried - points.len()) * opts.sims) as u64);
         let best = plan::recommend(&points, *kind, *target);
         let (what, error) = match kind {
-            SweepKind::ThresholdOfCaring => ("threshold_of_caring", "false_ship"),
-            SweepKind::HarmProbability => ("harm_probability", "harm"),
+            SweepKind::ThresholdOfCaring => ("ship.threshold_of_caring", "false_ship"),
+            SweepKind::HarmProbability => ("harm.probability", "harm"),
         };
         sweep_docs.push(serde_json::json!({
             "parameter": what,
@@ -711,11 +711,21 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             sweep_text,
             "sweep of {what}: A/A {error} share per value (target ≤ {target})"
         );
+        // Each value in the unit of what it is compared with: a threshold of caring as a
+        // difference of the primary metric's rates, a harm probability as a probability.
+        let primary = opts.def.metrics[opts.def.rules.primary].kind;
+        let shown = |x: f64| match kind {
+            SweepKind::ThresholdOfCaring => format!(
+                "{x:.4e} ({})",
+                crate::decide::rate_difference_text(x, primary)
+            ),
+            SweepKind::HarmProbability => format!("{x}"),
+        };
         for p in &points {
             let _ = writeln!(
                 sweep_text,
-                "  {what} = {:<12.6e} {error} {:.4} ± {:.4}{}",
-                p.value,
+                "  {what} = {:<30} {error} {:.4} ± {:.4}{}",
+                shown(p.value),
                 p.error_share,
                 p.standard_error,
                 if Some(p.value) == best {
@@ -731,7 +741,7 @@ fn plan(args: PlanArgs) -> anyhow::Result<()> {
             best.map_or(
                 "none of the values tried meets the target; plan more units or fewer looks"
                     .to_string(),
-                |b| format!("{b:.6e}")
+                shown
             )
         );
     }

@@ -199,7 +199,7 @@ struct OutVariant {
     interval: OutInterval,
     prob_best: f64,
     expected_loss: f64,
-    prob_beats_control: Option<f64>,
+    prob_better_than_control: Option<f64>,
     lift: Option<OutLift>,
     prob_practically_equivalent: Option<f64>,
     prob_harm: Option<f64>,
@@ -494,7 +494,7 @@ fn out_variant(name: &str, posterior: OutPosterior, s: &ArmSummary) -> OutVarian
         interval: s.interval.into(),
         prob_best: s.prob_best,
         expected_loss: s.expected_loss,
-        prob_beats_control: s.prob_beats_control,
+        prob_better_than_control: s.prob_better_than_control,
         lift: s.lift.map(|l| OutLift {
             mean: if l.mean.is_finite() {
                 Some(l.mean)
@@ -517,27 +517,33 @@ fn render_table(out: &Output, metric: Metric, level: f64) -> String {
     let mut text = String::new();
     let _ = writeln!(
         text,
-        "metric: {} ({direction}); control: {}; ROPE: ±{}% lift; harm margin: {}%",
+        "kind: {} ({direction}); control: {}; ROPE: ±{}% relative lift; harm margin: {}% relative",
         out.kind,
         out.control,
         trim_number(out.rope * 100.0),
         trim_number(out.harm_margin * 100.0)
     );
-    let beats = match metric {
-        Metric::Conversion => "P(> control)",
-        Metric::DefectRate => "P(< control)",
+    // Rates in % and their differences in percentage points for conversion; defect rates
+    // and their differences per unit of exposure.
+    let (unit, loss_unit) = match metric {
+        Metric::Conversion => ("", " (pp)"),
+        Metric::DefectRate => (" (per unit of exposure)", " (per unit of exposure)"),
+    };
+    let rate = |x: f64| match metric {
+        Metric::Conversion => format!("{:.3}%", x * 100.0),
+        Metric::DefectRate => format!("{x:.4e}"),
     };
     let header: Vec<String> = vec![
         "variant".into(),
         "posterior".into(),
-        "mean".into(),
-        format!("{pct} interval"),
+        format!("posterior mean{unit}"),
+        format!("{pct} interval{unit}"),
         "P(best)".into(),
-        "expected loss".into(),
-        beats.into(),
-        "lift mean".into(),
-        format!("lift {pct} interval"),
-        "P(in ROPE)".into(),
+        format!("expected loss{loss_unit}"),
+        "P(better than control)".into(),
+        "lift mean (relative)".into(),
+        format!("lift {pct} interval (relative)"),
+        "P(practically equivalent)".into(),
         "P(harm)".into(),
     ];
     let mut rows = vec![header];
@@ -567,11 +573,14 @@ fn render_table(out: &Output, metric: Metric, level: f64) -> String {
         rows.push(vec![
             v.name.clone(),
             posterior,
-            format!("{:.6}", v.mean),
-            format!("[{:.6}, {:.6}]", v.interval.lower, v.interval.upper),
+            rate(v.mean),
+            format!("[{}, {}]", rate(v.interval.lower), rate(v.interval.upper)),
             format!("{:.4}", v.prob_best),
-            format!("{:.3e}", v.expected_loss),
-            v.prob_beats_control
+            match metric {
+                Metric::Conversion => format!("{:.4}", v.expected_loss * 100.0),
+                Metric::DefectRate => format!("{:.3e}", v.expected_loss),
+            },
+            v.prob_better_than_control
                 .map(|p| format!("{p:.4}"))
                 .unwrap_or_else(dash),
             lift_mean,

@@ -27,12 +27,24 @@ pub fn evidence(e: &crate::decide::Evidence) -> Value {
     json!({
         "arms": e.arms.iter().map(|a| json!({
             "variant": a.name,
-            "posterior": a.posterior.map(|(x, y)| json!([x, y])),
+            "posterior": a.posterior.map(posterior_params),
             "units": a.units,
         })).collect::<Vec<_>>(),
         "event_time": e.event_time.and_then(time_text),
         "positions": e.positions.iter().map(|(shard, next)| json!({"shard": shard, "next_offset": next})).collect::<Vec<_>>(),
     })
+}
+
+/// `{"alpha", "beta"}` or `{"shape", "rate"}`: a posterior as every document writes it.
+pub fn posterior_params(p: crate::decide::PosteriorParams) -> Value {
+    match p {
+        crate::decide::PosteriorParams::Beta { alpha, beta } => {
+            json!({ "alpha": alpha, "beta": beta })
+        }
+        crate::decide::PosteriorParams::Gamma { shape, rate } => {
+            json!({ "shape": shape, "rate": rate })
+        }
+    }
 }
 
 /// One alert of `GET /v1/alerts`.
@@ -51,7 +63,7 @@ pub fn alert(a: &crate::decide::alerts::Alert) -> Value {
         "value": a.finding.value,
         "threshold": a.finding.threshold,
         "test": a.finding.test,
-        "message": a.finding.message,
+        "message": a.message_now(),
         "evidence": evidence(&a.finding.evidence),
         "caution": CAUTION_SHORT,
     })
@@ -131,7 +143,10 @@ fn arm_quantities(a: &ArmSummary) -> serde_json::Map<String, Value> {
     m.insert("interval".into(), interval(&a.interval));
     m.insert("prob_best".into(), json!(a.prob_best));
     m.insert("expected_loss".into(), json!(a.expected_loss));
-    m.insert("prob_beats_control".into(), json!(a.prob_beats_control));
+    m.insert(
+        "prob_better_than_control".into(),
+        json!(a.prob_better_than_control),
+    );
     m.insert(
         "lift".into(),
         match &a.lift {

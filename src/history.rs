@@ -63,7 +63,7 @@ pub struct ArmPoint {
     /// Expected loss of shipping this arm, in rate units.
     pub expected_loss: f64,
     /// Probability of beating the control (`None` for the control).
-    pub prob_beats_control: Option<f64>,
+    pub prob_better_than_control: Option<f64>,
     /// Relative lift against the control: mean, interval lower, interval upper (`None` for
     /// the control).
     pub lift: Option<(f64, f64, f64)>,
@@ -470,7 +470,7 @@ impl History {
                         interval: (a.interval.lower, a.interval.upper),
                         prob_best: a.prob_best,
                         expected_loss: a.expected_loss,
-                        prob_beats_control: a.prob_beats_control,
+                        prob_better_than_control: a.prob_better_than_control,
                         lift: a.lift.map(|l| (l.mean, l.interval.lower, l.interval.upper)),
                         prob_harm: a.prob_harm,
                     })

@@ -240,7 +240,8 @@ pub fn parse_effect(def: &ExperimentDef, text: &str) -> Result<Effect, PlanError
         })?,
     };
     let amount = amount.trim();
-    let relative = match amount.strip_suffix('%') {
+    let percent = amount.strip_suffix('%');
+    let relative = match percent {
         Some(p) => p.trim().parse::<f64>().map(|x| x / 100.0),
         None => amount.parse::<f64>(),
     }
@@ -249,6 +250,22 @@ pub fn parse_effect(def: &ExperimentDef, text: &str) -> Result<Effect, PlanError
             "--effect `{text}`: `{amount}` is not a number like +5% or -0.02"
         ))
     })?;
+    // A bare number is the unit slip this catches: `v=10` meant +10%, not +1000%. Without
+    // `%` the effect is a relative fraction and must say its direction, and stay below 1.
+    if percent.is_none() {
+        let signed = amount.starts_with('+') || amount.starts_with('-');
+        if !signed || relative.abs() >= 1.0 {
+            let guess = if relative.abs() >= 1.0 {
+                format!("{:+}%", relative)
+            } else {
+                format!("{:+}% (or {:+} as a fraction)", relative * 100.0, relative)
+            };
+            return Err(usage(format!(
+                "--effect `{text}`: a relative effect needs a sign and % (like +5%) or a signed fraction below 1 (like +0.05); did you mean {variant}{}={guess}?",
+                metric.map(|m| format!(":{m}")).unwrap_or_default()
+            )));
+        }
+    }
     if !(relative.is_finite() && relative > -1.0) {
         return Err(usage(format!(
             "--effect `{text}`: the relative effect must be above -100%"
@@ -274,17 +291,32 @@ pub fn parse_baselines(def: &ExperimentDef, given: &[String]) -> Result<Vec<f64>
                 def.id
             ))
         })?;
-        let r: f64 = rate
+        // A conversion rate may be written in percent (`5%`), as people say it.
+        let percent = rate.trim().strip_suffix('%');
+        let r: f64 = percent
+            .unwrap_or(rate.trim())
             .trim()
-            .parse()
+            .parse::<f64>()
+            .map(|x| if percent.is_some() { x / 100.0 } else { x })
             .map_err(|_| usage(format!("--baseline `{text}`: `{rate}` is not a number")))?;
+        if percent.is_some() && def.metrics[m].kind != MetricKind::Conversion {
+            return Err(usage(format!(
+                "--baseline `{text}`: a defect rate is per unit of exposure, not a percentage; write it as a number"
+            )));
+        }
         let ok = match def.metrics[m].kind {
             MetricKind::Conversion => r > 0.0 && r < 1.0,
             MetricKind::DefectRate(_) => r > 0.0 && r.is_finite(),
         };
         if !ok {
+            let hint = match def.metrics[m].kind {
+                MetricKind::Conversion if (1.0..100.0).contains(&r) => {
+                    format!("; did you mean {name}={r}% ({})?", r / 100.0)
+                }
+                _ => String::new(),
+            };
             return Err(usage(format!(
-                "--baseline `{text}`: a conversion rate must be in (0, 1), a defect rate positive"
+                "--baseline `{text}`: a conversion rate must be in (0, 1), a defect rate positive{hint}"
             )));
         }
         rates[m] = Some(r);
@@ -960,28 +992,30 @@ pub fn scenario_table(opts: &PlanOptions, result: &ScenarioResult) -> String {
             num(&o["units_to_decision"]["p90"], 0),
         );
     }
+    let primary = &opts.def.metrics[opts.def.rules.primary];
     let _ = writeln!(
         out,
-        "  expected loss incurred: {:.3e} (in `{}` rate units; best true arm minus the arm kept)",
-        v["expected_loss_incurred"].as_f64().unwrap_or(0.0),
-        opts.def.metrics[opts.def.rules.primary].name
+        "  expected loss incurred: {} on `{}` (best true arm minus the arm kept)",
+        crate::decide::rate_difference_text(
+            v["expected_loss_incurred"].as_f64().unwrap_or(0.0),
+            primary.kind
+        ),
+        primary.name
     );
     for g in v["guardrail_harm_incurred"]
         .as_array()
         .into_iter()
         .flatten()
     {
-        let kind = g["kind"].as_str().unwrap_or("");
+        let kind = match g["kind"].as_str() {
+            Some("conversion") => MetricKind::Conversion,
+            _ => MetricKind::DefectRate(crate::experiment::ExposureBasis::Units),
+        };
         let _ = writeln!(
             out,
-            "  guardrail harm incurred on `{}`: {:.3e} ({}; kept arm minus control where worse)",
+            "  guardrail harm incurred on `{}`: {} (kept arm minus control where worse)",
             g["metric"].as_str().unwrap_or(""),
-            g["mean"].as_f64().unwrap_or(0.0),
-            if kind == "conversion" {
-                "conversion rate units"
-            } else {
-                "defects per unit of exposure"
-            }
+            crate::decide::rate_difference_text(g["mean"].as_f64().unwrap_or(0.0), kind),
         );
     }
     let rate = |x: &Value| {

@@ -510,7 +510,7 @@ pub fn to_text(report: &ReplayReport) -> String {
             a.finding.test,
             a.finding.value,
             a.finding.threshold,
-            a.finding.message
+            a.message_now()
         );
     }
     let _ = writeln!(out, "\nfinal state:");

@@ -1,6 +1,6 @@
 //! Built-in traffic simulator for `demo`: invented experiments of a fictional online bakery
 //! ("Crumb & Co") and a fictional gardening app ("Pocket Orchard"), with realistic rates, a
-//! little dirt (repeat exposures, producer retries, crossovers, orphans) and one clearly worse
+//! little dirt (duplicate exposures, producer retries, crossovers, orphans) and one clearly worse
 //! variant per scenario family, fed through the same decode → apply path as real events.
 
 use std::sync::Arc;

@@ -199,8 +199,14 @@ fn alerts_reach_a_receiver_that_was_down_signed_and_once_per_id() {
     assert_eq!(arms.len(), 2);
     assert_eq!(arms[0]["variant"], "control");
     assert_eq!(arms[0]["units"], 700);
-    assert_eq!(arms[0]["posterior"], serde_json::json!([85.0, 617.0]));
-    assert_eq!(arms[1]["posterior"], serde_json::json!([29.0, 673.0]));
+    assert_eq!(
+        arms[0]["posterior"],
+        serde_json::json!({"alpha": 85.0, "beta": 617.0})
+    );
+    assert_eq!(
+        arms[1]["posterior"],
+        serde_json::json!({"alpha": 29.0, "beta": 673.0})
+    );
     assert_eq!(e["data"]["evidence"]["event_time"], "2026-05-02T10:00:00Z");
     // Acknowledging is recorded.
     let (status, acked) = service.post(&format!("/v1/alerts/{id}/ack"), "");

@@ -106,9 +106,9 @@ fn agrees_with_mpmath_on_the_reference_cases() {
             );
             assert_eq!(v["interval"]["level"], case["level"]);
             close(
-                &format!("{id}[{j}] prob_beats_control"),
-                &v["prob_beats_control"],
-                at("prob_beats_control"),
+                &format!("{id}[{j}] prob_better_than_control"),
+                &v["prob_better_than_control"],
+                at("prob_better_than_control"),
             );
             if at("lift_interval").is_null() {
                 assert!(v["lift"].is_null());
@@ -150,15 +150,15 @@ fn issue_example_has_the_documented_shape() {
     assert_eq!(v[0]["name"], "control");
     assert_eq!(v[0]["posterior"], json!({"alpha": 113.0, "beta": 889.0}));
     assert_eq!(v[1]["posterior"], json!({"alpha": 132.0, "beta": 870.0}));
-    assert!(v[0]["prob_beats_control"].is_null() && v[0]["lift"].is_null());
+    assert!(v[0]["prob_better_than_control"].is_null() && v[0]["lift"].is_null());
     for key in ["mean", "sd", "prob_best", "expected_loss"] {
         assert!(v[1][key].is_f64(), "{key}");
     }
     assert_eq!(v[1]["interval"]["level"], 0.95);
-    // Two arms: P(best) of the variant is P(variant beats control).
+    // Two arms: P(best) of the variant is P(variant better than control).
     assert_eq!(
         v[1]["prob_best"].as_f64().unwrap().to_bits() >> 20,
-        v[1]["prob_beats_control"].as_f64().unwrap().to_bits() >> 20
+        v[1]["prob_better_than_control"].as_f64().unwrap().to_bits() >> 20
     );
     // Mean = α/(α+β) = 132/1002.
     assert!((v[1]["mean"].as_f64().unwrap() - 132.0 / 1002.0).abs() < 1e-15);
@@ -179,7 +179,9 @@ fn defect_rate_with_per_variant_prior_override() {
     );
     assert_eq!(v[1]["posterior"], json!({"shape": 41.0, "rate": 101.0}));
     // METHODS.md R11: P(λ_A > λ_B) = 0.852765107715733 for Gamma(51,101) vs Gamma(41,101).
-    assert!((v[1]["prob_beats_control"].as_f64().unwrap() - 0.852765107715733458).abs() < 1e-12);
+    assert!(
+        (v[1]["prob_better_than_control"].as_f64().unwrap() - 0.852765107715733458).abs() < 1e-12
+    );
     let overridden = run_json(&json!({"metric":"defect_rate","prior":{"shape":1,"rate":1},
         "variants":[{"name":"a","count":5,"exposure":10},{"name":"b","count":5,"exposure":10,"prior":{"shape":3,"rate":2}}]}));
     assert_eq!(

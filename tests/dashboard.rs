@@ -330,7 +330,7 @@ fn history_route_over_real_http() {
             "mean",
             "prob_best",
             "expected_loss",
-            "prob_beats_control",
+            "prob_better_than_control",
             "prob_harm",
         ] {
             assert_eq!(arm[key], d[key], "{key} of arm {i}");
@@ -485,6 +485,13 @@ fn the_plotted_intervals_are_the_api_numbers_in_a_real_browser() {
             row.contains(&format!("{p:.4}")),
             "{v}: P(best) {p:.4} not in its row"
         );
+        // Raw counts beside the estimates, and the expected loss in percentage points.
+        let counts = format!(
+            "{} / {}",
+            purchase["variants"][i]["successes"], purchase["variants"][i]["trials"]
+        );
+        assert!(row.contains(&counts), "{v}: {counts} not in {row}");
+        assert!(row.contains(" pp<"), "{v}: no percentage points in {row}");
     }
     // Every history point is on the P(best) curve of each variant.
     let n = points(&service).len();

@@ -340,7 +340,7 @@ fn the_overview_shows_five_thousand_experiments_in_a_real_browser() {
     assert_eq!(attr(&showing(&dom), "data-page"), Some("2"));
     assert_eq!(tags(&dom, "a", &[("data-role", "previous-page")]).len(), 1);
     // The state chips carry words and a glyph class, never colour alone.
-    assert!(dom.contains(r#"<span class="chip watching">gathering evidence</span>"#));
+    assert!(dom.contains(r#"<span class="chip gathering">gathering evidence</span>"#));
 }
 
 fn definition() -> String {

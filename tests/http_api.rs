@@ -170,9 +170,9 @@ fn experiment_documents_carry_posteriors_and_intervals() {
     assert!(doc["sample_ratio"]["p_value"].as_f64().unwrap() > 0.99);
     assert!(doc["caution"].as_str().unwrap().contains("model"));
     // Control has no comparison with itself; the variant does.
-    assert_eq!(control["prob_beats_control"], Value::Null);
+    assert_eq!(control["prob_better_than_control"], Value::Null);
     let variant = &doc["metrics"][0]["variants"][1];
-    let p = variant["prob_beats_control"].as_f64().unwrap();
+    let p = variant["prob_better_than_control"].as_f64().unwrap();
     assert!(p > 0.0 && p < 0.1, "{p}");
     let (status, list) = service.get("/v1/experiments");
     assert_eq!(status, 200);

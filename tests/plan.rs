@@ -151,7 +151,7 @@ fn a_sweep_recommends_the_loosest_threshold_meeting_the_target_and_an_svg_is_dra
     ]);
     let doc: Value = serde_json::from_slice(&out).unwrap();
     let sweep = &doc["sweeps"][0];
-    assert_eq!(sweep["parameter"], "threshold_of_caring");
+    assert_eq!(sweep["parameter"], "ship.threshold_of_caring");
     let points = sweep["points"].as_array().unwrap();
     let rec = sweep["recommended"].as_f64().expect("a recommendation");
     for p in points {
@@ -201,4 +201,32 @@ fn bad_options_are_refused_with_a_reason() {
     let bad_effect = run(&["--baseline", "first-planting=0.1", "--effect", "hedge=+5%"]);
     assert_eq!(bad_effect.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&bad_effect.stderr).contains("no variant `hedge`"));
+    // Unit slips: a bare effect (read as +1000% before) and a rate given in percent units.
+    let bare = run(&["--baseline", "first-planting=0.1", "--effect", "tour=10"]);
+    assert_eq!(bare.status.code(), Some(2));
+    let said = String::from_utf8_lossy(&bare.stderr);
+    assert!(said.contains("did you mean tour=+10%"), "{said}");
+    let huge = run(&["--baseline", "first-planting=0.1", "--effect", "tour=+10"]);
+    assert!(String::from_utf8_lossy(&huge.stderr).contains("did you mean tour=+10%"));
+    let rate = run(&["--baseline", "first-planting=10"]);
+    assert_eq!(rate.status.code(), Some(2));
+    let said = String::from_utf8_lossy(&rate.stderr);
+    assert!(
+        said.contains("did you mean first-planting=10% (0.1)"),
+        "{said}"
+    );
+    // A percentage is a fine way to write a conversion rate.
+    let ok = run(&[
+        "--baseline",
+        "first-planting=10%",
+        "--sims",
+        "4",
+        "--effect",
+        "tour=+0.05",
+    ]);
+    assert!(
+        ok.status.success(),
+        "{}",
+        String::from_utf8_lossy(&ok.stderr)
+    );
 }

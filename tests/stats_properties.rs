@@ -6,7 +6,7 @@
 //!
 //! The laws checked are mathematical facts, not values of ours: P(best) sums to 1 over the
 //! arms, expected losses are non-negative, equal-tailed intervals nest as the level grows,
-//! P(beats control) + P(worse than control) = 1 (continuous posteriors do not tie), and a
+//! P(better than control) + P(worse than control) = 1 (continuous posteriors do not tie), and a
 //! loss is at least the gap of means when the arm is behind (Jensen: E[max] ≥ max E). The
 //! values themselves are checked against mpmath in tests/stats_reference.rs.
 
@@ -123,7 +123,7 @@ proptest! {
             if j == control {
                 continue;
             }
-            let beats = s.prob_beats_control.unwrap();
+            let beats = s.prob_better_than_control.unwrap();
             let harm_p = s.prob_harm.unwrap();
             let eq = s.prob_practically_equivalent.unwrap();
             for p in [beats, harm_p, eq] {
@@ -131,7 +131,7 @@ proptest! {
             }
             if harm == 0.0 {
                 prop_assert!((beats + harm_p - 1.0).abs() < 1e-9,
-                    "arm {j}: P(beats) {beats} + P(worse) {harm_p} != 1");
+                    "arm {j}: P(better) {beats} + P(worse) {harm_p} != 1");
             }
             let lift = s.lift.unwrap();
             // An end beyond double range is +∞ (documented); never NaN, never below −1.

@@ -155,15 +155,15 @@ fn every_case_of_the_reference_table_is_within_tolerance() {
             }
             if j == opts.control {
                 assert!(
-                    s.prob_beats_control.is_none() && s.lift.is_none(),
+                    s.prob_better_than_control.is_none() && s.lift.is_none(),
                     "{id}: control has no comparison"
                 );
                 continue;
             }
             check_abs(
-                &format!("{id}[{j}] prob_beats_control"),
-                s.prob_beats_control.unwrap(),
-                at("prob_beats_control").as_f64().unwrap(),
+                &format!("{id}[{j}] prob_better_than_control"),
+                s.prob_better_than_control.unwrap(),
+                at("prob_better_than_control").as_f64().unwrap(),
                 ABS_TOL,
             );
             let lift = s.lift.unwrap();
@@ -228,7 +228,12 @@ fn every_case_of_the_reference_table_is_within_tolerance() {
 fn methods_rows_r1_to_r3_hand_checkable() {
     // R1: P(Beta(2,1) > Beta(1,1)) = 2/3.
     let r = compare_with(Arms::Beta(vec![beta(1.0, 1.0), beta(2.0, 1.0)]), 0);
-    check_abs("R1", r[1].prob_beats_control.unwrap(), 2.0 / 3.0, 1e-12);
+    check_abs(
+        "R1",
+        r[1].prob_better_than_control.unwrap(),
+        2.0 / 3.0,
+        1e-12,
+    );
     // R2: E[(U1 − U2)⁺] = 1/6 for two uniforms.
     let r = compare_with(Arms::Beta(vec![beta(1.0, 1.0), beta(1.0, 1.0)]), 0);
     check_loss("R2", r[0].expected_loss, 1.0 / 6.0);
@@ -237,7 +242,7 @@ fn methods_rows_r1_to_r3_hand_checkable() {
     let r = compare_with(Arms::Gamma(vec![gamma(1.0, 1.0), gamma(1.0, 2.0)]), 0);
     check_abs(
         "R3",
-        1.0 - r[1].prob_beats_control.unwrap(),
+        1.0 - r[1].prob_better_than_control.unwrap(),
         1.0 / 3.0,
         1e-12,
     );
@@ -249,7 +254,7 @@ fn methods_rows_r4_to_r9_pairwise_conversion() {
     let r = compare_with(Arms::Beta(vec![beta(11.0, 91.0), beta(16.0, 86.0)]), 0);
     check_abs(
         "R4",
-        r[1].prob_beats_control.unwrap(),
+        r[1].prob_better_than_control.unwrap(),
         0.853283789933966131699395604811,
         ABS_TOL,
     );
@@ -260,7 +265,7 @@ fn methods_rows_r4_to_r9_pairwise_conversion() {
     let r = compare_with(Arms::Beta(vec![beta(40.0, 636.0), beta(23.0, 659.0)]), 0);
     check_abs(
         "R6",
-        1.0 - r[1].prob_beats_control.unwrap(),
+        1.0 - r[1].prob_better_than_control.unwrap(),
         0.987979262061270571574609904477,
         ABS_TOL,
     );
@@ -275,7 +280,7 @@ fn methods_rows_r4_to_r9_pairwise_conversion() {
     );
     check_abs(
         "R7",
-        r[1].prob_beats_control.unwrap(),
+        r[1].prob_better_than_control.unwrap(),
         0.921367010302931650140052544202,
         ABS_TOL,
     );
@@ -291,7 +296,7 @@ fn methods_rows_r4_to_r9_pairwise_conversion() {
     );
     check_abs(
         "R9",
-        1.0 - r[1].prob_beats_control.unwrap(),
+        1.0 - r[1].prob_better_than_control.unwrap(),
         0.761409793185604918241167522782,
         ABS_TOL,
     );
@@ -305,7 +310,7 @@ fn methods_rows_r4_to_r9_pairwise_conversion() {
     );
     check_abs(
         "R9c",
-        1.0 - r[1].prob_beats_control.unwrap(),
+        1.0 - r[1].prob_better_than_control.unwrap(),
         0.0123271441466721623441890242664,
         1e-12,
     );
@@ -333,7 +338,7 @@ fn methods_rows_r10_r11_k_arms() {
     let r = compare_with(Arms::Gamma(g[..2].to_vec()), 0);
     check_abs(
         "R11",
-        r[1].prob_beats_control.unwrap(),
+        r[1].prob_better_than_control.unwrap(),
         0.852765107715733458042786438143,
         ABS_TOL,
     );
@@ -359,7 +364,7 @@ fn methods_rows_r10_r11_k_arms() {
     );
     check_abs(
         "R12",
-        1.0 - r[1].prob_beats_control.unwrap(),
+        1.0 - r[1].prob_better_than_control.unwrap(),
         0.76019497268719020329383189671,
         ABS_TOL,
     );
@@ -474,7 +479,7 @@ fn closed_form_beta_sum_agrees_with_quadrature() {
         );
         check_abs(
             &format!("Miller sum {a_b},{b_b} vs {a_a},{b_a}"),
-            r[1].prob_beats_control.unwrap(),
+            r[1].prob_better_than_control.unwrap(),
             want,
             5e-11,
         );
@@ -487,7 +492,7 @@ fn closed_form_beta_sum_agrees_with_quadrature() {
     );
     check_abs(
         "Miller sum, mpmath",
-        r[1].prob_beats_control.unwrap(),
+        r[1].prob_better_than_control.unwrap(),
         0.678_547_551_749_435_737_4,
         1e-14,
     );
@@ -509,14 +514,14 @@ fn closed_form_gamma_identities_agree_with_quadrature() {
         let exact = beta(a_c, a_v).sf(x);
         check_abs(
             "Gamma closed form",
-            r[1].prob_beats_control.unwrap(),
+            r[1].prob_better_than_control.unwrap(),
             exact,
             1e-12,
         );
         let miller = miller_gamma_sum(a_c as u32, r_c, a_v, r_v);
         check_abs(
             "Miller count sum",
-            r[1].prob_beats_control.unwrap(),
+            r[1].prob_better_than_control.unwrap(),
             miller,
             1e-11,
         );
@@ -705,14 +710,14 @@ fn no_data_and_boundary_counts() {
     // P(Beta(51,1) > U) = ∫ x dF = ∫ 51 x^51 dx = 51/52 against the uniform control.
     check_abs(
         "s = n beats uniform",
-        r[2].prob_beats_control.unwrap(),
+        r[2].prob_better_than_control.unwrap(),
         51.0 / 52.0,
         1e-12,
     );
     // P(Beta(1,51) > U) = ∫ 51(1−x)^50 x dx = 1/52.
     check_abs(
         "s = 0 beats uniform",
-        r[1].prob_beats_control.unwrap(),
+        r[1].prob_better_than_control.unwrap(),
         1.0 / 52.0,
         1e-12,
     );
@@ -734,7 +739,7 @@ fn extreme_priors_and_counts_stay_finite_and_consistent() {
     check_abs("tiny prior symmetry", r[0].prob_best, 0.5, 1e-9);
     check_abs(
         "tiny prior beats",
-        r[1].prob_beats_control.unwrap(),
+        r[1].prob_better_than_control.unwrap(),
         0.5,
         1e-9,
     );
@@ -763,7 +768,7 @@ fn extreme_priors_and_counts_stay_finite_and_consistent() {
     let normal = 0.5 * statrs::function::erf::erfc(-z / std::f64::consts::SQRT_2);
     check_abs(
         "1e9 vs prior 1e6, normal check",
-        r[1].prob_beats_control.unwrap(),
+        r[1].prob_better_than_control.unwrap(),
         normal,
         1e-5,
     );
@@ -784,7 +789,12 @@ fn non_overlapping_posteriors_give_certainty_and_exact_gap_loss() {
     // mean gap E[p_B − p_A] = μ_B − μ_A exactly (no overlap), that of shipping B ≈ 0.
     let (a, b) = (beta(101.0, 901.0), beta(301.0, 701.0));
     let r = compare_with(Arms::Beta(vec![a, b]), 0);
-    check_abs("certain", r[1].prob_beats_control.unwrap(), 1.0, 1e-15);
+    check_abs(
+        "certain",
+        r[1].prob_better_than_control.unwrap(),
+        1.0,
+        1e-15,
+    );
     check_abs("prob_best", r[1].prob_best, 1.0, 1e-15);
     check_loss("gap", r[0].expected_loss, b.mean() - a.mean());
     assert!(r[1].expected_loss < 1e-30, "{}", r[1].expected_loss);
@@ -806,7 +816,7 @@ fn sixty_four_identical_arms_share_everything() {
         assert!((s.expected_loss - first).abs() <= 1e-12 * first);
     }
     for s in &r[1..] {
-        check_abs("coin flip", s.prob_beats_control.unwrap(), 0.5, 1e-12);
+        check_abs("coin flip", s.prob_better_than_control.unwrap(), 0.5, 1e-12);
         check_abs(
             "median lift",
             s.lift.unwrap().interval.lower,
@@ -864,20 +874,20 @@ proptest! {
         for (x, y) in [(1usize, 2usize), (2, 1)] {
             prop_assert!((r1[x].prob_best - r2[y].prob_best).abs() < 1e-12);
             prop_assert!((r1[x].expected_loss - r2[y].expected_loss).abs() <= 1e-12 * r1[x].expected_loss.max(1e-300) + 1e-300);
-            prop_assert!((r1[x].prob_beats_control.unwrap() - r2[y].prob_beats_control.unwrap()).abs() < 1e-12);
+            prop_assert!((r1[x].prob_better_than_control.unwrap() - r2[y].prob_better_than_control.unwrap()).abs() < 1e-12);
         }
     }
 
     #[test]
-    fn more_successes_never_lower_prob_beats_control(n in 1u64..3000, s in 0u64..3000, extra in 1u64..50, c in 0u64..3000) {
+    fn more_successes_never_lower_prob_better_than_control(n in 1u64..3000, s in 0u64..3000, extra in 1u64..50, c in 0u64..3000) {
         let s = s.min(n);
         let c = c.min(n);
         let prior = beta(1.0, 1.0);
         let control = Beta::posterior(&prior, n, c).unwrap();
         let fewer = Beta::posterior(&prior, n + extra, s).unwrap();
         let more = Beta::posterior(&prior, n + extra, s + extra).unwrap();
-        let p_fewer = compare_with(Arms::Beta(vec![control, fewer]), 0)[1].prob_beats_control.unwrap();
-        let p_more = compare_with(Arms::Beta(vec![control, more]), 0)[1].prob_beats_control.unwrap();
+        let p_fewer = compare_with(Arms::Beta(vec![control, fewer]), 0)[1].prob_better_than_control.unwrap();
+        let p_more = compare_with(Arms::Beta(vec![control, more]), 0)[1].prob_better_than_control.unwrap();
         prop_assert!(p_more >= p_fewer - 1e-13, "{} < {}", p_more, p_fewer);
     }
 
@@ -934,7 +944,11 @@ fn decide_matches_compare_on_the_reference_table() {
         for (s, d) in full.iter().zip(&quick) {
             assert_eq!(s.prob_best, d.prob_best, "{}", case["id"]);
             assert_eq!(s.expected_loss, d.expected_loss, "{}", case["id"]);
-            assert_eq!(s.prob_beats_control, d.prob_beats_control, "{}", case["id"]);
+            assert_eq!(
+                s.prob_better_than_control, d.prob_better_than_control,
+                "{}",
+                case["id"]
+            );
         }
     }
     assert!(matches!(

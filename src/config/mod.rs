@@ -1392,7 +1392,10 @@ impl Ctx<'_> {
                 return Err(self.err(
                     h.span(),
                     format!("{key}.harm.margin"),
-                    format!("must be a relative margin in [0, 1), got {margin}"),
+                    format!(
+                        "must be a relative margin in [0, 1), got {margin}{}",
+                        percent_slip(margin)
+                    ),
                 ));
             }
             rules.harm = Some(HarmRule {
@@ -1407,6 +1410,23 @@ impl Ctx<'_> {
                     sh.span(),
                     format!("{key}.ship.threshold_of_caring"),
                     format!("must be a positive number in the metric's rate units, got {t}"),
+                ));
+            }
+            if kind == MetricKind::Conversion && t >= 1.0 {
+                return Err(self.err(
+                    sh.span(),
+                    format!("{key}.ship.threshold_of_caring"),
+                    format!(
+                        "is a difference of conversion rates, which lies between 0 and 1, got {t}{}",
+                        if t < 100.0 {
+                            format!(
+                                "; did you mean {} ({t} percentage points)?",
+                                round_for_hint(t / 100.0)
+                            )
+                        } else {
+                            String::new()
+                        }
+                    ),
                 ));
             }
             rules.ship = Some(ShipRule {
@@ -1424,7 +1444,10 @@ impl Ctx<'_> {
                         return Err(self.err(
                             c.span(),
                             format!("{key}.clear.margin"),
-                            format!("must be a relative margin in [0, 1), got {margin}"),
+                            format!(
+                                "must be a relative margin in [0, 1), got {margin}{}",
+                                percent_slip(margin)
+                            ),
                         ));
                     }
                     if !(probability > 0.0 && probability < 0.5) {
@@ -1459,7 +1482,10 @@ impl Ctx<'_> {
                         return Err(self.err(
                             c.span(),
                             format!("{key}.harm_evidence.margin"),
-                            format!("must be a relative margin in [0, 1), got {margin}"),
+                            format!(
+                                "must be a relative margin in [0, 1), got {margin}{}",
+                                percent_slip(margin)
+                            ),
                         ));
                     }
                     Some(EvidenceRule { alpha, margin })
@@ -1472,7 +1498,10 @@ impl Ctx<'_> {
                 return Err(self.err(
                     v.span(),
                     format!("{key}.rope"),
-                    format!("must be a relative half-width in (0, 1), got {x}"),
+                    format!(
+                        "must be a relative half-width in (0, 1), got {x}{}",
+                        percent_slip(x)
+                    ),
                 ));
             }
             rules.rope = x;
@@ -1737,6 +1766,24 @@ fn apply_env(config: &mut Config, env: &[(String, String)]) -> Result<(), Config
         }
     }
     Ok(())
+}
+
+/// The hint for a relative quantity written in percent (`rope = 1` meant as 1%): the likely
+/// intended fraction, or nothing when the value does not look like a percentage.
+fn percent_slip(x: f64) -> String {
+    if x.is_finite() && (1.0..100.0).contains(&x) {
+        format!(
+            "; did you mean {} ({x}% relative)?",
+            round_for_hint(x / 100.0)
+        )
+    } else {
+        String::new()
+    }
+}
+
+/// `x` without the binary noise of a division (5 / 100 → 0.05, not 0.05000000000000001).
+fn round_for_hint(x: f64) -> f64 {
+    format!("{x:.10}").parse().unwrap_or(x)
 }
 
 /// Prefix of a Standard Webhooks secret: `whsec_` followed by the base64 of the key.

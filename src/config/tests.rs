@@ -508,3 +508,43 @@ fn event_time_bounds_resolve_per_source_and_bad_values_name_key_and_line() {
     assert_eq!(c.event_time.http.max_behind, 30 * 86_400 * s);
     assert_eq!(c.event_time.kafka.max_behind, 30 * 86_400 * s);
 }
+
+#[test]
+fn unit_slips_are_refused_with_the_likely_intended_value() {
+    let rules = |line: &str| {
+        EXAMPLE.replace(
+            "prior = { alpha = 1.0, beta = 1.0 }",
+            &format!("prior = {{ alpha = 1.0, beta = 1.0 }}\n[experiment.metric.rules]\n{line}"),
+        )
+    };
+    for (line, key, hint) in [
+        (
+            "ship = { threshold_of_caring = 5 }",
+            "ship.threshold_of_caring",
+            "did you mean 0.05 (5 percentage points)?",
+        ),
+        ("rope = 1.0", "rope", "did you mean 0.01 (1% relative)?"),
+        (
+            "harm = { probability = 0.999, margin = 2 }",
+            "harm.margin",
+            "did you mean 0.02 (2% relative)?",
+        ),
+        (
+            "harm_evidence = { margin = 5 }",
+            "harm_evidence.margin",
+            "did you mean 0.05 (5% relative)?",
+        ),
+    ] {
+        let text = rules(line);
+        let err = error(&text);
+        assert!(err.to_string().contains(key), "{line}: {err}");
+        assert!(err.to_string().contains(hint), "{line}: {err}");
+        assert_eq!(err.line, Some(line_of(&text, line)), "{line}: {err}");
+    }
+    // A defect rate's threshold of caring has no upper bound: 5 defects per unit is a rate.
+    let text = EXAMPLE.replace(
+        "prior = { shape = 1.0, rate = 1.0 }",
+        "prior = { shape = 1.0, rate = 1.0 }\n[experiment.metric.rules]\nship = { threshold_of_caring = 5 }",
+    );
+    assert!(parse(&text).is_ok());
+}

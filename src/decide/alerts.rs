@@ -79,6 +79,33 @@ pub struct Alert {
     pub acknowledged_at: Option<Micros>,
 }
 
+impl Alert {
+    /// What the alert says in its present state: the finding's own message (with its advice)
+    /// while it is open, easing or recorded; once closed, that it no longer holds, with the
+    /// numbers it last held with and no advice to act.
+    pub fn message_now(&self) -> String {
+        if self.state != AlertState::Closed {
+            return self.finding.message.clone();
+        }
+        let about: Vec<String> = [
+            Some(format!("`{}`", self.key.experiment)),
+            self.key.metric.as_ref().map(|m| format!("`{m}`")),
+            self.key.variant.as_ref().map(|v| format!("`{v}`")),
+        ]
+        .into_iter()
+        .flatten()
+        .collect();
+        format!(
+            "closed: the `{}` rule on {} has not held for the whole hold-down; when it last held, {} was {} against the threshold {}",
+            self.key.rule.as_str(),
+            about.join(" / "),
+            self.finding.test,
+            self.finding.value,
+            self.finding.threshold
+        )
+    }
+}
+
 /// A change worth telling people about.
 #[derive(Debug, Clone, PartialEq)]
 pub enum AlertChange {
@@ -304,8 +331,19 @@ mod tests {
         assert!(book.update(&d, &[], 60 * S).is_empty());
         assert!(book.update(&d, &[], 50 * S + 60 * S - 1).is_empty());
         // Away for the full hold-down: closed, told once.
+        let mut harm_advice = finding(Rule::Harm);
+        harm_advice.message = "`b` is worse than `a`; consider stopping it".into();
+        book.alerts[0].finding = harm_advice;
+        assert!(book.alerts()[0].message_now().contains("consider stopping"));
         let closed = book.update(&d, &[], 110 * S);
         assert!(matches!(&closed[..], [AlertChange::Closed(a)] if a.closed_at == Some(110 * S)));
+        // A closing alert says it no longer holds, never the advice of its opening.
+        let [AlertChange::Closed(a)] = &closed[..] else {
+            panic!("{closed:?}")
+        };
+        let said = a.message_now();
+        assert!(said.starts_with("closed: the `harm` rule"), "{said}");
+        assert!(!said.contains("consider stopping"), "{said}");
         assert!(book.update(&d, &[], 200 * S).is_empty());
         // Holding again later is a new alert with a new id.
         let again = book.update(&d, &harm, 300 * S);

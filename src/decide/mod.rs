@@ -117,6 +117,25 @@ pub struct Evidence {
     pub positions: Vec<(String, i64)>,
 }
 
+/// An arm's posterior, by family, so every document can name its parameters.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum PosteriorParams {
+    /// Beta(alpha, beta): a conversion metric.
+    Beta {
+        /// Prior alpha plus successes.
+        alpha: f64,
+        /// Prior beta plus failures.
+        beta: f64,
+    },
+    /// Gamma(shape, rate): a defect rate.
+    Gamma {
+        /// Prior shape plus defects.
+        shape: f64,
+        /// Prior rate plus exposure.
+        rate: f64,
+    },
+}
+
 /// One arm's posterior and exposed units.
 #[derive(Debug, Clone, PartialEq)]
 pub struct ArmEvidence {
@@ -124,9 +143,8 @@ pub struct ArmEvidence {
     pub variant: usize,
     /// Variant name.
     pub name: String,
-    /// Posterior parameters: (alpha, beta) for conversion, (shape, rate) for defect rates;
-    /// `None` for experiment-level rules.
-    pub posterior: Option<(f64, f64)>,
+    /// Posterior parameters; `None` for experiment-level rules.
+    pub posterior: Option<PosteriorParams>,
     /// Exposed units.
     pub units: u64,
 }
@@ -233,7 +251,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                         def.variants[v].name,
                         def.variants[control].name,
                         metric.name,
-                        if rule.margin > 0.0 { format!(" by more than {:.1}%", rule.margin * 100.0) } else { String::new() },
+                        if rule.margin > 0.0 { format!(" by more than {:.1}% relative", rule.margin * 100.0) } else { String::new() },
                         p,
                         rule.probability
                     ),
@@ -291,7 +309,7 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                         threshold: xr.equivalence_probability,
                         test: Rule::Equivalent.test(),
                         message: format!(
-                            "every variant is within ±{:.1}% of `{}` on `{}` with probability ≥ {:.3}; more traffic is unlikely to change the choice",
+                            "every variant is within ±{:.1}% (relative) of `{}` on `{}` with probability ≥ {:.3}; more traffic is unlikely to change the choice",
                             primary.rules.rope * 100.0,
                             def.variants[control].name,
                             primary.name,
@@ -375,7 +393,7 @@ pub fn add_evidence_findings(
                     def.variants[v].name,
                     def.variants[def.control].name,
                     metric.name,
-                    if rule.margin > 0.0 { format!(" by more than {:.1}%", rule.margin * 100.0) } else { String::new() },
+                    if rule.margin > 0.0 { format!(" by more than {:.1}% relative", rule.margin * 100.0) } else { String::new() },
                     st.max_e_value,
                     1.0 / rule.alpha,
                     rule.alpha
@@ -566,11 +584,17 @@ fn evidence_of(summary: &ExperimentSummary, f: &Finding) -> Evidence {
         Some(v) => vec![v],
         None => (0..snap.def.variants.len()).collect(),
     };
-    let posterior = |v: usize| -> Option<(f64, f64)> {
+    let posterior = |v: usize| -> Option<PosteriorParams> {
         let m = f.metric?;
         match summary.metrics[m].posteriors.as_ref().ok()? {
-            crate::stats::Arms::Beta(b) => b.get(v).map(|x| (x.alpha(), x.beta())),
-            crate::stats::Arms::Gamma(g) => g.get(v).map(|x| (x.shape(), x.rate())),
+            crate::stats::Arms::Beta(b) => b.get(v).map(|x| PosteriorParams::Beta {
+                alpha: x.alpha(),
+                beta: x.beta(),
+            }),
+            crate::stats::Arms::Gamma(g) => g.get(v).map(|x| PosteriorParams::Gamma {
+                shape: x.shape(),
+                rate: x.rate(),
+            }),
         }
     };
     Evidence {
@@ -595,10 +619,41 @@ fn ship_message(
     arm: &ArmSummary,
     threshold: f64,
 ) -> String {
-    format!(
-        "choosing `{}` on `{}` risks an expected loss of {:.3e} (below the threshold of caring {threshold:e}); posteriors assume the model and clean data, so review before shipping",
-        def.variants[v].name, def.metrics[metric].name, arm.expected_loss
-    )
+    let kind = def.metrics[metric].kind;
+    let loss = rate_difference_text(arm.expected_loss, kind);
+    let threshold = rate_difference_text(threshold, kind);
+    let name = &def.variants[v].name;
+    let metric = &def.metrics[metric].name;
+    if v == def.control {
+        // Keeping the control ships nothing: no shipping review to ask for.
+        format!(
+            "keeping the control `{name}` on `{metric}` risks an expected loss of {loss} (below the threshold of caring {threshold}): no variant is worth choosing over it; posteriors assume the model and clean data"
+        )
+    } else {
+        format!(
+            "choosing `{name}` on `{metric}` risks an expected loss of {loss} (below the threshold of caring {threshold}); posteriors assume the model and clean data, so review before shipping"
+        )
+    }
+}
+
+/// A difference of two rates (an expected loss, a threshold of caring) as people read it:
+/// percentage points for conversion, with three significant digits; defects per unit of
+/// exposure for defect rates.
+pub fn rate_difference_text(x: f64, kind: MetricKind) -> String {
+    match kind {
+        MetricKind::Conversion => {
+            let pp = x * 100.0;
+            if pp == 0.0 || !pp.is_finite() {
+                format!("{pp} pp")
+            } else if pp.abs() >= 1e-3 {
+                let digits = (2 - pp.abs().log10().floor() as i32).max(0) as usize;
+                format!("{pp:.digits$} pp")
+            } else {
+                format!("{pp:.2e} pp")
+            }
+        }
+        MetricKind::DefectRate(_) => format!("{x:.3e} per unit of exposure"),
+    }
 }
 
 #[cfg(test)]

@@ -340,8 +340,9 @@ pub fn standings(
             if let Some(loss) = s.value {
                 if loss >= rule.threshold_of_caring {
                     why.push(format!(
-                        "expected loss {loss:.3e}, not below the threshold of caring {:e}",
-                        rule.threshold_of_caring
+                        "expected loss {}, not below the threshold of caring {}",
+                        super::rate_difference_text(loss, primary.kind),
+                        super::rate_difference_text(rule.threshold_of_caring, primary.kind)
                     ));
                 } else if arms.is_some_and(|a| {
                     a.iter()
@@ -349,7 +350,8 @@ pub fn standings(
                         .any(|(j, x)| j != v && x.expected_loss < loss)
                 }) {
                     why.push(format!(
-                        "expected loss {loss:.3e} is below the threshold, but another arm's is lower"
+                        "expected loss {} is below the threshold, but another arm's is lower",
+                        super::rate_difference_text(loss, primary.kind)
                     ));
                 }
             }
@@ -411,7 +413,7 @@ pub fn standings(
             s.detail = "waiting for the minimum duration".into();
         } else {
             s.detail = format!(
-                "lowest P(within ±{:.1}%) = {:.3}, below {}",
+                "lowest P(within ±{:.1}% relative) = {:.3}, below {}",
                 primary.rules.rope * 100.0,
                 worst,
                 xr.equivalence_probability

@@ -622,3 +622,48 @@ fn a_unit_minimum_on_a_metric_without_units_cannot_hold_and_is_warned_about() {
         "{f:?}"
     );
 }
+
+#[test]
+fn keeping_the_control_reads_as_keeping_it_and_losses_carry_their_unit() {
+    // The control converts best (14% against 12% and 12.2%): the ship rule picks it.
+    let arms = even([560, 480, 488], [10, 10, 10]);
+    let (f, summary) = findings(def(ship_at(1.0), no_clear(), rules()), &arms, 0);
+    let loss = summary.metrics[0].arms.as_ref().unwrap()[0].expected_loss;
+    let ship = f.iter().find(|x| x.rule == Rule::Ship).expect("ship holds");
+    assert_eq!(ship.variant, Some(0));
+    assert!(
+        ship.message.starts_with("keeping the control"),
+        "{}",
+        ship.message
+    );
+    assert!(
+        !ship.message.contains("before shipping"),
+        "{}",
+        ship.message
+    );
+    assert!(
+        ship.message.contains("model"),
+        "the caution stays: {}",
+        ship.message
+    );
+    // In percentage points, with the unit written, threshold too.
+    assert!(
+        ship.message
+            .contains(&rate_difference_text(loss, MetricKind::Conversion)),
+        "{}",
+        ship.message
+    );
+    assert!(
+        ship.message.contains("threshold of caring 100 pp"),
+        "{}",
+        ship.message
+    );
+    assert_eq!(
+        rate_difference_text(0.0005, MetricKind::Conversion),
+        "0.0500 pp"
+    );
+    assert_eq!(
+        rate_difference_text(0.0262, MetricKind::Conversion),
+        "2.62 pp"
+    );
+}

@@ -19,7 +19,7 @@ fn point(p: &Point, variants: &[String]) -> Value {
             "interval": { "lower": a.interval.0, "upper": a.interval.1 },
             "prob_best": a.prob_best,
             "expected_loss": a.expected_loss,
-            "prob_beats_control": a.prob_beats_control,
+            "prob_better_than_control": a.prob_better_than_control,
             "lift": a.lift.map(|(mean, lower, upper)| json!({
                 "mean": if mean.is_finite() { json!(mean) } else { Value::Null },
                 "interval": { "lower": lower, "upper": upper },

@@ -279,7 +279,7 @@ fn alert_json(a: &Alert) -> Value {
             "message": a.finding.message,
             "evidence": {
                 "arms": a.finding.evidence.arms.iter().map(|x| json!({
-                    "variant": x.variant, "name": x.name, "posterior": x.posterior.map(|(p, q)| [p, q]), "units": x.units,
+                    "variant": x.variant, "name": x.name, "posterior": x.posterior.map(crate::doc::posterior_params), "units": x.units,
                 })).collect::<Vec<_>>(),
                 "event_time": a.finding.evidence.event_time,
                 "positions": a.finding.evidence.positions.iter().map(|(s, n)| json!([s, n])).collect::<Vec<_>>(),
@@ -324,9 +324,21 @@ fn evidence_from(v: &Value) -> crate::decide::Evidence {
         .map(|a| {
             a.iter()
                 .filter_map(|x| {
-                    let posterior = x["posterior"]
-                        .as_array()
-                        .and_then(|p| Some((p.first()?.as_f64()?, p.get(1)?.as_f64()?)));
+                    // Named parameters; the pairs older versions wrote do not say their
+                    // family, so such evidence comes back without its posterior (the next
+                    // evaluation of a finding that still holds writes it again).
+                    let p = &x["posterior"];
+                    let posterior = match (p["alpha"].as_f64(), p["beta"].as_f64()) {
+                        (Some(alpha), Some(beta)) => {
+                            Some(crate::decide::PosteriorParams::Beta { alpha, beta })
+                        }
+                        _ => match (p["shape"].as_f64(), p["rate"].as_f64()) {
+                            (Some(shape), Some(rate)) => {
+                                Some(crate::decide::PosteriorParams::Gamma { shape, rate })
+                            }
+                            _ => None,
+                        },
+                    };
                     Some(crate::decide::ArmEvidence {
                         variant: x["variant"].as_u64()? as usize,
                         name: x["name"].as_str()?.to_string(),

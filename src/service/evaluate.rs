@@ -84,7 +84,7 @@ impl Service {
                 threshold = alert.finding.threshold,
                 caution = crate::doc::CAUTION_SHORT,
                 "{}",
-                alert.finding.message
+                alert.message_now()
             );
         }
     }

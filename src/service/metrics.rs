@@ -101,8 +101,8 @@ pub struct Metrics {
     pub prob_best: GaugeVec,
     /// Expected loss of shipping the variant, in rate units.
     pub expected_loss: GaugeVec,
-    /// P(variant beats the control); absent for the control.
-    pub prob_beats_control: GaugeVec,
+    /// P(variant better than the control); absent for the control.
+    pub prob_better_than_control: GaugeVec,
     /// P(variant worse than control by more than the harm margin); absent for the control.
     pub prob_harm: GaugeVec,
     /// p-value of the sample-ratio test per experiment.
@@ -374,9 +374,9 @@ impl Metrics {
                 "Expected loss (regret, in rate units) of shipping the variant.",
                 ARM,
             ),
-            prob_beats_control: gauge_vec(
+            prob_better_than_control: gauge_vec(
                 &registry,
-                "posteriord_prob_beats_control",
+                "posteriord_prob_better_than_control",
                 "Posterior probability that the variant is better than the control.",
                 ARM,
             ),
@@ -524,7 +524,7 @@ impl Metrics {
             &m.interval_upper,
             &m.prob_best,
             &m.expected_loss,
-            &m.prob_beats_control,
+            &m.prob_better_than_control,
             &m.prob_harm,
             &m.sample_ratio_p_value,
         ] {
@@ -557,8 +557,8 @@ impl Metrics {
                     m.expected_loss
                         .with_label_values(&labels)
                         .set(a.expected_loss);
-                    if let Some(p) = a.prob_beats_control {
-                        m.prob_beats_control.with_label_values(&labels).set(p);
+                    if let Some(p) = a.prob_better_than_control {
+                        m.prob_better_than_control.with_label_values(&labels).set(p);
                     }
                     if let Some(p) = a.prob_harm {
                         m.prob_harm.with_label_values(&labels).set(p);

@@ -178,7 +178,7 @@ fn key_json(k: &RuleKey) -> Value {
 }
 
 /// The file text of experiment `id`'s history. Arms are arrays, to keep files small:
-/// `[units, mean, lower, upper, prob_best, expected_loss, prob_beats_control, lift, prob_harm]`
+/// `[units, mean, lower, upper, prob_best, expected_loss, prob_better_than_control, lift, prob_harm]`
 /// with `lift` = `[mean, lower, upper]` or `null`.
 pub fn encode(id: &str, h: &ExperimentHistory) -> String {
     let p = h.to_parts();
@@ -190,7 +190,7 @@ pub fn encode(id: &str, h: &ExperimentHistory) -> String {
             num(a.interval.1),
             num(a.prob_best),
             num(a.expected_loss),
-            a.prob_beats_control.map(num),
+            a.prob_better_than_control.map(num),
             a.lift.map(|(m, l, u)| json!([num(m), num(l), num(u)])),
             a.prob_harm.map(num),
         ])
@@ -270,7 +270,7 @@ pub fn decode(text: &str, budget: usize) -> Result<(String, ExperimentHistory), 
                     interval: (f(&a[2]), f(&a[3])),
                     prob_best: f(&a[4]),
                     expected_loss: f(&a[5]),
-                    prob_beats_control: opt(&a[6]),
+                    prob_better_than_control: opt(&a[6]),
                     lift: match &a[7] {
                         Value::Null => None,
                         l => Some((f(&l[0]), f(&l[1]), f(&l[2]))),
@@ -343,7 +343,7 @@ mod tests {
             interval: (0.0925, 0.1274),
             prob_best: 0.08,
             expected_loss: 0.0131,
-            prob_beats_control: lift.map(|_| 0.92),
+            prob_better_than_control: lift.map(|_| 0.92),
             lift,
             prob_harm: lift.map(|_| 0.08),
         };

@@ -1,5 +1,5 @@
 //! Decision quantities for k = 2..=64 arms with one control: P(best), expected loss,
-//! P(beats control), relative lift, ROPE and harm probabilities.
+//! P(better than control), relative lift, ROPE and harm probabilities.
 //!
 //! Every quantity is a 1-D integral over one shared grid (see `grid`): with independent
 //! posteriors, P(i best) = ∫ f_i Π_{j≠i} F_j and E[max_j θ_j − θ_i] = ∫ F_i (1 − Π_{j≠i} F_j) dθ
@@ -107,7 +107,7 @@ pub struct ArmSummary {
     /// E[θ_v − min_j θ_j] for defect rates.
     pub expected_loss: f64,
     /// P(θ_v > θ_c) for conversion, P(θ_v < θ_c) for defect rates; None for the control.
-    pub prob_beats_control: Option<f64>,
+    pub prob_better_than_control: Option<f64>,
     /// Relative lift against the control; None for the control.
     pub lift: Option<Lift>,
     /// P(|θ_v/θ_c − 1| < rope); None for the control.
@@ -125,10 +125,10 @@ pub struct Decision {
     /// Expected regret of shipping this arm, in rate units (as in [`ArmSummary`]).
     pub expected_loss: f64,
     /// P(θ_v > θ_c) for conversion, P(θ_v < θ_c) for defect rates; None for the control.
-    pub prob_beats_control: Option<f64>,
+    pub prob_better_than_control: Option<f64>,
 }
 
-/// P(best), expected loss and P(beats control) only, in input order: the same numbers as
+/// P(best), expected loss and P(better than control) only, in input order: the same numbers as
 /// [`compare`] (bit for bit, from the same single pass over the shared grid) without the
 /// intervals, lifts, ROPE and harm probabilities, which cost more than half of a full
 /// `compare`. Meant for continuous re-evaluation against a stopping rule.
@@ -151,7 +151,7 @@ pub fn decide(arms: &Arms, control: usize) -> Result<Vec<Decision>, StatsError> 
         .map(|j| Decision {
             prob_best: totals.best[j].clamp(0.0, 1.0),
             expected_loss: totals.loss[j].max(0.0),
-            prob_beats_control: (j != control).then(|| totals.beats[j].clamp(0.0, 1.0)),
+            prob_better_than_control: (j != control).then(|| totals.beats[j].clamp(0.0, 1.0)),
         })
         .collect())
 }
@@ -241,13 +241,13 @@ pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, St
             interval,
             prob_best: totals.best[j].clamp(0.0, 1.0),
             expected_loss: totals.loss[j].max(0.0),
-            prob_beats_control: None,
+            prob_better_than_control: None,
             lift: None,
             prob_practically_equivalent: None,
             prob_harm: None,
         };
         if j != c {
-            summary.prob_beats_control = Some(totals.beats[j].clamp(0.0, 1.0));
+            summary.prob_better_than_control = Some(totals.beats[j].clamp(0.0, 1.0));
             let ratio = Ratio::new(&grid, &outer, j, c, higher);
             if opts.lift_interval {
                 let guess = ratio_guess(&log_cumulants[j], &log_cumulants[c]);
@@ -313,7 +313,7 @@ struct Totals {
     worse: Vec<f64>,
 }
 
-/// One pass over all nodes: P(best), expected loss and P(beats control) for every arm.
+/// One pass over all nodes: P(best), expected loss and P(better than control) for every arm.
 fn integrate_all(grid: &Grid, control: usize, higher: bool) -> Totals {
     let k = grid.arms.len();
     let r = rule();

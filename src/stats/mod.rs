@@ -6,7 +6,7 @@
 //!   remainder, `log1pmx`).
 //! - `grid`: piecewise Clenshaw–Curtis grids holding densities, CDFs and survival functions.
 //! - `posterior`: [`Beta`] (conversion) and [`Gamma`] (defect rate) posteriors.
-//! - `arms`: [`compare`] for 2..=64 arms, and [`decide`] (P(best), loss and P(beats
+//! - `arms`: [`compare`] for 2..=64 arms, and [`decide`] (P(best), loss and P(better than
 //!   control) only) for frequent re-evaluation.
 //! - `srm`: [`sample_ratio_mismatch`].
 //! - `drift`: [`shift_bound`], how far any posterior probability can move between two looks.

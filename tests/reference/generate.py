@@ -279,7 +279,7 @@ def mp_case(case):
         G = F if higher else S
         B = S if higher else F
         tab.append((t, w, [arm.g(t) for arm in arms], G, B, arms[0].jac(t)))
-    out = dict(prob_best=[], expected_loss=[], prob_beats_control=[], interval=[],
+    out = dict(prob_best=[], expected_loss=[], prob_better_than_control=[], interval=[],
                lift_mean=[], lift_interval=[], prob_practically_equivalent=[], prob_harm=[])
     level = mp.mpf(case["level"])
     for i, arm in enumerate(arms):
@@ -299,12 +299,12 @@ def mp_case(case):
         out["expected_loss"].append(loss)
         out["interval"].append([arm.quantile((1 - level) / 2), arm.quantile((1 + level) / 2)])
         if i == c:
-            for key in ("prob_beats_control", "lift_mean", "lift_interval",
+            for key in ("prob_better_than_control", "lift_mean", "lift_interval",
                         "prob_practically_equivalent", "prob_harm"):
                 out[key].append(None)
             continue
         ctrl = arms[c]
-        out["prob_beats_control"].append(beats)
+        out["prob_better_than_control"].append(beats)
         inv = ((ctrl.a + ctrl.b - 1) / (ctrl.a - 1) if higher else ctrl.b / (ctrl.a - 1)) \
             if ctrl.a > 1 else None
         out["lift_mean"].append(arm.mean * inv - 1 if inv is not None else None)
@@ -417,7 +417,7 @@ def sp_case(case):
     ws = np.concatenate([0.5 * (b - a) * w for a, b in zip(edges[:-1], edges[1:])])
     k, c = len(P), case["control"]
     # scipy's pdf forms ln f from terms of size ~a (lgamma, a*ln r, r*x), so at shapes ~1e9
-    # each value carries ~1e-6 relative noise (METHODS 1.5 point 2), enough to move P(beats)
+    # each value carries ~1e-6 relative noise (METHODS 1.5 point 2), enough to move P(better)
     # by 1e-9. Use the deviance from the mode instead, whose linear terms cancel exactly:
     # ln f(x) - ln f(m) = (a-1)[log1p(d1) - d1] + (b-1)[log1p(d2) - d2] (Beta) or
     # (a-1)[log1p(d) - d] (Gamma), then normalize each density on the grid.
@@ -448,7 +448,7 @@ def sp_case(case):
     pdf = [lambda x, j=j: raw_pdf[j](x) / Z[j] for j in range(k)]
     G = [cdf[j](xs) if higher else sf[j](xs) for j in range(k)]
     B = [sf[j](xs) if higher else cdf[j](xs) for j in range(k)]
-    out = dict(prob_best=[], expected_loss=[], prob_beats_control=[], interval=[],
+    out = dict(prob_best=[], expected_loss=[], prob_better_than_control=[], interval=[],
                lift_mean=[], lift_interval=[], prob_practically_equivalent=[], prob_harm=[])
     level = case["level"]
     for i in range(k):
@@ -468,15 +468,15 @@ def sp_case(case):
             q = stats.gamma(P[i][0], scale=1 / P[i][1]).ppf([(1 - level) / 2, (1 + level) / 2])
         out["interval"].append([float(q[0]), float(q[1])])
         if i == c:
-            for key in ("prob_beats_control", "lift_mean", "lift_interval",
+            for key in ("prob_better_than_control", "lift_mean", "lift_interval",
                         "prob_practically_equivalent", "prob_harm"):
                 out[key].append(None)
             continue
         if higher:
-            out["prob_beats_control"].append(float(np.sum(ws * pdf[i](xs) * G[c])))
+            out["prob_better_than_control"].append(float(np.sum(ws * pdf[i](xs) * G[c])))
         else:
             # Exact (METHODS 1.2): P(lam_i < lam_c) = I_{r_i/(r_c + r_i)}(a_i, a_c).
-            out["prob_beats_control"].append(
+            out["prob_better_than_control"].append(
                 float(special.betainc(P[i][0], P[c][0], P[i][1] / (P[c][1] + P[i][1]))))
         ac, bc = P[c]
         inv = (ac + bc - 1) / (ac - 1) if higher else bc / (ac - 1)

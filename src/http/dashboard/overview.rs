@@ -175,7 +175,7 @@ fn chip_class(s: Standing) -> &'static str {
         Standing::Quality => "quality",
         Standing::Ready => "ready",
         Standing::Decided => "decided",
-        Standing::Gathering => "watching",
+        Standing::Gathering => "gathering",
     }
 }
 

@@ -62,7 +62,7 @@ td.num { font-variant-numeric:tabular-nums; text-align:right; }
 .chip.ship { background:#dcecf7; border-color:#0072B2; } .chip.ship::before { content:"▲"; }
 .chip.same { background:#e8e6f1; border-color:#6b5fa8; } .chip.same::before { content:"="; }
 .chip.out-of-time { background:#eeeeee; border-color:#777; } .chip.out-of-time::before { content:"⧗"; }
-.chip.watching { background:#eef3ea; border-color:#5d7a4f; } .chip.watching::before { content:"…"; }
+.chip.gathering { background:#eef3ea; border-color:#5d7a4f; } .chip.gathering::before { content:"…"; }
 .chip.idle { background:#f0f0f0; border-color:#999; } .chip.idle::before { content:"○"; }
 .swatch { display:inline-block; width:26px; height:0; border-top:3px solid; vertical-align:middle; margin-right:.4rem; }
 a { color:var(--accent); }
@@ -136,7 +136,7 @@ pub fn glance(
         if summary.snapshot.units.iter().all(|&u| u == 0) {
             out.push(("idle", "waiting for data"));
         } else {
-            out.push(("watching", "still gathering evidence"));
+            out.push(("gathering", "still gathering evidence"));
         }
     }
     out
@@ -319,7 +319,7 @@ fn metric_section(s: &mut String, v: &ExperimentView, m: usize) {
             return;
         }
     };
-    numbers_table(s, def, arms, higher);
+    numbers_table(s, def, &snap.metrics[m], arms, higher);
     s.push_str(r#"<div class="cards">"#);
     figure(
         s,
@@ -375,10 +375,26 @@ fn figure(s: &mut String, title: &str, hint: &str, svg: &str) {
 fn numbers_table(
     s: &mut String,
     def: &crate::experiment::ExperimentDef,
+    totals: &crate::state::MetricTotals,
     arms: &[ArmSummary],
     higher: bool,
 ) {
-    s.push_str(r#"<table data-role="numbers"><thead><tr><th>variant</th><th>mean</th><th>95% interval</th><th>P(best)</th><th>expected loss</th><th>P(beats control)</th><th>lift (95% interval)</th><th>P(harm)</th></tr></thead><tbody>"#);
+    // One unit convention: conversion rates in %, their differences (expected loss) in
+    // percentage points; defect rates and their differences per unit of exposure; lifts in
+    // relative %; probabilities as probabilities. Raw counts beside the estimates.
+    let (counts, rates, loss) = if higher {
+        ("conversions / trials", "", "expected loss (pp)")
+    } else {
+        (
+            "defects / exposure",
+            " (per unit of exposure)",
+            "expected loss (per unit of exposure)",
+        )
+    };
+    let _ = write!(
+        s,
+        r#"<table data-role="numbers"><thead><tr><th>variant</th><th>{counts}</th><th>posterior mean{rates}</th><th>95% interval{rates}</th><th>P(best)</th><th>{loss}</th><th>P(better than control)</th><th>lift, relative (95% interval)</th><th>P(practically equivalent)</th><th>P(harm)</th></tr></thead><tbody>"#
+    );
     for (i, a) in arms.iter().enumerate() {
         let lift = a.lift.map_or("—".into(), |l| {
             format!(
@@ -388,22 +404,55 @@ fn numbers_table(
                 l.interval.upper * 100.0
             )
         });
+        let raw = match totals {
+            crate::state::MetricTotals::Conversion(t) => t
+                .get(i)
+                .map_or("—".into(), |t| format!("{} / {}", t.successes, t.trials)),
+            crate::state::MetricTotals::Defect(t) => t
+                .get(i)
+                .map_or("—".into(), |t| format!("{} / {}", t.count, t.exposure)),
+        };
         let _ = write!(
             s,
-            r#"<tr data-variant="{}"><td>{}</td><td class="num">{}</td><td class="num">{} … {}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td></tr>"#,
+            r#"<tr data-variant="{}"><td>{}</td><td class="num">{raw}</td><td class="num">{}</td><td class="num">{} … {}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td><td class="num">{}</td></tr>"#,
             escape(&def.variants[i].name),
             escape(&def.variants[i].name),
             rate(a.mean, higher),
             rate(a.interval.lower, higher),
             rate(a.interval.upper, higher),
             prob(a.prob_best),
-            sci(a.expected_loss),
-            a.prob_beats_control.map_or("—".into(), prob),
+            difference(a.expected_loss, higher),
+            a.prob_better_than_control.map_or("—".into(), prob),
             lift,
+            a.prob_practically_equivalent.map_or("—".into(), prob),
             a.prob_harm.map_or("—".into(), prob),
         );
     }
     s.push_str("</tbody></table>");
+}
+
+/// A difference of rates as shown: percentage points for conversion, per unit of exposure
+/// for defect rates.
+fn difference(x: f64, conversion: bool) -> String {
+    if !x.is_finite() {
+        "—".into()
+    } else if conversion {
+        format!("{} pp", short(x * 100.0))
+    } else {
+        sci(x)
+    }
+}
+
+/// Three significant digits, without exponent for everyday sizes.
+fn short(x: f64) -> String {
+    if x == 0.0 {
+        "0".into()
+    } else if x.abs() >= 1e-3 {
+        let digits = (2 - x.abs().log10().floor() as i32).max(0) as usize;
+        format!("{x:.digits$}")
+    } else {
+        format!("{x:.2e}")
+    }
 }
 
 fn linspace(lo: f64, hi: f64, n: usize) -> Vec<f64> {
@@ -573,6 +622,15 @@ enum TimeQuantity {
     ExpectedLoss,
 }
 
+/// The threshold of caring in the unit of the expected loss it is compared with.
+fn threshold_label(t: f64, conversion: bool) -> String {
+    if conversion {
+        format!("threshold of caring {} ({t})", difference(t, true))
+    } else {
+        format!("threshold of caring {t} per unit of exposure")
+    }
+}
+
 fn time_plot(
     def: &crate::experiment::ExperimentDef,
     metric: &str,
@@ -581,6 +639,11 @@ fn time_plot(
     q: TimeQuantity,
     threshold: Option<f64>,
 ) -> String {
+    let conversion = def
+        .metrics
+        .iter()
+        .find(|m| m.name == metric)
+        .is_some_and(|m| m.kind == crate::experiment::MetricKind::Conversion);
     let (t0, t1) = match (points.first(), points.last()) {
         (Some(a), Some(b)) if b.at > a.since => (secs(a.since), secs(b.at)),
         (Some(a), _) => (secs(a.at) - 1.0, secs(a.at) + 1.0),
@@ -634,7 +697,7 @@ fn time_plot(
             value: t,
             horizontal: true,
             role: "threshold",
-            label: format!("threshold of caring {t:e}"),
+            label: threshold_label(t, conversion),
         })
         .into_iter()
         .collect();
@@ -661,7 +724,10 @@ fn time_plot(
             scale,
             label: match q {
                 TimeQuantity::ProbBest => "P(best)".into(),
-                TimeQuantity::ExpectedLoss => "expected loss (rate units)".into(),
+                TimeQuantity::ExpectedLoss if conversion => {
+                    "expected loss (rate difference; 0.01 = 1 pp)".into()
+                }
+                TimeQuantity::ExpectedLoss => "expected loss (per unit of exposure)".into(),
             },
             fmt: Fmt::Plain,
         },
@@ -865,9 +931,9 @@ fn quality_section(s: &mut String, v: &ExperimentView) {
             "crossovers (unit seen in a second variant; kept in its first)",
         ),
         (Outcome::Orphan, "orphans (outcome of a never-exposed unit)"),
-        (Outcome::DuplicateExposure, "repeat exposures"),
-        (Outcome::DuplicateConversion, "repeat conversions"),
-        (Outcome::DuplicateId, "repeated event ids"),
+        (Outcome::DuplicateExposure, "duplicate exposures"),
+        (Outcome::DuplicateConversion, "duplicate conversions"),
+        (Outcome::DuplicateId, "duplicate event ids"),
     ] {
         let n = snap.outcomes.get(o);
         let extra = if matches!(o, Outcome::Crossover | Outcome::Orphan) {
