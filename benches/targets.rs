@@ -2,10 +2,12 @@
 //! same run and printed as a ratio: ingest vs serde_json parse-only, memory per unit and per
 //! variant (counting allocator), restart time, Kafka end to end vs a bare rdkafka loop, ingest
 //! under HTTP read load (wrk), the cost of rule evaluation, and the fleet view at 5 000
-//! experiments (list page and overview in Chromium, `parts/fleet.rs`).
+//! experiments (list page and overview in Chromium, `parts/fleet.rs`), and a team's own
+//! streams: mapped decoding with attribution, and the membership index's memory
+//! (`parts/mapped.rs`).
 //!
 //! Run all with `cargo bench --bench targets`, or some with
-//! `cargo bench --bench targets -- ingest memory restart kafka http evaluation fleet`.
+//! `cargo bench --bench targets -- ingest memory restart kafka http evaluation fleet mapped`.
 //! `POSTERIORD_BENCH_UNITS` sets the units of the memory/restart state (default 10 000 000);
 //! `POSTERIORD_BENCH_BROKERS` names a broker, else Apache Kafka is started on loopback with
 //! tests/kafka/broker.sh.
@@ -30,6 +32,8 @@ use posteriord::state::shards::Shards;
 
 #[path = "parts/fleet.rs"]
 mod fleet;
+#[path = "parts/mapped.rs"]
+mod mapped;
 
 /// Counts live heap bytes, so memory per unit is measured rather than estimated.
 struct Counting;
@@ -124,6 +128,9 @@ fn main() {
     }
     if want("fleet") {
         rows.extend(fleet::fleet_target(work.path()));
+    }
+    if want("mapped") {
+        rows.extend(mapped::mapped_target());
     }
     if smoke() {
         for r in &rows {
