@@ -458,17 +458,17 @@ fn event_time_bounds_resolve_per_source_and_bad_values_name_key_and_line() {
         (
             "[event_time]\nmax_ahead_secs = 0\n",
             "event_time.max_ahead_secs",
-            "max_ahead_secs =",
+            "max_ahead_secs = 0",
         ),
         (
             "[event_time]\nmax_behind_days = -1.0\n",
             "event_time.max_behind_days",
-            "max_behind_days =",
+            "max_behind_days = -1",
         ),
         (
             "[event_time.http]\non_skew = \"ignore\"\n",
             "event_time.http.on_skew",
-            "on_skew =",
+            "on_skew = \"ignore",
         ),
         (
             "[event_time]\nmax_lateness = 3\n",

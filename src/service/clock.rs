@@ -139,7 +139,10 @@ pub fn check_batch(
                 format!(
                     "time is {} {} its reference time (the limit is {}): the sender's clock is off",
                     human(skew),
-                    direction.as_str(),
+                    match direction {
+                        Direction::Ahead => "ahead of",
+                        Direction::Behind => "behind",
+                    },
                     human(limit)
                 ),
             )));
