@@ -39,7 +39,7 @@ fn looks_wanted() -> usize {
 fn probabilities(arms: &Arms, opts: &CompareOptions) -> Vec<f64> {
     let s = compare(arms, opts).expect("accepted input is answered");
     let mut out: Vec<f64> = s.iter().map(|a| a.prob_best).collect();
-    out.push(s[1].prob_beats_control.unwrap());
+    out.push(s[1].prob_better_than_control.unwrap());
     out.push(s[1].prob_harm.unwrap());
     out.push(s[1].prob_practically_equivalent.unwrap());
     out

@@ -3,7 +3,7 @@
 //! without recomputing it.
 //!
 //! **Why it is rigorous.** Every probability the rules compare with a threshold (harm, ROPE,
-//! P(beats control), P(best)) is P_π(E) = E_π[1_E(θ)] for an event E of the arms' rates θ
+//! P(better than control), P(best)) is P_π(E) = E_π[1_E(θ)] for an event E of the arms' rates θ
 //! and π the product of the arms' independent posteriors. For two such products π, π',
 //! |P_π(E) − P_π'(E)| ≤ TV(π, π') ≤ Σ_j TV(π_j, π'_j) (couple the arms one at a time; the
 //! total variation distance of a product is at most the sum over its factors), and by

@@ -575,7 +575,7 @@ def gamma2_case(case):
             x = cc * r[i] / (r[j] + cc * r[i])
             return mp.betainc(ai, aj, x, 1, regularized=True)
 
-        out = dict(prob_best=[], expected_loss=[], prob_beats_control=[], interval=[],
+        out = dict(prob_best=[], expected_loss=[], prob_better_than_control=[], interval=[],
                    lift_mean=[], lift_interval=[], prob_practically_equivalent=[],
                    prob_harm=[])
         level = mp.mpf(case["level"])
@@ -599,11 +599,11 @@ def gamma2_case(case):
                 ends.append(_bisect_log(f, -10 ** 6, 50))
             out["interval"].append(ends)
             if i == c:
-                for key in ("prob_beats_control", "lift_mean", "lift_interval",
+                for key in ("prob_better_than_control", "lift_mean", "lift_interval",
                             "prob_practically_equivalent", "prob_harm"):
                     out[key].append(None)
                 continue
-            out["prob_beats_control"].append(below(i, c, 1))
+            out["prob_better_than_control"].append(below(i, c, 1))
             inv = r[c] / (a[c] - 1) if a[c] > 1 else None
             out["lift_mean"].append(a[i] / r[i] * inv - 1 if inv is not None else None)
             # lam_i/lam_c = (r_c/r_i) W/(1-W), W ~ Beta(a_i, a_c): quantiles of W by bisection
