@@ -24,6 +24,9 @@ fuzz_target!(|data: &[u8]| {
         shard: "fuzz",
         offset: None,
         bytes: data,
+        mapping: None,
+        topic: None,
+        reference: None,
     }];
     let report = apply_batch(shards, metrics, Source::Http, &items, 4096);
     assert_eq!(report.results.len(), 1);
