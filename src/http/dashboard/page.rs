@@ -3,7 +3,7 @@
 
 use std::fmt::Write;
 
-use crate::decide::alerts::Alert;
+use crate::decide::alerts::{Alert, AlertState};
 use crate::decide::{Finding, Rule};
 use crate::event::Outcome;
 use crate::history::{Change, ExperimentHistory};
@@ -110,17 +110,30 @@ pub fn layout(title: &str, where_: &str, body: &str, refresh: &str) -> String {
     )
 }
 
-/// The states at a glance, as (css class, words), from the rules that hold now.
+/// The states at a glance, as (css class, words), from the rules that hold now and the
+/// alerts that are still open or recorded, so the chips never contradict the alert table: an
+/// easing harm alert still shows harm, a recorded decision stays until it is acknowledged.
 pub fn glance(
     summary: &ExperimentSummary,
     findings: &[Finding],
+    alerts: &[Alert],
 ) -> Vec<(&'static str, &'static str)> {
     let mut out = Vec::new();
-    let has = |r: Rule| findings.iter().any(|f| f.rule == r);
+    let live = |r: Rule| {
+        alerts.iter().any(|a| {
+            a.key.rule == r
+                && match a.state {
+                    AlertState::Open | AlertState::Easing => true,
+                    AlertState::Recorded => a.acknowledged_at.is_none(),
+                    AlertState::Closed => false,
+                }
+        })
+    };
+    let has = |r: Rule| findings.iter().any(|f| f.rule == r) || live(r);
     if has(Rule::SampleRatio) || has(Rule::Crossovers) {
         out.push(("quality", "check the data first"));
     }
-    if has(Rule::Harm) {
+    if has(Rule::Harm) || has(Rule::HarmEvidence) {
         out.push(("harm", "a variant looks worse"));
     }
     if has(Rule::Ship) {
@@ -215,7 +228,7 @@ pub fn experiment_main(v: &ExperimentView) -> String {
         r#"<h1 data-experiment="{}">{}</h1><div>{}</div>"#,
         escape(&def.id),
         escape(&def.id),
-        chips(&glance(&v.summary, &v.findings))
+        chips(&glance(&v.summary, &v.findings, &v.alerts))
     );
     s.push_str(r#"<p class="caution">"#);
     s.push_str(&escape(crate::doc::CAUTION));
