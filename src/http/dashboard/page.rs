@@ -858,12 +858,12 @@ fn decisions_section(s: &mut String, v: &ExperimentView) {
     if v.alerts.is_empty() {
         s.push_str(r#"<p class="muted">No alerts for this experiment.</p>"#);
     } else {
-        s.push_str(r#"<table data-role="alerts"><thead><tr><th>alert</th><th>rule</th><th>metric</th><th>variant</th><th>state</th><th>opened</th><th>closed</th><th>message</th></tr></thead><tbody>"#);
+        s.push_str(r#"<table data-role="alerts"><thead><tr><th>alert</th><th>rule</th><th>metric</th><th>variant</th><th>state</th><th>opened</th><th>last held</th><th>closed</th><th>message (numbers as when it last held; what holds now is above)</th></tr></thead><tbody>"#);
         for a in &v.alerts {
             let t = |m: i64| crate::doc::time_text(m).unwrap_or_default();
             let _ = write!(
                 s,
-                r#"<tr data-rule="{}"><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>"#,
+                r#"<tr data-rule="{}"><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>"#,
                 a.key.rule.as_str(),
                 escape(&a.id),
                 a.key.rule.as_str(),
@@ -871,8 +871,9 @@ fn decisions_section(s: &mut String, v: &ExperimentView) {
                 escape(a.key.variant.as_deref().unwrap_or("—")),
                 a.state.as_str(),
                 escape(&t(a.opened_at)),
+                escape(&t(a.last_held_at)),
                 escape(&a.closed_at.map(t).unwrap_or_else(|| "—".into())),
-                escape(&a.finding.message),
+                escape(&a.message_now()),
             );
         }
         s.push_str("</tbody></table>");
