@@ -342,12 +342,17 @@ fn metric_section(s: &mut String, v: &ExperimentView, m: usize) {
     );
     if let Some(p) = lift_plot(def, &metric.name, posteriors, arms, metric.rules.rope) {
         let hint = format!(
-            "relative difference θ_v/θ_c − 1 ({}); shaded: the region of practical equivalence (ROPE); bars: 95% credible intervals",
+            "relative difference θ_v/θ_c − 1 ({}); shaded: the region of practical equivalence (ROPE, ±{}% relative){}; bars: 95% credible intervals",
             if higher {
                 "right of zero is better"
             } else {
                 "right of zero means more defects, worse"
-            }
+            },
+            metric.rules.rope * 100.0,
+            metric.rules.harm.map_or(String::new(), |h| format!(
+                "; harm counts from a relative margin of {}%",
+                h.margin * 100.0
+            ))
         );
         figure(s, "Lift against the control", &hint, &p);
     }
@@ -370,8 +375,19 @@ fn metric_section(s: &mut String, v: &ExperimentView, m: usize) {
     figure(
         s,
         "Expected loss of shipping each variant, over time",
-        "what choosing the variant would cost on average if it is not the best (log scale); the dashed line is the threshold of caring",
-        &time_plot(def, &metric.name, series, v.now, TimeQuantity::ExpectedLoss, caring),
+        if higher {
+            "what choosing the variant would cost on average if it is not the best, an absolute difference of conversion rates (log scale); the dashed line is the threshold of caring, in the same unit"
+        } else {
+            "what choosing the variant would cost on average if it is not the best, in defects per unit of exposure (log scale); the dashed line is the threshold of caring, in the same unit"
+        },
+        &time_plot(
+            def,
+            &metric.name,
+            series,
+            v.now,
+            TimeQuantity::ExpectedLoss,
+            caring,
+        ),
     );
     s.push_str("</div></section>");
 }
