@@ -346,6 +346,16 @@ fn each_decision_names_the_line_of_the_event_that_made_it_due() {
         "lines {named:?} of {}",
         lines.len()
     );
+    // The evidence's input position is just past that event too (the file has no blank
+    // lines, so the replay offset of line N is N - 1).
+    for d in decisions.iter().filter(|d| d["change"] == "opened") {
+        let positions = d["evidence"]["positions"].as_array().unwrap();
+        assert_eq!(
+            positions,
+            &vec![serde_json::json!({"shard": "replay", "next_offset": d["line"]})],
+            "{d}"
+        );
+    }
     // Independent of how replay counts: the file cut just before the named line does not
     // yet make the decision, and the file cut just after it does.
     for d in decisions.iter().take(3) {

@@ -195,8 +195,10 @@ pub fn evaluate(summary: &ExperimentSummary) -> Vec<Finding> {
                 threshold: xr.srm_p,
                 test: Rule::SampleRatio.test(),
                 message: format!(
-                    "exposed units {:?} do not match the planned weights (chi-square {:.2}, p = {:.3e}); check assignment and logging before trusting any result; shipping is suspended",
-                    snap.units, srm.chi2, srm.p_value
+                    "exposed units {:?} do not match the planned weights (chi-square {:.2}, p = {}); check assignment and logging before trusting any result; shipping is suspended",
+                    snap.units,
+                    srm.chi2,
+                    p_value_text(srm.p_value)
                 ),
             });
         }
@@ -633,6 +635,16 @@ fn ship_message(
         format!(
             "choosing `{name}` on `{metric}` risks an expected loss of {loss} (below the threshold of caring {threshold}); posteriors assume the model and clean data, so review before shipping"
         )
+    }
+}
+
+/// A p-value as a probability: three decimals, or two significant digits with an exponent
+/// when it is below 0.001 (where mismatches are flagged).
+pub fn p_value_text(p: f64) -> String {
+    if p >= 1e-3 || p == 0.0 || !p.is_finite() {
+        format!("{p:.3}")
+    } else {
+        format!("{p:.1e}")
     }
 }
 

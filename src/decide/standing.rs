@@ -189,8 +189,9 @@ pub fn standings(
                 s.detail = f.message.clone();
             } else {
                 s.detail = format!(
-                    "p = {:.3e}, above the alarm threshold {}",
-                    r.p_value, xr.srm_p
+                    "p = {}, above the alarm threshold {}",
+                    super::p_value_text(r.p_value),
+                    xr.srm_p
                 );
             }
         }

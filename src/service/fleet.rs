@@ -181,6 +181,9 @@ impl FleetIndex {
 pub struct AlertFacts {
     /// Alerts open or easing.
     pub open: usize,
+    /// A harm alert (either harm rule) open or easing: the experiment reads as harmful until
+    /// it closes, even between looks where the rule itself does not hold.
+    pub open_harm: bool,
     /// A recorded final decision nobody acknowledged yet.
     pub unacknowledged_decision: bool,
     /// A recorded final decision somebody acknowledged.
@@ -195,7 +198,10 @@ pub fn alert_facts(alerts: &[Alert]) -> HashMap<String, AlertFacts> {
     for a in alerts {
         let f = out.entry(a.key.experiment.clone()).or_default();
         match a.state {
-            AlertState::Open | AlertState::Easing => f.open += 1,
+            AlertState::Open | AlertState::Easing => {
+                f.open += 1;
+                f.open_harm |= matches!(a.key.rule, Rule::Harm | Rule::HarmEvidence);
+            }
             AlertState::Closed => {}
             AlertState::Recorded => {
                 let at = a.acknowledged_at.unwrap_or(a.opened_at);
@@ -215,7 +221,7 @@ pub fn alert_facts(alerts: &[Alert]) -> HashMap<String, AlertFacts> {
 pub fn standing(rules: &[Rule], alerts: &AlertFacts) -> Standing {
     let holds = |r: Rule| rules.contains(&r);
     let final_holds = holds(Rule::Ship) || holds(Rule::Equivalent) || holds(Rule::Inconclusive);
-    if holds(Rule::Harm) {
+    if holds(Rule::Harm) || holds(Rule::HarmEvidence) || alerts.open_harm {
         Standing::Harm
     } else if holds(Rule::SampleRatio) || holds(Rule::Crossovers) {
         Standing::Quality
@@ -418,5 +424,11 @@ mod tests {
         let both = alert_facts(&[recorded(Some(50), 10), recorded(None, 70)])["crumb-banner"];
         assert_eq!(both.last_decision, Some(70));
         assert_eq!(standing(&[], &both), Standing::Ready);
+        // An open (or easing) harm alert keeps the experiment harmful, never "gathering".
+        let mut harm = recorded(None, 80);
+        harm.key.rule = Rule::Harm;
+        harm.state = AlertState::Easing;
+        let easing = alert_facts(&[harm])["crumb-banner"];
+        assert_eq!(standing(&[], &easing), Standing::Harm);
     }
 }

@@ -241,8 +241,17 @@ pub fn apply_batch_checked(
             }
             // The other shards did not change during this run, so adding their totals now
             // gives the same snapshot as at the due event.
-            for mut snap in run_due.drain(..) {
+            for (mut snap, &j) in run_due.drain(..).zip(&run_due_items) {
                 shards.merge_others(name, &mut snap);
+                // This shard's totals are those at the due event, so its position is the one
+                // just past that event, not the end of the run.
+                if let Some(offset) = items[j].offset {
+                    for (shard, next) in &mut snap.positions {
+                        if shard.as_str() == name {
+                            *next = offset + 1;
+                        }
+                    }
+                }
                 due.push(snap);
             }
             due_items.append(&mut run_due_items);

@@ -3,7 +3,7 @@
 
 use std::fmt::Write;
 
-use crate::decide::alerts::Alert;
+use crate::decide::alerts::{Alert, AlertState};
 use crate::decide::{Finding, Rule};
 use crate::event::Outcome;
 use crate::history::{Change, ExperimentHistory};
@@ -110,17 +110,30 @@ pub fn layout(title: &str, where_: &str, body: &str, refresh: &str) -> String {
     )
 }
 
-/// The states at a glance, as (css class, words), from the rules that hold now.
+/// The states at a glance, as (css class, words), from the rules that hold now and the
+/// alerts that are still open or recorded, so the chips never contradict the alert table: an
+/// easing harm alert still shows harm, a recorded decision stays until it is acknowledged.
 pub fn glance(
     summary: &ExperimentSummary,
     findings: &[Finding],
+    alerts: &[Alert],
 ) -> Vec<(&'static str, &'static str)> {
     let mut out = Vec::new();
-    let has = |r: Rule| findings.iter().any(|f| f.rule == r);
+    let live = |r: Rule| {
+        alerts.iter().any(|a| {
+            a.key.rule == r
+                && match a.state {
+                    AlertState::Open | AlertState::Easing => true,
+                    AlertState::Recorded => a.acknowledged_at.is_none(),
+                    AlertState::Closed => false,
+                }
+        })
+    };
+    let has = |r: Rule| findings.iter().any(|f| f.rule == r) || live(r);
     if has(Rule::SampleRatio) || has(Rule::Crossovers) {
         out.push(("quality", "check the data first"));
     }
-    if has(Rule::Harm) {
+    if has(Rule::Harm) || has(Rule::HarmEvidence) {
         out.push(("harm", "a variant looks worse"));
     }
     if has(Rule::Ship) {
@@ -215,7 +228,7 @@ pub fn experiment_main(v: &ExperimentView) -> String {
         r#"<h1 data-experiment="{}">{}</h1><div>{}</div>"#,
         escape(&def.id),
         escape(&def.id),
-        chips(&glance(&v.summary, &v.findings))
+        chips(&glance(&v.summary, &v.findings, &v.alerts))
     );
     s.push_str(r#"<p class="caution">"#);
     s.push_str(&escape(crate::doc::CAUTION));
@@ -329,12 +342,17 @@ fn metric_section(s: &mut String, v: &ExperimentView, m: usize) {
     );
     if let Some(p) = lift_plot(def, &metric.name, posteriors, arms, metric.rules.rope) {
         let hint = format!(
-            "relative difference θ_v/θ_c − 1 ({}); shaded: the region of practical equivalence (ROPE); bars: 95% credible intervals",
+            "relative difference θ_v/θ_c − 1 ({}); shaded: the region of practical equivalence (ROPE, ±{}% relative){}; bars: 95% credible intervals",
             if higher {
                 "right of zero is better"
             } else {
                 "right of zero means more defects, worse"
-            }
+            },
+            metric.rules.rope * 100.0,
+            metric.rules.harm.map_or(String::new(), |h| format!(
+                "; harm counts from a relative margin of {}%",
+                h.margin * 100.0
+            ))
         );
         figure(s, "Lift against the control", &hint, &p);
     }
@@ -357,8 +375,19 @@ fn metric_section(s: &mut String, v: &ExperimentView, m: usize) {
     figure(
         s,
         "Expected loss of shipping each variant, over time",
-        "what choosing the variant would cost on average if it is not the best (log scale); the dashed line is the threshold of caring",
-        &time_plot(def, &metric.name, series, v.now, TimeQuantity::ExpectedLoss, caring),
+        if higher {
+            "what choosing the variant would cost on average if it is not the best, an absolute difference of conversion rates (log scale); the dashed line is the threshold of caring, in the same unit"
+        } else {
+            "what choosing the variant would cost on average if it is not the best, in defects per unit of exposure (log scale); the dashed line is the threshold of caring, in the same unit"
+        },
+        &time_plot(
+            def,
+            &metric.name,
+            series,
+            v.now,
+            TimeQuantity::ExpectedLoss,
+            caring,
+        ),
     );
     s.push_str("</div></section>");
 }
@@ -845,12 +874,12 @@ fn decisions_section(s: &mut String, v: &ExperimentView) {
     if v.alerts.is_empty() {
         s.push_str(r#"<p class="muted">No alerts for this experiment.</p>"#);
     } else {
-        s.push_str(r#"<table data-role="alerts"><thead><tr><th>alert</th><th>rule</th><th>metric</th><th>variant</th><th>state</th><th>opened</th><th>closed</th><th>message</th></tr></thead><tbody>"#);
+        s.push_str(r#"<table data-role="alerts"><thead><tr><th>alert</th><th>rule</th><th>metric</th><th>variant</th><th>state</th><th>opened</th><th>last held</th><th>closed</th><th>message (numbers as when it last held; what holds now is above)</th></tr></thead><tbody>"#);
         for a in &v.alerts {
             let t = |m: i64| crate::doc::time_text(m).unwrap_or_default();
             let _ = write!(
                 s,
-                r#"<tr data-rule="{}"><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>"#,
+                r#"<tr data-rule="{}"><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>"#,
                 a.key.rule.as_str(),
                 escape(&a.id),
                 a.key.rule.as_str(),
@@ -858,8 +887,9 @@ fn decisions_section(s: &mut String, v: &ExperimentView) {
                 escape(a.key.variant.as_deref().unwrap_or("—")),
                 a.state.as_str(),
                 escape(&t(a.opened_at)),
+                escape(&t(a.last_held_at)),
                 escape(&a.closed_at.map(t).unwrap_or_else(|| "—".into())),
-                escape(&a.finding.message),
+                escape(&a.message_now()),
             );
         }
         s.push_str("</tbody></table>");
