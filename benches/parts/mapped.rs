@@ -68,7 +68,7 @@ struct Who<'a> {
 /// Assignment lines for `units` gardeners, each in 1 to 4 experiments, and `events` activity
 /// lines (70% plantings, 20% crashes, 10% lines no metric maps) after them in time.
 fn lines(units: usize, events: usize) -> (Vec<Vec<u8>>, Vec<Vec<u8>>) {
-    let mut rng = Rng(0x5eed_0f_0a_c4a2d);
+    let mut rng = Rng(0x0005_eed0_f0ac_4a2d);
     let base_ms = 1_780_000_000_000i64;
     let mut assign = Vec::new();
     for u in 0..units {
@@ -160,7 +160,7 @@ pub fn mapped_target() -> Vec<Row> {
     let (assign_lines, activity_lines) = lines(units, events);
     let bytes: usize = activity_lines.iter().map(Vec::len).sum();
     let metrics = Metrics::new();
-    let (mut parse, mut ours) = (Vec::new(), Vec::new());
+    let (mut parse, mut ours, mut decode) = (Vec::new(), Vec::new(), Vec::new());
     for round in 0..3 {
         let t = CpuTimer::start();
         let mut ok = 0usize;
@@ -172,6 +172,14 @@ pub fn mapped_target() -> Vec<Row> {
         }
         parse.push(t.secs());
         assert_eq!(ok, activity_lines.len());
+
+        let t = CpuTimer::start();
+        let mut ok = 0usize;
+        for l in &activity_lines {
+            ok += matches!(activity.decode(l, 64 * 1024), Ok(Some(_))) as usize;
+        }
+        decode.push(t.secs());
+        std::hint::black_box(ok);
 
         // Fresh state each round (a conversion counts once per unit), exposures untimed.
         let shards = Mutex::new(Shards::new(config.experiments.iter().cloned()));
@@ -192,6 +200,10 @@ pub fn mapped_target() -> Vec<Row> {
     let (parse, ours) = (fastest(parse), fastest(ours));
     let mbs = |s: f64| format!("{:.0} MB/s", bytes as f64 / s / 1e6);
     println!("  serde_json borrowed record:          {}", mbs(parse));
+    println!(
+        "  mapped decode only:                  {}",
+        mbs(fastest(decode))
+    );
     println!("  mapped decode + attribution + apply: {}", mbs(ours));
     let mut rows = vec![Row {
         target: "8a mapped + attribution vs serde_json record",

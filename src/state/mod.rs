@@ -902,6 +902,11 @@ impl Engine {
         let mut found = std::mem::take(&mut self.scratch);
         found.clear();
         self.members.for_each(unit, |x, secs| found.push((x, secs)));
+        // Ask for every member experiment's table entries before touching any: the unit's
+        // experiments are unrelated tables, so their memory waits overlap instead of adding up.
+        for &(x, _) in &found {
+            self.experiments[x as usize].prefetch(&hashes);
+        }
         fn rank(o: Outcome) -> u8 {
             match o {
                 Outcome::Applied => 4,
