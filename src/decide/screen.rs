@@ -2,8 +2,8 @@
 //! on how far they can have moved since ([`crate::stats::shift_bound`]).
 //!
 //! A rule's probability P at this look and its exact value P₀ at the anchor look (the last
-//! look that computed the metric) differ by at most D = TV(variant) + TV(control), the total
-//! variation distances between each arm's anchor and current posterior (docs/methods.md §9
+//! look that computed the metric) differ by at most D, the total variation distance between the joint anchor and current
+//! posteriors of the variant and the control (`pair_shift_bound`) (docs/methods.md §9
 //! has the proof). The exact path itself is within `EXACT_ERROR` of the true value (1e-9
 //! documented, ≤ 2.1e-10 verified against mpmath), so when P̂₀ + D + 2·`EXACT_ERROR` is below
 //! the threshold, the exact path run now would also find P̂ below it: the rule cannot hold,
@@ -18,7 +18,7 @@
 //! exact path's on every look; `plan`'s tests compare whole simulated runs both ways.
 
 use crate::state::ExperimentSnapshot;
-use crate::stats::{shift_bound, Arms};
+use crate::stats::{pair_shift_bound, Arms};
 use crate::summary::summarize_rules_only_selected;
 
 use super::evaluation::{evaluation_time, Evaluation};
@@ -106,13 +106,10 @@ fn silent(def: &crate::experiment::ExperimentDef, m: usize, anchor: &Anchor, now
     }
     let c = def.control;
     let k = now.len();
-    let Some(moved_c) = shift_bound(&anchor.posteriors, now, c) else {
-        return false;
-    };
-    let mut moved = Vec::with_capacity(k);
-    for v in 0..k {
-        match shift_bound(&anchor.posteriors, now, v) {
-            Some(d) => moved.push(d + moved_c),
+    let mut moved = vec![0.0; k];
+    for (v, slot) in moved.iter_mut().enumerate().filter(|(v, _)| *v != c) {
+        match pair_shift_bound(&anchor.posteriors, now, v, c) {
+            Some(d) => *slot = d,
             None => return false,
         }
     }
