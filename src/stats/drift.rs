@@ -14,9 +14,9 @@
 //!
 //! **The divergences in closed form** (both families are exponential families; e.g.
 //! W. D. Penny, "KL-divergences of Normal, Gamma, Dirichlet and Wishart densities", 2001 [M]):
-//! KL(Beta(a₁,b₁) ‖ Beta(a₂,b₂)) = ln B(a₂,b₂) − ln B(a₁,b₁) + (a₁−a₂)ψ(a₁) + (b₁−b₂)ψ(b₁)
-//! + (a₂−a₁+b₂−b₁)ψ(a₁+b₁), and KL(Gamma(a₁,r₁) ‖ Gamma(a₂,r₂)) = (a₁−a₂)ψ(a₁) − ln Γ(a₁)
-//! + ln Γ(a₂) + a₂ ln(r₁/r₂) + a₁(r₂−r₁)/r₁. At 1e9 counts the ln Γ terms are ~2e10 and
+//! KL(Beta(a₁,b₁) ‖ Beta(a₂,b₂)) = ln B(a₂,b₂) − ln B(a₁,b₁) + (a₁−a₂)ψ(a₁) +
+//! (b₁−b₂)ψ(b₁) + (a₂−a₁+b₂−b₁)ψ(a₁+b₁), and KL(Gamma(a₁,r₁) ‖ Gamma(a₂,r₂)) =
+//! (a₁−a₂)ψ(a₁) − ln Γ(a₁) + ln Γ(a₂) + a₂ ln(r₁/r₂) + a₁(r₂−r₁)/r₁. At 1e9 counts the ln Γ terms are ~2e10 and
 //! cancel to ~1e-3, so they are regrouped: with R(x, Δ) = ln Γ(x+Δ) − ln Γ(x) − Δψ(x) ≥ 0,
 //! KL_Beta = R(a₁, Δa) + R(b₁, Δb) − R(a₁+b₁, Δa+Δb) and
 //! KL_Gamma = R(a₁, Δa) − a₁·log1pmx(v) − Δa·ln(1+v), v = r₂/r₁ − 1; and R itself, for
