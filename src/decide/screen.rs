@@ -13,8 +13,9 @@
 //! Which rules read a metric's numbers (`evaluate`): `harm` reads P(harm) of each variant;
 //! on the primary metric `equivalent` reads the smallest ROPE probability (it cannot hold when
 //! one variant's is proven below its threshold) and `ship` reads expected losses, which are
-//! not probabilities and have no such bound — a primary metric with a `ship` rule is always
-//! computed. Guardrail numbers are read only by `ship`. A rule that cannot hold on this look
+//! not probabilities and have no such bound, and the guardrails' clearance (a guardrail not
+//! computed would block shipping): with a `ship` rule the primary metric and the guardrails
+//! are computed at every look. A rule that cannot hold on this look
 //! at all (an arm short of `min_units`, equivalence before `min_duration`) needs no bound. Findings are therefore the same as the
 //! exact path's on every look; `plan`'s tests compare whole simulated runs both ways.
 
@@ -144,7 +145,10 @@ fn silent(
 ) -> bool {
     let metric = &def.metrics[m];
     let primary = m == def.rules.primary;
-    if primary && metric.rules.ship.is_some() {
+    let ship = def.metrics[def.rules.primary].rules.ship.is_some();
+    // `ship` reads the primary metric's expected losses (no bound) and the guardrails'
+    // clearance, whose absence blocks shipping: with a ship rule, those are always computed.
+    if ship && (primary || def.rules.guardrails.contains(&m)) {
         return false;
     }
     let c = def.control;
