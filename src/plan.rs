@@ -1387,6 +1387,37 @@ mod tests {
         }
         // The bound must also be doing something, or this test proves nothing.
         assert!(skipped > 100, "only {skipped} metric evaluations skipped");
+
+        // With a ship rule the primary metric and the guardrail are computed at every look
+        // (a guardrail left out would block shipping); a second, non-guardrail metric with a
+        // harm rule may still be skipped.
+        let mut d = (*opts.def).clone();
+        d.metrics[0].rules.ship = Some(crate::experiment::ShipRule {
+            threshold_of_caring: 0.002,
+        });
+        d.rules.min_duration = 0;
+        let mut third = d.metrics[1].clone();
+        third.name = "returned-pots".into();
+        d.metrics.push(third);
+        let ship_opts = PlanOptions {
+            def: Arc::new(d),
+            baselines: vec![0.05, 0.02, 0.01],
+            scenarios: vec![opts.scenarios[0].clone(), effect(0, 0.3), effect(1, 0.5)],
+            ..opts.clone()
+        };
+        let mut skipped = 0;
+        for s in 0..ship_opts.scenarios.len() {
+            for r in 0..ship_opts.sims {
+                let mut exact = Timing::default();
+                let mut screened = Timing::default();
+                let a = simulate_run_with(&ship_opts, s, r, &mut exact, false);
+                let b = simulate_run_with(&ship_opts, s, r, &mut screened, true);
+                assert_eq!(a, b, "with a ship rule: scenario {s}, run {r}");
+                skipped += screened.metrics_skipped;
+                assert!(screened.metrics_computed >= 2 * screened.looks);
+            }
+        }
+        assert!(skipped > 10, "only {skipped} metric evaluations skipped");
     }
 
     #[test]

@@ -16,7 +16,9 @@ use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
 use rand_distr::{Binomial, Distribution, Poisson};
 
-use posteriord::stats::{compare, shift_bound, Arms, Beta, CompareOptions, Gamma};
+use posteriord::stats::{
+    compare, pair_shift_bound, shift_bound, Arms, Beta, CompareOptions, Gamma,
+};
 
 /// Twice the exact path's error allowance (`decide::screen::EXACT_ERROR`).
 const SLACK: f64 = 2e-8;
@@ -35,7 +37,7 @@ fn looks_wanted() -> usize {
         })
 }
 
-/// The probabilities a bound brackets: P(best) and, for the variant, P(beats), harm, ROPE.
+/// The probabilities a bound brackets: P(best) and, for the variant, P(better than control), harm, ROPE.
 fn probabilities(arms: &Arms, opts: &CompareOptions) -> Vec<f64> {
     let s = compare(arms, opts).expect("accepted input is answered");
     let mut out: Vec<f64> = s.iter().map(|a| a.prob_best).collect();
@@ -104,9 +106,10 @@ fn probabilities_move_no_further_than_the_bound_on_random_looks() {
             let now = probabilities(&arms, &opts);
             looks += 1;
             if let Some((old_arms, old)) = &anchor {
-                let d0 = shift_bound(old_arms, &arms, 0).unwrap();
-                let d1 = shift_bound(old_arms, &arms, 1).unwrap();
-                let moved = d0 + d1;
+                let moved = pair_shift_bound(old_arms, &arms, 0, 1).unwrap();
+                let sum = shift_bound(old_arms, &arms, 0).unwrap()
+                    + shift_bound(old_arms, &arms, 1).unwrap();
+                assert!(moved <= sum + 1e-15, "joint {moved} > sum {sum}");
                 for (q, (&p_old, &p_now)) in old.iter().zip(&now).enumerate() {
                     let gap = (p_now - p_old).abs();
                     widest_gap = widest_gap.max(gap / (moved + SLACK));

@@ -26,7 +26,7 @@ mod srm;
 
 pub use arms::{compare, decide, ArmSummary, Arms, CompareOptions, Decision, Lift, MAX_ARMS};
 pub use density::{lift_density, plot_range, posterior_density, PLOT_TAIL};
-pub use drift::shift_bound;
+pub use drift::{pair_shift_bound, shift_bound};
 pub use posterior::{Beta, Gamma, MAX_LEVEL, MAX_RATE, MAX_SHAPE, MIN_RATE, MIN_SHAPE};
 pub use srm::{sample_ratio_mismatch, SampleRatio, SRM_P_THRESHOLD};
 
