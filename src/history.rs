@@ -62,7 +62,7 @@ pub struct ArmPoint {
     pub prob_best: f64,
     /// Expected loss of shipping this arm, in rate units.
     pub expected_loss: f64,
-    /// Probability of beating the control (`None` for the control).
+    /// Probability of being better than the control (`None` for the control).
     pub prob_better_than_control: Option<f64>,
     /// Relative lift against the control: mean, interval lower, interval upper (`None` for
     /// the control).
