@@ -1036,3 +1036,95 @@ fn quality_section(s: &mut String, v: &ExperimentView) {
     }
     s.push_str("</div>");
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::decide::alerts::AlertKey;
+
+    /// An invented seed-packet shop's two-arm test with `units` exposed per arm.
+    fn summary(units: u64) -> ExperimentSummary {
+        let def = crate::config::experiment_from_json(
+            "packet-window",
+            &serde_json::json!({
+                "variants": [{"name": "control"}, {"name": "clear-window"}],
+                "metric": [{"name": "bought", "kind": "conversion"}]
+            }),
+        )
+        .unwrap();
+        let engine = crate::state::Engine::new([def]);
+        let mut snap = engine.experiments().next().unwrap().snapshot();
+        snap.units = vec![units, units];
+        crate::summary::summarize(snap, 0.95)
+    }
+
+    fn finding(rule: Rule) -> Finding {
+        Finding {
+            rule,
+            metric: None,
+            variant: None,
+            value: 0.0,
+            threshold: 0.0,
+            test: "",
+            message: String::new(),
+            evidence: Default::default(),
+        }
+    }
+
+    fn alert(rule: Rule, state: AlertState, acknowledged_at: Option<i64>) -> Alert {
+        Alert {
+            id: "a1".into(),
+            key: AlertKey {
+                experiment: "packet-window".into(),
+                metric: None,
+                variant: None,
+                rule,
+            },
+            state,
+            opened_at: 1,
+            last_held_at: 1,
+            closed_at: (state == AlertState::Closed).then_some(2),
+            finding: finding(rule),
+            acknowledged_at,
+        }
+    }
+
+    fn classes(
+        summary: &ExperimentSummary,
+        findings: &[Finding],
+        alerts: &[Alert],
+    ) -> Vec<&'static str> {
+        glance(summary, findings, alerts)
+            .into_iter()
+            .map(|(c, _)| c)
+            .collect()
+    }
+
+    #[test]
+    fn the_chips_follow_the_rules_that_hold_and_the_alerts_still_open_or_recorded() {
+        let (empty, some) = (summary(0), summary(40));
+        assert_eq!(classes(&empty, &[], &[]), ["idle"]);
+        assert_eq!(classes(&some, &[], &[]), ["gathering"]);
+        assert_eq!(classes(&some, &[finding(Rule::Harm)], &[]), ["harm"]);
+        // An easing harm alert still shows harm though the rule no longer holds; a closed
+        // one does not.
+        let easing = alert(Rule::Harm, AlertState::Easing, None);
+        assert_eq!(classes(&some, &[], &[easing]), ["harm"]);
+        let closed = alert(Rule::Harm, AlertState::Closed, None);
+        assert_eq!(classes(&some, &[], &[closed]), ["gathering"]);
+        // A recorded decision stays until someone acknowledges it.
+        let recorded = alert(Rule::Ship, AlertState::Recorded, None);
+        assert_eq!(classes(&some, &[], &[recorded]), ["ship"]);
+        let acknowledged = alert(Rule::Ship, AlertState::Recorded, Some(5));
+        assert_eq!(classes(&some, &[], &[acknowledged]), ["gathering"]);
+        // Data quality comes first, beside whatever else holds.
+        assert_eq!(
+            classes(
+                &some,
+                &[finding(Rule::SampleRatio), finding(Rule::Harm)],
+                &[]
+            ),
+            ["quality", "harm"]
+        );
+    }
+}
