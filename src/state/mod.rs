@@ -717,14 +717,21 @@ impl Engine {
     ) {
         if let Some(idx) = self.position(&state.def.id) {
             let x = idx as u32;
-            self.members.retain_map(|m| (m != x).then_some(m));
+            // An experiment's memberships are its exposed units: with none there is nothing
+            // to drop, and a restore (every experiment replaced in turn) skips a pass over
+            // the whole index per experiment.
+            if !self.experiments[idx].units.is_empty() {
+                self.members.retain_map(|m| (m != x).then_some(m));
+            }
             match exposures {
                 Some(records) => {
+                    self.members.reserve(records.len());
                     for image::ExposureRecord { key, secs } in records {
                         self.members.insert(key, x, secs);
                     }
                 }
                 None => {
+                    self.members.reserve(state.units.len());
                     for (unit, _) in state.units.iter() {
                         self.members.insert(unit, x, 0);
                     }
@@ -782,6 +789,12 @@ impl Engine {
         });
         self.reindex();
         Some(state)
+    }
+
+    /// Make room in the membership index for `n` more memberships (restores: one resize
+    /// instead of many).
+    pub fn reserve_memberships(&mut self, n: usize) {
+        self.members.reserve(n);
     }
 
     /// Number of (unit, experiment) memberships in the index.

@@ -379,6 +379,12 @@ impl Shard {
         }
         shard.dirty = false;
         let mut mismatches = Vec::new();
+        let memberships = image
+            .experiments
+            .iter()
+            .map(|e| e.exposures.as_ref().map_or(e.units.len(), Vec::len))
+            .sum();
+        shard.engine.reserve_memberships(memberships);
         for mut e in image.experiments {
             let exposures = e.exposures.take();
             let Some(def) = defs.iter().find(|d| d.state_key() == e.id) else {
