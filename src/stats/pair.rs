@@ -275,6 +275,8 @@ fn compare_pair(
 }
 
 #[cfg(test)]
+// Reference values are kept with every digit their source printed.
+#[allow(clippy::excessive_precision)]
 mod tests {
     use super::super::arms::{compare_general, decide_general, Arms};
     use super::*;
