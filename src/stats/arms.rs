@@ -7,6 +7,10 @@
 //! form from (X − Y)⁺ = ∫ 1{Y < u < X} du). For "lower is better" (defect rates) F and S swap.
 //! 1 − Π F_j is accumulated as a sum of positive terms, (1 − PQ) = (1 − P) + P(1 − Q), so a
 //! tiny loss never arises as a difference of numbers near 1.
+//!
+//! Exactly two Gamma arms skip all of this for the one-table route of `pair`
+//! (docs/methods.md §10); [`compare_general`] and [`decide_general`] keep the shared grid for
+//! every input, as the reference that route is tested and benchmarked against.
 
 use statrs::distribution::{ContinuousCDF, Normal};
 
