@@ -1,6 +1,7 @@
 //! The two-arm fast path for defect rates: every decision quantity of a control and one
-//! variant with Gamma posteriors from one Beta(a_v, a_c) table instead of the shared grid and
-//! the ratio integrals.
+//! variant with Gamma posteriors from one Beta(a_v, a_c) table instead of the shared grid's
+//! pass and the ratio integrals (`compare` still reads the rate intervals off the arms' own
+//! shared table).
 //!
 //! Why it is exact (a direct derivation; docs/methods.md §10): with X = r_v·λ_v ~ Gamma(a_v, 1)
 //! and Y = r_c·λ_c ~ Gamma(a_c, 1) independent, W = X/(X+Y) ~ Beta(a_v, a_c) is independent of
@@ -205,10 +206,18 @@ fn compare_pair(
     let (lo_q, hi_q) = tail_levels(opts.level)?;
     let pair = Pair::new(v, c)?;
     let core = Core::of(&pair);
+    // Both rate intervals from one table of the two arms (the general path's own, so they
+    // are the same numbers): one panel construction instead of two.
+    let kernels: Vec<Kernel> = arms.iter().map(Gamma::kernel).collect();
+    let rates = Grid::new(&kernels)?;
     let mut out = Vec::with_capacity(2);
     for (j, arm) in arms.iter().enumerate() {
         let is_control = j == opts.control;
-        let interval = arm.interval(opts.level)?;
+        let interval = Interval {
+            level: opts.level,
+            lower: rates.quantile_t(j, lo_q).exp(),
+            upper: rates.quantile_t(j, hi_q).exp(),
+        };
         let d = if is_control {
             core.control_decision()
         } else {
