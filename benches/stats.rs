@@ -4,7 +4,10 @@
 //!
 //! Run with `cargo bench --bench stats`. Before the criterion groups it prints, from one run,
 //! the speed ratio (Monte Carlo time / exact time) and the error ratio (Monte Carlo error /
-//! exact error) against the mpmath reference in tests/reference/cases.json.
+//! exact error) against the mpmath reference in tests/reference/cases.json, and the same for
+//! the two-arm defect-rate case R11 of METHODS §2 (mpmath), where `compare` takes the two-arm
+//! fast path; `compare_general` (the shared-grid path every other input takes) is timed beside
+//! it as the before.
 
 use std::path::PathBuf;
 use std::time::{Duration, Instant};
@@ -15,7 +18,9 @@ use rand::SeedableRng;
 use rand_distr::Distribution;
 use serde_json::Value;
 
-use posteriord::stats::{compare, decide, Arms, Beta, CompareOptions};
+use posteriord::stats::{
+    compare, compare_general, decide, decide_general, Arms, Beta, CompareOptions, Gamma,
+};
 
 const MC_DRAWS: usize = 100_000;
 
@@ -148,6 +153,94 @@ fn print_ratios() {
     );
 }
 
+/// METHODS §2 R11/R11c (mpmath, 40 digits): errors per 1k requests, control 50 in 100k,
+/// variant 40 in 100k → Gamma(51, 101), Gamma(41, 101); P(best) and loss of (control, variant).
+#[allow(clippy::excessive_precision)]
+const R11_BEST: [f64; 2] = [0.147_234_892_284_266_541_957, 0.852_765_107_715_733_458_043];
+const R11_LOSS: [f64; 2] = [0.106_219_631_811_237, 0.007_209_730_821_138_06];
+
+/// The Monte Carlo estimator for two Gamma arms (lower is better).
+fn monte_carlo_gamma(arms: &[Gamma], rng: &mut StdRng) -> (Vec<f64>, Vec<f64>) {
+    let dists: Vec<rand_distr::Gamma<f64>> = arms
+        .iter()
+        .map(|g| rand_distr::Gamma::new(g.shape(), 1.0 / g.rate()).unwrap())
+        .collect();
+    let (mut wins, mut regret) = ([0.0; 2], [0.0; 2]);
+    for _ in 0..MC_DRAWS {
+        let x = [dists[0].sample(rng), dists[1].sample(rng)];
+        let min = x[0].min(x[1]);
+        wins[if x[0] <= x[1] { 0 } else { 1 }] += 1.0;
+        for j in 0..2 {
+            regret[j] += x[j] - min;
+        }
+    }
+    let n = MC_DRAWS as f64;
+    (
+        wins.iter().map(|w| w / n).collect(),
+        regret.iter().map(|r| r / n).collect(),
+    )
+}
+
+fn print_gamma_ratios() {
+    let arms = vec![
+        Gamma::new(51.0, 101.0).unwrap(),
+        Gamma::new(41.0, 101.0).unwrap(),
+    ];
+    let family = Arms::Gamma(arms.clone());
+    let opts = CompareOptions::default();
+    let fast = compare(&family, &opts).unwrap();
+    let general = compare_general(&family, &opts).unwrap();
+    let mut rng = StdRng::seed_from_u64(20240611);
+    let (mc_best, mc_loss) = monte_carlo_gamma(&arms, &mut rng);
+    let t_fast = median_time(201, || {
+        black_box(compare(black_box(&family), &opts).unwrap());
+    });
+    let t_general = median_time(51, || {
+        black_box(compare_general(black_box(&family), &opts).unwrap());
+    });
+    let t_decide = median_time(201, || {
+        black_box(decide(black_box(&family), 0).unwrap());
+    });
+    let t_decide_general = median_time(51, || {
+        black_box(decide_general(black_box(&family), 0).unwrap());
+    });
+    let t_mc = median_time(5, || {
+        black_box(monte_carlo_gamma(black_box(&arms), &mut rng));
+    });
+    let err = |s: &[posteriord::stats::ArmSummary]| {
+        let b: Vec<f64> = s.iter().map(|a| a.prob_best).collect();
+        let l: Vec<f64> = s.iter().map(|a| a.expected_loss).collect();
+        (
+            max_error(&b, &R11_BEST).max(f64::EPSILON),
+            max_error(&l, &R11_LOSS).max(f64::EPSILON * 1e-2),
+        )
+    };
+    let ratio = |a: Duration, b: Duration| a.as_secs_f64() / b.as_secs_f64();
+    println!("statistics core, 2 defect-rate arms (METHODS R11, reference mpmath 40 digits):");
+    println!(
+        "  compare, two-arm fast path: {t_fast:?}; shared-grid path: {t_general:?} ({:.1}x faster)",
+        ratio(t_general, t_fast)
+    );
+    println!("  decide, two-arm fast path: {t_decide:?}; shared-grid path: {t_decide_general:?} ({:.1}x faster)", ratio(t_decide_general, t_decide));
+    println!("  Monte Carlo, {MC_DRAWS} draws (P(best) and loss only): {t_mc:?}");
+    println!(
+        "  speed ratio MC/compare: {:.1}x (shared-grid path: {:.1}x)",
+        ratio(t_mc, t_fast),
+        ratio(t_mc, t_general)
+    );
+    println!(
+        "  speed ratio MC/decide: {:.1}x (shared-grid path: {:.1}x)",
+        ratio(t_mc, t_decide),
+        ratio(t_mc, t_decide_general)
+    );
+    let (fb, fl) = err(&fast);
+    let (gb, gl) = err(&general);
+    let m_best = max_error(&mc_best, &R11_BEST);
+    let m_loss = max_error(&mc_loss, &R11_LOSS);
+    println!("  P(best) max abs error: fast {fb:.1e}, shared grid {gb:.1e}, MC {m_best:.1e}");
+    println!("  loss    max abs error: fast {fl:.1e}, shared grid {gl:.1e}, MC {m_loss:.1e}");
+}
+
 fn arms_for(k: usize, n: f64) -> Arms {
     // Conversion around 5% with small spreads between arms (a fictional app's push test).
     let arms = (0..k)
@@ -160,8 +253,57 @@ fn arms_for(k: usize, n: f64) -> Arms {
     Arms::Beta(arms)
 }
 
+/// Two defect-rate arms around 2 defects per 1 000 units of exposure, n units each.
+fn gamma_pair(n: f64) -> Arms {
+    let arms = [0.002, 0.00204]
+        .iter()
+        .map(|&rate| Gamma::new(1.0 + (n * rate).round(), 1.0 + n).unwrap())
+        .collect();
+    Arms::Gamma(arms)
+}
+
 fn bench_compare(c: &mut Criterion) {
     print_ratios();
+    print_gamma_ratios();
+    let mut pair = c.benchmark_group("gamma2");
+    pair.sample_size(20);
+    for &n in &[1e3, 1e8] {
+        let arms = gamma_pair(n);
+        let opts = CompareOptions::default();
+        let rules_only = CompareOptions {
+            lift_interval: false,
+            equivalence: false,
+            ..opts
+        };
+        type Entry = fn(&Arms, &CompareOptions) -> usize;
+        let entries: [(&str, Entry); 6] = [
+            ("compare fast", |a, o| compare(a, o).unwrap().len()),
+            ("compare general", |a, o| {
+                compare_general(a, o).unwrap().len()
+            }),
+            ("rules-only fast", |a, o| compare(a, o).unwrap().len()),
+            ("rules-only general", |a, o| {
+                compare_general(a, o).unwrap().len()
+            }),
+            ("decide fast", |a, o| decide(a, o.control).unwrap().len()),
+            ("decide general", |a, o| {
+                decide_general(a, o.control).unwrap().len()
+            }),
+        ];
+        for (name, f) in entries {
+            let o = if name.starts_with("rules") {
+                rules_only
+            } else {
+                opts
+            };
+            pair.bench_with_input(
+                BenchmarkId::new(format!("{name} n={n:e}"), 2),
+                &arms,
+                |b, arms| b.iter(|| f(black_box(arms), &o)),
+            );
+        }
+    }
+    pair.finish();
     let mut group = c.benchmark_group("compare");
     group.sample_size(20);
     for &n in &[1e3, 1e8] {

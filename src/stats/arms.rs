@@ -7,6 +7,10 @@
 //! form from (X − Y)⁺ = ∫ 1{Y < u < X} du). For "lower is better" (defect rates) F and S swap.
 //! 1 − Π F_j is accumulated as a sum of positive terms, (1 − PQ) = (1 − P) + P(1 − Q), so a
 //! tiny loss never arises as a difference of numbers near 1.
+//!
+//! Exactly two Gamma arms skip all of this for the one-table route of `pair`
+//! (docs/methods.md §10); [`compare_general`] and [`decide_general`] keep the shared grid for
+//! every input, as the reference that route is tested and benchmarked against.
 
 use statrs::distribution::{ContinuousCDF, Normal};
 
@@ -132,7 +136,19 @@ pub struct Decision {
 /// [`compare`] (bit for bit, from the same single pass over the shared grid) without the
 /// intervals, lifts, ROPE and harm probabilities, which cost more than half of a full
 /// `compare`. Meant for continuous re-evaluation against a stopping rule.
+///
+/// Two Gamma arms take the exact one-table route of `pair` (docs/methods.md §10).
 pub fn decide(arms: &Arms, control: usize) -> Result<Vec<Decision>, StatsError> {
+    check_arms(arms, control)?;
+    if let Arms::Gamma(v) = arms {
+        if let Some(fast) = super::pair::decide(v, control) {
+            return fast;
+        }
+    }
+    decide_general(arms, control)
+}
+
+fn check_arms(arms: &Arms, control: usize) -> Result<(), StatsError> {
     let k = arms.len();
     if !(2..=MAX_ARMS).contains(&k) {
         return Err(StatsError::ArmCount(k));
@@ -140,6 +156,15 @@ pub fn decide(arms: &Arms, control: usize) -> Result<Vec<Decision>, StatsError> 
     if control >= k {
         return Err(StatsError::ControlOutOfRange { control, n_arms: k });
     }
+    Ok(())
+}
+
+/// [`decide`] on the shared grid for every input, never the two-arm fast path: the reference
+/// the fast path is tested and benchmarked against.
+#[doc(hidden)]
+pub fn decide_general(arms: &Arms, control: usize) -> Result<Vec<Decision>, StatsError> {
+    check_arms(arms, control)?;
+    let k = arms.len();
     let kernels: Vec<Kernel> = match arms {
         Arms::Beta(v) => v.iter().map(Beta::kernel).collect(),
         Arms::Gamma(v) => v.iter().map(Gamma::kernel).collect(),
@@ -157,18 +182,21 @@ pub fn decide(arms: &Arms, control: usize) -> Result<Vec<Decision>, StatsError> 
 }
 
 /// Compute every decision quantity for `arms`, returned in input order.
+///
+/// Two Gamma arms take the exact one-table route of `pair` (docs/methods.md §10).
 pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, StatsError> {
-    let k = arms.len();
-    if !(2..=MAX_ARMS).contains(&k) {
-        return Err(StatsError::ArmCount(k));
+    check_options(arms, opts)?;
+    if let Arms::Gamma(v) = arms {
+        if let Some(fast) = super::pair::compare(v, opts) {
+            return fast;
+        }
     }
-    if opts.control >= k {
-        return Err(StatsError::ControlOutOfRange {
-            control: opts.control,
-            n_arms: k,
-        });
-    }
-    let (lo_q, hi_q) = tail_levels(opts.level)?;
+    compare_general(arms, opts)
+}
+
+fn check_options(arms: &Arms, opts: &CompareOptions) -> Result<(), StatsError> {
+    check_arms(arms, opts.control)?;
+    tail_levels(opts.level)?;
     if !opts.rope.is_finite() || opts.rope < 0.0 {
         return Err(StatsError::InvalidMargin {
             name: "rope",
@@ -181,6 +209,16 @@ pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, St
             value: opts.harm_margin,
         });
     }
+    Ok(())
+}
+
+/// [`compare`] on the shared grid and the ratio integrals for every input, never the two-arm
+/// fast path: the reference the fast path is tested and benchmarked against.
+#[doc(hidden)]
+pub fn compare_general(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, StatsError> {
+    check_options(arms, opts)?;
+    let k = arms.len();
+    let (lo_q, hi_q) = tail_levels(opts.level)?;
     let higher = arms.higher_is_better();
     let (kernels, moments): (Vec<Kernel>, Vec<(f64, f64, f64)>) = match arms {
         Arms::Beta(v) => (

@@ -8,6 +8,7 @@
 //! - `posterior`: [`Beta`] (conversion) and [`Gamma`] (defect rate) posteriors.
 //! - `arms`: [`compare`] for 2..=64 arms, and [`decide`] (P(best), loss and P(better than
 //!   control) only) for frequent re-evaluation.
+//! - `pair`: the exact two-arm fast path for Gamma arms, used by [`compare`] and [`decide`].
 //! - `srm`: [`sample_ratio_mismatch`].
 //! - `drift`: [`shift_bound`], how far any posterior probability can move between two looks.
 //! - `density`: posterior and lift densities for plots ([`posterior_density`], [`lift_density`]).
@@ -20,11 +21,15 @@ mod arms;
 mod density;
 mod drift;
 mod grid;
+mod pair;
 mod posterior;
 mod special;
 mod srm;
 
-pub use arms::{compare, decide, ArmSummary, Arms, CompareOptions, Decision, Lift, MAX_ARMS};
+pub use arms::{
+    compare, compare_general, decide, decide_general, ArmSummary, Arms, CompareOptions, Decision,
+    Lift, MAX_ARMS,
+};
 pub use density::{lift_density, plot_range, posterior_density, PLOT_TAIL};
 pub use drift::{pair_shift_bound, shift_bound};
 pub use posterior::{Beta, Gamma, MAX_LEVEL, MAX_RATE, MAX_SHAPE, MIN_RATE, MIN_SHAPE};
