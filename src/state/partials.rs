@@ -333,7 +333,17 @@ mod tests {
             .collect()
     }
 
+    const CASES: u32 = 256;
+
     proptest! {
+        #![proptest_config(ProptestConfig {
+            // Failure seeds beside this file (`*.proptest-regressions`), kept in git.
+            failure_persistence: Some(Box::new(
+                proptest::test_runner::FileFailurePersistence::SourceParallel("proptest-regressions"),
+            )),
+            ..ProptestConfig::with_cases(CASES)
+        })]
+
         /// Whatever order partials arrive in, and however often each is delivered, the owner
         /// evaluates the same boundaries with the totals the logs define.
         #[test]

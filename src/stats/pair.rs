@@ -447,8 +447,16 @@ mod tests {
         }
     }
 
+    const CASES: u32 = 300;
+
     proptest! {
-        #![proptest_config(ProptestConfig::with_cases(300))]
+        #![proptest_config(ProptestConfig {
+            // Failure seeds beside this file (`*.proptest-regressions`), kept in git.
+            failure_persistence: Some(Box::new(
+                proptest::test_runner::FileFailurePersistence::SourceParallel("proptest-regressions"),
+            )),
+            ..ProptestConfig::with_cases(CASES)
+        })]
 
         /// The fast path against the shared-grid path over the accepted ranges.
         #[test]
