@@ -1042,10 +1042,10 @@ mod tests {
     use super::*;
     use crate::decide::alerts::AlertKey;
 
-    /// An invented seed-packet shop's two-arm test with `units` exposed per arm.
+    /// An invented flower-bulb shop's two-arm test with `units` exposed per arm.
     fn summary(units: u64) -> ExperimentSummary {
         let def = crate::config::experiment_from_json(
-            "packet-window",
+            "bulb-window",
             &serde_json::json!({
                 "variants": [{"name": "control"}, {"name": "clear-window"}],
                 "metric": [{"name": "bought", "kind": "conversion"}]
@@ -1075,7 +1075,7 @@ mod tests {
         Alert {
             id: "a1".into(),
             key: AlertKey {
-                experiment: "packet-window".into(),
+                experiment: "bulb-window".into(),
                 metric: None,
                 variant: None,
                 rule,
