@@ -291,3 +291,31 @@ fn out_of_range_input_names_its_parameter_and_every_accepted_input_is_answered()
     assert!(!internal.is_input_error());
     assert!(internal.to_string().contains("please report"), "{internal}");
 }
+
+#[test]
+fn lift_interval_ends_are_exact_when_a_tiny_shape_control_widens_the_ratio() {
+    // An empty control under Beta(0.001, 0.001) beside a variant with 45 of 50 and its own
+    // Beta(0.1, 0.1) prior: ln R spreads over hundreds while its density near the lower end
+    // varies on the variant's scale. Reference: mpmath 1.3.0 at 40 digits, the root of
+    // P(R <= 1 + lift) = 0.025 solved twice (Newton on a logit-quadrature CDF, and bracketing
+    // on a CDF integrated over the other arm at 50 digits), both giving the value below.
+    let input = json!({
+        "kind": "conversion",
+        "prior": {"alpha": 0.001, "beta": 0.001},
+        "variants": [
+            {"name": "control", "trials": 0, "successes": 0},
+            {"name": "v", "trials": 50, "successes": 45, "prior": {"alpha": 0.1, "beta": 0.1}}
+        ]
+    });
+    let out = run_json(&input);
+    let lower = out["variants"][1]["lift"]["interval"]["lower"]
+        .as_f64()
+        .unwrap();
+    let want = -0.178_932_758_104_35_f64;
+    assert!(
+        ((lower - want) / want).abs() <= 1e-9,
+        "lower lift end {lower:e}, mpmath {want:e}"
+    );
+    // Its upper end is beyond double range (documented as null).
+    assert!(out["variants"][1]["lift"]["interval"]["upper"].is_null());
+}

@@ -847,8 +847,21 @@ impl<'a> Ratio<'a> {
                 f64::NAN
             };
             // Newton converges quadratically: after a step this small the remaining error is
-            // ~1e-14 sd, below what the quadrature resolves, so no confirming evaluation.
-            if newton.is_finite() && newton > lo && newton < hi && (newton - s).abs() <= 1e-7 * sd {
+            // ~1e-14 of the local scale, below what the quadrature resolves, so no confirming
+            // evaluation. The local scale is the smaller of the overall sd and the tail's own
+            // length, tail / density: with a tiny-shape control the sd of ln R runs into the
+            // hundreds while the density near the quantile varies on the narrow arm's scale,
+            // and a step of 1e-7 sd then left lift ends 3e-7 off (mpmath audit).
+            let local = if val.dens > 0.0 {
+                sd.min(target / val.dens)
+            } else {
+                sd
+            };
+            if newton.is_finite()
+                && newton > lo
+                && newton < hi
+                && (newton - s).abs() <= 1e-7 * local
+            {
                 return Ok(newton);
             }
             let next = if newton.is_finite() && newton > lo && newton < hi {
