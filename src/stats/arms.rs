@@ -132,23 +132,7 @@ pub struct Decision {
     pub prob_better_than_control: Option<f64>,
 }
 
-/// P(best), expected loss and P(better than control) only, in input order: the same numbers as
-/// [`compare`] (bit for bit, from the same single pass over the shared grid) without the
-/// intervals, lifts, ROPE and harm probabilities, which cost more than half of a full
-/// `compare`. Meant for continuous re-evaluation against a stopping rule.
-///
-/// Two Gamma arms take the exact one-table route of `pair` (docs/methods.md §10).
-pub fn decide(arms: &Arms, control: usize) -> Result<Vec<Decision>, StatsError> {
-    check_arms(arms, control)?;
-    if let Arms::Gamma(v) = arms {
-        if let Some(fast) = super::pair::decide(v, control) {
-            return fast;
-        }
-    }
-    decide_general(arms, control)
-}
-
-fn check_arms(arms: &Arms, control: usize) -> Result<(), StatsError> {
+pub(super) fn check_arms(arms: &Arms, control: usize) -> Result<(), StatsError> {
     let k = arms.len();
     if !(2..=MAX_ARMS).contains(&k) {
         return Err(StatsError::ArmCount(k));
@@ -181,20 +165,7 @@ pub fn decide_general(arms: &Arms, control: usize) -> Result<Vec<Decision>, Stat
         .collect())
 }
 
-/// Compute every decision quantity for `arms`, returned in input order.
-///
-/// Two Gamma arms take the exact one-table route of `pair` (docs/methods.md §10).
-pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, StatsError> {
-    check_options(arms, opts)?;
-    if let Arms::Gamma(v) = arms {
-        if let Some(fast) = super::pair::compare(v, opts) {
-            return fast;
-        }
-    }
-    compare_general(arms, opts)
-}
-
-fn check_options(arms: &Arms, opts: &CompareOptions) -> Result<(), StatsError> {
+pub(super) fn check_options(arms: &Arms, opts: &CompareOptions) -> Result<(), StatsError> {
     check_arms(arms, opts.control)?;
     tail_levels(opts.level)?;
     if !opts.rope.is_finite() || opts.rope < 0.0 {
@@ -893,6 +864,7 @@ impl<'a> Ratio<'a> {
 
 #[cfg(test)]
 mod tests {
+    use super::super::decide;
     use super::*;
 
     /// Loss of every arm by the full integral alone (no identity), for comparison.

@@ -27,13 +27,44 @@ mod special;
 mod srm;
 
 pub use arms::{
-    compare, compare_general, decide, decide_general, ArmSummary, Arms, CompareOptions, Decision,
-    Lift, MAX_ARMS,
+    compare_general, decide_general, ArmSummary, Arms, CompareOptions, Decision, Lift, MAX_ARMS,
 };
 pub use density::{lift_density, plot_range, posterior_density, PLOT_TAIL};
 pub use drift::{pair_shift_bound, shift_bound};
 pub use posterior::{Beta, Gamma, MAX_LEVEL, MAX_RATE, MAX_SHAPE, MIN_RATE, MIN_SHAPE};
 pub use srm::{sample_ratio_mismatch, SampleRatio, SRM_P_THRESHOLD};
+
+// The two entry points choose the route here, above both `arms` and `pair`, so that each of
+// those depends only on what lies below it.
+
+/// P(best), expected loss and P(better than control) only, in input order: the same numbers as
+/// [`compare()`] (bit for bit, from the same single pass over the shared grid) without the
+/// intervals, lifts, ROPE and harm probabilities, which cost more than half of a full
+/// `compare`. Meant for continuous re-evaluation against a stopping rule.
+///
+/// Two Gamma arms take the exact one-table route of `pair` (docs/methods.md §10).
+pub fn decide(arms: &Arms, control: usize) -> Result<Vec<Decision>, StatsError> {
+    arms::check_arms(arms, control)?;
+    if let Arms::Gamma(v) = arms {
+        if let Some(fast) = pair::decide(v, control) {
+            return fast;
+        }
+    }
+    arms::decide_general(arms, control)
+}
+
+/// Compute every decision quantity for `arms`, returned in input order.
+///
+/// Two Gamma arms take the exact one-table route of `pair` (docs/methods.md §10).
+pub fn compare(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, StatsError> {
+    arms::check_options(arms, opts)?;
+    if let Arms::Gamma(v) = arms {
+        if let Some(fast) = pair::compare(v, opts) {
+            return fast;
+        }
+    }
+    arms::compare_general(arms, opts)
+}
 
 /// Errors from the statistics core.
 #[derive(Clone, Debug, PartialEq, thiserror::Error)]
