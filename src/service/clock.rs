@@ -6,8 +6,7 @@
 use std::sync::Mutex;
 use std::time::{Duration, Instant};
 
-use super::ingest::Item;
-use super::metrics::Source;
+use super::source::Source;
 use crate::event::{Event, Micros, Reject, RejectReason};
 use crate::state::skew::{Direction, OnSkew, TimeBounds, Verdict};
 
@@ -105,7 +104,8 @@ pub struct Skewed {
     pub clamped: bool,
 }
 
-/// Check the time of each decoded event of a batch against its item's reference. Beyond
+/// Check the time of each decoded event of a batch against its item's reference
+/// (`reference(i)` for the batch's item `i`). Beyond
 /// `bounds`, an event is refused (its decode result becomes a `time_ahead` / `time_behind`
 /// reject, which the ingest path counts, reports and dead-letters like any other) or, with
 /// [`OnSkew::Clamp`], given the reference as its time. Events without a time, or whose item
@@ -113,12 +113,12 @@ pub struct Skewed {
 /// once the batch is applied. Allocates only for skewed events.
 pub fn check_batch(
     bounds: &TimeBounds,
-    items: &[Item<'_>],
+    reference: impl Fn(usize) -> Option<Micros>,
     decoded: &mut [Option<Result<Option<Event<'_>>, Reject>>],
 ) -> Vec<Skewed> {
     let mut skewed = Vec::new();
-    for (i, (item, d)) in items.iter().zip(decoded.iter_mut()).enumerate() {
-        let Some(reference) = item.reference else {
+    for (i, d) in decoded.iter_mut().enumerate() {
+        let Some(reference) = reference(i) else {
             continue;
         };
         let Some(Ok(Some(event))) = d else { continue };
@@ -163,7 +163,7 @@ pub fn check_batch(
 pub fn record<T>(
     health: &ClockHealth,
     source: Source,
-    items: &[Item<'_>],
+    reference: impl Fn(usize) -> Option<Micros>,
     decoded: &[Option<Result<Option<Event<'_>>, T>>],
     mut skewed: Vec<Skewed>,
     counted: impl Fn(usize) -> bool,
@@ -174,13 +174,13 @@ pub fn record<T>(
     let mut largest_seen = [0 as Micros; 2];
     // Events still decoded passed (or were clamped to a zero offset); the refused ones are
     // rejects now and are counted from `skewed`.
-    for (i, (item, d)) in items.iter().zip(decoded).enumerate() {
+    for (i, d) in decoded.iter().enumerate() {
         let Some(Ok(Some(event))) = d else { continue };
         let Some(time) = event.time else { continue };
         if !counted(i) {
             continue;
         }
-        match item.reference {
+        match reference(i) {
             None => n_unchecked += 1,
             Some(reference) => {
                 n_checked += 1;
@@ -313,27 +313,11 @@ mod tests {
         }
     }
 
-    fn item(reference: Option<Micros>) -> Item<'static> {
-        Item {
-            shard: "http",
-            offset: None,
-            bytes: b"",
-            mapping: None,
-            topic: None,
-            reference,
-        }
-    }
-
     #[test]
     fn refused_clamped_and_unchecked_events_are_each_counted() {
         let now = 1_800_000_000 * 1_000_000;
-        let items = [
-            item(Some(now)),
-            item(Some(now)),
-            item(Some(now)),
-            item(None),
-            item(Some(now)),
-        ];
+        let references = [Some(now), Some(now), Some(now), None, Some(now)];
+        let reference = |i: usize| references[i];
         let times = [
             Some(now - H),
             Some(now + 3 * H),
@@ -346,8 +330,8 @@ mod tests {
         };
         let health = ClockHealth::default();
         let mut decoded = decode();
-        let found = check_batch(&TimeBounds::default(), &items, &mut decoded);
-        let (checked, skewed) = record(&health, Source::Http, &items, &decoded, found, |_| true);
+        let found = check_batch(&TimeBounds::default(), reference, &mut decoded);
+        let (checked, skewed) = record(&health, Source::Http, reference, &decoded, found, |_| true);
         assert_eq!(checked, 3);
         assert_eq!(
             skewed
@@ -373,9 +357,11 @@ mod tests {
             ..TimeBounds::default()
         };
         let mut decoded = decode();
-        let found = check_batch(&clamp, &items, &mut decoded);
+        let found = check_batch(&clamp, reference, &mut decoded);
         // Item 2 was applied before (a redelivery): not counted again.
-        let (checked, skewed) = record(&health, Source::Kafka, &items, &decoded, found, |i| i != 2);
+        let (checked, skewed) = record(&health, Source::Kafka, reference, &decoded, found, |i| {
+            i != 2
+        });
         assert_eq!(checked, 2);
         assert!(skewed.iter().all(|s| s.clamped));
         for i in [1, 2] {

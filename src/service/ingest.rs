@@ -158,7 +158,7 @@ pub fn apply_batch_checked(
         .iter()
         .map(|item| Some(decode_item(item, max_event_bytes)))
         .collect();
-    let skewed = super::clock::check_batch(bounds, items, &mut decoded);
+    let skewed = super::clock::check_batch(bounds, |i| items[i].reference, &mut decoded);
     let results: Vec<Option<Result<Outcome, Reject>>> = {
         let mut shards = shards
             .lock()
@@ -260,10 +260,14 @@ pub fn apply_batch_checked(
         results
     };
     // Counted only for items applied now: a redelivery was counted when first applied.
-    let (checked, skewed) =
-        super::clock::record(&metrics.clock, source, items, &decoded, skewed, |i| {
-            results[i].is_some()
-        });
+    let (checked, skewed) = super::clock::record(
+        &metrics.clock,
+        source,
+        |i| items[i].reference,
+        &decoded,
+        skewed,
+        |i| results[i].is_some(),
+    );
     metrics.count_clock(source, checked, &skewed);
     let report = BatchReport {
         results,

@@ -10,27 +10,7 @@ use crate::event::{Outcome, RejectReason};
 use crate::state::skew::Direction;
 use crate::summary::ExperimentSummary;
 
-/// Where an event came from; a label on the event counters.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Source {
-    /// `POST /v1/events`.
-    Http,
-    /// The Kafka consumer.
-    Kafka,
-    /// The built-in traffic simulator of `demo`.
-    Simulator,
-}
-
-impl Source {
-    /// Label value.
-    pub fn as_str(self) -> &'static str {
-        match self {
-            Source::Http => "http",
-            Source::Kafka => "kafka",
-            Source::Simulator => "simulator",
-        }
-    }
-}
+pub use super::source::Source;
 
 /// All metrics of one process, in their own registry (no global state, so tests can run
 /// several services in one process).

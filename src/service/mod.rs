@@ -21,6 +21,7 @@ pub mod ingest;
 pub mod metrics;
 pub mod readings;
 pub mod recorder;
+mod source;
 pub mod store;
 
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
