@@ -197,18 +197,18 @@ pub struct Changelog {
 /// Counts deliveries the broker refused, so a publication can tell that one of its chunks
 /// was lost (librdkafka reports that only in the delivery callback).
 #[derive(Default)]
-struct DeliveryCheck {
+pub(super) struct DeliveryCheck {
     refused: std::sync::atomic::AtomicU64,
     last: Mutex<Option<KafkaError>>,
 }
 
 impl DeliveryCheck {
-    fn refused(&self) -> u64 {
+    pub(super) fn refused(&self) -> u64 {
         self.refused.load(std::sync::atomic::Ordering::SeqCst)
     }
 
     /// `Err` with the last refusal if any delivery was refused since `before`.
-    fn check(&self, before: u64) -> Result<(), KafkaError> {
+    pub(super) fn check(&self, before: u64) -> Result<(), KafkaError> {
         if self.refused() == before {
             return Ok(());
         }

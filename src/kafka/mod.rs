@@ -26,6 +26,7 @@ use tokio_util::task::TaskTracker;
 
 pub mod changelog;
 pub mod client;
+mod group;
 mod partitions;
 
 use changelog::Changelog;
@@ -130,10 +131,12 @@ pub fn start(
         )),
     };
     let changelog: Arc<OnceLock<Changelog>> = Arc::new(OnceLock::new());
+    let group_topic: Arc<OnceLock<group::GroupTopic>> = Arc::new(OnceLock::new());
     let context = PartitionContext {
         service: Arc::clone(&service),
         dead_letters: dead_letters.clone(),
         changelog: Arc::clone(&changelog),
+        group: Arc::clone(&group_topic),
     };
     let mut consumer_config = client_config(cfg);
     if !service.mapped_topics().is_empty() {
@@ -164,7 +167,28 @@ pub fn start(
         dead_letter_topic: cfg.dead_letter_topic.clone(),
         snapshot_interval: service.snapshot_interval(),
         changelog_interval: cfg.changelog_interval,
+        group: Arc::clone(&group_topic),
     };
+    if !service.mapped_topics().is_empty() {
+        // Experiments of co-partitioned topics are decided by one owner on the partials of
+        // every partition: follow them once the topic is open.
+        let service = Arc::clone(&service);
+        let shutdown = shutdown.clone();
+        let kafka_cfg = cfg.clone();
+        let group_topic = Arc::clone(&group_topic);
+        tracker.spawn_blocking(move || {
+            while group_topic.get().is_none() {
+                if shutdown.is_cancelled() {
+                    return;
+                }
+                std::thread::sleep(Duration::from_millis(100));
+            }
+            let g = group_topic.get().expect("checked above");
+            if let Err(e) = group::follow(&kafka_cfg, g, &service, &shutdown) {
+                tracing::error!(error = %e, "cannot follow the partials topic; experiments of co-partitioned topics are not evaluated here");
+            }
+        });
+    }
     let handle = tokio::runtime::Handle::current();
     let kafka_cfg = cfg.clone();
     {
@@ -243,6 +267,27 @@ pub fn start(
         }
         let Some(c) = changelog.get() else { return };
         let mapped = service.mapped_topics();
+        if !mapped.is_empty() {
+            let topic = group::topic_for(c.topic());
+            loop {
+                if shutdown.is_cancelled() {
+                    return;
+                }
+                match handle.block_on(group::GroupTopic::open(&kafka_cfg, &topic)) {
+                    Ok(g) => {
+                        let partitions = changelog::input_partitions(&kafka_cfg, &mapped).unwrap_or(1);
+                        service.start_group(partitions.max(1) as u32);
+                        tracing::info!(topic, partitions, "partials topic ready: experiments of co-partitioned topics are decided by their owner at reference-time boundaries");
+                        let _ = loop_cfg.group.set(g);
+                        break;
+                    }
+                    Err(e) => {
+                        tracing::warn!(topic, error = %e, "partials topic not reachable yet; retrying");
+                        std::thread::sleep(Duration::from_secs(1));
+                    }
+                }
+            }
+        }
         let topics: Vec<&str> = kafka_cfg
             .topics
             .iter()
@@ -266,7 +311,12 @@ struct LoopConfig {
     dead_letter_topic: Option<String>,
     snapshot_interval: Duration,
     changelog_interval: Duration,
+    /// The partials topic, once open (co-partitioned topics only).
+    group: Arc<OnceLock<group::GroupTopic>>,
 }
+
+/// How often partials are published while records flow.
+const GROUP_PUBLISH_INTERVAL: Duration = Duration::from_millis(250);
 
 fn probe_loop(probe: &BaseConsumer, service: &Service, shutdown: &CancellationToken) {
     let mut last: Option<bool> = None;
@@ -341,6 +391,7 @@ fn consume_loop(
     let mut last_error_log = Instant::now() - Duration::from_secs(60);
     let mut last_save = Instant::now();
     let mut last_publish = Instant::now();
+    let mut last_group = Instant::now();
     while !shutdown.is_cancelled() {
         let mut batch = Vec::new();
         let deadline = Instant::now() + MAX_BATCH_WAIT;
@@ -368,19 +419,34 @@ fn consume_loop(
         if !batch.is_empty() {
             apply_messages(consumer, service, dead_letters, cfg, &batch, &mut shard_ids);
         }
-        if last_save.elapsed() >= cfg.snapshot_interval {
+        // Partials before any save or changelog publication: a restored shard re-creates
+        // only the boundary entries after its image, so those before must be out already.
+        let group_published = match cfg.group.get() {
+            Some(g) if last_group.elapsed() >= GROUP_PUBLISH_INTERVAL
+                || last_save.elapsed() >= cfg.snapshot_interval
+                || last_publish.elapsed() >= cfg.changelog_interval =>
+            {
+                last_group = Instant::now();
+                group::publish_pending(service, g)
+            }
+            _ => true,
+        };
+        if last_save.elapsed() >= cfg.snapshot_interval && group_published {
             if flush_dead_letters(dead_letters, service) {
                 service.save_dirty(ShardId::is_kafka);
             }
             last_save = Instant::now();
         }
-        if last_publish.elapsed() >= cfg.changelog_interval {
+        if last_publish.elapsed() >= cfg.changelog_interval && group_published {
             // Dead letters first, for the same reason as before a local save.
             if flush_dead_letters(dead_letters, service) {
                 publish_changed(service, changelog, None);
             }
             last_publish = Instant::now();
         }
+    }
+    if let Some(g) = cfg.group.get() {
+        group::publish_pending(service, g);
     }
     if !flush_dead_letters(dead_letters, service) {
         tracing::error!(

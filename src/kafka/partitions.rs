@@ -30,6 +30,8 @@ pub(super) struct PartitionContext {
     pub(super) dead_letters: Option<Arc<DeadLetterProducer>>,
     /// Set once the changelog is reachable (before the consumer subscribes).
     pub(super) changelog: Arc<OnceLock<Changelog>>,
+    /// Set once the partials topic is open (co-partitioned topics only).
+    pub(super) group: Arc<OnceLock<super::group::GroupTopic>>,
 }
 
 /// Publish every Kafka shard whose position moved since its last publication; `only` limits
@@ -271,6 +273,11 @@ impl PartitionContext {
         ids.dedup();
         if ids.is_empty() {
             return;
+        }
+        // Partials first: the next holder re-creates only the boundary entries after the
+        // image saved here.
+        if let Some(g) = self.group.get() {
+            super::group::publish_pending(&self.service, g);
         }
         flush_dead_letters(self.dead_letters.as_deref(), &self.service);
         self.service.save_dirty(|id| ids.iter().any(|x| x == id));

@@ -199,6 +199,12 @@ pub fn apply_batch_checked(
                         continue;
                     }
                 }
+                // A co-partitioned shard deciding across instances records its totals as of
+                // each reference-time boundary this record passes, before applying it; the
+                // reference of every record counts (refused ones too: the log has them).
+                if let (Some(_), Some(reference)) = (items[j].topic, items[j].reference) {
+                    shard.pass_reference(reference);
+                }
                 // Applied in place: an event is ~150 bytes, and moving each one out of the
                 // batch cost more than the copy is worth.
                 let event = match &decoded[j] {
@@ -218,6 +224,8 @@ pub fn apply_batch_checked(
                 };
                 if items[j].topic.is_some() {
                     let assignments = items[j].mapping.is_some_and(Mapping::names_exposures);
+                    // Decided at boundaries by the experiment's owner, not by event here.
+                    let cadence = cadence.filter(|_| shard.boundaries().is_none());
                     let result = apply_co_partitioned(
                         shard,
                         event,

@@ -17,6 +17,7 @@ pub mod catalog;
 pub mod clock;
 mod evaluate;
 pub mod fleet;
+pub mod group;
 pub mod ingest;
 pub mod metrics;
 pub mod readings;
@@ -132,6 +133,8 @@ pub struct Service {
     /// (experiment, metric, message) of numbers that could not be computed, already logged:
     /// a failing metric is logged once, not at every look.
     failures_logged: Mutex<std::collections::HashSet<(String, String, String)>>,
+    /// Set when experiments are decided across the consumer group (co-partitioned topics).
+    group: OnceLock<group::Group>,
 }
 
 /// The experiment the service's unit tests count, defined as over the API.
@@ -197,6 +200,7 @@ impl Service {
             refused_bytes: std::sync::atomic::AtomicU64::new(0),
             catalog_publisher: OnceLock::new(),
             failures_logged: Mutex::default(),
+            group: OnceLock::new(),
         }
     }
 

@@ -23,9 +23,13 @@ use crate::state::shards::{Shard, ShardImage};
 use crate::state::{ConversionTotals, DefectTotals, MetricTotals, OutcomeCounts};
 
 const MAGIC: &[u8; 8] = b"PSTDSHRD";
-/// 3 added each unit's exposure second and the co-partitioned shards' topic offsets,
-/// watermarks and held outcomes; version 2 is still read (see [`decode`]).
-const VERSION: u32 = 3;
+/// 4 added the co-partitioned shards' reference-time boundary mark; 3 added each unit's
+/// exposure second and the co-partitioned shards' topic offsets, watermarks and held
+/// outcomes; versions 2 and 3 are still read (see [`decode`]).
+const VERSION: u32 = 4;
+/// The version before the boundary mark (read as "no mark": boundaries restart at the
+/// first record read after the restore).
+const VERSION_WITHOUT_BOUNDARY_MARK: u32 = 3;
 /// The previous version, read with no exposure times (units count as exposed since the epoch).
 const VERSION_WITHOUT_EXPOSURES: u32 = 2;
 const NONE_I64: i64 = i64::MIN;
@@ -785,7 +789,7 @@ fn write_image<W: Write>(image: &ShardImage, out: W) -> io::Result<W> {
 /// Write the encoding of `image` in format `version` ([`VERSION`], or the previous one for
 /// tests of reading it).
 fn write_image_as<W: Write>(image: &ShardImage, out: W, version: u32) -> io::Result<W> {
-    let current = version == VERSION;
+    let current = version >= VERSION_WITHOUT_BOUNDARY_MARK;
     let mut w = Writer::new(out);
     w.put(MAGIC);
     w.u32(version);
@@ -880,6 +884,9 @@ fn write_image_as<W: Write>(image: &ShardImage, out: W, version: u32) -> io::Res
         w.u8(u8::from(event.id.is_some()));
         w.str(event.id.as_deref().unwrap_or(""));
     }
+    if version >= 4 {
+        w.i64(image.boundary_mark.unwrap_or(NONE_I64));
+    }
     w.finish()
 }
 
@@ -955,12 +962,12 @@ pub fn decode(bytes: &[u8]) -> Result<ShardImage, String> {
         return Err("not a posteriord shard file".into());
     }
     let version = r.u32()?;
-    if version != VERSION && version != VERSION_WITHOUT_EXPOSURES {
+    if !(VERSION_WITHOUT_EXPOSURES..=VERSION).contains(&version) {
         return Err(format!(
-            "format version {version}; this build reads {VERSION_WITHOUT_EXPOSURES} and {VERSION}"
+            "format version {version}; this build reads {VERSION_WITHOUT_EXPOSURES} to {VERSION}"
         ));
     }
-    let current = version == VERSION;
+    let current = version >= VERSION_WITHOUT_BOUNDARY_MARK;
     let next_offset = opt(r.i64()?);
     let n_experiments = r.len(8)?;
     let mut experiments = Vec::with_capacity(n_experiments);
@@ -1088,6 +1095,9 @@ pub fn decode(bytes: &[u8]) -> Result<ShardImage, String> {
                     exposure: has_exposure.then_some(exposure),
                 },
             });
+        }
+        if version >= 4 {
+            image.boundary_mark = opt(r.i64()?);
         }
     }
     if r.pos != body.len() {

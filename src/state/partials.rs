@@ -7,6 +7,7 @@
 
 use std::collections::BTreeMap;
 
+use super::ExperimentSnapshot;
 use crate::event::Micros;
 
 /// Totals that add up across partitions (an experiment's per-arm totals, or a test's vector).
@@ -181,6 +182,16 @@ impl<T: Tally> Merger<T> {
         }
     }
 
+    /// The smallest watermark over the partitions (`None` while any has sent nothing).
+    pub fn low_watermark(&self) -> Option<Micros> {
+        self.partitions
+            .iter()
+            .map(|p| p.as_ref().map(|h| h.watermark))
+            .collect::<Option<Vec<_>>>()?
+            .into_iter()
+            .min()
+    }
+
     /// The last evaluated boundary.
     pub fn last_evaluated(&self) -> Option<Micros> {
         self.evaluated
@@ -265,6 +276,175 @@ impl<T: Tally> BoundaryLog<T> {
     pub fn acknowledge(&mut self, b: Micros) {
         if let Some(i) = self.pending.iter().rposition(|(k, _)| *k <= b) {
             self.pending.drain(..i);
+        }
+    }
+}
+
+/// Most boundary entries one experiment keeps in a shard while no owner acknowledges them
+/// (an owner acknowledges every evaluation, so this is reached only when no instance owns the
+/// experiment for a long time); the oldest are dropped first and counted.
+pub const MAX_PENDING: usize = 4096;
+
+/// One experiment's entries in a shard's [`ShardBoundaries`].
+#[derive(Debug, Clone, PartialEq)]
+pub struct ExperimentEntries {
+    /// (first boundary passed, totals as of it and every later boundary up to the next
+    /// entry), oldest first, not yet acknowledged by the owner.
+    pub pending: Vec<(Micros, ExperimentSnapshot)>,
+    /// Whether entries were added or dropped since the last [`ShardBoundaries::take_changed`].
+    changed: bool,
+}
+
+/// One co-partitioned shard's side for all its experiments: the totals of every experiment as
+/// of each boundary (multiple of `every`) of reference time that the shard's records pass, in
+/// the order the shard applies them. The shard calls [`ShardBoundaries::advance`] with each
+/// record's reference time before applying the record, so the totals recorded for boundary
+/// `b` are exactly those of the records before the first one at or after `b`.
+#[derive(Debug, Clone)]
+pub struct ShardBoundaries {
+    every: Micros,
+    watermark: Micros,
+    logs: BTreeMap<String, ExperimentEntries>,
+    /// Totals of each experiment's last entry (kept when its pending entries are pruned),
+    /// to skip boundaries without change.
+    last: BTreeMap<String, ExperimentSnapshot>,
+    /// Entries dropped at [`MAX_PENDING`].
+    dropped: u64,
+}
+
+impl ShardBoundaries {
+    /// A shard with no records yet; boundaries every `every` µs of reference time.
+    pub fn new(every: Micros) -> ShardBoundaries {
+        ShardBoundaries {
+            every: every.max(1),
+            watermark: Micros::MIN,
+            logs: BTreeMap::new(),
+            last: BTreeMap::new(),
+            dropped: 0,
+        }
+    }
+
+    /// The boundary spacing (µs).
+    pub fn every(&self) -> Micros {
+        self.every
+    }
+
+    /// The reference-time watermark: every record before it has been applied.
+    pub fn watermark(&self) -> Option<Micros> {
+        (self.watermark != Micros::MIN).then_some(self.watermark)
+    }
+
+    /// Entries dropped at [`MAX_PENDING`] since start.
+    pub fn dropped(&self) -> u64 {
+        self.dropped
+    }
+
+    /// Whether advancing to `t` passes a boundary (then [`Self::advance`] needs the totals).
+    #[inline]
+    pub fn passes(&self, t: Micros) -> bool {
+        t > self.watermark
+            && self.watermark != Micros::MIN
+            && self.watermark.div_euclid(self.every) != t.div_euclid(self.every)
+    }
+
+    /// Advance the watermark to `t` (a record's reference time, before the record is applied,
+    /// or an idle shard's declared time). When boundaries are passed, `totals` gives every
+    /// experiment's current totals, recorded as of the first boundary passed (they hold for
+    /// every boundary up to `t`); an experiment whose totals did not change since its last
+    /// entry gets none. Returns whether a boundary was passed.
+    pub fn advance<I>(&mut self, t: Micros, totals: impl FnOnce() -> I) -> bool
+    where
+        I: IntoIterator<Item = ExperimentSnapshot>,
+    {
+        if t <= self.watermark {
+            return false;
+        }
+        let passes = self.passes(t);
+        let before = std::mem::replace(&mut self.watermark, t);
+        if !passes {
+            return false;
+        }
+        let first_passed = (before.div_euclid(self.every) + 1) * self.every;
+        for snap in totals() {
+            if snap.is_empty() {
+                continue;
+            }
+            let id = snap.def.state_key();
+            if self.last.get(&id) == Some(&snap) {
+                continue;
+            }
+            let log = self.logs.entry(id.clone()).or_insert(ExperimentEntries {
+                pending: Vec::new(),
+                changed: false,
+            });
+            log.pending.push((first_passed, snap.clone()));
+            log.changed = true;
+            if log.pending.len() > MAX_PENDING {
+                log.pending.remove(0);
+                self.dropped += 1;
+            }
+            self.last.insert(id, snap);
+        }
+        true
+    }
+
+    /// The pending entries of experiment `id` (its state key).
+    pub fn entries(&self, id: &str) -> &[(Micros, ExperimentSnapshot)] {
+        self.logs.get(id).map_or(&[], |l| &l.pending)
+    }
+
+    /// Every experiment with entries, by state key.
+    pub fn experiments(&self) -> impl Iterator<Item = (&str, &[(Micros, ExperimentSnapshot)])> {
+        self.logs.iter().map(|(k, l)| (k.as_str(), l.pending.as_slice()))
+    }
+
+    /// The experiments whose entries changed since the last call (to publish), clearing the
+    /// marks.
+    pub fn take_changed(&mut self) -> Vec<String> {
+        let mut out = Vec::new();
+        for (k, l) in &mut self.logs {
+            if std::mem::take(&mut l.changed) {
+                out.push(k.clone());
+            }
+        }
+        out
+    }
+
+    /// Mark every experiment changed (a publication failed: send everything again).
+    pub fn mark_all_changed(&mut self) {
+        for l in self.logs.values_mut() {
+            l.changed = true;
+        }
+    }
+
+    /// The owner of experiment `id` evaluated boundaries up to `b`: entries before the latest
+    /// one at or before `b` are no longer needed (that one stays, as the base of later
+    /// boundaries).
+    pub fn acknowledge(&mut self, id: &str, b: Micros) {
+        if let Some(log) = self.logs.get_mut(id) {
+            if let Some(i) = log.pending.iter().rposition(|(k, _)| *k <= b) {
+                if i > 0 {
+                    log.pending.drain(..i);
+                    log.changed = true;
+                }
+            }
+        }
+    }
+
+    /// Restore from an image: the watermark and every experiment's pending entries.
+    pub fn restore(&mut self, watermark: Option<Micros>, logs: Vec<(String, Vec<(Micros, ExperimentSnapshot)>)>) {
+        self.watermark = watermark.unwrap_or(Micros::MIN);
+        for (id, pending) in logs {
+            if let Some((_, last)) = pending.last() {
+                self.last.insert(id.clone(), last.clone());
+            }
+            self.logs.insert(
+                id,
+                ExperimentEntries {
+                    pending,
+                    changed: true,
+                },
+            );
         }
     }
 }

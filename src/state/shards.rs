@@ -10,6 +10,7 @@ use std::sync::Arc;
 
 use super::image::{ExperimentImage, ImageMismatch};
 use super::members::exposure_secs;
+use super::partials::ShardBoundaries;
 use super::{Engine, ExperimentSnapshot, ExperimentState};
 use crate::event::{Event, Micros, Outcome, Reject};
 use crate::experiment::ExperimentDef;
@@ -126,6 +127,11 @@ pub struct Shard {
     held: BTreeMap<(Micros, u64), Event<'static>>,
     /// Arrival counter of `held`.
     held_seq: u64,
+    /// Co-partitioned shards whose experiments are decided across instances: the totals as
+    /// of each reference-time boundary (docs/scaling-design.md).
+    boundaries: Option<ShardBoundaries>,
+    /// The boundary mark of the image this shard was restored from, until boundaries are kept.
+    restored_mark: Option<Micros>,
 }
 
 /// Why a held outcome is decided now.
@@ -150,7 +156,44 @@ impl Shard {
             outcome_mark: None,
             held: BTreeMap::new(),
             held_seq: 0,
+            boundaries: None,
+            restored_mark: None,
         }
+    }
+
+    /// Keep totals as of reference-time boundaries every `every` µs from now on (a
+    /// co-partitioned shard of an instance in a group; nothing if already kept).
+    pub fn keep_boundaries(&mut self, every: Micros) {
+        if self.boundaries.is_none() {
+            let mut b = ShardBoundaries::new(every);
+            b.restore(self.restored_mark.take(), Vec::new());
+            self.boundaries = Some(b);
+        }
+    }
+
+    /// The boundary log, if this shard keeps one.
+    pub fn boundaries(&self) -> Option<&ShardBoundaries> {
+        self.boundaries.as_ref()
+    }
+
+    /// The boundary log, mutably (to acknowledge or take what changed).
+    pub fn boundaries_mut(&mut self) -> Option<&mut ShardBoundaries> {
+        self.boundaries.as_mut()
+    }
+
+    /// A record with reference time `t` is about to be applied (or the shard is idle up to
+    /// `t`): record the totals as of the boundaries passed. Returns whether any was passed.
+    #[inline]
+    pub fn pass_reference(&mut self, t: Micros) -> bool {
+        let Some(b) = self.boundaries.as_mut() else {
+            return false;
+        };
+        if !b.passes(t) {
+            // Moves the watermark only (no totals needed).
+            return b.advance(t, std::iter::empty);
+        }
+        let engine = &self.engine;
+        b.advance(t, || engine.experiments().map(|e| e.snapshot()))
     }
 
     /// Move the position of input topic `topic` past `offset` (co-partitioned shards, which
@@ -337,6 +380,9 @@ pub struct ShardImage {
     pub outcome_mark: Option<Micros>,
     /// Outcomes held for the assignments to catch up, earliest first.
     pub held: Vec<Event<'static>>,
+    /// Co-partitioned shards keeping boundaries: the reference-time watermark, so a restored
+    /// shard records the same boundaries its records pass as the shard before it did.
+    pub boundary_mark: Option<Micros>,
 }
 
 impl Shard {
@@ -360,6 +406,11 @@ impl Shard {
             watermark: self.watermark,
             outcome_mark: self.outcome_mark,
             held: self.held.values().cloned().collect(),
+            boundary_mark: self
+                .boundaries
+                .as_ref()
+                .and_then(ShardBoundaries::watermark)
+                .or(self.restored_mark),
         }
     }
 
@@ -374,6 +425,7 @@ impl Shard {
         shard.streams = image.streams.into_iter().collect();
         shard.watermark = image.watermark;
         shard.outcome_mark = image.outcome_mark;
+        shard.restored_mark = image.boundary_mark;
         for event in image.held {
             shard.hold(event);
         }
@@ -420,6 +472,9 @@ pub struct Shards {
     /// How far (event time) the other co-partitioned topics may run ahead of the assignments
     /// before an outcome held for them is decided anyway.
     lateness: Micros,
+    /// Boundary spacing for co-partitioned shards when experiments are decided across
+    /// instances (`None`: each shard's experiments are evaluated by event, as before).
+    boundary_every: Option<Micros>,
 }
 
 /// Default of [`Shards::lateness`]: five minutes (see docs/events.md).
@@ -433,7 +488,24 @@ impl Shards {
             shards: BTreeMap::new(),
             remote: BTreeMap::new(),
             lateness: DEFAULT_LATENESS,
+            boundary_every: None,
         }
+    }
+
+    /// Keep reference-time boundaries every `every` µs in every co-partitioned shard (present
+    /// and future): their experiments are decided by one owner on merged totals.
+    pub fn keep_boundaries(&mut self, every: Micros) {
+        self.boundary_every = Some(every);
+        for (id, shard) in &mut self.shards {
+            if id.is_co_partitioned() {
+                shard.keep_boundaries(every);
+            }
+        }
+    }
+
+    /// The boundary spacing, when co-partitioned shards keep boundaries.
+    pub fn boundary_every(&self) -> Option<Micros> {
+        self.boundary_every
     }
 
     /// The bound on holding outcomes for the assignments (see [`Shard::take_releasable`]).
@@ -454,10 +526,19 @@ impl Shards {
     /// The shard `id`, created empty if absent.
     pub fn shard_mut(&mut self, id: &str) -> &mut Shard {
         if !self.shards.contains_key(id) {
-            self.shards
-                .insert(ShardId::from(id), Shard::new(&self.defs));
+            let id = ShardId::from(id);
+            let mut shard = Shard::new(&self.defs);
+            if let (Some(every), true) = (self.boundary_every, id.is_co_partitioned()) {
+                shard.keep_boundaries(every);
+            }
+            self.shards.insert(id, shard);
         }
         self.shards.get_mut(id).expect("inserted above")
+    }
+
+    /// The shard `id`, mutably, if present (never created).
+    pub fn shard_mut_existing(&mut self, id: &str) -> Option<&mut Shard> {
+        self.shards.get_mut(id)
     }
 
     /// The shard `id`, if present.
@@ -486,6 +567,9 @@ impl Shards {
             if !current {
                 shard.engine.define(Arc::clone(def));
             }
+        }
+        if let (Some(every), true) = (self.boundary_every, id.is_co_partitioned()) {
+            shard.keep_boundaries(every);
         }
         self.shards.insert(id, shard);
     }

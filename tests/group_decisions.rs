@@ -1,0 +1,262 @@
+//! One experiment decided across two instances of a consumer group, on a real Apache Kafka
+//! broker: a unit-keyed assignment topic of 4 partitions (produced by the independent Python
+//! client with explicit record timestamps), split between two posteriord instances. Each
+//! experiment must be evaluated by exactly one instance (the holder of input partition
+//! `hash(id) mod 4`), at reference-time boundaries, on the totals of every partition as of the
+//! boundary — checked against an independent model computed here from the produced lines and
+//! their record timestamps — while both instances read exact totals.
+//!
+//! The invented team: Tidewater Ferries, whose boarding app assigns riders to two experiments.
+
+mod common;
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::time::Duration;
+
+use common::kafka::{brokers, unique};
+use common::{wait_for, Service};
+use rand::{Rng, SeedableRng};
+use serde_json::{json, Value};
+
+const EXPERIMENTS: [(&str, [&str; 2]); 2] = [
+    ("quick-board", ["queue", "tap"]),
+    ("seat-map", ["list", "map"]),
+];
+const PARTITIONS: u32 = 4;
+const EVERY_SECS: i64 = 60;
+
+fn config(brokers: &str, group: &str, topic: &str, changelog: &str) -> String {
+    let mut s = format!(
+        r#"[http]
+addr = "127.0.0.1:0"
+[store]
+snapshot_interval_ms = 250
+[alerts]
+evaluate_every_secs = {EVERY_SECS}
+[kafka]
+brokers = "{brokers}"
+group = "{group}"
+changelog_topic = "{changelog}"
+changelog_interval_ms = 300
+[kafka.properties]
+"session.timeout.ms" = 6000
+"heartbeat.interval.ms" = 500
+
+[[source]]
+name = "tidewater-assign"
+topics = ["{topic}"]
+unit = "rider.id"
+time = "assigned_ms"
+time_format = "epoch_millis"
+experiment = "exp.name"
+variant = "exp.arm"
+exposures = ["assigned"]
+constants = {{ event = "assigned" }}
+"#
+    );
+    for (id, [a, b]) in EXPERIMENTS {
+        s.push_str(&format!(
+            r#"
+[[experiment]]
+id = "{id}"
+control = "{a}"
+variants = [ {{ name = "{a}" }}, {{ name = "{b}" }} ]
+[[experiment.metric]]
+name = "boarded"
+kind = "conversion"
+"#
+        ));
+    }
+    s
+}
+
+/// One produced record: reference (record timestamp, ms), event time (ms), rider, experiment,
+/// arm.
+struct Record {
+    reference: i64,
+    time: i64,
+    rider: String,
+    experiment: &'static str,
+    arm: usize,
+}
+
+/// Riders assigned over 40 minutes ending a minute ago; record timestamps trail the event
+/// times by up to 2 s and ascend in produce order. Then, 10 minutes later, closing records of
+/// an unconfigured experiment on every partition (with high probability), so every partition's
+/// watermark passes the last boundary.
+fn workload(seed: u64) -> (Vec<Record>, Vec<String>) {
+    let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
+    let now = time::OffsetDateTime::now_utc().unix_timestamp() * 1000;
+    let start = now - 41 * 60 * 1000;
+    let mut out = Vec::new();
+    let mut reference = start;
+    for i in 0..3000 {
+        reference += rng.random_range(0..1_600);
+        let time = reference - rng.random_range(0..2_000);
+        let experiment = EXPERIMENTS[rng.random_range(0..2)].0;
+        // Some riders assigned again (counted once).
+        let rider = format!("rider-{}", if i % 10 == 9 { i - 5 } else { i });
+        out.push(Record {
+            reference,
+            time,
+            rider,
+            experiment,
+            arm: rng.random_range(0..2),
+        });
+    }
+    let mut lines: Vec<String> = out.iter().map(line).collect();
+    let close = reference + 10 * 60 * 1000;
+    for k in 0..64 {
+        lines.push(format!(
+            "{close}\t{}",
+            json!({"rider": {"id": format!("closer-{k}")}, "assigned_ms": close,
+                   "exp": {"name": "retired-banner", "arm": "old"}})
+        ));
+    }
+    (out, lines)
+}
+
+fn line(r: &Record) -> String {
+    let arms = EXPERIMENTS.iter().find(|e| e.0 == r.experiment).unwrap().1;
+    format!(
+        "{}\t{}",
+        r.reference,
+        json!({"rider": {"id": r.rider}, "assigned_ms": r.time,
+               "exp": {"name": r.experiment, "arm": arms[r.arm]}})
+    )
+}
+
+/// The independent model: units per arm of `experiment` counting the records with a record
+/// timestamp before `b` (ms), each rider once (its first record), and the latest event time
+/// among them.
+fn model(records: &[Record], experiment: &str, b: i64) -> (Vec<u64>, Option<i64>) {
+    let mut seen = BTreeSet::new();
+    let mut units = vec![0u64; 2];
+    let mut latest = None;
+    for r in records
+        .iter()
+        .filter(|r| r.experiment == experiment && r.reference < b)
+    {
+        latest = Some(latest.map_or(r.time, |l: i64| l.max(r.time)));
+        if seen.insert(r.rider.clone()) {
+            units[r.arm] += 1;
+        }
+    }
+    (units, latest)
+}
+
+fn units_in(doc: &Value) -> Vec<u64> {
+    (0..2)
+        .map(|i| doc["variants"][i]["units"].as_u64().unwrap())
+        .collect()
+}
+
+/// The evaluations `service` recorded for experiment `id` (none: it did not evaluate it).
+fn history(service: &Service, id: &str) -> Vec<Value> {
+    let (status, doc) = service.get(&format!("/v1/experiments/{id}/history?metric=boarded"));
+    if status == 404 {
+        return Vec::new();
+    }
+    assert_eq!(status, 200, "{doc}");
+    doc["points"].as_array().cloned().unwrap_or_default()
+}
+
+fn millis(text: &str) -> i64 {
+    let t = time::OffsetDateTime::parse(text, &time::format_description::well_known::Rfc3339)
+        .unwrap();
+    (t.unix_timestamp_nanos() / 1_000_000) as i64
+}
+
+#[test]
+fn each_experiment_is_decided_once_at_boundaries_on_every_partitions_totals() {
+    let brokers = brokers();
+    let topic = unique("tidewater-assign");
+    let group = unique("tidewater-group");
+    let changelog = unique("tidewater-changelog");
+    let scratch = tempfile::tempdir().unwrap();
+    let (records, lines) = workload(7);
+    let file = scratch.path().join("assign.ndjson");
+    std::fs::write(&file, lines.join("\n") + "\n").unwrap();
+    let out = std::process::Command::new("python3")
+        .arg(concat!(env!("CARGO_MANIFEST_DIR"), "/tests/tools/produce.py"))
+        .args(["--brokers", &brokers, "--topic", &topic])
+        .args(["--partitions", &PARTITIONS.to_string()])
+        .args(["--key", "rider.id", "--timestamps"])
+        .arg(&file)
+        .output()
+        .expect("python3 tests/tools/produce.py (confluent-kafka)");
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+
+    let cfg = config(&brokers, &group, &topic, &changelog);
+    let a = Service::start(&cfg);
+    let b = Service::start(&cfg);
+    let instances = [&a, &b];
+
+    // Exact totals on both instances (each reads the other's partitions via the changelog).
+    let far = i64::MAX;
+    for (id, _) in EXPERIMENTS {
+        let (want, _) = model(&records, id, far);
+        for s in instances {
+            wait_for(Duration::from_secs(90), "exact totals on every instance", || {
+                let (status, doc) = s.get(&format!("/v1/experiments/{id}"));
+                (status == 200 && units_in(&doc) == want).then_some(())
+            });
+        }
+    }
+
+    for (id, _) in EXPERIMENTS {
+        // The last boundary before the closing records: every assignment counted.
+        let last_ref = records.iter().map(|r| r.reference).max().unwrap();
+        let last_boundary = (last_ref / 1000 / EVERY_SECS + 1) * EVERY_SECS * 1000;
+        let (final_units, _) = model(&records, id, last_boundary);
+        let histories = wait_for(Duration::from_secs(60), "the owner's last boundary", || {
+            let h: Vec<Vec<Value>> = instances.iter().map(|s| history(s, id)).collect();
+            let done = h.iter().any(|points| {
+                points.last().is_some_and(|p| {
+                    let arms = p["arms"].as_array().unwrap();
+                    arms.iter().map(|a| a["units"].as_u64().unwrap()).collect::<Vec<_>>()
+                        == final_units
+                })
+            });
+            done.then_some(h)
+        });
+        let evaluating: Vec<usize> = (0..2).filter(|&i| !histories[i].is_empty()).collect();
+        assert_eq!(
+            evaluating.len(),
+            1,
+            "{id}: exactly one instance evaluates it: {histories:?}"
+        );
+        let points = &histories[evaluating[0]];
+        assert!(points.len() >= 10, "{id}: one evaluation per boundary: {points:?}");
+        // Every evaluation is the model's totals as of one boundary, in boundary order.
+        let boundaries: Vec<i64> = (0..=45)
+            .map(|k| (records[0].reference / 1000 / EVERY_SECS + k) * EVERY_SECS * 1000)
+            .collect();
+        let mut by_units: BTreeMap<Vec<u64>, Vec<(i64, Option<i64>)>> = BTreeMap::new();
+        for &bnd in &boundaries {
+            let (units, latest) = model(&records, id, bnd);
+            by_units.entry(units).or_default().push((bnd, latest));
+        }
+        let mut previous = 0;
+        for p in points {
+            assert_eq!(p["covers"].as_u64().unwrap_or(1), 1, "{p}");
+            let units: Vec<u64> = p["arms"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .map(|a| a["units"].as_u64().unwrap())
+                .collect();
+            let at = millis(p["at"].as_str().unwrap());
+            let matches = by_units
+                .get(&units)
+                .unwrap_or_else(|| panic!("{id}: {units:?} is no boundary's totals"));
+            let (bnd, latest) = matches
+                .iter()
+                .find(|(_, latest)| *latest == Some(at) || latest.is_some_and(|l| l / 1000 == at / 1000))
+                .unwrap_or_else(|| panic!("{id}: {units:?} at {at}: {matches:?}"));
+            assert!(latest.is_some());
+            assert!(*bnd > previous, "{id}: boundaries evaluated in order");
+            previous = *bnd;
+        }
+    }
+}
