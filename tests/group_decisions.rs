@@ -260,3 +260,252 @@ fn each_experiment_is_decided_once_at_boundaries_on_every_partitions_totals() {
         }
     }
 }
+
+/// The key of the test webhook, as the receiver is given it (Standard Webhooks `whsec_`).
+const WHSEC: &str = "whsec_VGlkZXdhdGVyLWZlcnJpZXMtaG9vay1rZXk=";
+
+fn harm_config(brokers: &str, group: &str, topic: &str, changelog: &str, port: u16) -> String {
+    // One topic carries the assignments and the tickets, keyed by rider, so each partition's
+    // log is in reference-time order.
+    let mut s = format!(
+        r#"[http]
+addr = "127.0.0.1:0"
+[store]
+snapshot_interval_ms = 250
+[alerts]
+evaluate_every_secs = {EVERY_SECS}
+[[alerts.webhook]]
+url = "http://127.0.0.1:{port}/hooks/ferries"
+secret_env = "TIDEWATER_HOOK_SECRET"
+[kafka]
+brokers = "{brokers}"
+group = "{group}"
+changelog_topic = "{changelog}"
+changelog_interval_ms = 300
+[kafka.properties]
+"session.timeout.ms" = 6000
+"heartbeat.interval.ms" = 500
+
+[[source]]
+name = "tidewater-boarding"
+topics = ["{topic}"]
+unit = "rider.id"
+time = "at_ms"
+time_format = "epoch_millis"
+event = "kind"
+experiment = "exp.name"
+variant = "exp.arm"
+exposures = ["assigned"]
+metrics = {{ "ticket.bought" = "boarded" }}
+"#
+    );
+    for (id, [a, b]) in EXPERIMENTS {
+        s.push_str(&format!(
+            r#"
+[[experiment]]
+id = "{id}"
+control = "{a}"
+variants = [ {{ name = "{a}" }}, {{ name = "{b}" }} ]
+[[experiment.metric]]
+name = "boarded"
+kind = "conversion"
+[experiment.metric.rules]
+min_units = 150
+"#
+        ));
+    }
+    s
+}
+
+/// Three waves of riders over the last 45 minutes, each a list of `REFERENCE\tEVENT` lines in
+/// reference order (assignments and tickets together): in `quick-board` the `tap` arm buys a
+/// ticket far less often (4% against 14%), in `seat-map` both arms buy at 10%. The last wave
+/// ends with closing records of an unconfigured experiment 10 minutes later.
+fn harm_waves(seed: u64) -> Vec<Vec<String>> {
+    let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
+    let now = time::OffsetDateTime::now_utc().unix_timestamp() * 1000;
+    let mut reference = now - 45 * 60 * 1000;
+    let mut waves = Vec::new();
+    let mut rider = 0;
+    for wave in 0..3 {
+        let mut lines = Vec::new();
+        for _ in 0..1500 {
+            rider += 1;
+            reference += rng.random_range(0..1_100);
+            let (id, arms) = EXPERIMENTS[rng.random_range(0..2)];
+            let arm = rng.random_range(0..2);
+            lines.push((
+                reference,
+                json!({"rider": {"id": format!("r{rider}")}, "at_ms": reference - 500,
+                       "kind": "assigned", "exp": {"name": id, "arm": arms[arm]}}),
+            ));
+            let rate = match (id, arm) {
+                ("quick-board", 0) => 0.14,
+                ("quick-board", _) => 0.04,
+                _ => 0.10,
+            };
+            if rng.random_bool(rate) {
+                let at = reference + rng.random_range(2_000..30_000);
+                lines.push((
+                    at,
+                    json!({"rider": {"id": format!("r{rider}")}, "at_ms": at - 200, "kind": "ticket.bought"}),
+                ));
+            }
+        }
+        if wave == 2 {
+            let close = reference + 10 * 60 * 1000;
+            for k in 0..96 {
+                lines.push((
+                    close,
+                    json!({"rider": {"id": format!("closer-{k}")}, "at_ms": close, "kind": "assigned",
+                           "exp": {"name": "retired-banner", "arm": "old"}}),
+                ));
+            }
+        }
+        lines.sort_by_key(|(r, _)| *r);
+        waves.push(lines.into_iter().map(|(r, e)| format!("{r}\t{e}")).collect());
+    }
+    waves
+}
+
+fn produce_lines(brokers: &str, topic: &str, lines: &[String], dir: &std::path::Path) {
+    let file = dir.join(format!("{topic}-{}.ndjson", lines.len()));
+    std::fs::write(&file, lines.join("\n") + "\n").unwrap();
+    let out = std::process::Command::new("python3")
+        .arg(concat!(env!("CARGO_MANIFEST_DIR"), "/tests/tools/produce.py"))
+        .args(["--brokers", brokers, "--topic", topic])
+        .args(["--partitions", "6", "--key", "rider.id", "--timestamps"])
+        .arg(&file)
+        .output()
+        .expect("python3 tests/tools/produce.py (confluent-kafka)");
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+}
+
+/// The instance among `instances` that evaluates `id` (has recorded evaluations).
+fn evaluator(instances: &[Service], id: &str) -> Option<usize> {
+    let with: Vec<usize> = (0..instances.len())
+        .filter(|&i| {
+            let (status, doc) = instances[i].get(&format!("/v1/experiments/{id}/history?metric=boarded"));
+            status == 200 && doc["evaluations"].as_u64().unwrap_or(0) > 0
+        })
+        .collect();
+    with.first().copied()
+}
+
+#[test]
+fn each_alert_change_is_delivered_once_by_id_through_a_sigkill_of_the_owner() {
+    let brokers = brokers();
+    let topic = unique("tidewater-boarding");
+    let group = unique("tidewater-group");
+    let changelog = unique("tidewater-changelog");
+    let scratch = tempfile::tempdir().unwrap();
+    let port = common::receiver::free_port();
+    let receiver = common::receiver::Receiver::start(port, scratch.path(), WHSEC);
+    let cfg = harm_config(&brokers, &group, &topic, &changelog, port);
+    let env = [("TIDEWATER_HOOK_SECRET", WHSEC)];
+    let waves = harm_waves(11);
+    // Topics exist before the instances start (they check partition counts).
+    produce_lines(&brokers, &topic, &waves[0], scratch.path());
+    let mut instances: Vec<Service> = (0..3).map(|_| Service::start_with_env(&cfg, &env)).collect();
+
+    // Wave 1: the harm alert opens at the owner and reaches the receiver.
+    let find = || {
+        receiver
+            .records()
+            .iter()
+            .find(|r| r["event"]["data"]["rule"] == "harm" && r["event"]["data"]["experiment"] == "quick-board")
+            .map(|r| r["webhook_id"].as_str().unwrap().to_string())
+    };
+    let deadline = std::time::Instant::now() + Duration::from_secs(120);
+    let opened = loop {
+        if let Some(id) = find() {
+            break id;
+        }
+        if std::time::Instant::now() > deadline {
+            let state: Vec<String> = instances
+                .iter()
+                .map(|s| {
+                    format!(
+                        "doc {}\nhistory {}\nalerts {}\nlog {}",
+                        s.get("/v1/experiments/quick-board").1,
+                        s.get("/v1/experiments/quick-board/history?metric=boarded").1["evaluations"],
+                        s.get("/v1/alerts").1,
+                        s.log_text().lines().filter(|l| l.contains("WARN") || l.contains("ERROR") || l.contains("group") || l.contains("revoked")).take(40).collect::<Vec<_>>().join("\n")
+                    )
+                })
+                .collect();
+            let partials = common::kafka::consume_within(&brokers, &format!("{changelog}-partials"), 100_000, 5);
+            let partials: Vec<String> = partials.iter().map(|m| format!("{} {}", m["key"], m["value"].as_str().unwrap_or("").chars().take(160).collect::<String>())).collect();
+            panic!("the harm alert was not delivered:\n{}\npartials:\n{}", state.join("\n\n"), partials.join("\n"));
+        }
+        std::thread::sleep(Duration::from_millis(300));
+    };
+    let owner = evaluator(&instances, "quick-board").expect("an owner evaluates quick-board");
+    // SIGKILL the owner mid-stream; a replacement joins.
+    let _ = instances[owner].child.kill();
+    let _ = instances[owner].child.wait();
+    instances[owner] = Service::start_with_env(&cfg, &env);
+    for wave in &waves[1..] {
+        produce_lines(&brokers, &topic, wave, scratch.path());
+    }
+    // The owner after the kill evaluates the last boundary on every partition's totals.
+    for (id, _) in EXPERIMENTS {
+        wait_for(Duration::from_secs(150), "the last boundary evaluated after the kill", || {
+            let (_, doc) = instances[0].get(&format!("/v1/experiments/{id}"));
+            let want = doc["variants"].as_array()?.iter().map(|v| v["units"].as_u64()).collect::<Option<Vec<u64>>>()?;
+            (want.iter().sum::<u64>() > 2000).then_some(())?;
+            instances.iter().any(|s| {
+                history(s, id).last().is_some_and(|p| {
+                    p["arms"].as_array().unwrap().iter().map(|a| a["units"].as_u64().unwrap()).collect::<Vec<_>>() == want
+                })
+            })
+            .then_some(())
+        });
+    }
+    // Every instance ends with the same alerts of quick-board, from the one owner's book.
+    let books = wait_for(Duration::from_secs(150), "the same alerts on every instance", || {
+        let lists: Vec<Vec<String>> = instances
+            .iter()
+            .map(|s| {
+                let (_, list) = s.get("/v1/alerts?experiment=quick-board");
+                let mut ids: Vec<String> = list["alerts"]
+                    .as_array()
+                    .map(|a| a.iter().map(|x| format!("{}:{}", x["id"], x["state"])).collect())
+                    .unwrap_or_default();
+                ids.sort();
+                ids
+            })
+            .collect();
+        (!lists[0].is_empty() && lists.iter().all(|l| *l == lists[0])).then_some(lists)
+    });
+    std::thread::sleep(Duration::from_secs(3));
+    let records = receiver.records();
+    assert!(
+        records.iter().all(|r| r["valid"] == true),
+        "signatures verified by PyPI standardwebhooks"
+    );
+    // Counted by id: the harm alert opened once, under one id, through the kill.
+    let harm_opened: BTreeSet<String> = records
+        .iter()
+        .filter(|r| {
+            let d = &r["event"]["data"];
+            d["rule"] == "harm" && d["experiment"] == "quick-board" && r["event"]["type"] == "posteriord.alert.opened"
+        })
+        .map(|r| r["webhook_id"].as_str().unwrap().to_string())
+        .collect();
+    assert_eq!(harm_opened, BTreeSet::from([opened.clone()]), "{books:?}");
+    // Every change in the owner's book reached the receiver, each id once or repeated (an
+    // at-least-once resend carries the same id).
+    let ids: BTreeSet<String> = records
+        .iter()
+        .map(|r| r["webhook_id"].as_str().unwrap().to_string())
+        .collect();
+    let (_, list) = instances[0].get("/v1/alerts?experiment=quick-board");
+    for a in list["alerts"].as_array().unwrap() {
+        let id = a["id"].as_str().unwrap();
+        assert!(ids.contains(&format!("{id}.opened")), "{id} opened was delivered: {ids:?}");
+        if a["state"] == "closed" {
+            assert!(ids.contains(&format!("{id}.closed")), "{id} closed was delivered");
+        }
+    }
+}

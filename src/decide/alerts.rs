@@ -165,6 +165,14 @@ impl AlertBook {
         }
     }
 
+    /// Replace every alert of experiment `id` with `alerts` (the book of its new owner, or
+    /// the owner's book as another instance reads it), keeping the others' order.
+    pub fn replace_experiment(&mut self, id: &str, alerts: Vec<Alert>) {
+        self.alerts.retain(|a| a.key.experiment != id);
+        self.alerts
+            .extend(alerts.into_iter().filter(|a| a.key.experiment == id));
+    }
+
     /// Every alert, oldest first.
     pub fn alerts(&self) -> &[Alert] {
         &self.alerts

@@ -19,6 +19,9 @@ use crate::config::KafkaConfig;
 use crate::service::group::GroupMessage;
 use crate::service::Service;
 
+/// How often a quiet follower looks for experiments it owns with boundaries ready.
+const SWEEP_INTERVAL: Duration = Duration::from_millis(500);
+
 /// How long a publication waits for delivery.
 const PUBLISH_TIMEOUT: Duration = Duration::from_secs(10);
 
@@ -114,12 +117,21 @@ pub fn follow(
     let mut tpl = TopicPartitionList::new();
     tpl.add_partition_offset(topic.topic(), 0, Offset::Beginning)?;
     consumer.assign(&tpl)?;
+    let mut last_sweep = std::time::Instant::now();
     while !shutdown.is_cancelled() {
-        let Some(Ok(m)) = consumer.poll(Duration::from_millis(100)) else {
-            continue;
+        let acks = match consumer.poll(Duration::from_millis(100)) {
+            Some(Ok(m)) => match m.key() {
+                Some(key) => service.offer_group_message(key, m.payload()),
+                None => continue,
+            },
+            // Quiet: experiments whose partition this instance gained by a rebalance are
+            // evaluated here, since no message may come to say so.
+            _ if last_sweep.elapsed() >= SWEEP_INTERVAL => {
+                last_sweep = std::time::Instant::now();
+                service.evaluate_group_ready()
+            }
+            _ => continue,
         };
-        let Some(key) = m.key() else { continue };
-        let acks = service.offer_group_message(key, m.payload());
         while let Err(e) = topic.publish(&acks) {
             // An evaluated boundary must be acknowledged, or the shards keep its entries and
             // a new owner evaluates it again.

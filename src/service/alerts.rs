@@ -229,6 +229,43 @@ impl AlertDesk {
         self.save();
     }
 
+    /// Experiment `id`'s part of the desk as JSON: its alerts and its pending deliveries (what
+    /// an owner hands over with the experiment).
+    pub(super) fn experiment_json(&self, id: &str) -> Value {
+        json!({
+            "alerts": self.book.alerts().iter().filter(|a| a.key.experiment == id).map(alert_json).collect::<Vec<_>>(),
+            "pending": self.outbox.iter().filter(|d| d.experiment == id).map(delivery_json).collect::<Vec<_>>(),
+        })
+    }
+
+    /// Take experiment `id`'s alerts from `part` (an [`AlertDesk::experiment_json`] of another
+    /// instance) in place of this desk's; with `deliveries`, also its pending deliveries not in
+    /// the outbox yet (this instance now owns the experiment and sends them; a change sent by
+    /// both carries one id). Stored at once.
+    pub(super) fn adopt_experiment(&mut self, id: &str, part: &Value, deliveries: bool) {
+        let alerts = part["alerts"]
+            .as_array()
+            .map(|a| a.iter().filter_map(alert_from).collect())
+            .unwrap_or_default();
+        self.book.replace_experiment(id, alerts);
+        if deliveries {
+            for d in part["pending"]
+                .as_array()
+                .map(|a| a.iter().filter_map(delivery_from).collect::<Vec<_>>())
+                .unwrap_or_default()
+            {
+                let known = self
+                    .outbox
+                    .iter()
+                    .any(|p| p.sink == d.sink && p.event_id == d.event_id);
+                if !known && d.experiment == id && self.sinks.contains(&d.sink) {
+                    self.outbox.push(d);
+                }
+            }
+        }
+        self.save();
+    }
+
     /// Report failed and successful writes of the file to `health`.
     pub fn watch(&mut self, health: StoreHealth) {
         self.health = Some(health);
@@ -364,6 +401,24 @@ fn evidence_from(v: &Value) -> crate::decide::Evidence {
     }
 }
 
+fn delivery_json(d: &Delivery) -> Value {
+    json!({
+        "sink": d.sink, "event_id": d.event_id, "body": d.body,
+        "experiment": d.experiment, "attempts": d.attempts, "next_attempt": d.next_attempt,
+    })
+}
+
+fn delivery_from(d: &Value) -> Option<Delivery> {
+    Some(Delivery {
+        sink: d["sink"].as_str()?.to_string(),
+        event_id: d["event_id"].as_str()?.to_string(),
+        body: d["body"].as_str()?.to_string(),
+        experiment: d["experiment"].as_str()?.to_string(),
+        attempts: d["attempts"].as_u64()? as u32,
+        next_attempt: d["next_attempt"].as_i64()?,
+    })
+}
+
 /// The alert file: the book and the pending deliveries, together.
 #[derive(Debug, Clone)]
 struct AlertFile {
@@ -383,10 +438,7 @@ impl AlertFile {
         let doc = json!({
             "version": 1,
             "alerts": alerts.iter().map(alert_json).collect::<Vec<_>>(),
-            "pending": pending.iter().map(|d| json!({
-                "sink": d.sink, "event_id": d.event_id, "body": d.body,
-                "experiment": d.experiment, "attempts": d.attempts, "next_attempt": d.next_attempt,
-            })).collect::<Vec<_>>(),
+            "pending": pending.iter().map(delivery_json).collect::<Vec<_>>(),
         });
         write_atomic(&self.path, doc.to_string().as_bytes())
     }
@@ -416,20 +468,7 @@ impl AlertFile {
             .unwrap_or_default();
         let pending = doc["pending"]
             .as_array()
-            .map(|a| {
-                a.iter()
-                    .filter_map(|d| {
-                        Some(Delivery {
-                            sink: d["sink"].as_str()?.to_string(),
-                            event_id: d["event_id"].as_str()?.to_string(),
-                            body: d["body"].as_str()?.to_string(),
-                            experiment: d["experiment"].as_str()?.to_string(),
-                            attempts: d["attempts"].as_u64()? as u32,
-                            next_attempt: d["next_attempt"].as_i64()?,
-                        })
-                    })
-                    .collect()
-            })
+            .map(|a| a.iter().filter_map(delivery_from).collect())
             .unwrap_or_default();
         Ok((alerts, pending))
     }

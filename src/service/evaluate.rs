@@ -45,7 +45,7 @@ impl Service {
     /// the findings into the alert book with that event's time as "now"; each change is
     /// recorded with its deliveries, then logged as one structured line (the log sink) and
     /// counted.
-    fn evaluate_due(&self, snapshot: ExperimentSnapshot) {
+    pub(super) fn evaluate_due(&self, snapshot: ExperimentSnapshot) {
         // Quadrature runs outside the desk's lock; only the fold takes it.
         let mut evaluation = crate::decide::evaluation::assess(snapshot);
         self.note_failures(&evaluation.summary);
@@ -121,7 +121,7 @@ impl Service {
 
     /// Rebuild the alert gauges from the book; under `metrics.scrape`, so that a scrape never
     /// sees them cleared and half refilled.
-    fn refresh_alert_gauges(&self) {
+    pub(super) fn refresh_alert_gauges(&self) {
         let desk = lock(&self.desk);
         let _scrape = lock(&self.metrics.scrape);
         self.metrics.alerts.reset();

@@ -61,6 +61,11 @@ struct GroupState {
     sent: BTreeMap<u32, (i64, Micros)>,
     /// Latest acknowledged boundary per experiment.
     acknowledged: BTreeMap<String, Micros>,
+    /// The latest acknowledgement per experiment: the boundary and the owner's part of the
+    /// alert desk as of it (what a new owner takes over).
+    books: BTreeMap<String, (Micros, Value)>,
+    /// Experiments this instance evaluates as their owner (their alerts taken over).
+    owned: std::collections::BTreeSet<String>,
     /// Boundaries evaluated here.
     evaluated: u64,
     /// Partials refused as conflicting (two writers for one partition, or a bug).
@@ -460,12 +465,35 @@ impl Service {
                 experiment,
                 evaluated,
             } => {
-                {
+                let v: Value = serde_json::from_slice(value).unwrap_or_default();
+                let id = experiment.split('~').next().unwrap_or(&experiment).to_string();
+                let adopt = {
                     let mut state = lock(&group.state);
                     let e = state.acknowledged.entry(experiment.clone()).or_insert(evaluated);
                     *e = (*e).max(evaluated);
                     if let Some(m) = state.mergers.get_mut(&experiment) {
                         m.evaluated(evaluated);
+                    }
+                    let newer = state
+                        .books
+                        .get(&experiment)
+                        .is_none_or(|(b, _)| evaluated >= *b);
+                    if newer {
+                        state
+                            .books
+                            .insert(experiment.clone(), (evaluated, v["book"].clone()));
+                    }
+                    // Another instance evaluates it now: show its alerts here too.
+                    let ours = state.owned.contains(&experiment)
+                        && self.holds_partition(owner_partition(&id, group.n_partitions));
+                    if !ours {
+                        state.owned.remove(&experiment);
+                    }
+                    (newer && !ours).then(|| v["book"].clone())
+                };
+                if let Some(book) = adopt {
+                    if !book.is_null() {
+                        lock(&self.desk).adopt_experiment(&id, &book, false);
                     }
                 }
                 let mut shards = self.lock_shards();
@@ -485,26 +513,55 @@ impl Service {
         }
     }
 
+    /// Evaluate what is ready of every experiment this instance owns now. The follower calls
+    /// this when the topic is quiet: an instance that gains a partition by a rebalance owns
+    /// its experiments from then on, and no new message may come to say so.
+    pub fn evaluate_group_ready(&self) -> Vec<GroupMessage> {
+        let Some(group) = self.group.get() else {
+            return Vec::new();
+        };
+        let experiments: Vec<String> = lock(&group.state).mergers.keys().cloned().collect();
+        experiments
+            .iter()
+            .flat_map(|e| self.evaluate_ready(group, e))
+            .collect()
+    }
+
     /// If this instance owns `experiment` (a state key), evaluate every boundary now ready on
-    /// the merged totals, in order, and return the acknowledgement of the last one.
+    /// the merged totals, in order, on this thread (the acknowledgement must follow the
+    /// evaluation), and return the acknowledgement of the last one with the experiment's part
+    /// of the alert desk. An instance that just became the owner first takes over the alerts
+    /// and pending deliveries of the last acknowledgement.
     fn evaluate_ready(&self, group: &Group, experiment: &str) -> Vec<GroupMessage> {
         let id = experiment.split('~').next().unwrap_or(experiment);
         if !self.holds_partition(owner_partition(id, group.n_partitions)) {
             return Vec::new();
         }
-        let due: Vec<(Micros, ExperimentSnapshot)> = {
+        let (due, takeover) = {
             let mut state = lock(&group.state);
+            let takeover = if state.owned.insert(experiment.to_string()) {
+                Some(state.books.get(experiment).map(|(_, book)| book.clone()))
+            } else {
+                None
+            };
             let Some(merger) = state.mergers.get_mut(experiment) else {
                 return Vec::new();
             };
             let ready = merger.ready();
-            let due = ready.iter().map(|&b| (b, merger.totals_at(b))).collect();
+            let due: Vec<(Micros, ExperimentSnapshot)> =
+                ready.iter().map(|&b| (b, merger.totals_at(b))).collect();
             if let Some(&last) = ready.last() {
                 merger.evaluated(last);
             }
             state.evaluated += ready.len() as u64;
-            due
+            (due, takeover)
         };
+        if let Some(book) = takeover {
+            tracing::info!(experiment = id, "this instance owns the experiment now: evaluating it, and sending its alerts");
+            if let Some(book) = book.filter(|b| !b.is_null()) {
+                lock(&self.desk).adopt_experiment(id, &book, true);
+            }
+        }
         let Some(&(last, _)) = due.last() else {
             return Vec::new();
         };
@@ -516,11 +573,15 @@ impl Service {
                 .evaluations
                 .with_label_values(&["queued"])
                 .inc();
-            let _ = self.due.send(snapshot);
+            self.evaluate_due(snapshot);
         }
+        self.refresh_alert_gauges();
+        let book = lock(&self.desk).experiment_json(id);
         vec![GroupMessage {
             key: format!("a/{experiment}"),
-            value: json!({ "evaluated": last }).to_string().into_bytes(),
+            value: json!({ "evaluated": last, "book": book })
+                .to_string()
+                .into_bytes(),
         }]
     }
 }

@@ -5,6 +5,7 @@
 pub mod browser;
 pub mod kafka;
 pub mod mapped;
+pub mod receiver;
 
 use std::collections::{HashMap, HashSet};
 use std::io::{BufRead, BufReader};
