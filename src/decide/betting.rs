@@ -113,6 +113,61 @@ impl HarmProcess {
         }
     }
 
+    /// The whole state as plain numbers, to hand over or store it (a pure core keeps no
+    /// encoding): stream (0 conversion, 1 defect), margin, ln E, ln max E, the last totals of
+    /// control and variant, blocks, the pending conversions, then the grid.
+    pub fn to_numbers(&self) -> Vec<f64> {
+        let mut out = vec![
+            match self.stream {
+                Stream::Conversion => 0.0,
+                Stream::Defect => 1.0,
+            },
+            self.margin,
+            self.log_e,
+            self.log_max,
+            self.last[0].size,
+            self.last[0].events,
+            self.last[1].size,
+            self.last[1].events,
+            self.blocks as f64,
+            self.pending[0],
+            self.pending[1],
+        ];
+        out.extend_from_slice(&self.grid);
+        out
+    }
+
+    /// The process [`HarmProcess::to_numbers`] gave; `None` if they do not describe one.
+    pub fn from_numbers(n: &[f64]) -> Option<HarmProcess> {
+        if n.len() != 11 && n.len() != 11 + GRID_POINTS {
+            return None;
+        }
+        let stream = match n[0] {
+            x if x == 0.0 => Stream::Conversion,
+            x if x == 1.0 => Stream::Defect,
+            _ => return None,
+        };
+        Some(HarmProcess {
+            stream,
+            margin: n[1],
+            log_e: n[2],
+            log_max: n[3],
+            last: [
+                ArmTotals {
+                    size: n[4],
+                    events: n[5],
+                },
+                ArmTotals {
+                    size: n[6],
+                    events: n[7],
+                },
+            ],
+            blocks: n[8] as u64,
+            pending: [n[9], n[10]],
+            grid: n[11..].to_vec(),
+        })
+    }
+
     /// The margin this process tests.
     pub fn margin(&self) -> f64 {
         self.margin
@@ -246,8 +301,9 @@ impl HarmProcess {
 }
 
 /// The e-processes of every experiment this process evaluates, one per (experiment, metric,
-/// variant) whose metric has an anytime-valid harm rule. They live as long as the process;
-/// a restart starts them again at 1 (docs/decisions.md says what that costs).
+/// variant) whose metric has an anytime-valid harm rule. Kept in memory, and stored by
+/// the service with the alert book ([`EvidenceBook::export`], `import`), so a
+/// restart continues them.
 #[derive(Debug, Clone, Default)]
 pub struct EvidenceBook {
     processes: HashMap<(String, usize, usize), HarmProcess>,
@@ -321,6 +377,42 @@ impl EvidenceBook {
                 .collect(),
             intervals: self.intervals,
         }
+    }
+
+    /// Experiment `key`'s processes as (metric, variant, [`HarmProcess::to_numbers`]),
+    /// ordered.
+    pub fn export(&self, key: &str) -> Vec<(usize, usize, Vec<f64>)> {
+        let mut out: Vec<(usize, usize, Vec<f64>)> = self
+            .processes
+            .iter()
+            .filter(|((k, _, _), _)| k == key)
+            .map(|((_, m, v), p)| (*m, *v, p.to_numbers()))
+            .collect();
+        out.sort_by_key(|(m, v, _)| (*m, *v));
+        out
+    }
+
+    /// Replace experiment `key`'s processes with those of an [`EvidenceBook::export`]
+    /// (handed over by another instance, or stored); entries that describe no process are
+    /// skipped.
+    pub fn import(&mut self, key: &str, processes: Vec<(usize, usize, Vec<f64>)>) {
+        self.forget(key);
+        for (m, v, numbers) in processes {
+            if let Some(mut p) = HarmProcess::from_numbers(&numbers) {
+                if !self.intervals {
+                    p.grid.clear();
+                }
+                self.processes.insert((key.to_string(), m, v), p);
+            }
+        }
+    }
+
+    /// The experiment keys with processes.
+    pub fn keys(&self) -> Vec<String> {
+        let mut keys: Vec<String> = self.processes.keys().map(|(k, _, _)| k.clone()).collect();
+        keys.sort();
+        keys.dedup();
+        keys
     }
 
     /// Forget the processes of experiment `key` (deleted or redefined).
@@ -413,6 +505,27 @@ pub fn defect_log_factor(dc: ArmTotals, dv: ArmTotals, s: f64, rho: f64, bet: f6
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_process_survives_its_numbers() {
+        let mut p = HarmProcess::new(Stream::Conversion, 0.05, true);
+        p.update(
+            [
+                ArmTotals {
+                    size: 400.0,
+                    events: 48.0,
+                },
+                ArmTotals {
+                    size: 410.0,
+                    events: 20.0,
+                },
+            ],
+            [0.5, 0.5],
+        );
+        let back = HarmProcess::from_numbers(&p.to_numbers()).unwrap();
+        assert_eq!(back, p);
+        assert!(HarmProcess::from_numbers(&[2.0; 11]).is_none());
+    }
 
     fn binom_pmf(n: u64, k: u64, p: f64) -> f64 {
         let mut ln = 0.0;

@@ -130,7 +130,7 @@ impl AlertDesk {
     /// The desk stored in the store directory `dir` (empty when nothing is stored yet).
     pub fn restore(dir: &Path, cfg: &AlertsConfig) -> Result<AlertDesk, AlertFileError> {
         let file = AlertFile::new(dir);
-        let (alerts, pending) = file.load()?;
+        let (alerts, pending, evidence) = file.load()?;
         if !pending.is_empty() {
             tracing::info!(
                 pending = pending.len(),
@@ -138,7 +138,13 @@ impl AlertDesk {
             );
         }
         Ok(AlertDesk {
-            book: AlertBook::from_alerts(alerts, cfg.hold_down.as_micros() as i64),
+            book: {
+                let mut book = AlertBook::from_alerts(alerts, cfg.hold_down.as_micros() as i64);
+                for (key, processes) in evidence {
+                    book.evidence_mut().import(&key, processes);
+                }
+                book
+            },
             outbox: pending,
             file: Some(file),
             sinks: sink_names(cfg),
@@ -231,10 +237,11 @@ impl AlertDesk {
 
     /// Experiment `id`'s part of the desk as JSON: its alerts and its pending deliveries (what
     /// an owner hands over with the experiment).
-    pub(super) fn experiment_json(&self, id: &str) -> Value {
+    pub(super) fn experiment_json(&self, id: &str, state_key: &str) -> Value {
         json!({
             "alerts": self.book.alerts().iter().filter(|a| a.key.experiment == id).map(alert_json).collect::<Vec<_>>(),
             "pending": self.outbox.iter().filter(|d| d.experiment == id).map(delivery_json).collect::<Vec<_>>(),
+            "evidence": evidence_json(self.book.evidence(), state_key),
         })
     }
 
@@ -242,12 +249,21 @@ impl AlertDesk {
     /// instance) in place of this desk's; with `deliveries`, also its pending deliveries not in
     /// the outbox yet (this instance now owns the experiment and sends them; a change sent by
     /// both carries one id). Stored at once.
-    pub(super) fn adopt_experiment(&mut self, id: &str, part: &Value, deliveries: bool) {
+    pub(super) fn adopt_experiment(
+        &mut self,
+        id: &str,
+        state_key: &str,
+        part: &Value,
+        deliveries: bool,
+    ) {
         let alerts = part["alerts"]
             .as_array()
             .map(|a| a.iter().filter_map(alert_from).collect())
             .unwrap_or_default();
         self.book.replace_experiment(id, alerts);
+        self.book
+            .evidence_mut()
+            .import(state_key, evidence_from_json(&part["evidence"]));
         if deliveries {
             for d in part["pending"]
                 .as_array()
@@ -275,7 +291,7 @@ impl AlertDesk {
     /// and reported; the service retries on its snapshot cadence.
     pub(super) fn save(&self) {
         let Some(file) = &self.file else { return };
-        let result = file.save(self.book.alerts(), &self.outbox);
+        let result = file.save(&self.book, &self.outbox);
         if let Some(h) = &self.health {
             h.note(ALERTS_FILE, &result);
         }
@@ -401,6 +417,40 @@ fn evidence_from(v: &Value) -> crate::decide::Evidence {
     }
 }
 
+/// One experiment's anytime-valid harm processes: (metric, variant, numbers).
+type Evidence = Vec<(usize, usize, Vec<f64>)>;
+
+/// Experiment `state_key`'s harm processes as JSON, numbers as IEEE bits so a handed-over or
+/// restored process continues bit for bit.
+fn evidence_json(book: &crate::decide::betting::EvidenceBook, state_key: &str) -> Value {
+    Value::Array(
+        book.export(state_key)
+            .into_iter()
+            .map(|(m, v, n)| json!([m, v, n.iter().map(|x| x.to_bits()).collect::<Vec<_>>()]))
+            .collect(),
+    )
+}
+
+fn evidence_from_json(v: &Value) -> Evidence {
+    v.as_array()
+        .map(|a| {
+            a.iter()
+                .filter_map(|p| {
+                    Some((
+                        p.get(0)?.as_u64()? as usize,
+                        p.get(1)?.as_u64()? as usize,
+                        p.get(2)?
+                            .as_array()?
+                            .iter()
+                            .map(|x| x.as_u64().map(f64::from_bits))
+                            .collect::<Option<Vec<f64>>>()?,
+                    ))
+                })
+                .collect()
+        })
+        .unwrap_or_default()
+}
+
 fn delivery_json(d: &Delivery) -> Value {
     json!({
         "sink": d.sink, "event_id": d.event_id, "body": d.body,
@@ -434,21 +484,32 @@ impl AlertFile {
     }
 
     /// Atomically replace the file with `alerts` and `pending`.
-    fn save(&self, alerts: &[Alert], pending: &[Delivery]) -> Result<(), StoreError> {
+    fn save(&self, book: &AlertBook, pending: &[Delivery]) -> Result<(), StoreError> {
+        let evidence: serde_json::Map<String, Value> = book
+            .evidence()
+            .keys()
+            .into_iter()
+            .map(|k| {
+                let v = evidence_json(book.evidence(), &k);
+                (k, v)
+            })
+            .collect();
         let doc = json!({
             "version": 1,
-            "alerts": alerts.iter().map(alert_json).collect::<Vec<_>>(),
+            "alerts": book.alerts().iter().map(alert_json).collect::<Vec<_>>(),
+            "evidence": evidence,
             "pending": pending.iter().map(delivery_json).collect::<Vec<_>>(),
         });
         write_atomic(&self.path, doc.to_string().as_bytes())
     }
 
     /// The stored alerts and pending deliveries (empty when there is no file yet).
-    fn load(&self) -> Result<(Vec<Alert>, Vec<Delivery>), AlertFileError> {
+    #[allow(clippy::type_complexity)]
+    fn load(&self) -> Result<(Vec<Alert>, Vec<Delivery>, Vec<(String, Evidence)>), AlertFileError> {
         let text = match std::fs::read_to_string(&self.path) {
             Ok(t) => t,
             Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
-                return Ok((Vec::new(), Vec::new()))
+                return Ok((Vec::new(), Vec::new(), Vec::new()))
             }
             Err(source) => {
                 return Err(AlertFileError::Io {
@@ -470,6 +531,45 @@ impl AlertFile {
             .as_array()
             .map(|a| a.iter().filter_map(delivery_from).collect())
             .unwrap_or_default();
-        Ok((alerts, pending))
+        let evidence = doc["evidence"]
+            .as_object()
+            .map(|m| {
+                m.iter()
+                    .map(|(k, v)| (k.clone(), evidence_from_json(v)))
+                    .collect()
+            })
+            .unwrap_or_default();
+        Ok((alerts, pending, evidence))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::state::{ExperimentState, MetricTotals};
+    use std::sync::Arc;
+
+    /// The harm processes are stored with the book and continue after a restore, bit for bit.
+    #[test]
+    fn harm_processes_survive_a_restore() {
+        let dir = tempfile::tempdir().unwrap();
+        let cfg = crate::config::AlertsConfig::default();
+        let def = Arc::new(crate::service::test_checkout_copy());
+        let mut snap = ExperimentState::new(Arc::clone(&def)).snapshot();
+        for (m, metric) in snap.metrics.iter_mut().enumerate() {
+            if let MetricTotals::Conversion(t) = metric {
+                t[0].trials = 900;
+                t[0].successes = 110 + m as u64;
+                t[1].trials = 880;
+                t[1].successes = 40;
+            }
+        }
+        let mut desk = AlertDesk::restore(dir.path(), &cfg).unwrap();
+        desk.book_mut().evidence_mut().advance(&snap);
+        let before = desk.book().evidence().export(&def.state_key());
+        assert!(!before.is_empty(), "the metric has an anytime-valid harm rule");
+        desk.save();
+        let restored = AlertDesk::restore(dir.path(), &cfg).unwrap();
+        assert_eq!(restored.book().evidence().export(&def.state_key()), before);
     }
 }

@@ -493,7 +493,7 @@ impl Service {
                 };
                 if let Some(book) = adopt {
                     if !book.is_null() {
-                        lock(&self.desk).adopt_experiment(&id, &book, false);
+                        lock(&self.desk).adopt_experiment(&id, &experiment, &book, false);
                     }
                 }
                 let mut shards = self.lock_shards();
@@ -559,7 +559,7 @@ impl Service {
         if let Some(book) = takeover {
             tracing::info!(experiment = id, "this instance owns the experiment now: evaluating it, and sending its alerts");
             if let Some(book) = book.filter(|b| !b.is_null()) {
-                lock(&self.desk).adopt_experiment(id, &book, true);
+                lock(&self.desk).adopt_experiment(id, experiment, &book, true);
             }
         }
         let Some(&(last, _)) = due.last() else {
@@ -576,7 +576,7 @@ impl Service {
             self.evaluate_due(snapshot);
         }
         self.refresh_alert_gauges();
-        let book = lock(&self.desk).experiment_json(id);
+        let book = lock(&self.desk).experiment_json(id, experiment);
         vec![GroupMessage {
             key: format!("a/{experiment}"),
             value: json!({ "evaluated": last, "book": book })
