@@ -129,6 +129,11 @@ pub enum Command {
         /// The same as `--format json` (kept for scripts written before `--format`).
         #[arg(long, hide = true, conflicts_with = "format")]
         json: bool,
+        /// Each file is one partition of a unit-keyed topic (the first file partition 0, and
+        /// so on), dumped in log order with its record timestamps: decide as a consumer group
+        /// does, at reference-time boundaries on every partition's totals.
+        #[arg(long)]
+        partitioned: bool,
     },
 }
 
@@ -252,7 +257,13 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
             events,
             format,
             json,
-        } => replay(&config, &events, json || format == OutputFormat::Json),
+            partitioned,
+        } => replay(
+            &config,
+            &events,
+            json || format == OutputFormat::Json,
+            partitioned,
+        ),
         Command::ReadSample {
             config,
             source,
@@ -853,7 +864,12 @@ fn read_sample(
     Ok(())
 }
 
-fn replay(config: &std::path::Path, events: &[String], json: bool) -> anyhow::Result<()> {
+fn replay(
+    config: &std::path::Path,
+    events: &[String],
+    json: bool,
+    partitioned: bool,
+) -> anyhow::Result<()> {
     let config = load_config(config)?;
     let inputs: Vec<crate::replay::Input> = events
         .iter()
@@ -873,8 +889,12 @@ fn replay(config: &std::path::Path, events: &[String], json: bool) -> anyhow::Re
         )
         .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
     );
-    let report =
-        crate::replay::replay(&config, &inputs, &bar).map_err(|e| UsageError(e.to_string()))?;
+    let run = if partitioned {
+        crate::replay::replay_partitioned
+    } else {
+        crate::replay::replay
+    };
+    let report = run(&config, &inputs, &bar).map_err(|e| UsageError(e.to_string()))?;
     bar.finish_and_clear();
     if json {
         outln!(

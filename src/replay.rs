@@ -17,10 +17,14 @@ use crate::event::Outcome;
 use crate::service::clock::SourceClock;
 use crate::service::ingest::{apply_batch_checked, Item};
 use crate::service::metrics::{Metrics, Source};
-use crate::state::shards::Shards;
+use crate::state::partials::{Merger, Partial};
+use crate::state::shards::{ShardId, Shards};
 
 /// The shard replayed events are applied to.
 pub const REPLAY_SHARD: &str = "replay";
+
+/// The topic name a partitioned replay gives every input (one topic per partition shard).
+const PARTITIONED_TOPIC: &str = "replay";
 
 /// Lines decoded and applied per batch: large enough to amortise the lock, small enough that
 /// the snapshot of a due experiment is still taken at the event that made it due (the ingest
@@ -195,7 +199,36 @@ pub fn replay(
     inputs: &[Input],
     progress: &dyn Progress,
 ) -> Result<ReplayReport, ReplayError> {
+    replay_with(config, inputs, progress, false)
+}
+
+/// Replay the dumps of a unit-keyed topic's partitions, `inputs[i]` being partition `i`'s
+/// records in log order with their record timestamps (the reference column), the way a
+/// consumer group decides them: each partition's totals as of every reference-time boundary
+/// (`evaluate_every_secs`), merged, and each experiment evaluated at every boundary all
+/// partitions have passed, in order (docs/operations.md, "Scaling"). Decisions name the
+/// boundary, not a line.
+pub fn replay_partitioned(
+    config: &Config,
+    inputs: &[Input],
+    progress: &dyn Progress,
+) -> Result<ReplayReport, ReplayError> {
+    replay_with(config, inputs, progress, true)
+}
+
+fn replay_with(
+    config: &Config,
+    inputs: &[Input],
+    progress: &dyn Progress,
+    partitioned: bool,
+) -> Result<ReplayReport, ReplayError> {
     let shards = Mutex::new(Shards::new(config.experiments.iter().cloned()));
+    if partitioned {
+        shards
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .keep_boundaries(config.alerts.cadence().every);
+    }
     let metrics = Metrics::new();
     let cadence = config.alerts.cadence();
     let max_event_bytes = config.max_event_bytes();
@@ -211,7 +244,15 @@ pub fn replay(
         clock: SourceClock::default(),
     };
     let mut offset: i64 = 0;
-    for input in inputs {
+    for (index, input) in inputs.iter().enumerate() {
+        // Partitioned: each input is one partition's shard, its lines that topic's offsets.
+        let shard_name = if partitioned {
+            offset = 0;
+            ShardId::co_partitioned(index as i32).as_str().to_string()
+        } else {
+            REPLAY_SHARD.to_string()
+        };
+        let topic = partitioned.then_some(PARTITIONED_TOPIC);
         let (mapping, input) = with_source(config, input);
         let input = &input;
         let name = input.name();
@@ -273,11 +314,11 @@ pub fn replay(
                 .iter()
                 .enumerate()
                 .map(|(i, bytes)| Item {
-                    shard: REPLAY_SHARD,
+                    shard: &shard_name,
                     offset: Some(offset + i as i64),
                     bytes: &bytes[starts[i]..],
                     mapping,
-                    topic: None,
+                    topic,
                     reference: references[i],
                 })
                 .collect();
@@ -332,12 +373,61 @@ pub fn replay(
     }
     report.clock = metrics.clock.of(Source::Kafka);
     let shards = shards.into_inner().unwrap_or_else(|p| p.into_inner());
+    if partitioned {
+        evaluate_boundaries(&shards, inputs.len(), &mut report);
+    }
     report.experiments = shards
         .snapshots()
         .into_iter()
         .map(|snap| Reading::of(snap, crate::summary::DEFAULT_LEVEL))
         .collect();
     Ok(report)
+}
+
+/// The owner's side of a partitioned replay: per experiment, every partition's totals as of
+/// each boundary, merged, and evaluated at every boundary all `n` partitions passed, in order.
+fn evaluate_boundaries(shards: &Shards, n: usize, report: &mut ReplayReport) {
+    for def in shards.defs() {
+        let key = def.state_key();
+        let empty = crate::state::ExperimentState::new(std::sync::Arc::clone(def)).snapshot();
+        let mut merger = Merger::new(n as u32, empty);
+        for p in 0..n {
+            let Some(shard) = shards.shard(ShardId::co_partitioned(p as i32).as_str()) else {
+                continue;
+            };
+            let Some(b) = shard.boundaries() else {
+                continue;
+            };
+            let Some(watermark) = b.watermark() else {
+                continue;
+            };
+            merger.offer(Partial {
+                partition: p as u32,
+                positions: vec![shard.next_offset().unwrap_or(0)],
+                watermark,
+                as_of: b.entries(&key).to_vec(),
+            });
+        }
+        for boundary in merger.ready() {
+            let snapshot = merger.totals_at(boundary);
+            merger.evaluated(boundary);
+            if snapshot.is_empty() {
+                continue;
+            }
+            report.evaluations += 1;
+            let evaluation = evaluate_snapshot(&mut report.book, snapshot);
+            for change in evaluation.changes {
+                report.decisions.push(Decision {
+                    input: format!(
+                        "boundary {}",
+                        crate::doc::time_text(boundary).unwrap_or_else(|| boundary.to_string())
+                    ),
+                    line: 0,
+                    change,
+                });
+            }
+        }
+    }
 }
 
 fn decision_doc(d: &Decision) -> Value {
@@ -491,7 +581,7 @@ pub fn to_text(report: &ReplayReport) -> String {
         };
         let _ = writeln!(
             out,
-            "  {} {change:<6} {:<12} {}{}{}  (at {}:{})\n      {} = {:.6} vs {} — {}",
+            "  {} {change:<6} {:<12} {}{}{}  (at {})\n      {} = {:.6} vs {} — {}",
             crate::doc::time_text(at).unwrap_or_else(|| at.to_string()),
             a.key.rule.as_str(),
             a.key.experiment,
@@ -505,8 +595,11 @@ pub fn to_text(report: &ReplayReport) -> String {
                 .as_deref()
                 .map(|v| format!(" / {v}"))
                 .unwrap_or_default(),
-            d.input,
-            d.line,
+            if d.line == 0 {
+                d.input.clone()
+            } else {
+                format!("{}:{}", d.input, d.line)
+            },
             a.finding.test,
             a.finding.value,
             a.finding.threshold,

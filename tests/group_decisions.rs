@@ -162,8 +162,8 @@ fn history(service: &Service, id: &str) -> Vec<Value> {
 }
 
 fn millis(text: &str) -> i64 {
-    let t = time::OffsetDateTime::parse(text, &time::format_description::well_known::Rfc3339)
-        .unwrap();
+    let t =
+        time::OffsetDateTime::parse(text, &time::format_description::well_known::Rfc3339).unwrap();
     (t.unix_timestamp_nanos() / 1_000_000) as i64
 }
 
@@ -178,14 +178,21 @@ fn each_experiment_is_decided_once_at_boundaries_on_every_partitions_totals() {
     let file = scratch.path().join("assign.ndjson");
     std::fs::write(&file, lines.join("\n") + "\n").unwrap();
     let out = std::process::Command::new("python3")
-        .arg(concat!(env!("CARGO_MANIFEST_DIR"), "/tests/tools/produce.py"))
+        .arg(concat!(
+            env!("CARGO_MANIFEST_DIR"),
+            "/tests/tools/produce.py"
+        ))
         .args(["--brokers", &brokers, "--topic", &topic])
         .args(["--partitions", &PARTITIONS.to_string()])
         .args(["--key", "rider.id", "--timestamps"])
         .arg(&file)
         .output()
         .expect("python3 tests/tools/produce.py (confluent-kafka)");
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
 
     let cfg = config(&brokers, &group, &topic, &changelog);
     let a = Service::start(&cfg);
@@ -197,10 +204,14 @@ fn each_experiment_is_decided_once_at_boundaries_on_every_partitions_totals() {
     for (id, _) in EXPERIMENTS {
         let (want, _) = model(&records, id, far);
         for s in instances {
-            wait_for(Duration::from_secs(90), "exact totals on every instance", || {
-                let (status, doc) = s.get(&format!("/v1/experiments/{id}"));
-                (status == 200 && units_in(&doc) == want).then_some(())
-            });
+            wait_for(
+                Duration::from_secs(90),
+                "exact totals on every instance",
+                || {
+                    let (status, doc) = s.get(&format!("/v1/experiments/{id}"));
+                    (status == 200 && units_in(&doc) == want).then_some(())
+                },
+            );
         }
     }
 
@@ -214,7 +225,9 @@ fn each_experiment_is_decided_once_at_boundaries_on_every_partitions_totals() {
             let done = h.iter().any(|points| {
                 points.last().is_some_and(|p| {
                     let arms = p["arms"].as_array().unwrap();
-                    arms.iter().map(|a| a["units"].as_u64().unwrap()).collect::<Vec<_>>()
+                    arms.iter()
+                        .map(|a| a["units"].as_u64().unwrap())
+                        .collect::<Vec<_>>()
                         == final_units
                 })
             });
@@ -227,7 +240,10 @@ fn each_experiment_is_decided_once_at_boundaries_on_every_partitions_totals() {
             "{id}: exactly one instance evaluates it: {histories:?}"
         );
         let points = &histories[evaluating[0]];
-        assert!(points.len() >= 10, "{id}: one evaluation per boundary: {points:?}");
+        assert!(
+            points.len() >= 10,
+            "{id}: one evaluation per boundary: {points:?}"
+        );
         // Every evaluation is the model's totals as of one boundary, in boundary order.
         let boundaries: Vec<i64> = (0..=45)
             .map(|k| (records[0].reference / 1000 / EVERY_SECS + k) * EVERY_SECS * 1000)
@@ -252,7 +268,9 @@ fn each_experiment_is_decided_once_at_boundaries_on_every_partitions_totals() {
                 .unwrap_or_else(|| panic!("{id}: {units:?} is no boundary's totals"));
             let (bnd, latest) = matches
                 .iter()
-                .find(|(_, latest)| *latest == Some(at) || latest.is_some_and(|l| l / 1000 == at / 1000))
+                .find(|(_, latest)| {
+                    *latest == Some(at) || latest.is_some_and(|l| l / 1000 == at / 1000)
+                })
                 .unwrap_or_else(|| panic!("{id}: {units:?} at {at}: {matches:?}"));
             assert!(latest.is_some());
             assert!(*bnd > previous, "{id}: boundaries evaluated in order");
@@ -363,7 +381,12 @@ fn harm_waves(seed: u64) -> Vec<Vec<String>> {
             }
         }
         lines.sort_by_key(|(r, _)| *r);
-        waves.push(lines.into_iter().map(|(r, e)| format!("{r}\t{e}")).collect());
+        waves.push(
+            lines
+                .into_iter()
+                .map(|(r, e)| format!("{r}\t{e}"))
+                .collect(),
+        );
     }
     waves
 }
@@ -372,20 +395,28 @@ fn produce_lines(brokers: &str, topic: &str, lines: &[String], dir: &std::path::
     let file = dir.join(format!("{topic}-{}.ndjson", lines.len()));
     std::fs::write(&file, lines.join("\n") + "\n").unwrap();
     let out = std::process::Command::new("python3")
-        .arg(concat!(env!("CARGO_MANIFEST_DIR"), "/tests/tools/produce.py"))
+        .arg(concat!(
+            env!("CARGO_MANIFEST_DIR"),
+            "/tests/tools/produce.py"
+        ))
         .args(["--brokers", brokers, "--topic", topic])
         .args(["--partitions", "6", "--key", "rider.id", "--timestamps"])
         .arg(&file)
         .output()
         .expect("python3 tests/tools/produce.py (confluent-kafka)");
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
 }
 
 /// The instance among `instances` that evaluates `id` (has recorded evaluations).
 fn evaluator(instances: &[Service], id: &str) -> Option<usize> {
     let with: Vec<usize> = (0..instances.len())
         .filter(|&i| {
-            let (status, doc) = instances[i].get(&format!("/v1/experiments/{id}/history?metric=boarded"));
+            let (status, doc) =
+                instances[i].get(&format!("/v1/experiments/{id}/history?metric=boarded"));
             status == 200 && doc["evaluations"].as_u64().unwrap_or(0) > 0
         })
         .collect();
@@ -406,14 +437,19 @@ fn each_alert_change_is_delivered_once_by_id_through_a_sigkill_of_the_owner() {
     let waves = harm_waves(11);
     // Topics exist before the instances start (they check partition counts).
     produce_lines(&brokers, &topic, &waves[0], scratch.path());
-    let mut instances: Vec<Service> = (0..3).map(|_| Service::start_with_env(&cfg, &env)).collect();
+    let mut instances: Vec<Service> = (0..3)
+        .map(|_| Service::start_with_env(&cfg, &env))
+        .collect();
 
     // Wave 1: the harm alert opens at the owner and reaches the receiver.
     let find = || {
         receiver
             .records()
             .iter()
-            .find(|r| r["event"]["data"]["rule"] == "harm" && r["event"]["data"]["experiment"] == "quick-board")
+            .find(|r| {
+                r["event"]["data"]["rule"] == "harm"
+                    && r["event"]["data"]["experiment"] == "quick-board"
+            })
             .map(|r| r["webhook_id"].as_str().unwrap().to_string())
     };
     let deadline = std::time::Instant::now() + Duration::from_secs(120);
@@ -428,15 +464,47 @@ fn each_alert_change_is_delivered_once_by_id_through_a_sigkill_of_the_owner() {
                     format!(
                         "doc {}\nhistory {}\nalerts {}\nlog {}",
                         s.get("/v1/experiments/quick-board").1,
-                        s.get("/v1/experiments/quick-board/history?metric=boarded").1["evaluations"],
+                        s.get("/v1/experiments/quick-board/history?metric=boarded")
+                            .1["evaluations"],
                         s.get("/v1/alerts").1,
-                        s.log_text().lines().filter(|l| l.contains("WARN") || l.contains("ERROR") || l.contains("group") || l.contains("revoked")).take(40).collect::<Vec<_>>().join("\n")
+                        s.log_text()
+                            .lines()
+                            .filter(|l| l.contains("WARN")
+                                || l.contains("ERROR")
+                                || l.contains("group")
+                                || l.contains("revoked"))
+                            .take(40)
+                            .collect::<Vec<_>>()
+                            .join("\n")
                     )
                 })
                 .collect();
-            let partials = common::kafka::consume_within(&brokers, &format!("{changelog}-partials"), 100_000, 5);
-            let partials: Vec<String> = partials.iter().map(|m| format!("{} {}", m["key"], m["value"].as_str().unwrap_or("").chars().take(160).collect::<String>())).collect();
-            panic!("the harm alert was not delivered:\n{}\npartials:\n{}", state.join("\n\n"), partials.join("\n"));
+            let partials = common::kafka::consume_within(
+                &brokers,
+                &format!("{changelog}-partials"),
+                100_000,
+                5,
+            );
+            let partials: Vec<String> = partials
+                .iter()
+                .map(|m| {
+                    format!(
+                        "{} {}",
+                        m["key"],
+                        m["value"]
+                            .as_str()
+                            .unwrap_or("")
+                            .chars()
+                            .take(160)
+                            .collect::<String>()
+                    )
+                })
+                .collect();
+            panic!(
+                "the harm alert was not delivered:\n{}\npartials:\n{}",
+                state.join("\n\n"),
+                partials.join("\n")
+            );
         }
         std::thread::sleep(Duration::from_millis(300));
     };
@@ -450,34 +518,58 @@ fn each_alert_change_is_delivered_once_by_id_through_a_sigkill_of_the_owner() {
     }
     // The owner after the kill evaluates the last boundary on every partition's totals.
     for (id, _) in EXPERIMENTS {
-        wait_for(Duration::from_secs(150), "the last boundary evaluated after the kill", || {
-            let (_, doc) = instances[0].get(&format!("/v1/experiments/{id}"));
-            let want = doc["variants"].as_array()?.iter().map(|v| v["units"].as_u64()).collect::<Option<Vec<u64>>>()?;
-            (want.iter().sum::<u64>() > 2000).then_some(())?;
-            instances.iter().any(|s| {
-                history(s, id).last().is_some_and(|p| {
-                    p["arms"].as_array().unwrap().iter().map(|a| a["units"].as_u64().unwrap()).collect::<Vec<_>>() == want
-                })
-            })
-            .then_some(())
-        });
+        wait_for(
+            Duration::from_secs(150),
+            "the last boundary evaluated after the kill",
+            || {
+                let (_, doc) = instances[0].get(&format!("/v1/experiments/{id}"));
+                let want = doc["variants"]
+                    .as_array()?
+                    .iter()
+                    .map(|v| v["units"].as_u64())
+                    .collect::<Option<Vec<u64>>>()?;
+                (want.iter().sum::<u64>() > 2000).then_some(())?;
+                instances
+                    .iter()
+                    .any(|s| {
+                        history(s, id).last().is_some_and(|p| {
+                            p["arms"]
+                                .as_array()
+                                .unwrap()
+                                .iter()
+                                .map(|a| a["units"].as_u64().unwrap())
+                                .collect::<Vec<_>>()
+                                == want
+                        })
+                    })
+                    .then_some(())
+            },
+        );
     }
     // Every instance ends with the same alerts of quick-board, from the one owner's book.
-    let books = wait_for(Duration::from_secs(150), "the same alerts on every instance", || {
-        let lists: Vec<Vec<String>> = instances
-            .iter()
-            .map(|s| {
-                let (_, list) = s.get("/v1/alerts?experiment=quick-board");
-                let mut ids: Vec<String> = list["alerts"]
-                    .as_array()
-                    .map(|a| a.iter().map(|x| format!("{}:{}", x["id"], x["state"])).collect())
-                    .unwrap_or_default();
-                ids.sort();
-                ids
-            })
-            .collect();
-        (!lists[0].is_empty() && lists.iter().all(|l| *l == lists[0])).then_some(lists)
-    });
+    let books = wait_for(
+        Duration::from_secs(150),
+        "the same alerts on every instance",
+        || {
+            let lists: Vec<Vec<String>> = instances
+                .iter()
+                .map(|s| {
+                    let (_, list) = s.get("/v1/alerts?experiment=quick-board");
+                    let mut ids: Vec<String> = list["alerts"]
+                        .as_array()
+                        .map(|a| {
+                            a.iter()
+                                .map(|x| format!("{}:{}", x["id"], x["state"]))
+                                .collect()
+                        })
+                        .unwrap_or_default();
+                    ids.sort();
+                    ids
+                })
+                .collect();
+            (!lists[0].is_empty() && lists.iter().all(|l| *l == lists[0])).then_some(lists)
+        },
+    );
     std::thread::sleep(Duration::from_secs(3));
     let records = receiver.records();
     assert!(
@@ -489,7 +581,9 @@ fn each_alert_change_is_delivered_once_by_id_through_a_sigkill_of_the_owner() {
         .iter()
         .filter(|r| {
             let d = &r["event"]["data"];
-            d["rule"] == "harm" && d["experiment"] == "quick-board" && r["event"]["type"] == "posteriord.alert.opened"
+            d["rule"] == "harm"
+                && d["experiment"] == "quick-board"
+                && r["event"]["type"] == "posteriord.alert.opened"
         })
         .map(|r| r["webhook_id"].as_str().unwrap().to_string())
         .collect();
@@ -500,12 +594,79 @@ fn each_alert_change_is_delivered_once_by_id_through_a_sigkill_of_the_owner() {
         .iter()
         .map(|r| r["webhook_id"].as_str().unwrap().to_string())
         .collect();
+    // Replay of the six partitions' dumps (record timestamps as the reference column)
+    // reaches the live owner's decisions: the same alerts, ids, states and times.
+    let total: usize = waves.iter().map(Vec::len).sum();
+    let dumped = common::kafka::consume_within(&brokers, &topic, total, 60);
+    let mut files = Vec::new();
+    for p in 0..6 {
+        let mut records: Vec<&Value> = dumped.iter().filter(|m| m["partition"] == p).collect();
+        records.sort_by_key(|m| m["offset"].as_i64().unwrap());
+        let text: String = records
+            .iter()
+            .map(|m| format!("{}\t{}\n", m["timestamp"], m["value"].as_str().unwrap()))
+            .collect();
+        let file = scratch.path().join(format!("partition-{p}.txt"));
+        std::fs::write(&file, text).unwrap();
+        files.push(format!("tidewater-boarding={}", file.display()));
+    }
+    assert_eq!(dumped.len(), total);
+    let cfg_file = scratch.path().join("replay.toml");
+    std::fs::write(&cfg_file, &cfg).unwrap();
+    let out = std::process::Command::new(common::bin())
+        .args(["replay", "--partitioned", "--format", "json", "--config"])
+        .arg(&cfg_file)
+        .args(&files)
+        .env("POSTERIORD_EVENT_TIME_MAX_BEHIND_DAYS", "3650")
+        .env("TIDEWATER_HOOK_SECRET", WHSEC)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let replayed: Value = serde_json::from_slice(&out.stdout).unwrap();
+    let summary = |alerts: &Value, id: &str| -> Vec<String> {
+        let mut v: Vec<String> = alerts
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|a| a["experiment"] == id)
+            .map(|a| {
+                format!(
+                    "{} {} {} {} {}",
+                    a["id"], a["rule"], a["state"], a["opened_at"], a["closed_at"]
+                )
+            })
+            .collect();
+        v.sort();
+        v
+    };
+    assert!(
+        !summary(&replayed["alerts"], "quick-board").is_empty(),
+        "replay raises the harm alert too: {replayed}"
+    );
+    for (id, _) in EXPERIMENTS {
+        let (_, live) = instances[0].get(&format!("/v1/alerts?experiment={id}"));
+        assert_eq!(
+            summary(&live["alerts"], id),
+            summary(&replayed["alerts"], id),
+            "{id}: live and replay decide alike"
+        );
+    }
     let (_, list) = instances[0].get("/v1/alerts?experiment=quick-board");
     for a in list["alerts"].as_array().unwrap() {
         let id = a["id"].as_str().unwrap();
-        assert!(ids.contains(&format!("{id}.opened")), "{id} opened was delivered: {ids:?}");
+        assert!(
+            ids.contains(&format!("{id}.opened")),
+            "{id} opened was delivered: {ids:?}"
+        );
         if a["state"] == "closed" {
-            assert!(ids.contains(&format!("{id}.closed")), "{id} closed was delivered");
+            assert!(
+                ids.contains(&format!("{id}.closed")),
+                "{id} closed was delivered"
+            );
         }
     }
 }

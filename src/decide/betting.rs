@@ -142,10 +142,12 @@ impl HarmProcess {
         if n.len() != 11 && n.len() != 11 + GRID_POINTS {
             return None;
         }
-        let stream = match n[0] {
-            x if x == 0.0 => Stream::Conversion,
-            x if x == 1.0 => Stream::Defect,
-            _ => return None,
+        let stream = if n[0] == 0.0 {
+            Stream::Conversion
+        } else if n[0] == 1.0 {
+            Stream::Defect
+        } else {
+            return None;
         };
         Some(HarmProcess {
             stream,

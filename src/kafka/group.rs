@@ -70,9 +70,7 @@ impl GroupTopic {
                 match self.producer.send(record) {
                     Ok(()) => break,
                     Err((
-                        KafkaError::MessageProduction(
-                            rdkafka::types::RDKafkaErrorCode::QueueFull,
-                        ),
+                        KafkaError::MessageProduction(rdkafka::types::RDKafkaErrorCode::QueueFull),
                         r,
                     )) => {
                         record = r;

@@ -422,9 +422,10 @@ fn consume_loop(
         // Partials before any save or changelog publication: a restored shard re-creates
         // only the boundary entries after its image, so those before must be out already.
         let group_published = match cfg.group.get() {
-            Some(g) if last_group.elapsed() >= GROUP_PUBLISH_INTERVAL
-                || last_save.elapsed() >= cfg.snapshot_interval
-                || last_publish.elapsed() >= cfg.changelog_interval =>
+            Some(g)
+                if last_group.elapsed() >= GROUP_PUBLISH_INTERVAL
+                    || last_save.elapsed() >= cfg.snapshot_interval
+                    || last_publish.elapsed() >= cfg.changelog_interval =>
             {
                 last_group = Instant::now();
                 group::publish_pending(service, g)

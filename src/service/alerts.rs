@@ -567,7 +567,10 @@ mod tests {
         let mut desk = AlertDesk::restore(dir.path(), &cfg).unwrap();
         desk.book_mut().evidence_mut().advance(&snap);
         let before = desk.book().evidence().export(&def.state_key());
-        assert!(!before.is_empty(), "the metric has an anytime-valid harm rule");
+        assert!(
+            !before.is_empty(),
+            "the metric has an anytime-valid harm rule"
+        );
         desk.save();
         let restored = AlertDesk::restore(dir.path(), &cfg).unwrap();
         assert_eq!(restored.book().evidence().export(&def.state_key()), before);

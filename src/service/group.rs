@@ -310,9 +310,10 @@ impl Service {
                         .collect();
                     out.push(GroupMessage {
                         key: format!("e/{experiment}/{partition}"),
-                        value: json!({"position": position, "watermark": watermark, "as_of": as_of})
-                            .to_string()
-                            .into_bytes(),
+                        value:
+                            json!({"position": position, "watermark": watermark, "as_of": as_of})
+                                .to_string()
+                                .into_bytes(),
                     });
                 }
                 beats.push((partition as u32, position, watermark));
@@ -415,7 +416,10 @@ impl Service {
                     .map(|(b, v)| Some((*b, decode_totals(&def, v)?)))
                     .collect();
                 let Some(as_of) = as_of else {
-                    tracing::warn!(key, "skipping a partial whose totals do not fit the experiment's definition");
+                    tracing::warn!(
+                        key,
+                        "skipping a partial whose totals do not fit the experiment's definition"
+                    );
                     return Vec::new();
                 };
                 let offered = {
@@ -466,10 +470,17 @@ impl Service {
                 evaluated,
             } => {
                 let v: Value = serde_json::from_slice(value).unwrap_or_default();
-                let id = experiment.split('~').next().unwrap_or(&experiment).to_string();
+                let id = experiment
+                    .split('~')
+                    .next()
+                    .unwrap_or(&experiment)
+                    .to_string();
                 let adopt = {
                     let mut state = lock(&group.state);
-                    let e = state.acknowledged.entry(experiment.clone()).or_insert(evaluated);
+                    let e = state
+                        .acknowledged
+                        .entry(experiment.clone())
+                        .or_insert(evaluated);
                     *e = (*e).max(evaluated);
                     if let Some(m) = state.mergers.get_mut(&experiment) {
                         m.evaluated(evaluated);
@@ -557,7 +568,10 @@ impl Service {
             (due, takeover)
         };
         if let Some(book) = takeover {
-            tracing::info!(experiment = id, "this instance owns the experiment now: evaluating it, and sending its alerts");
+            tracing::info!(
+                experiment = id,
+                "this instance owns the experiment now: evaluating it, and sending its alerts"
+            );
             if let Some(book) = book.filter(|b| !b.is_null()) {
                 lock(&self.desk).adopt_experiment(id, experiment, &book, true);
             }
@@ -597,7 +611,12 @@ mod tests {
         s.units = vec![3, 4];
         for m in &mut s.metrics {
             match m {
-                MetricTotals::Conversion(t) => t[1] = ConversionTotals { trials: 9, successes: 2 },
+                MetricTotals::Conversion(t) => {
+                    t[1] = ConversionTotals {
+                        trials: 9,
+                        successes: 2,
+                    }
+                }
                 MetricTotals::Defect(t) => {
                     t[0] = DefectTotals {
                         count: 5,

@@ -395,7 +395,9 @@ impl ShardBoundaries {
 
     /// Every experiment with entries, by state key.
     pub fn experiments(&self) -> impl Iterator<Item = (&str, &[(Micros, ExperimentSnapshot)])> {
-        self.logs.iter().map(|(k, l)| (k.as_str(), l.pending.as_slice()))
+        self.logs
+            .iter()
+            .map(|(k, l)| (k.as_str(), l.pending.as_slice()))
     }
 
     /// The experiments whose entries changed since the last call (to publish), clearing the
@@ -432,7 +434,11 @@ impl ShardBoundaries {
     }
 
     /// Restore from an image: the watermark and every experiment's pending entries.
-    pub fn restore(&mut self, watermark: Option<Micros>, logs: Vec<(String, Vec<(Micros, ExperimentSnapshot)>)>) {
+    pub fn restore(
+        &mut self,
+        watermark: Option<Micros>,
+        logs: Vec<(String, Vec<(Micros, ExperimentSnapshot)>)>,
+    ) {
         self.watermark = watermark.unwrap_or(Micros::MIN);
         for (id, pending) in logs {
             if let Some((_, last)) = pending.last() {

@@ -61,4 +61,3 @@ impl Drop for Receiver {
         let _ = self.child.wait();
     }
 }
-

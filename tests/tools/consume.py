@@ -2,8 +2,9 @@
 """Independent Kafka consumer for posteriord's tests (Python confluent-kafka).
 
 Reads a topic from the beginning until COUNT messages arrived or TIMEOUT seconds passed, and
-prints one JSON object per message: {"key", "value", "headers": {name: value}} with bytes
-decoded as UTF-8 (invalid bytes replaced).
+prints one JSON object per message: {"key", "value", "headers": {name: value}, "partition",
+"offset", "timestamp"} with bytes decoded as UTF-8 (invalid bytes replaced) and the record
+timestamp in milliseconds (what a topic dump's timestamp column holds).
 
 usage: consume.py --brokers HOST:PORT --topic T --count N [--timeout S]
 """
@@ -40,7 +41,10 @@ def main():
         if m is None or m.error():
             continue
         headers = {k: text(v) for k, v in (m.headers() or [])}
-        print(json.dumps({"key": text(m.key()), "value": text(m.value()), "headers": headers}), flush=True)
+        _, timestamp = m.timestamp()
+        print(json.dumps({"key": text(m.key()), "value": text(m.value()), "headers": headers,
+                          "partition": m.partition(), "offset": m.offset(),
+                          "timestamp": timestamp}), flush=True)
         got += 1
     c.close()
 
