@@ -239,6 +239,16 @@ fn each_experiment_is_decided_once_at_boundaries_on_every_partitions_totals() {
             1,
             "{id}: exactly one instance evaluates it: {histories:?}"
         );
+        // Every instance's document names the owner; the one that evaluates says it is it.
+        let owners: Vec<Value> = instances
+            .iter()
+            .map(|s| s.get(&format!("/v1/experiments/{id}")).1["ownership"].clone())
+            .collect();
+        assert_eq!(owners[0]["owner_partition"], owners[1]["owner_partition"], "{owners:?}");
+        assert!(owners[0]["owner_partition"].as_u64().unwrap() < u64::from(PARTITIONS));
+        for (i, o) in owners.iter().enumerate() {
+            assert_eq!(o["owned_here"], i == evaluating[0], "{owners:?}");
+        }
         let points = &histories[evaluating[0]];
         assert!(
             points.len() >= 10,

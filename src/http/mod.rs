@@ -302,10 +302,21 @@ async fn get_experiment(
     };
     let generation = snapshot.def.generation;
     let evidence = service.with_alerts(|book| book.evidence().subset(&snapshot.def.state_key()));
+    let ownership = service.group_view(&id).map(|g| {
+        json!({
+            "owner_partition": g.owner_partition,
+            "owned_here": g.owned_here,
+            "evaluated_through": g.evaluated.and_then(doc::time_text),
+            "partitions_passed": g.watermark.and_then(doc::time_text),
+        })
+    });
     match blocking(move || {
         let mut d = doc::experiment_document(&service.reading(snapshot), Some(&evidence));
         d["source"] = json!(source);
         d["generation"] = json!(generation);
+        if let Some(o) = ownership {
+            d["ownership"] = o;
+        }
         d
     })
     .await
