@@ -244,7 +244,10 @@ fn each_experiment_is_decided_once_at_boundaries_on_every_partitions_totals() {
             .iter()
             .map(|s| s.get(&format!("/v1/experiments/{id}")).1["ownership"].clone())
             .collect();
-        assert_eq!(owners[0]["owner_partition"], owners[1]["owner_partition"], "{owners:?}");
+        assert_eq!(
+            owners[0]["owner_partition"], owners[1]["owner_partition"],
+            "{owners:?}"
+        );
         assert!(owners[0]["owner_partition"].as_u64().unwrap() < u64::from(PARTITIONS));
         for (i, o) in owners.iter().enumerate() {
             assert_eq!(o["owned_here"], i == evaluating[0], "{owners:?}");

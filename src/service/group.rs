@@ -66,10 +66,6 @@ struct GroupState {
     books: BTreeMap<String, (Micros, Value)>,
     /// Experiments this instance evaluates as their owner (their alerts taken over).
     owned: std::collections::BTreeSet<String>,
-    /// Boundaries evaluated here.
-    evaluated: u64,
-    /// Partials refused as conflicting (two writers for one partition, or a bug).
-    conflicts: u64,
 }
 
 /// What one instance knows about an experiment decided across the group.
@@ -373,6 +369,10 @@ impl Service {
                 position,
                 watermark,
             } => {
+                self.metrics
+                    .group_watermark
+                    .with_label_values(&[&partition.to_string()])
+                    .set(watermark as f64 / 1e6);
                 let touched: Vec<String> = {
                     let mut state = lock(&group.state);
                     state.heartbeats.insert(partition, (position, watermark));
@@ -451,11 +451,17 @@ impl Service {
                         watermark,
                         as_of,
                     });
-                    if offered == Offered::Conflict {
-                        state.conflicts += 1;
-                    }
                     offered
                 };
+                let result = match offered {
+                    Offered::Taken => "taken",
+                    Offered::Stale => "stale",
+                    Offered::Conflict => "conflict",
+                };
+                self.metrics
+                    .group_partials
+                    .with_label_values(&[result])
+                    .inc();
                 match offered {
                     Offered::Taken => self.evaluate_ready(group, &experiment),
                     Offered::Conflict => {
@@ -564,7 +570,6 @@ impl Service {
             if let Some(&last) = ready.last() {
                 merger.evaluated(last);
             }
-            state.evaluated += ready.len() as u64;
             (due, takeover)
         };
         if let Some(book) = takeover {
@@ -579,6 +584,10 @@ impl Service {
         let Some(&(last, _)) = due.last() else {
             return Vec::new();
         };
+        self.metrics
+            .group_boundaries
+            .with_label_values(&[id])
+            .inc_by(due.len() as u64);
         for (_, snapshot) in due {
             if snapshot.is_empty() {
                 continue;

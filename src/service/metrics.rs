@@ -60,6 +60,13 @@ pub struct Metrics {
     pub restore_mismatches: prometheus::IntCounter,
     /// Partition states published to the changelog, by result (ok, error).
     pub changelog_publishes: IntCounterVec,
+    /// Partials read from the partials topic, by what the merger did (taken, stale, conflict).
+    pub group_partials: IntCounterVec,
+    /// Reference-time boundaries evaluated here as the experiment's owner.
+    pub group_boundaries: IntCounterVec,
+    /// Each input partition's reference-time watermark as its heartbeat last said (seconds
+    /// since the epoch).
+    pub group_watermark: prometheus::GaugeVec,
     /// Alerts by rule and state (open, easing, closed, recorded).
     pub alerts: IntGaugeVec,
     /// Alert changes by rule and change (opened, closed).
@@ -270,6 +277,24 @@ impl Metrics {
             "Partition states published to the changelog topic, by result.",
             &["result"],
         );
+        let group_partials = counter_vec(
+            &registry,
+            "posteriord_group_partials_total",
+            "Partial totals read from the partials topic, by result (taken; stale: a redelivery or an older one; conflict: two writers for one partition).",
+            &["result"],
+        );
+        let group_boundaries = counter_vec(
+            &registry,
+            "posteriord_group_boundaries_evaluated_total",
+            "Reference-time boundaries this instance evaluated as the experiment's owner.",
+            &["experiment"],
+        );
+        let group_watermark = gauge_vec(
+            &registry,
+            "posteriord_group_partition_watermark_seconds",
+            "Reference time every record of the input partition before which has been applied, as its last heartbeat said (seconds since the epoch); decisions wait for the smallest.",
+            &["partition"],
+        );
         let alerts = int_gauge_vec(
             "posteriord_alerts",
             "Alerts by rule and state (open, easing, closed, recorded).",
@@ -314,6 +339,9 @@ impl Metrics {
             alerts,
             alert_changes,
             changelog_publishes,
+            group_partials,
+            group_boundaries,
+            group_watermark,
             kafka_lag,
             kafka_next_offset,
             restoring,
