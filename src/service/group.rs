@@ -445,13 +445,12 @@ impl Service {
                         }
                         m
                     });
-                    let offered = merger.offer(Partial {
+                    merger.offer(Partial {
                         partition,
                         positions: vec![position],
                         watermark,
                         as_of,
-                    });
-                    offered
+                    })
                 };
                 let result = match offered {
                     Offered::Taken => "taken",
