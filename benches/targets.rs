@@ -4,10 +4,11 @@
 //! under HTTP read load (wrk), the cost of rule evaluation, and the fleet view at 5 000
 //! experiments (list page and overview in Chromium, `parts/fleet.rs`), and a team's own
 //! streams: mapped decoding with attribution, and the membership index's memory
-//! (`parts/mapped.rs`).
+//! (`parts/mapped.rs`), and a consumer group of 1, 2 and 3 instances on one unit-keyed topic
+//! (`parts/group.rs`).
 //!
 //! Run all with `cargo bench --bench targets`, or some with
-//! `cargo bench --bench targets -- ingest memory restart kafka http evaluation fleet mapped`.
+//! `cargo bench --bench targets -- ingest memory restart kafka http evaluation fleet mapped group`.
 //! `POSTERIORD_BENCH_UNITS` sets the units of the memory/restart state (default 10 000 000);
 //! `POSTERIORD_BENCH_BROKERS` names a broker, else Apache Kafka is started on loopback with
 //! tests/kafka/broker.sh.
@@ -32,6 +33,8 @@ use posteriord::state::shards::Shards;
 
 #[path = "parts/fleet.rs"]
 mod fleet;
+#[path = "parts/group.rs"]
+mod group;
 #[path = "parts/mapped.rs"]
 mod mapped;
 
@@ -131,6 +134,9 @@ fn main() {
     }
     if want("mapped") {
         rows.extend(mapped::mapped_target());
+    }
+    if want("group") {
+        rows.extend(group::group_target(work.path()));
     }
     if smoke() {
         for r in &rows {
