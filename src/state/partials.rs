@@ -580,6 +580,106 @@ mod tests {
         }
     }
 
+    /// A one-metric experiment whose snapshots stand for a partition's counts per arm.
+    fn ferry_snapshot(units: [u64; 2]) -> ExperimentSnapshot {
+        use crate::experiment::{ExperimentDef, MetricDef, MetricKind, Prior, VariantDef};
+        let def = ExperimentDef {
+            id: "harbour-boarding".into(),
+            generation: 0,
+            control: 0,
+            variants: ["queue", "tap"]
+                .iter()
+                .map(|n| VariantDef {
+                    name: (*n).into(),
+                    weight: 0.5,
+                })
+                .collect(),
+            metrics: vec![MetricDef {
+                name: "boarded".into(),
+                kind: MetricKind::Conversion,
+                prior: Prior::Beta {
+                    alpha: 1.0,
+                    beta: 1.0,
+                },
+                variant_priors: vec![None, None],
+                rules: Default::default(),
+            }],
+            rules: Default::default(),
+        };
+        let mut s = super::super::ExperimentState::new(std::sync::Arc::new(def)).snapshot();
+        s.units = units.to_vec();
+        s.outcomes.0[0] = units.iter().sum();
+        s
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig {
+            failure_persistence: Some(Box::new(
+                proptest::test_runner::FileFailurePersistence::SourceParallel("proptest-regressions"),
+            )),
+            ..ProptestConfig::with_cases(CASES)
+        })]
+
+        /// A shard's boundary entries, advanced before each record as the ingest path does
+        /// and acknowledged as an owner would, merge to the totals of the records before each
+        /// boundary, in boundary order.
+        #[test]
+        fn shard_entries_merge_to_the_totals_of_the_logs(
+            logs in prop::collection::vec(partition_log(), 1..4),
+            ack_every in 1usize..6,
+        ) {
+            let end = 200;
+            let mut merger = Merger::new(logs.len() as u32, ferry_snapshot([0, 0]));
+            let mut sides: Vec<(ShardBoundaries, [u64; 2])> =
+                logs.iter().map(|_| (ShardBoundaries::new(EVERY), [0, 0])).collect();
+            let key = ferry_snapshot([0, 0]).def.state_key();
+            let mut evaluated = Vec::new();
+            let longest = logs.iter().map(Vec::len).max().unwrap_or(0);
+            // Partitions advance in turns; each publishes after every record.
+            for i in 0..=longest {
+                for (p, log) in logs.iter().enumerate() {
+                    let (side, counts) = &mut sides[p];
+                    let now = *counts;
+                    match log.get(i) {
+                        Some(&(t, arm)) => {
+                            side.advance(t, || vec![ferry_snapshot(now)]);
+                            counts[arm] += 1;
+                        }
+                        // Then idle up to `end`.
+                        None if i == log.len() => {
+                            side.advance(end, || vec![ferry_snapshot(now)]);
+                        }
+                        None => continue,
+                    }
+                    if let Some(w) = side.watermark() {
+                        merger.offer(Partial {
+                            partition: p as u32,
+                            positions: vec![i as i64 + 1],
+                            watermark: w,
+                            as_of: side.entries(&key).to_vec(),
+                        });
+                    }
+                }
+                for b in merger.ready() {
+                    let totals = merger.totals_at(b);
+                    evaluated.push((b, totals.units.clone()));
+                    merger.evaluated(b);
+                    if evaluated.len() % ack_every == 0 {
+                        for (side, _) in &mut sides {
+                            side.acknowledge(&key, b);
+                        }
+                    }
+                }
+            }
+            for w in evaluated.windows(2) {
+                prop_assert!(w[0].0 < w[1].0);
+            }
+            for (b, units) in &evaluated {
+                prop_assert_eq!(units, &direct(&logs, *b).0);
+            }
+        }
+    }
+
     #[test]
     fn a_boundary_waits_for_every_partition() {
         let mut m = Merger::new(2, Counts(vec![0]));
