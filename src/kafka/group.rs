@@ -116,15 +116,30 @@ pub fn follow(
     tpl.add_partition_offset(topic.topic(), 0, Offset::Beginning)?;
     consumer.assign(&tpl)?;
     let mut last_sweep = std::time::Instant::now();
+    // The topic's end as last asked for.
+    let mut high = 0;
     while !shutdown.is_cancelled() {
         let acks = match consumer.poll(Duration::from_millis(100)) {
             Some(Ok(m)) => match m.key() {
-                Some(key) => service.offer_group_message(key, m.payload()),
+                Some(key) => {
+                    // Evaluate only at the end of the topic: what lies behind may acknowledge
+                    // those boundaries already. The end is asked for again only once the
+                    // known one is reached, so catching up costs few round trips.
+                    if m.offset() + 1 >= high {
+                        if let Ok((_, h)) =
+                            consumer.fetch_watermarks(topic.topic(), 0, Duration::from_secs(2))
+                        {
+                            high = h;
+                        }
+                    }
+                    let at_end = m.offset() + 1 >= high;
+                    service.offer_group_message(key, m.payload(), at_end)
+                }
                 None => continue,
             },
-            // Quiet: experiments whose partition this instance gained by a rebalance are
-            // evaluated here, since no message may come to say so.
-            _ if last_sweep.elapsed() >= SWEEP_INTERVAL => {
+            // Quiet, so at the end: experiments whose partition this instance gained by a
+            // rebalance are evaluated here, since no message may come to say so.
+            None if last_sweep.elapsed() >= SWEEP_INTERVAL => {
                 last_sweep = std::time::Instant::now();
                 service.evaluate_group_ready()
             }

@@ -350,9 +350,17 @@ impl Service {
     }
 
     /// Take one message read from the partials topic (in topic order; `None` value: a
-    /// tombstone, ignored). Experiments this instance owns are evaluated at every boundary
-    /// now ready, in order; the returned acknowledgements are for the edge to publish.
-    pub fn offer_group_message(&self, key: &[u8], value: Option<&[u8]>) -> Vec<GroupMessage> {
+    /// tombstone, ignored). With `evaluate` (the follower has read the topic to its end),
+    /// experiments this instance owns are evaluated at every boundary now ready, in order; the
+    /// returned acknowledgements are for the edge to publish. A follower behind the end must
+    /// not evaluate: the acknowledgements it has not read yet may cover those boundaries, and
+    /// the alerts it would take over would be old.
+    pub fn offer_group_message(
+        &self,
+        key: &[u8],
+        value: Option<&[u8]>,
+        evaluate: bool,
+    ) -> Vec<GroupMessage> {
         let Some(group) = self.group.get() else {
             return Vec::new();
         };
@@ -390,6 +398,9 @@ impl Service {
                     }
                     touched
                 };
+                if !evaluate {
+                    return Vec::new();
+                }
                 touched
                     .into_iter()
                     .flat_map(|e| self.evaluate_ready(group, &e))
@@ -462,7 +473,8 @@ impl Service {
                     .with_label_values(&[result])
                     .inc();
                 match offered {
-                    Offered::Taken => self.evaluate_ready(group, &experiment),
+                    Offered::Taken if evaluate => self.evaluate_ready(group, &experiment),
+                    Offered::Taken => Vec::new(),
                     Offered::Conflict => {
                         tracing::error!(key, "a partial conflicts with the one held (two writers for one partition?); ignored");
                         Vec::new()
@@ -530,8 +542,9 @@ impl Service {
     }
 
     /// Evaluate what is ready of every experiment this instance owns now. The follower calls
-    /// this when the topic is quiet: an instance that gains a partition by a rebalance owns
-    /// its experiments from then on, and no new message may come to say so.
+    /// this when it has read the topic to its end and the topic is quiet: an instance that
+    /// gains a partition by a rebalance owns its experiments from then on, and no new message
+    /// may come to say so.
     pub fn evaluate_group_ready(&self) -> Vec<GroupMessage> {
         let Some(group) = self.group.get() else {
             return Vec::new();
