@@ -26,6 +26,7 @@ use tokio_util::task::TaskTracker;
 
 pub mod changelog;
 pub mod client;
+mod merge;
 mod partitions;
 
 use changelog::Changelog;
@@ -134,6 +135,7 @@ pub fn start(
         service: Arc::clone(&service),
         dead_letters: dead_letters.clone(),
         changelog: Arc::clone(&changelog),
+        merge: merge::MergeShared::default(),
     };
     let mut consumer_config = client_config(cfg);
     if !service.mapped_topics().is_empty() {
@@ -164,6 +166,7 @@ pub fn start(
         dead_letter_topic: cfg.dead_letter_topic.clone(),
         snapshot_interval: service.snapshot_interval(),
         changelog_interval: cfg.changelog_interval,
+        idle_allowance: cfg.idle_allowance,
     };
     let handle = tokio::runtime::Handle::current();
     let kafka_cfg = cfg.clone();
@@ -266,6 +269,8 @@ struct LoopConfig {
     dead_letter_topic: Option<String>,
     snapshot_interval: Duration,
     changelog_interval: Duration,
+    /// See [`merge`]: how long an idle co-partitioned topic may hold the others back.
+    idle_allowance: Duration,
 }
 
 fn probe_loop(probe: &BaseConsumer, service: &Service, shutdown: &CancellationToken) {
@@ -341,14 +346,32 @@ fn consume_loop(
     let mut last_error_log = Instant::now() - Duration::from_secs(60);
     let mut last_save = Instant::now();
     let mut last_publish = Instant::now();
+    // Co-partitioned topics are applied in reference-time order (see `merge`); the built-in
+    // format's topics go straight to their batch as before.
+    let mut merger = merge::Merger::new(service.mapped_topics(), cfg.idle_allowance);
+    let shared = &consumer.context().merge;
     while !shutdown.is_cancelled() {
         let mut batch = Vec::new();
+        let mut polled = 0;
         let deadline = Instant::now() + MAX_BATCH_WAIT;
         let mut timeout = POLL_TIMEOUT;
-        while batch.len() < MAX_BATCH {
-            match consumer.poll(timeout) {
+        while polled < MAX_BATCH {
+            let next = consumer.poll(timeout);
+            if merger.is_on() {
+                // Before anything this poll returned is queued: a rebalance inside it moved
+                // the positions, and what was buffered before is fetched again.
+                merger.after_poll(consumer, shared);
+            }
+            match next {
                 None => break,
-                Some(Ok(msg)) => batch.push(msg),
+                Some(Ok(msg)) => {
+                    polled += 1;
+                    if !merger.is_on() {
+                        batch.push(msg);
+                    } else if let Some(msg) = merger.offer(consumer, shared, service, msg) {
+                        batch.push(msg);
+                    }
+                }
                 Some(Err(e)) => {
                     // Broker and partition errors are transient for a consumer; librdkafka
                     // retries by itself. Log at most every 10 s so an outage does not flood.
@@ -367,6 +390,16 @@ fn consume_loop(
         }
         if !batch.is_empty() {
             apply_messages(consumer, service, dead_letters, cfg, &batch, &mut shard_ids);
+        }
+        if merger.is_on() {
+            let (ready, marks) = merger.take_ready(consumer, service);
+            if !ready.is_empty() {
+                apply_messages(consumer, service, dead_letters, cfg, &ready, &mut shard_ids);
+            }
+            for (shard, mark) in &marks {
+                service.note_reference_watermark(shard, *mark);
+            }
+            merger.resume_drained(consumer, shared);
         }
         if last_save.elapsed() >= cfg.snapshot_interval {
             if flush_dead_letters(dead_letters, service) {

@@ -95,6 +95,13 @@ pub struct Metrics {
     pub event_time_largest_skew: GaugeVec,
     /// What the checks found per source, for the API and the dashboard.
     pub clock: super::clock::ClockHealth,
+    /// Per co-partitioned Kafka shard: wall-clock time minus its reference-time watermark
+    /// (seconds), set at each scrape ([`Metrics::set_reference_lags`]).
+    reference_lag: GaugeVec,
+    /// Records of co-partitioned topics read after their shard's reference-time watermark had
+    /// passed their timestamp (a producer or broker clock behind by more than the idle
+    /// allowance), by topic: applied late, out of reference-time order.
+    pub records_behind_watermark: IntCounterVec,
 }
 
 fn counter_vec(registry: &Registry, name: &str, help: &str, labels: &[&str]) -> IntCounterVec {
@@ -401,6 +408,18 @@ impl Metrics {
             held_decided,
             kafka_reachable,
             variant_units,
+            reference_lag: gauge_vec(
+                &registry,
+                "posteriord_shard_reference_lag_seconds",
+                "Per co-partitioned Kafka shard: now minus the reference time (record timestamp) below which every record of its topics is applied.",
+                &["shard"],
+            ),
+            records_behind_watermark: counter_vec(
+                &registry,
+                "posteriord_kafka_records_behind_watermark_total",
+                "Records of co-partitioned topics whose timestamp was already behind their shard's reference-time watermark when read (applied out of order).",
+                &["topic"],
+            ),
         };
         for source in [Source::Http, Source::Kafka, Source::Simulator] {
             for outcome in Outcome::ALL {
@@ -463,6 +482,17 @@ impl Metrics {
         self.rejected
             .with_label_values(&[source.as_str(), reason.as_str()])
             .inc();
+    }
+
+    /// Replace the per-shard reference lags with `lags` (shard, seconds): shards that moved
+    /// to another instance lose their series.
+    pub fn set_reference_lags(&self, lags: &[(String, f64)]) {
+        self.reference_lag.reset();
+        for (shard, seconds) in lags {
+            self.reference_lag
+                .with_label_values(&[shard.as_str()])
+                .set(*seconds);
+        }
     }
 
     /// [`Metrics::new`], with the Kafka reachability gauge at 0 (until the first probe

@@ -126,6 +126,10 @@ pub struct Shard {
     held: BTreeMap<(Micros, u64), Event<'static>>,
     /// Arrival counter of `held`.
     held_seq: u64,
+    /// Co-partitioned shards: the reference-time watermark (see
+    /// [`Shard::note_reference_watermark`]). Not stored: the consumer derives it again after a
+    /// restart from the records and its topics' ends.
+    reference_mark: Option<Micros>,
 }
 
 /// Why a held outcome is decided now.
@@ -150,6 +154,22 @@ impl Shard {
             outcome_mark: None,
             held: BTreeMap::new(),
             held_seq: 0,
+            reference_mark: None,
+        }
+    }
+
+    /// The time (a record's reference time: its Kafka timestamp) below which every record of
+    /// every input topic of this shard has been applied, as the consumer last reported it;
+    /// `None` before the first report. Never moves back.
+    pub fn reference_watermark(&self) -> Option<Micros> {
+        self.reference_mark
+    }
+
+    /// The consumer has applied every record of this shard's topics with a reference time
+    /// below `t`; an earlier `t` than the one noted is ignored, so the mark never moves back.
+    pub fn note_reference_watermark(&mut self, t: Micros) {
+        if self.reference_mark.is_none_or(|m| t > m) {
+            self.reference_mark = Some(t);
         }
     }
 
@@ -460,6 +480,11 @@ impl Shards {
         self.shards.get_mut(id).expect("inserted above")
     }
 
+    /// The shard `id` to change, if present (never creates one).
+    pub fn shard_mut_if_present(&mut self, id: &str) -> Option<&mut Shard> {
+        self.shards.get_mut(id)
+    }
+
     /// The shard `id`, if present.
     pub fn shard(&self, id: &str) -> Option<&Shard> {
         self.shards.get(id)
@@ -619,5 +644,28 @@ impl Shards {
             }
         }
         snap.positions = positions;
+    }
+}
+
+#[cfg(test)]
+mod reference_watermark_tests {
+    use super::*;
+
+    #[test]
+    fn the_reference_watermark_only_moves_forward_and_is_not_stored() {
+        let mut shard = Shard::new(&[]);
+        assert_eq!(shard.reference_watermark(), None);
+        shard.note_reference_watermark(5_000_000);
+        shard.note_reference_watermark(3_000_000);
+        assert_eq!(shard.reference_watermark(), Some(5_000_000));
+        shard.note_reference_watermark(7_000_000);
+        assert_eq!(shard.reference_watermark(), Some(7_000_000));
+        // Derived again by the consumer after a restore, never part of the image.
+        let (restored, _) = Shard::from_image(&[], shard.image());
+        assert_eq!(restored.reference_watermark(), None);
+        assert!(
+            shard.take_unsaved().is_none(),
+            "noting a watermark is no change to save"
+        );
     }
 }
