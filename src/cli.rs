@@ -129,6 +129,12 @@ pub enum Command {
         /// The same as `--format json` (kept for scripts written before `--format`).
         #[arg(long, hide = true, conflicts_with = "format")]
         json: bool,
+        /// The files are the dumps of one partition of co-partitioned topics, one per topic
+        /// (`SOURCE=FILE`), listed in the order of the topics in the config: apply their
+        /// lines merged by (reference column, file order, line order), as the live consumer
+        /// did, with outcomes waiting for their assignments (docs/events.md).
+        #[arg(long)]
+        merge_by_reference: bool,
     },
 }
 
@@ -252,7 +258,13 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
             events,
             format,
             json,
-        } => replay(&config, &events, json || format == OutputFormat::Json),
+            merge_by_reference,
+        } => replay(
+            &config,
+            &events,
+            json || format == OutputFormat::Json,
+            merge_by_reference,
+        ),
         Command::ReadSample {
             config,
             source,
@@ -853,7 +865,12 @@ fn read_sample(
     Ok(())
 }
 
-fn replay(config: &std::path::Path, events: &[String], json: bool) -> anyhow::Result<()> {
+fn replay(
+    config: &std::path::Path,
+    events: &[String],
+    json: bool,
+    merge_by_reference: bool,
+) -> anyhow::Result<()> {
     let config = load_config(config)?;
     let inputs: Vec<crate::replay::Input> = events
         .iter()
@@ -873,8 +890,8 @@ fn replay(config: &std::path::Path, events: &[String], json: bool) -> anyhow::Re
         )
         .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
     );
-    let report =
-        crate::replay::replay(&config, &inputs, &bar).map_err(|e| UsageError(e.to_string()))?;
+    let report = crate::replay::replay(&config, &inputs, merge_by_reference, &bar)
+        .map_err(|e| UsageError(e.to_string()))?;
     bar.finish_and_clear();
     if json {
         outln!(

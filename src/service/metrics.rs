@@ -314,6 +314,18 @@ impl Metrics {
         for reason in ["out_of_range", "internal"] {
             evaluation_failures.with_label_values(&[reason]);
         }
+        let reference_lag = gauge_vec(
+            &registry,
+            "posteriord_shard_reference_lag_seconds",
+            "Per co-partitioned Kafka shard: now minus the reference time (record timestamp) below which every record of its topics is applied.",
+            &["shard"],
+        );
+        let records_behind_watermark = counter_vec(
+            &registry,
+            "posteriord_kafka_records_behind_watermark_total",
+            "Records of co-partitioned topics whose timestamp was already behind their shard's reference-time watermark when read (applied out of order).",
+            &["topic"],
+        );
         let m = Metrics {
             evaluations,
             evaluation_failures,
@@ -408,18 +420,8 @@ impl Metrics {
             held_decided,
             kafka_reachable,
             variant_units,
-            reference_lag: gauge_vec(
-                &registry,
-                "posteriord_shard_reference_lag_seconds",
-                "Per co-partitioned Kafka shard: now minus the reference time (record timestamp) below which every record of its topics is applied.",
-                &["shard"],
-            ),
-            records_behind_watermark: counter_vec(
-                &registry,
-                "posteriord_kafka_records_behind_watermark_total",
-                "Records of co-partitioned topics whose timestamp was already behind their shard's reference-time watermark when read (applied out of order).",
-                &["topic"],
-            ),
+            reference_lag,
+            records_behind_watermark,
         };
         for source in [Source::Http, Source::Kafka, Source::Simulator] {
             for outcome in Outcome::ALL {
