@@ -471,7 +471,11 @@ fn a_sigkill_mid_stream_ends_in_the_same_counts() {
     let sc = scenario(67, 6_000);
     let cfg = sc.config("");
     let state = sc.dir.join("state");
-    let service = Service::start_in(&cfg, Some(&state), &[]);
+    let log = [(
+        "POSTERIORD_LOG",
+        "info,posteriord::kafka::merge=debug,librdkafka=warn",
+    )];
+    let service = Service::start_in(&cfg, Some(&state), &log);
     // Wait until part of the stream is applied, then kill.
     wait_for(
         Duration::from_secs(60),
@@ -486,6 +490,14 @@ fn a_sigkill_mid_stream_ends_in_the_same_counts() {
     );
     std::thread::sleep(Duration::from_millis(300));
     signal(service.child.id(), "KILL");
+    // Both topics were on the broker in full: a lane filled, its partition was paused, and
+    // resumed once the merge drained it (memory bounded while one topic runs ahead).
+    let log = service.log_text();
+    assert!(
+        log.contains("merge lane full: partition paused")
+            && log.contains("merge lanes drained: partitions resumed"),
+        "pause and resume at the lane bound; log:\n{log}"
+    );
     let mut service = service;
     assert!(wait_exit(&mut service.child, Duration::from_secs(10)).is_some());
     drop(service);

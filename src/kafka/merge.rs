@@ -304,7 +304,15 @@ impl<'c> Merger<'c> {
                 let mut tpl = TopicPartitionList::new();
                 tpl.add_partition(&topic, partition);
                 match consumer.pause(&tpl) {
-                    Ok(()) => paused.push((topic, partition)),
+                    Ok(()) => {
+                        tracing::debug!(
+                            topic,
+                            partition,
+                            buffered = len,
+                            "merge lane full: partition paused"
+                        );
+                        paused.push((topic, partition))
+                    }
                     Err(e) => {
                         tracing::warn!(topic, partition, error = %e, "cannot pause a partition whose merge buffer is full")
                     }
@@ -368,6 +376,10 @@ impl<'c> Merger<'c> {
             !drained
         });
         if tpl.count() > 0 {
+            tracing::debug!(
+                partitions = tpl.count(),
+                "merge lanes drained: partitions resumed"
+            );
             if let Err(e) = consumer.resume(&tpl) {
                 tracing::warn!(error = %e, "cannot resume drained partitions");
             }
