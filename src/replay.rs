@@ -704,3 +704,91 @@ pub fn to_text(report: &ReplayReport) -> String {
     let _ = writeln!(out, "\n{}", crate::doc::CAUTION);
     out
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// An invented seed-swap club's assignment stream and its members' activity stream.
+    const CONFIG: &str = r#"
+[[experiment]]
+id = "fern-onboarding"
+variants = [ { name = "control" }, { name = "guided" } ]
+[[experiment.metric]]
+name = "signup"
+kind = "conversion"
+
+[[source]]
+name = "club-assign"
+unit = "u"
+time = "ms"
+time_format = "epoch_millis"
+experiment = "e"
+variant = "v"
+exposures = ["assigned"]
+constants = { event = "assigned" }
+
+[[source]]
+name = "club-activity"
+unit = "u"
+time = "ms"
+time_format = "epoch_millis"
+event = "k"
+metrics = { "signed" = "signup" }
+"#;
+
+    fn successes(report: &ReplayReport) -> u64 {
+        match &report.experiments[0].summary.snapshot.metrics[0] {
+            crate::state::MetricTotals::Conversion(v) => v.iter().map(|t| t.successes).sum(),
+            other => panic!("a conversion metric: {other:?}"),
+        }
+    }
+
+    #[test]
+    fn merged_dumps_hold_outcomes_in_reference_order_and_file_order_does_not() {
+        let dir = tempfile::tempdir().unwrap();
+        let config = Config::parse(CONFIG, "club.toml", &[]).unwrap();
+        let assign = dir.path().join("assign.ndjson");
+        let activity = dir.path().join("activity.ndjson");
+        // Stamps: assignment u1 at 1 s, signup u1 at 2 s, assignment u2 at 5 s, signup u2 at
+        // 6 s (event times 1, 2.5, 5 and 6.5 s), and one line with a broken reference column.
+        std::fs::write(
+            &assign,
+            "1000\t{\"u\":\"u1\",\"ms\":1000,\"e\":\"fern-onboarding\",\"v\":\"control\"}\n\
+             5000\t{\"u\":\"u2\",\"ms\":5000,\"e\":\"fern-onboarding\",\"v\":\"guided\"}\n",
+        )
+        .unwrap();
+        std::fs::write(
+            &activity,
+            "2000\t{\"u\":\"u1\",\"ms\":2500,\"k\":\"signed\"}\n\
+             soon\t{\"u\":\"u3\",\"ms\":2500,\"k\":\"signed\"}\n\
+             6000\t{\"u\":\"u2\",\"ms\":6500,\"k\":\"signed\"}\n",
+        )
+        .unwrap();
+        let inputs = [
+            Input::parse(&format!("club-assign={}", assign.display())),
+            Input::parse(&format!("club-activity={}", activity.display())),
+        ];
+        let held = Outcome::ALL
+            .iter()
+            .position(|o| *o == Outcome::Held)
+            .unwrap();
+        let applied = Outcome::ALL
+            .iter()
+            .position(|o| *o == Outcome::Applied)
+            .unwrap();
+        // Merged: u1's signup (stamped 2 s) waits for the assignments to pass its second,
+        // which u2's (stamped 5 s) does; u2's signup waits for an assignment still to come.
+        let merged = replay(&config, &inputs, true, &()).unwrap();
+        assert_eq!(merged.outcomes[held], 2);
+        assert_eq!(merged.held_decided[applied], 1);
+        assert_eq!(successes(&merged), 1);
+        assert_eq!(merged.bad_lines.len(), 1);
+        assert_eq!(merged.bad_lines[0].line, 2);
+        assert!(merged.bad_lines[0].input.ends_with("activity.ndjson"));
+        // File order: every assignment first, so nothing waits and both signups count.
+        let sequential = replay(&config, &inputs, false, &()).unwrap();
+        assert_eq!(sequential.outcomes[held], 0);
+        assert_eq!(successes(&sequential), 2);
+    }
+}
