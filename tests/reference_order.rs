@@ -5,7 +5,8 @@
 //! them out. Checked against a model of that order written here from the produced records
 //! (which rides wait for their assignments), against the event-time ground truth of
 //! tests/common/mapped.rs, against `replay --merge-by-reference` of the two topic dumps, across
-//! a SIGKILL; and an idle ride topic holds the assignments back only for the allowance.
+//! a SIGKILL; and an idle ride topic holds the assignments back only for the allowance, while
+//! records stamped far ahead of the clock or behind the watermark are applied and counted.
 
 mod common;
 
@@ -302,7 +303,7 @@ fn rides_produced_first_are_applied_in_timestamp_order_and_replay_merges_the_sam
         "every held ride decided when the assignments passed it"
     );
     assert_eq!(
-        service.metric_sum("posteriord_kafka_records_behind_watermark_total", ""),
+        service.metric_sum("posteriord_kafka_records_out_of_order_total", ""),
         0
     );
     // The watermark lag is exported for the shard and is about the idle allowance once
@@ -463,6 +464,61 @@ fn an_idle_ride_topic_holds_the_assignments_back_only_for_the_allowance() {
     assert!(
         waited < (allowance_secs + 10) * 1000,
         "applied {waited} ms after its timestamp: the idle rides held it back beyond the allowance"
+    );
+    // A producer clock an hour fast: the record is ordered as now + allowance, not held back
+    // for an hour, and counted.
+    let fast = now_ms() + 3_600_000;
+    let line = format!(
+        r#"{{"rider":{{"id":"idle-2"}},"assigned_ms":{fast},"exp":{{"name":"unlock-chime","arm":"chime"}}}}"#
+    );
+    produce_stamped(
+        &brokers,
+        &assign_topic,
+        "rider.id",
+        &[(fast, line)],
+        &scratch.path().join("a2"),
+    );
+    wait_for(
+        Duration::from_secs(3 * allowance_secs as u64 + 15),
+        "the record stamped an hour ahead applied within the allowance",
+        || (units() == 2).then_some(()),
+    );
+    assert_eq!(
+        service.metric_sum(
+            "posteriord_kafka_records_out_of_order_total",
+            r#"why="ahead_of_clock""#
+        ),
+        1
+    );
+    // A ride stamped an hour ago reaches the idle ride topic after the shard's watermark
+    // passed that time (a producer that held it back): applied at once, out of order, counted.
+    let old = now_ms() - 3_600_000;
+    let at = time::OffsetDateTime::from_unix_timestamp_nanos(i128::from(old) * 1_000_000)
+        .unwrap()
+        .format(&time::format_description::well_known::Rfc3339)
+        .unwrap();
+    let ride =
+        format!(r#"{{"event":"ride.paid","rider_id":"idle-1","at":"{at}","event_id":"late-1"}}"#);
+    produce_stamped(
+        &brokers,
+        &ride_topic,
+        "rider_id",
+        &[(old, ride)],
+        &scratch.path().join("r2"),
+    );
+    wait_for(Duration::from_secs(30), "the late ride applied", || {
+        (service.metric_sum(
+            "posteriord_mapped_events_total",
+            r#"outcome="before_exposure",source_name="pebble-rides""#,
+        ) == 1)
+            .then_some(())
+    });
+    assert_eq!(
+        service.metric_sum(
+            "posteriord_kafka_records_out_of_order_total",
+            r#"why="behind_watermark""#
+        ),
+        1
     );
 }
 

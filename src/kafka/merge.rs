@@ -273,16 +273,38 @@ impl<'c> Merger<'c> {
             return Some(msg);
         };
         let partition = msg.partition();
-        let at = msg
+        let mut at = msg
             .timestamp()
             .to_millis()
             .map(|ms| ms.saturating_mul(1_000));
+        // A stamp far ahead of this instance's clock (a producer's clock wrong by hours, a
+        // year 2099) would hold its whole topic partition back until that time comes: it
+        // sorts as `now + allowance` instead, counted and logged, never silently.
+        let ceiling = crate::service::now_micros().saturating_add(self.allowance);
+        if let Some(t) = at.filter(|t| *t > ceiling) {
+            service
+                .metrics()
+                .records_out_of_order
+                .with_label_values(&[msg.topic(), "ahead_of_clock"])
+                .inc();
+            if self.last_late_log.elapsed() > Duration::from_secs(10) {
+                tracing::warn!(
+                    topic = msg.topic(),
+                    partition,
+                    offset = msg.offset(),
+                    ahead_ms = (t - ceiling + self.allowance) / 1_000,
+                    "a record's timestamp is ahead of this instance's clock by more than kafka.idle_allowance_secs; it is ordered as if stamped now + the allowance"
+                );
+                self.last_late_log = Instant::now();
+            }
+            at = Some(ceiling);
+        }
         if let (Some(at), Some(mark)) = (at, self.marks.get(&partition)) {
             if at < *mark {
                 service
                     .metrics()
-                    .records_behind_watermark
-                    .with_label_values(&[msg.topic()])
+                    .records_out_of_order
+                    .with_label_values(&[msg.topic(), "behind_watermark"])
                     .inc();
                 if self.last_late_log.elapsed() > Duration::from_secs(10) {
                     tracing::warn!(

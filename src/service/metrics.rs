@@ -98,10 +98,12 @@ pub struct Metrics {
     /// Per co-partitioned Kafka shard: wall-clock time minus its reference-time watermark
     /// (seconds), set at each scrape ([`Metrics::set_reference_lags`]).
     reference_lag: GaugeVec,
-    /// Records of co-partitioned topics read after their shard's reference-time watermark had
-    /// passed their timestamp (a producer or broker clock behind by more than the idle
-    /// allowance), by topic: applied late, out of reference-time order.
-    pub records_behind_watermark: IntCounterVec,
+    /// Records of co-partitioned topics applied out of reference-time order, by topic and
+    /// why: `behind_watermark` (read after their shard's watermark had passed their
+    /// timestamp: a clock behind by more than the idle allowance) or `ahead_of_clock`
+    /// (stamped further ahead of this instance's clock than the allowance: sorted as
+    /// `now + allowance`, so one bad stamp cannot stall its topic).
+    pub records_out_of_order: IntCounterVec,
 }
 
 fn counter_vec(registry: &Registry, name: &str, help: &str, labels: &[&str]) -> IntCounterVec {
@@ -320,11 +322,11 @@ impl Metrics {
             "Per co-partitioned Kafka shard: now minus the reference time (record timestamp) below which every record of its topics is applied.",
             &["shard"],
         );
-        let records_behind_watermark = counter_vec(
+        let records_out_of_order = counter_vec(
             &registry,
-            "posteriord_kafka_records_behind_watermark_total",
-            "Records of co-partitioned topics whose timestamp was already behind their shard's reference-time watermark when read (applied out of order).",
-            &["topic"],
+            "posteriord_kafka_records_out_of_order_total",
+            "Records of co-partitioned topics applied out of reference-time order, by topic and why (behind_watermark: stamped before what their shard had applied; ahead_of_clock: stamped further ahead of this instance's clock than the idle allowance).",
+            &["topic", "why"],
         );
         let m = Metrics {
             evaluations,
@@ -421,7 +423,7 @@ impl Metrics {
             kafka_reachable,
             variant_units,
             reference_lag,
-            records_behind_watermark,
+            records_out_of_order,
         };
         for source in [Source::Http, Source::Kafka, Source::Simulator] {
             for outcome in Outcome::ALL {
