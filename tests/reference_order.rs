@@ -316,6 +316,27 @@ fn rides_produced_first_are_applied_in_timestamp_order_and_replay_merges_the_sam
         .and_then(|v| v.parse().ok())
         .unwrap_or_else(|| panic!("a reference lag for the shard in:\n{text}"));
     assert!((29.0..40.0).contains(&lag), "lag {lag}");
+    // The new series read as valid exposition by Prometheus' own linter.
+    let mut lint = Command::new("promtool")
+        .args(["check", "metrics"])
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("promtool");
+    use std::io::Write;
+    lint.stdin
+        .take()
+        .unwrap()
+        .write_all(text.as_bytes())
+        .unwrap();
+    let out = lint.wait_with_output().unwrap();
+    assert!(
+        out.status.success() && out.stdout.is_empty() && out.stderr.is_empty(),
+        "promtool check metrics: {}{}",
+        String::from_utf8_lossy(&out.stdout),
+        String::from_utf8_lossy(&out.stderr)
+    );
 
     // Live has evaluated every due snapshot: compare with replay of the two dumps.
     wait_for(
