@@ -253,17 +253,22 @@ impl Scenario {
         expected(&Self::lines(&self.assignments), &Self::lines(&self.rides))
     }
 
+    /// The mapped tests' configuration with a harm rule on paid rides touchy enough (60%)
+    /// that chance swings between the arms open and close alerts: decisions that depend on
+    /// the order the rides are applied in.
     fn config(&self, extra: &str) -> String {
-        let alerts = "[alerts]\nevaluate_every_secs = 60\nevaluate_every_events = 200\n";
+        let alerts = "[alerts]\nevaluate_every_secs = 60\nevaluate_every_events = 200\nhold_down_secs = 120\n";
+        let rules = "kind = \"conversion\"\n[experiment.metric.rules]\nmin_units = 50\nharm = { probability = 0.6 }\n";
+        let base = config(
+            &self.brokers,
+            &self.group,
+            &self.assign_topic,
+            &self.ride_topic,
+            extra,
+        );
         format!(
             "{}\n{alerts}",
-            config(
-                &self.brokers,
-                &self.group,
-                &self.assign_topic,
-                &self.ride_topic,
-                extra
-            )
+            base.replace("kind = \"conversion\"\n", rules)
         )
     }
 }
@@ -418,6 +423,14 @@ fn rides_produced_first_are_applied_in_timestamp_order_and_replay_merges_the_sam
     assert_eq!(
         live, offline,
         "the same alerts live and in the merged replay"
+    );
+    eprintln!(
+        "{live_evaluations} evaluations and {} alerts, live and in the merged replay",
+        live.len()
+    );
+    assert!(
+        !live.is_empty(),
+        "the touchy harm rule raised alerts to compare"
     );
     // File order (every assignment, then every ride) is another order: rides are not held.
     let sequential = replay(false);
