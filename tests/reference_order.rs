@@ -123,11 +123,24 @@ outcome_lateness_secs = 86400
 /// Produce `lines` (timestamp, line) to one partition of `topic` with the independent client,
 /// each with its record timestamp, keyed by `key`; also writes the dump `replay` reads.
 fn produce_stamped(brokers: &str, topic: &str, key: &str, lines: &[(i64, String)], dump: &Path) {
+    produce_stamped_in(brokers, topic, 1, key, lines, dump)
+}
+
+/// [`produce_stamped`] to a topic of `partitions` partitions (created if missing).
+fn produce_stamped_in(
+    brokers: &str,
+    topic: &str,
+    partitions: u32,
+    key: &str,
+    lines: &[(i64, String)],
+    dump: &Path,
+) {
     let text: String = lines.iter().map(|(ts, l)| format!("{ts}\t{l}\n")).collect();
     std::fs::write(dump, text).unwrap();
     let out = Command::new("python3")
         .arg(Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/tools/produce.py"))
-        .args(["--brokers", brokers, "--topic", topic, "--partitions", "1"])
+        .args(["--brokers", brokers, "--topic", topic, "--partitions"])
+        .arg(partitions.to_string())
         .args(["--key", key, "--timestamps"])
         .arg(dump)
         .stdout(Stdio::piped())
@@ -200,6 +213,11 @@ struct Scenario {
 /// late tail's too, is well before now − allowance), stamped and produced: every ride before
 /// the first assignment.
 fn scenario(seed: u64, riders: usize) -> Scenario {
+    scenario_in(seed, riders, 1)
+}
+
+/// [`scenario`] on topics of `partitions` partitions.
+fn scenario_in(seed: u64, riders: usize, partitions: u32) -> Scenario {
     let scratch = tempfile::tempdir().unwrap();
     let dir = scratch.path().to_path_buf();
     let s = streams(seed, riders, 20);
@@ -227,16 +245,18 @@ fn scenario(seed: u64, riders: usize) -> Scenario {
         dir,
         _scratch: scratch,
     };
-    produce_stamped(
+    produce_stamped_in(
         &sc.brokers,
         &sc.ride_topic,
+        partitions,
         "rider_id",
         &sc.rides,
         &sc.dir.join("rides.dump"),
     );
-    produce_stamped(
+    produce_stamped_in(
         &sc.brokers,
         &sc.assign_topic,
+        partitions,
         "rider.id",
         &sc.assignments,
         &sc.dir.join("assign.dump"),
@@ -600,4 +620,69 @@ fn a_sigkill_mid_stream_ends_in_the_same_counts() {
         ),
         0
     );
+}
+
+#[test]
+fn a_second_instance_joining_mid_stream_moves_a_partition_and_loses_nothing() {
+    // Two partitions per topic; the second instance's arrival revokes both from the first
+    // while its lanes hold records that were fetched but not applied: they are dropped and
+    // read again from the positions saved with the state.
+    let sc = scenario_in(71, 12_000, 2);
+    let cfg = sc.config("");
+    let a = Service::start_in(&cfg, Some(&sc.dir.join("state-a")), &[]);
+    wait_for(
+        Duration::from_secs(60),
+        "part of the stream applied",
+        || {
+            (a.metric_sum(
+                "posteriord_mapped_events_total",
+                "source_name=\"pebble-rides\"",
+            ) > 300)
+                .then_some(())
+        },
+    );
+    let b = Service::start_in(&cfg, Some(&sc.dir.join("state-b")), &[]);
+    let joined = a.metric_sum("posteriord_mapped_events_total", "");
+    let total = (sc.assignments.len() + sc.rides.len()) as u64;
+    eprintln!("the second instance started with {joined} of {total} lines read by the first");
+    let want = sc.want();
+    // Each instance reads the other's partition through the changelog.
+    converge(&a, &want);
+    converge(&b, &want);
+    // The partition moved mid-stream: the second instance took it over from the position the
+    // first saved at its revocation, well before the partition's end (about half the lines).
+    let restored: Vec<u64> = b
+        .log_text()
+        .lines()
+        .filter(|l| l.contains("restored from the changelog"))
+        .filter_map(|l| {
+            l.split("next_offset=Some(")
+                .nth(1)?
+                .split(')')
+                .next()?
+                .parse()
+                .ok()
+        })
+        .collect();
+    eprintln!("the second instance restored at {restored:?} (sum of the topics' offsets)");
+    assert!(
+        restored.iter().any(|&n| n > 0 && n < total / 4),
+        "a partition handed over mid-stream: {restored:?} of {total} lines; log:\n{}",
+        b.log_text()
+    );
+    let moved = a.log_text().contains("partitions revoked");
+    assert!(
+        moved,
+        "the first instance gave up partitions; log:\n{}",
+        a.log_text()
+    );
+    for s in [&a, &b] {
+        assert_eq!(
+            s.metric_sum(
+                "posteriord_held_outcomes_decided_total",
+                r#"why="lateness""#
+            ),
+            0
+        );
+    }
 }
