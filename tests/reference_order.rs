@@ -5,8 +5,9 @@
 //! them out. Checked against a model of that order written here from the produced records
 //! (which rides wait for their assignments), against the event-time ground truth of
 //! tests/common/mapped.rs, against `replay --merge-by-reference` of the two topic dumps, across
-//! a SIGKILL; and an idle ride topic holds the assignments back only for the allowance, while
-//! records stamped far ahead of the clock or behind the watermark are applied and counted.
+//! a SIGKILL and through a partition moving to a second instance mid-stream; and an idle ride
+//! topic holds the assignments back only for the allowance, while records stamped far ahead of
+//! the clock or behind the watermark are applied and counted.
 
 mod common;
 
