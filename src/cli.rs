@@ -129,10 +129,16 @@ pub enum Command {
         /// The same as `--format json` (kept for scripts written before `--format`).
         #[arg(long, hide = true, conflicts_with = "format")]
         json: bool,
+        /// The files are the dumps of one partition of co-partitioned topics, one per topic
+        /// (`SOURCE=FILE`), listed in the order of the topics in the config: apply their
+        /// lines merged by (reference column, file order, line order), as the live consumer
+        /// did, with outcomes waiting for their assignments (docs/events.md).
+        #[arg(long)]
+        merge_by_reference: bool,
         /// Each file is one partition of a unit-keyed topic (the first file partition 0, and
         /// so on), dumped in log order with its record timestamps: decide as a consumer group
         /// does, at reference-time boundaries on every partition's totals.
-        #[arg(long)]
+        #[arg(long, conflicts_with = "merge_by_reference")]
         partitioned: bool,
     },
 }
@@ -257,11 +263,13 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
             events,
             format,
             json,
+            merge_by_reference,
             partitioned,
         } => replay(
             &config,
             &events,
             json || format == OutputFormat::Json,
+            merge_by_reference,
             partitioned,
         ),
         Command::ReadSample {
@@ -868,6 +876,7 @@ fn replay(
     config: &std::path::Path,
     events: &[String],
     json: bool,
+    merge_by_reference: bool,
     partitioned: bool,
 ) -> anyhow::Result<()> {
     let config = load_config(config)?;
@@ -889,12 +898,12 @@ fn replay(
         )
         .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
     );
-    let run = if partitioned {
-        crate::replay::replay_partitioned
+    let report = if partitioned {
+        crate::replay::replay_partitioned(&config, &inputs, &bar)
     } else {
-        crate::replay::replay
-    };
-    let report = run(&config, &inputs, &bar).map_err(|e| UsageError(e.to_string()))?;
+        crate::replay::replay(&config, &inputs, merge_by_reference, &bar)
+    }
+    .map_err(|e| UsageError(e.to_string()))?;
     bar.finish_and_clear();
     if json {
         outln!(

@@ -1,7 +1,9 @@
 //! `posteriord replay`: feed recorded NDJSON events through the service's own pipeline
 //! (decode → state → cadence → summarize → evaluate → alert book), synchronously and in file
-//! order, with the events' own times driving the cadence, hold-downs and durations. On a
-//! single-partition stream it decides exactly what the live service decided.
+//! order — or, for the per-topic dumps of one partition of co-partitioned topics, merged by
+//! reference time as the live consumer applies them — with the events' own times driving the
+//! cadence, hold-downs and durations. On a single-partition stream it decides exactly what
+//! the live service decided.
 
 use std::io::{BufRead, BufReader, Read};
 use std::path::PathBuf;
@@ -22,9 +24,6 @@ use crate::state::shards::{ShardId, Shards};
 
 /// The shard replayed events are applied to.
 pub const REPLAY_SHARD: &str = "replay";
-
-/// The topic name a partitioned replay gives every input (one topic per partition shard).
-const PARTITIONED_TOPIC: &str = "replay";
 
 /// Lines decoded and applied per batch: large enough to amortise the lock, small enough that
 /// the snapshot of a due experiment is still taken at the event that made it due (the ingest
@@ -106,6 +105,9 @@ pub struct ReplayReport {
     pub lines: u64,
     /// Valid events, by outcome (indexed like `Outcome::ALL`).
     pub outcomes: [u64; Outcome::ALL.len()],
+    /// Outcomes counted as `held` in `outcomes` and decided later, by what deciding them
+    /// did (only with `--merge-by-reference`, where outcomes wait for the assignments).
+    pub held_decided: [u64; Outcome::ALL.len()],
     /// Bad lines counted.
     pub bad: u64,
     /// The first [`MAX_LISTED_BAD_LINES`] bad lines.
@@ -193,48 +195,205 @@ fn with_source<'c>(
     (None, input.clone())
 }
 
-/// Replay `inputs`, in order, through the pipeline configured by `config`.
+/// One non-blank line read from an input, with its reference column split off.
+struct Line {
+    /// Index of its input.
+    input: usize,
+    /// 1-based line number in that input.
+    number: u64,
+    bytes: Vec<u8>,
+    /// Where the event starts (after the reference column).
+    start: usize,
+    reference: Option<Micros>,
+}
+
+/// An open input: its reader and how far it has been read.
+struct Open<'c> {
+    name: String,
+    /// The `[[source]]` mapping it is read under (`SOURCE=FILE`), if any.
+    mapping: Option<&'c crate::mapping::Mapping>,
+    reader: BufReader<Box<dyn Read>>,
+    line_no: u64,
+    /// Lines applied from this input so far: the next line's offset in its own stream.
+    offset: i64,
+}
+
+/// Inputs read one after another (file order), or merged by reference time.
+struct Lines<'c> {
+    open: Vec<Open<'c>>,
+    /// Merged: each input's next line, read ahead; `None` once the input is done.
+    heads: Vec<Option<Line>>,
+    merge: bool,
+    /// Sequential: the input being read.
+    current: usize,
+}
+
+impl Lines<'_> {
+    /// The next non-blank line of input `k` (bad reference columns are reported into
+    /// `report` and skipped), or `None` at its end.
+    fn read(
+        &mut self,
+        k: usize,
+        report: &mut ReplayReport,
+        progress: &dyn Progress,
+    ) -> Result<Option<Line>, ReplayError> {
+        let o = &mut self.open[k];
+        loop {
+            let mut buf = Vec::new();
+            let n = o
+                .reader
+                .read_until(b'\n', &mut buf)
+                .map_err(|source| ReplayError::Read {
+                    name: o.name.clone(),
+                    source,
+                })?;
+            if n == 0 {
+                return Ok(None);
+            }
+            progress.advance(n as u64);
+            o.line_no += 1;
+            report.lines += 1;
+            while buf.last().is_some_and(|b| *b == b'\n' || *b == b'\r') {
+                buf.pop();
+            }
+            if buf.iter().all(|b| b.is_ascii_whitespace()) {
+                continue;
+            }
+            match split_reference(&buf) {
+                Ok((reference, start)) => {
+                    return Ok(Some(Line {
+                        input: k,
+                        number: o.line_no,
+                        bytes: buf,
+                        start,
+                        reference,
+                    }))
+                }
+                Err(message) => {
+                    report.bad += 1;
+                    if report.bad_lines.len() < MAX_LISTED_BAD_LINES {
+                        report.bad_lines.push(BadLine {
+                            input: o.name.clone(),
+                            line: o.line_no,
+                            reason: "bad_reference",
+                            message,
+                        });
+                    }
+                }
+            }
+        }
+    }
+
+    /// The next line to apply: in file order, or merged — the input whose next line has the
+    /// smallest (reference, position on the command line) goes next, each input in its own
+    /// line order (as the live consumer merges its topics; no reference sorts first).
+    fn next(
+        &mut self,
+        report: &mut ReplayReport,
+        progress: &dyn Progress,
+    ) -> Result<Option<Line>, ReplayError> {
+        if !self.merge {
+            while self.current < self.open.len() {
+                if let Some(line) = self.read(self.current, report, progress)? {
+                    return Ok(Some(line));
+                }
+                self.current += 1;
+            }
+            return Ok(None);
+        }
+        if self.heads.is_empty() {
+            for k in 0..self.open.len() {
+                let head = self.read(k, report, progress)?;
+                self.heads.push(head);
+            }
+        }
+        let best = self
+            .heads
+            .iter()
+            .enumerate()
+            .filter_map(|(k, h)| h.as_ref().map(|l| (l.reference.unwrap_or(i64::MIN), k)))
+            .min();
+        let Some((_, k)) = best else { return Ok(None) };
+        let line = self.heads[k].take();
+        self.heads[k] = self.read(k, report, progress)?;
+        Ok(line)
+    }
+}
+
+/// Replay `inputs`, in order, through the pipeline configured by `config`; with
+/// `merge_by_reference`, `inputs` are the dumps of one partition of several
+/// co-partitioned topics (one file per topic, in the order of the topics in the config) and
+/// their lines are applied merged by (reference column, position of the file on the command
+/// line, line order) — the order the live consumer applies the same records in — each file
+/// as its own stream, so outcomes wait for the assignments as they did live.
 pub fn replay(
     config: &Config,
     inputs: &[Input],
+    merge_by_reference: bool,
     progress: &dyn Progress,
 ) -> Result<ReplayReport, ReplayError> {
-    replay_with(config, inputs, progress, false)
+    let order = if merge_by_reference {
+        Order::MergeByReference
+    } else {
+        Order::Files
+    };
+    replay_in(config, inputs, order, progress)
 }
 
 /// Replay the dumps of a unit-keyed topic's partitions, `inputs[i]` being partition `i`'s
 /// records in log order with their record timestamps (the reference column), the way a
 /// consumer group decides them: each partition's totals as of every reference-time boundary
 /// (`evaluate_every_secs`), merged, and each experiment evaluated at every boundary all
-/// partitions have passed, in order (docs/operations.md, "Scaling"). Decisions name the
-/// boundary, not a line.
+/// partitions have passed, in order (docs/operations.md, "One experiment across instances").
+/// Decisions name the boundary, not a line.
 pub fn replay_partitioned(
     config: &Config,
     inputs: &[Input],
     progress: &dyn Progress,
 ) -> Result<ReplayReport, ReplayError> {
-    replay_with(config, inputs, progress, true)
+    replay_in(config, inputs, Order::Partitioned, progress)
 }
 
-fn replay_with(
+/// How the inputs of a replay are applied.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Order {
+    /// One after another, to one shard.
+    Files,
+    /// Merged by reference time, to one shard, each input a stream of its own.
+    MergeByReference,
+    /// Each input the shard of one partition keeping boundaries, decided by a merger.
+    Partitioned,
+}
+
+fn replay_in(
     config: &Config,
     inputs: &[Input],
+    order: Order,
     progress: &dyn Progress,
-    partitioned: bool,
 ) -> Result<ReplayReport, ReplayError> {
-    let shards = Mutex::new(Shards::new(config.experiments.iter().cloned()));
-    if partitioned {
+    let merge_by_reference = order == Order::MergeByReference;
+    let partitioned = order == Order::Partitioned;
+    let shards = Mutex::new({
+        let mut shards = Shards::new(config.experiments.iter().cloned());
+        if let Some(k) = &config.kafka {
+            shards.set_lateness(i64::try_from(k.outcome_lateness.as_micros()).unwrap_or(i64::MAX));
+        }
+        if partitioned {
+            shards.keep_boundaries(config.alerts.cadence().every);
+        }
         shards
-            .lock()
-            .unwrap_or_else(|p| p.into_inner())
-            .keep_boundaries(config.alerts.cadence().every);
-    }
+    });
+    // Partitioned: input `i` is the shard of partition `i`.
+    let shard_names: Vec<String> = (0..inputs.len())
+        .map(|i| ShardId::co_partitioned(i as i32).as_str().to_string())
+        .collect();
     let metrics = Metrics::new();
     let cadence = config.alerts.cadence();
     let max_event_bytes = config.max_event_bytes();
     let mut report = ReplayReport {
         lines: 0,
         outcomes: [0; Outcome::ALL.len()],
+        held_decided: [0; Outcome::ALL.len()],
         bad: 0,
         bad_lines: Vec::new(),
         evaluations: 0,
@@ -243,131 +402,122 @@ fn replay_with(
         experiments: Vec::new(),
         clock: SourceClock::default(),
     };
-    let mut offset: i64 = 0;
-    for (index, input) in inputs.iter().enumerate() {
-        // Partitioned: each input is one partition's shard, its lines that topic's offsets.
-        let shard_name = if partitioned {
-            offset = 0;
-            ShardId::co_partitioned(index as i32).as_str().to_string()
-        } else {
-            REPLAY_SHARD.to_string()
-        };
-        let topic = partitioned.then_some(PARTITIONED_TOPIC);
+    let mut open = Vec::with_capacity(inputs.len());
+    for input in inputs {
         let (mapping, input) = with_source(config, input);
-        let input = &input;
         let name = input.name();
-        let read_err = |source| ReplayError::Read {
-            name: name.clone(),
-            source,
-        };
-        let reader: Box<dyn Read> = match input {
-            Input::File(p) => Box::new(std::fs::File::open(p).map_err(read_err)?),
+        let reader: Box<dyn Read> = match &input {
+            Input::File(p) => {
+                Box::new(std::fs::File::open(p).map_err(|source| ReplayError::Read {
+                    name: name.clone(),
+                    source,
+                })?)
+            }
             Input::Stdin => Box::new(std::io::stdin()),
         };
-        let mut reader = BufReader::with_capacity(1 << 16, reader);
-        let mut line_no: u64 = 0;
-        loop {
-            // One batch: its lines and their line numbers.
-            let mut lines: Vec<Vec<u8>> = Vec::with_capacity(BATCH_LINES);
-            let mut numbers: Vec<u64> = Vec::with_capacity(BATCH_LINES);
-            // Where each line's event starts (after its reference column) and the reference.
-            let mut starts: Vec<usize> = Vec::with_capacity(BATCH_LINES);
-            let mut references: Vec<Option<Micros>> = Vec::with_capacity(BATCH_LINES);
-            let mut eof = false;
-            while lines.len() < BATCH_LINES {
-                let mut buf = Vec::new();
-                let n = reader.read_until(b'\n', &mut buf).map_err(read_err)?;
-                if n == 0 {
-                    eof = true;
-                    break;
-                }
-                progress.advance(n as u64);
-                line_no += 1;
-                report.lines += 1;
-                while buf.last().is_some_and(|b| *b == b'\n' || *b == b'\r') {
-                    buf.pop();
-                }
-                if buf.iter().all(|b| b.is_ascii_whitespace()) {
-                    continue;
-                }
-                match split_reference(&buf) {
-                    Ok((reference, at)) => {
-                        lines.push(buf);
-                        starts.push(at);
-                        references.push(reference);
-                        numbers.push(line_no);
-                    }
-                    Err(message) => {
-                        report.bad += 1;
-                        if report.bad_lines.len() < MAX_LISTED_BAD_LINES {
-                            report.bad_lines.push(BadLine {
-                                input: name.clone(),
-                                line: line_no,
-                                reason: "bad_reference",
-                                message,
-                            });
-                        }
-                    }
-                }
+        open.push(Open {
+            name,
+            mapping,
+            reader: BufReader::with_capacity(1 << 16, reader),
+            line_no: 0,
+            offset: 0,
+        });
+    }
+    let mut lines = Lines {
+        open,
+        heads: Vec::new(),
+        merge: merge_by_reference,
+        current: 0,
+    };
+    // Each merged input is its own stream of the shard, named by its position.
+    let streams: Vec<String> = (0..inputs.len()).map(|k| format!("input-{k}")).collect();
+    let mut offset: i64 = 0;
+    loop {
+        let mut batch: Vec<Line> = Vec::with_capacity(BATCH_LINES);
+        while batch.len() < BATCH_LINES {
+            match lines.next(&mut report, progress)? {
+                Some(line) => batch.push(line),
+                None => break,
             }
-            let items: Vec<Item<'_>> = lines
-                .iter()
-                .enumerate()
-                .map(|(i, bytes)| Item {
-                    shard: &shard_name,
-                    offset: Some(offset + i as i64),
-                    bytes: &bytes[starts[i]..],
-                    mapping,
+        }
+        if batch.is_empty() {
+            break;
+        }
+        let items: Vec<Item<'_>> = batch
+            .iter()
+            .map(|line| {
+                let o = &mut lines.open[line.input];
+                let (item_offset, topic) = if merge_by_reference || partitioned {
+                    o.offset += 1;
+                    (o.offset - 1, Some(streams[line.input].as_str()))
+                } else {
+                    offset += 1;
+                    (offset - 1, None)
+                };
+                Item {
+                    shard: if partitioned {
+                        &shard_names[line.input]
+                    } else {
+                        REPLAY_SHARD
+                    },
+                    offset: Some(item_offset),
+                    bytes: &line.bytes[line.start..],
+                    mapping: o.mapping,
                     topic,
-                    reference: references[i],
-                })
-                .collect();
-            offset += items.len() as i64;
-            let batch = apply_batch_checked(
-                &shards,
-                &metrics,
-                Source::Kafka,
-                &items,
-                max_event_bytes,
-                Some(&cadence),
-                &config.event_time.kafka,
-            );
-            for (i, result) in batch.results.iter().enumerate() {
-                match result {
-                    Some(Ok(o)) => {
-                        let k = Outcome::ALL.iter().position(|x| x == o).unwrap_or(0);
-                        report.outcomes[k] += 1;
-                    }
-                    Some(Err(reject)) => {
-                        report.bad += 1;
-                        if report.bad_lines.len() < MAX_LISTED_BAD_LINES {
-                            report.bad_lines.push(BadLine {
-                                input: name.clone(),
-                                line: numbers[i],
-                                reason: reject.reason.as_str(),
-                                message: reject.message.to_string(),
-                            });
-                        }
-                    }
-                    None => {}
+                    reference: line.reference,
                 }
-            }
-            // Due snapshots are in input order, each with the batch index of the event that
-            // made it due, which maps back to that event's line.
-            for (snapshot, item) in batch.due.into_iter().zip(batch.due_items) {
-                let line = numbers.get(item).copied().unwrap_or(0);
-                report.evaluations += 1;
-                let evaluation = evaluate_snapshot(&mut report.book, snapshot);
-                for change in evaluation.changes {
-                    report.decisions.push(Decision {
-                        input: name.clone(),
-                        line,
-                        change,
-                    });
+            })
+            .collect();
+        let applied = apply_batch_checked(
+            &shards,
+            &metrics,
+            Source::Kafka,
+            &items,
+            max_event_bytes,
+            Some(&cadence),
+            &config.event_time.kafka,
+        );
+        for (i, result) in applied.results.iter().enumerate() {
+            match result {
+                Some(Ok(o)) => {
+                    let k = Outcome::ALL.iter().position(|x| x == o).unwrap_or(0);
+                    report.outcomes[k] += 1;
                 }
+                Some(Err(reject)) => {
+                    report.bad += 1;
+                    if report.bad_lines.len() < MAX_LISTED_BAD_LINES {
+                        report.bad_lines.push(BadLine {
+                            input: lines.open[batch[i].input].name.clone(),
+                            line: batch[i].number,
+                            reason: reject.reason.as_str(),
+                            message: reject.message.to_string(),
+                        });
+                    }
+                }
+                None => {}
             }
-            if eof {
-                break;
+        }
+        for (_, decided) in &applied.released {
+            if let Ok(o) = decided {
+                let k = Outcome::ALL.iter().position(|x| x == o).unwrap_or(0);
+                report.held_decided[k] += 1;
+            }
+        }
+        // Due snapshots are in input order, each with the batch index of the event that
+        // made it due, which maps back to that event's input and line.
+        for (snapshot, item) in applied.due.into_iter().zip(applied.due_items) {
+            let (input, line) = batch
+                .get(item)
+                .map(|l| (lines.open[l.input].name.clone(), l.number))
+                .unwrap_or_default();
+            report.evaluations += 1;
+            let evaluation = evaluate_snapshot(&mut report.book, snapshot);
+            for change in evaluation.changes {
+                report.decisions.push(Decision {
+                    input: input.clone(),
+                    line,
+                    change,
+                });
             }
         }
     }
@@ -450,11 +600,18 @@ pub fn to_json(report: &ReplayReport) -> Value {
     for (o, n) in Outcome::ALL.iter().zip(report.outcomes) {
         outcomes.insert(o.as_str().into(), json!(n));
     }
+    let mut held_decided = serde_json::Map::new();
+    for (o, n) in Outcome::ALL.iter().zip(report.held_decided) {
+        if n > 0 {
+            held_decided.insert(o.as_str().into(), json!(n));
+        }
+    }
     json!({
         "input": {
             "lines": report.lines,
             "events": report.outcomes.iter().sum::<u64>(),
             "outcomes": outcomes,
+            "held_decided": held_decided,
             "bad_lines": report.bad,
         },
         "errors": report.bad_lines.iter().map(|b| json!({
@@ -651,4 +808,92 @@ pub fn to_text(report: &ReplayReport) -> String {
     }
     let _ = writeln!(out, "\n{}", crate::doc::CAUTION);
     out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// An invented seed-swap club's assignment stream and its members' activity stream.
+    const CONFIG: &str = r#"
+[[experiment]]
+id = "fern-onboarding"
+variants = [ { name = "control" }, { name = "guided" } ]
+[[experiment.metric]]
+name = "signup"
+kind = "conversion"
+
+[[source]]
+name = "club-assign"
+unit = "u"
+time = "ms"
+time_format = "epoch_millis"
+experiment = "e"
+variant = "v"
+exposures = ["assigned"]
+constants = { event = "assigned" }
+
+[[source]]
+name = "club-activity"
+unit = "u"
+time = "ms"
+time_format = "epoch_millis"
+event = "k"
+metrics = { "signed" = "signup" }
+"#;
+
+    fn successes(report: &ReplayReport) -> u64 {
+        match &report.experiments[0].summary.snapshot.metrics[0] {
+            crate::state::MetricTotals::Conversion(v) => v.iter().map(|t| t.successes).sum(),
+            other => panic!("a conversion metric: {other:?}"),
+        }
+    }
+
+    #[test]
+    fn merged_dumps_hold_outcomes_in_reference_order_and_file_order_does_not() {
+        let dir = tempfile::tempdir().unwrap();
+        let config = Config::parse(CONFIG, "club.toml", &[]).unwrap();
+        let assign = dir.path().join("assign.ndjson");
+        let activity = dir.path().join("activity.ndjson");
+        // Stamps: assignment u1 at 1 s, signup u1 at 2 s, assignment u2 at 5 s, signup u2 at
+        // 6 s (event times 1, 2.5, 5 and 6.5 s), and one line with a broken reference column.
+        std::fs::write(
+            &assign,
+            "1000\t{\"u\":\"u1\",\"ms\":1000,\"e\":\"fern-onboarding\",\"v\":\"control\"}\n\
+             5000\t{\"u\":\"u2\",\"ms\":5000,\"e\":\"fern-onboarding\",\"v\":\"guided\"}\n",
+        )
+        .unwrap();
+        std::fs::write(
+            &activity,
+            "2000\t{\"u\":\"u1\",\"ms\":2500,\"k\":\"signed\"}\n\
+             soon\t{\"u\":\"u3\",\"ms\":2500,\"k\":\"signed\"}\n\
+             6000\t{\"u\":\"u2\",\"ms\":6500,\"k\":\"signed\"}\n",
+        )
+        .unwrap();
+        let inputs = [
+            Input::parse(&format!("club-assign={}", assign.display())),
+            Input::parse(&format!("club-activity={}", activity.display())),
+        ];
+        let held = Outcome::ALL
+            .iter()
+            .position(|o| *o == Outcome::Held)
+            .unwrap();
+        let applied = Outcome::ALL
+            .iter()
+            .position(|o| *o == Outcome::Applied)
+            .unwrap();
+        // Merged: u1's signup (stamped 2 s) waits for the assignments to pass its second,
+        // which u2's (stamped 5 s) does; u2's signup waits for an assignment still to come.
+        let merged = replay(&config, &inputs, true, &()).unwrap();
+        assert_eq!(merged.outcomes[held], 2);
+        assert_eq!(merged.held_decided[applied], 1);
+        assert_eq!(successes(&merged), 1);
+        assert_eq!(merged.bad_lines.len(), 1);
+        assert_eq!(merged.bad_lines[0].line, 2);
+        assert!(merged.bad_lines[0].input.ends_with("activity.ndjson"));
+        // File order: every assignment first, so nothing waits and both signups count.
+        let sequential = replay(&config, &inputs, false, &()).unwrap();
+        assert_eq!(sequential.outcomes[held], 0);
+        assert_eq!(successes(&sequential), 2);
+    }
 }

@@ -29,6 +29,9 @@ brokers = "{brokers}"
 group = "{group}"
 changelog_interval_ms = 300
 outcome_lateness_secs = 86400
+# The last assignments are produced just before each start: a short idle allowance lets them
+# pass the ride topic, read to its end, within seconds (the default waits 30 s).
+idle_allowance_secs = 2
 {extra}
 [kafka.properties]
 "session.timeout.ms" = 3000

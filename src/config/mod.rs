@@ -266,12 +266,19 @@ pub struct KafkaConfig {
     /// ahead of the assignment topic before an outcome held for its exposure is decided on
     /// the exposures read so far.
     pub outcome_lateness: std::time::Duration,
+    /// Co-partitioned topics are applied in record-timestamp order; a topic partition read to
+    /// its end counts as having nothing before `now − idle_allowance`, so it never stalls the
+    /// others for longer (see docs/events.md, "Order of application").
+    pub idle_allowance: std::time::Duration,
     /// librdkafka properties passed through unchanged.
     pub properties: BTreeMap<String, String>,
 }
 
 /// Default `[kafka] outcome_lateness_secs` (see docs/events.md for why five minutes).
 pub const DEFAULT_OUTCOME_LATENESS_SECS: u64 = 300;
+
+/// Default `[kafka] idle_allowance_secs` (see docs/events.md for why thirty seconds).
+pub const DEFAULT_IDLE_ALLOWANCE_SECS: u64 = 30;
 
 /// `[store]`.
 #[derive(Debug, Clone, PartialEq)]
@@ -897,6 +904,19 @@ impl Ctx<'_> {
                 }
             },
         };
+        let idle_allowance = match &k.idle_allowance_secs {
+            None => std::time::Duration::from_secs(DEFAULT_IDLE_ALLOWANCE_SECS),
+            Some(v) => match u64::try_from(*v.get_ref()) {
+                Ok(s) if s <= 86_400 => std::time::Duration::from_secs(s),
+                _ => {
+                    return Err(self.err(
+                        v.span(),
+                        "kafka.idle_allowance_secs",
+                        "must be between 0 and 86400 seconds",
+                    ))
+                }
+            },
+        };
         let mut properties = BTreeMap::new();
         for (name, value) in k.properties {
             let text = match value.into_inner() {
@@ -916,6 +936,7 @@ impl Ctx<'_> {
             changelog_topic,
             changelog_interval,
             outcome_lateness,
+            idle_allowance,
             properties,
         })
     }
@@ -1728,6 +1749,7 @@ fn apply_env(config: &mut Config, env: &[(String, String)]) -> Result<(), Config
             changelog_topic: format!("{DEFAULT_KAFKA_GROUP}-changelog"),
             changelog_interval: std::time::Duration::from_millis(DEFAULT_CHANGELOG_INTERVAL_MS),
             outcome_lateness: std::time::Duration::from_secs(DEFAULT_OUTCOME_LATENESS_SECS),
+            idle_allowance: std::time::Duration::from_secs(DEFAULT_IDLE_ALLOWANCE_SECS),
             properties: BTreeMap::new(),
         });
     }

@@ -127,6 +127,7 @@ pub(super) struct RawKafka {
     pub changelog_topic: Option<Spanned<String>>,
     pub changelog_interval_ms: Option<Spanned<i64>>,
     pub outcome_lateness_secs: Option<Spanned<i64>>,
+    pub idle_allowance_secs: Option<Spanned<i64>>,
     #[serde(default)]
     pub properties: BTreeMap<String, Spanned<PropertyValue>>,
 }

@@ -548,3 +548,31 @@ fn unit_slips_are_refused_with_the_likely_intended_value() {
     );
     assert!(parse(&text).is_ok());
 }
+
+#[test]
+fn the_idle_allowance_defaults_to_thirty_seconds_and_bad_values_name_key_and_line() {
+    let k = parse(EXAMPLE).unwrap().kafka.unwrap();
+    assert_eq!(k.idle_allowance, std::time::Duration::from_secs(30));
+    let text = EXAMPLE.replace(
+        "group = \"posteriord\"",
+        "group = \"posteriord\"\nidle_allowance_secs = 2",
+    );
+    let k = parse(&text).unwrap().kafka.unwrap();
+    assert_eq!(k.idle_allowance, std::time::Duration::from_secs(2));
+    for bad in ["-1", "86401", "\"30s\""] {
+        let text = EXAMPLE.replace(
+            "group = \"posteriord\"",
+            &format!("group = \"posteriord\"\nidle_allowance_secs = {bad}"),
+        );
+        let err = error(&text);
+        assert_eq!(
+            err.line,
+            Some(line_of(&text, "idle_allowance_secs")),
+            "{err}"
+        );
+        if !bad.starts_with('"') {
+            // (A value of the wrong type is refused by the TOML reader, by line.)
+            assert_eq!(err.key, "kafka.idle_allowance_secs", "{err}");
+        }
+    }
+}

@@ -27,6 +27,7 @@ use tokio_util::task::TaskTracker;
 pub mod changelog;
 pub mod client;
 mod group;
+mod merge;
 mod partitions;
 
 use changelog::Changelog;
@@ -137,6 +138,7 @@ pub fn start(
         dead_letters: dead_letters.clone(),
         changelog: Arc::clone(&changelog),
         group: Arc::clone(&group_topic),
+        merge: merge::MergeShared::default(),
     };
     let mut consumer_config = client_config(cfg);
     if !service.mapped_topics().is_empty() {
@@ -168,6 +170,7 @@ pub fn start(
         snapshot_interval: service.snapshot_interval(),
         changelog_interval: cfg.changelog_interval,
         group: Arc::clone(&group_topic),
+        idle_allowance: cfg.idle_allowance,
     };
     if !service.mapped_topics().is_empty() {
         // Experiments of co-partitioned topics are decided by one owner on the partials of
@@ -313,6 +316,8 @@ struct LoopConfig {
     changelog_interval: Duration,
     /// The partials topic, once open (co-partitioned topics only).
     group: Arc<OnceLock<group::GroupTopic>>,
+    /// See [`merge`]: how long an idle co-partitioned topic may hold the others back.
+    idle_allowance: Duration,
 }
 
 /// How often partials are published while records flow.
@@ -392,14 +397,32 @@ fn consume_loop(
     let mut last_save = Instant::now();
     let mut last_publish = Instant::now();
     let mut last_group = Instant::now();
+    // Co-partitioned topics are applied in reference-time order (see `merge`); the built-in
+    // format's topics go straight to their batch as before.
+    let mut merger = merge::Merger::new(service.mapped_topics(), cfg.idle_allowance);
+    let shared = &consumer.context().merge;
     while !shutdown.is_cancelled() {
         let mut batch = Vec::new();
+        let mut polled = 0;
         let deadline = Instant::now() + MAX_BATCH_WAIT;
         let mut timeout = POLL_TIMEOUT;
-        while batch.len() < MAX_BATCH {
-            match consumer.poll(timeout) {
+        while polled < MAX_BATCH {
+            let next = consumer.poll(timeout);
+            if merger.is_on() {
+                // Before anything this poll returned is queued: a rebalance inside it moved
+                // the positions, and what was buffered before is fetched again.
+                merger.after_poll(consumer, shared);
+            }
+            match next {
                 None => break,
-                Some(Ok(msg)) => batch.push(msg),
+                Some(Ok(msg)) => {
+                    polled += 1;
+                    if !merger.is_on() {
+                        batch.push(msg);
+                    } else if let Some(msg) = merger.offer(consumer, shared, service, msg) {
+                        batch.push(msg);
+                    }
+                }
                 Some(Err(e)) => {
                     // Broker and partition errors are transient for a consumer; librdkafka
                     // retries by itself. Log at most every 10 s so an outage does not flood.
@@ -418,6 +441,16 @@ fn consume_loop(
         }
         if !batch.is_empty() {
             apply_messages(consumer, service, dead_letters, cfg, &batch, &mut shard_ids);
+        }
+        if merger.is_on() {
+            let (ready, marks) = merger.take_ready(consumer, service);
+            if !ready.is_empty() {
+                apply_messages(consumer, service, dead_letters, cfg, &ready, &mut shard_ids);
+            }
+            for (shard, mark) in &marks {
+                service.note_reference_watermark(shard, *mark);
+            }
+            merger.resume_drained(consumer, shared);
         }
         // Partials before any save or changelog publication: a restored shard re-creates
         // only the boundary entries after its image, so those before must be out already.

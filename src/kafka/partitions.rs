@@ -32,6 +32,8 @@ pub(super) struct PartitionContext {
     pub(super) changelog: Arc<OnceLock<Changelog>>,
     /// Set once the partials topic is open (co-partitioned topics only).
     pub(super) group: Arc<OnceLock<super::group::GroupTopic>>,
+    /// What the reference-time merge of co-partitioned topics shares with the callbacks.
+    pub(super) merge: super::merge::MergeShared,
 }
 
 /// Publish every Kafka shard whose position moved since its last publication; `only` limits
@@ -129,6 +131,8 @@ impl ConsumerContext for PartitionContext {
             consumer.rebalance_protocol(),
             RebalanceProtocol::Cooperative
         );
+        // Records the merge buffered are dropped and re-fetched from the restored positions.
+        self.merge.rebalancing(consumer);
         match err {
             RDKafkaRespErr::RD_KAFKA_RESP_ERR__ASSIGN_PARTITIONS => {
                 self.restore(tpl);

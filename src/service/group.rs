@@ -288,7 +288,7 @@ impl Service {
                 let Some(partition) = id.kafka_partition() else {
                     continue;
                 };
-                let Some(shard) = shards.shard_mut_existing(id.as_str()) else {
+                let Some(shard) = shards.shard_mut_if_present(id.as_str()) else {
                     continue;
                 };
                 let position = shard.next_offset().unwrap_or(0);
@@ -341,7 +341,7 @@ impl Service {
         let mut shards = self.lock_shards();
         for id in shards.ids() {
             if let Some(b) = shards
-                .shard_mut_existing(id.as_str())
+                .shard_mut_if_present(id.as_str())
                 .and_then(|s| s.boundaries_mut())
             {
                 b.mark_all_changed();
@@ -530,7 +530,7 @@ impl Service {
                         continue;
                     }
                     if let Some(b) = shards
-                        .shard_mut_existing(id.as_str())
+                        .shard_mut_if_present(id.as_str())
                         .and_then(|s| s.boundaries_mut())
                     {
                         b.acknowledge(&experiment, evaluated);

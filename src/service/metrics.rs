@@ -102,6 +102,15 @@ pub struct Metrics {
     pub event_time_largest_skew: GaugeVec,
     /// What the checks found per source, for the API and the dashboard.
     pub clock: super::clock::ClockHealth,
+    /// Per co-partitioned Kafka shard: wall-clock time minus its reference-time watermark
+    /// (seconds), set at each scrape ([`Metrics::set_reference_lags`]).
+    reference_lag: GaugeVec,
+    /// Records of co-partitioned topics applied out of reference-time order, by topic and
+    /// why: `behind_watermark` (read after their shard's watermark had passed their
+    /// timestamp: a clock behind by more than the idle allowance) or `ahead_of_clock`
+    /// (stamped further ahead of this instance's clock than the allowance: sorted as
+    /// `now + allowance`, so one bad stamp cannot stall its topic).
+    pub records_out_of_order: IntCounterVec,
 }
 
 fn counter_vec(registry: &Registry, name: &str, help: &str, labels: &[&str]) -> IntCounterVec {
@@ -332,6 +341,18 @@ impl Metrics {
         for reason in ["out_of_range", "internal"] {
             evaluation_failures.with_label_values(&[reason]);
         }
+        let reference_lag = gauge_vec(
+            &registry,
+            "posteriord_shard_reference_lag_seconds",
+            "Per co-partitioned Kafka shard: now minus the reference time (record timestamp) below which every record of its topics is applied.",
+            &["shard"],
+        );
+        let records_out_of_order = counter_vec(
+            &registry,
+            "posteriord_kafka_records_out_of_order_total",
+            "Records of co-partitioned topics applied out of reference-time order, by topic and why (behind_watermark: stamped before what their shard had applied; ahead_of_clock: stamped further ahead of this instance's clock than the idle allowance).",
+            &["topic", "why"],
+        );
         let m = Metrics {
             evaluations,
             evaluation_failures,
@@ -429,6 +450,8 @@ impl Metrics {
             held_decided,
             kafka_reachable,
             variant_units,
+            reference_lag,
+            records_out_of_order,
         };
         for source in [Source::Http, Source::Kafka, Source::Simulator] {
             for outcome in Outcome::ALL {
@@ -491,6 +514,17 @@ impl Metrics {
         self.rejected
             .with_label_values(&[source.as_str(), reason.as_str()])
             .inc();
+    }
+
+    /// Replace the per-shard reference lags with `lags` (shard, seconds): shards that moved
+    /// to another instance lose their series.
+    pub fn set_reference_lags(&self, lags: &[(String, f64)]) {
+        self.reference_lag.reset();
+        for (shard, seconds) in lags {
+            self.reference_lag
+                .with_label_values(&[shard.as_str()])
+                .set(*seconds);
+        }
     }
 
     /// [`Metrics::new`], with the Kafka reachability gauge at 0 (until the first probe

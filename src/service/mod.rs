@@ -747,6 +747,8 @@ impl Service {
             .collect();
         let _scrape = lock(&self.metrics.scrape);
         self.metrics.set_experiment_gauges(&summaries);
+        self.metrics
+            .set_reference_lags(&self.reference_lags(now_micros()));
         let failing = self.health.failing().len();
         self.metrics.state_durable.set(i64::from(failing == 0));
         self.metrics.state_failing_files.set(failing as i64);
@@ -756,6 +758,35 @@ impl Service {
                 .set(free.min(i64::MAX as u64) as i64);
         }
         self.metrics.encode()
+    }
+
+    /// The Kafka edge has applied every record with a reference time (record timestamp)
+    /// below `t` of every topic of shard `shard` (see [`Shard::note_reference_watermark`]);
+    /// nothing happens if the shard is not held here.
+    pub fn note_reference_watermark(&self, shard: &ShardId, t: Micros) {
+        if let Some(s) = self.lock_shards().shard_mut_if_present(shard) {
+            s.note_reference_watermark(t);
+        }
+    }
+
+    /// The reference-time watermark of shard `shard`, if it is held here and has one.
+    pub fn reference_watermark(&self, shard: &ShardId) -> Option<Micros> {
+        self.lock_shards()
+            .shard(shard)
+            .and_then(Shard::reference_watermark)
+    }
+
+    /// (shard, seconds from its reference-time watermark to `now`) of every shard with one.
+    fn reference_lags(&self, now: Micros) -> Vec<(String, f64)> {
+        let shards = self.lock_shards();
+        shards
+            .ids()
+            .into_iter()
+            .filter_map(|id| {
+                let mark = shards.shard(&id)?.reference_watermark()?;
+                Some((id.to_string(), (now - mark) as f64 / 1e6))
+            })
+            .collect()
     }
 
     /// The final saves at shutdown: the HTTP shard and the history. Whether the shard saved.

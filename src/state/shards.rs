@@ -132,6 +132,10 @@ pub struct Shard {
     boundaries: Option<ShardBoundaries>,
     /// The boundary mark of the image this shard was restored from, until boundaries are kept.
     restored_mark: Option<Micros>,
+    /// Co-partitioned shards: the reference-time watermark (see
+    /// [`Shard::note_reference_watermark`]). Not stored: the consumer derives it again after a
+    /// restart from the records and its topics' ends.
+    reference_mark: Option<Micros>,
 }
 
 /// Why a held outcome is decided now.
@@ -158,6 +162,25 @@ impl Shard {
             held_seq: 0,
             boundaries: None,
             restored_mark: None,
+            reference_mark: None,
+        }
+    }
+
+    /// The time (a record's reference time: its Kafka timestamp) below which every record of
+    /// every input topic of this shard has been applied, as the consumer last reported it;
+    /// `None` before the first report. Never moves back.
+    pub fn reference_watermark(&self) -> Option<Micros> {
+        self.reference_mark
+    }
+
+    /// The consumer has applied every record of this shard's topics with a reference time
+    /// below `t`; an earlier `t` than the one noted is ignored, so the mark never moves back.
+    pub fn note_reference_watermark(&mut self, t: Micros) {
+        if self.reference_mark.is_none_or(|m| t > m) {
+            self.reference_mark = Some(t);
+            // Every record before `t` is applied: the boundaries up to it are closed (an
+            // idle shard's boundaries pass this way, with no record to pass them).
+            self.pass_reference(t);
         }
     }
 
@@ -536,8 +559,8 @@ impl Shards {
         self.shards.get_mut(id).expect("inserted above")
     }
 
-    /// The shard `id`, mutably, if present (never created).
-    pub fn shard_mut_existing(&mut self, id: &str) -> Option<&mut Shard> {
+    /// The shard `id` to change, if present (never creates one).
+    pub fn shard_mut_if_present(&mut self, id: &str) -> Option<&mut Shard> {
         self.shards.get_mut(id)
     }
 
@@ -703,5 +726,28 @@ impl Shards {
             }
         }
         snap.positions = positions;
+    }
+}
+
+#[cfg(test)]
+mod reference_watermark_tests {
+    use super::*;
+
+    #[test]
+    fn the_reference_watermark_only_moves_forward_and_is_not_stored() {
+        let mut shard = Shard::new(&[]);
+        assert_eq!(shard.reference_watermark(), None);
+        shard.note_reference_watermark(5_000_000);
+        shard.note_reference_watermark(3_000_000);
+        assert_eq!(shard.reference_watermark(), Some(5_000_000));
+        shard.note_reference_watermark(7_000_000);
+        assert_eq!(shard.reference_watermark(), Some(7_000_000));
+        // Derived again by the consumer after a restore, never part of the image.
+        let (restored, _) = Shard::from_image(&[], shard.image());
+        assert_eq!(restored.reference_watermark(), None);
+        assert!(
+            shard.take_unsaved().is_none(),
+            "noting a watermark is no change to save"
+        );
     }
 }
