@@ -135,9 +135,10 @@ pub enum Command {
         /// did, with outcomes waiting for their assignments (docs/events.md).
         #[arg(long)]
         merge_by_reference: bool,
-        /// Each file is one partition of a unit-keyed topic (the first file partition 0, and
-        /// so on), dumped in log order with its record timestamps: decide as a consumer group
-        /// does, at reference-time boundaries on every partition's totals.
+        /// Each argument is one partition of unit-keyed topics (the first partition 0, and so
+        /// on): its dump in log order with record timestamps, or its topics' dumps separated
+        /// by commas (`SOURCE=FILE,SOURCE=FILE`, merged by reference as live): decide as a
+        /// consumer group does, at reference-time boundaries on every partition's totals.
         #[arg(long, conflicts_with = "merge_by_reference")]
         partitioned: bool,
     },

@@ -402,129 +402,157 @@ fn replay_in(
         experiments: Vec::new(),
         clock: SourceClock::default(),
     };
-    let mut open = Vec::with_capacity(inputs.len());
-    for input in inputs {
-        let (mapping, input) = with_source(config, input);
-        let name = input.name();
-        let reader: Box<dyn Read> = match &input {
-            Input::File(p) => {
-                Box::new(std::fs::File::open(p).map_err(|source| ReplayError::Read {
-                    name: name.clone(),
-                    source,
-                })?)
-            }
-            Input::Stdin => Box::new(std::io::stdin()),
-        };
-        open.push(Open {
-            name,
-            mapping,
-            reader: BufReader::with_capacity(1 << 16, reader),
-            line_no: 0,
-            offset: 0,
-        });
-    }
-    let mut lines = Lines {
-        open,
-        heads: Vec::new(),
-        merge: merge_by_reference,
-        current: 0,
-    };
-    // Each merged input is its own stream of the shard, named by its position.
-    let streams: Vec<String> = (0..inputs.len()).map(|k| format!("input-{k}")).collect();
-    let mut offset: i64 = 0;
-    loop {
-        let mut batch: Vec<Line> = Vec::with_capacity(BATCH_LINES);
-        while batch.len() < BATCH_LINES {
-            match lines.next(&mut report, progress)? {
-                Some(line) => batch.push(line),
-                None => break,
-            }
-        }
-        if batch.is_empty() {
-            break;
-        }
-        let items: Vec<Item<'_>> = batch
+    // The inputs applied together, in order: all of them, or (partitioned) one group per
+    // partition, an argument's comma-separated files being that partition's topics.
+    let groups: Vec<Vec<Input>> = if partitioned {
+        inputs
             .iter()
-            .map(|line| {
-                let o = &mut lines.open[line.input];
-                let (item_offset, topic) = if merge_by_reference || partitioned {
-                    o.offset += 1;
-                    (o.offset - 1, Some(streams[line.input].as_str()))
-                } else {
-                    offset += 1;
-                    (offset - 1, None)
-                };
-                Item {
-                    shard: if partitioned {
-                        &shard_names[line.input]
-                    } else {
-                        REPLAY_SHARD
-                    },
-                    offset: Some(item_offset),
-                    bytes: &line.bytes[line.start..],
-                    mapping: o.mapping,
-                    topic,
-                    reference: line.reference,
-                }
+            .map(|input| match input {
+                Input::File(p) => match p.to_str() {
+                    Some(text) if text.contains(',') => text.split(',').map(Input::parse).collect(),
+                    _ => vec![input.clone()],
+                },
+                Input::Stdin => vec![input.clone()],
             })
-            .collect();
-        let applied = apply_batch_checked(
-            &shards,
-            &metrics,
-            Source::Kafka,
-            &items,
-            max_event_bytes,
-            Some(&cadence),
-            &config.event_time.kafka,
-        );
-        for (i, result) in applied.results.iter().enumerate() {
-            match result {
-                Some(Ok(o)) => {
-                    let k = Outcome::ALL.iter().position(|x| x == o).unwrap_or(0);
-                    report.outcomes[k] += 1;
+            .collect()
+    } else {
+        vec![inputs.to_vec()]
+    };
+    for (gi, group) in groups.iter().enumerate() {
+        let mut open = Vec::with_capacity(group.len());
+        for input in group {
+            let (mapping, input) = with_source(config, input);
+            let name = input.name();
+            let reader: Box<dyn Read> = match &input {
+                Input::File(p) => {
+                    Box::new(std::fs::File::open(p).map_err(|source| ReplayError::Read {
+                        name: name.clone(),
+                        source,
+                    })?)
                 }
-                Some(Err(reject)) => {
-                    report.bad += 1;
-                    if report.bad_lines.len() < MAX_LISTED_BAD_LINES {
-                        report.bad_lines.push(BadLine {
-                            input: lines.open[batch[i].input].name.clone(),
-                            line: batch[i].number,
-                            reason: reject.reason.as_str(),
-                            message: reject.message.to_string(),
-                        });
+                Input::Stdin => Box::new(std::io::stdin()),
+            };
+            open.push(Open {
+                name,
+                mapping,
+                reader: BufReader::with_capacity(1 << 16, reader),
+                line_no: 0,
+                offset: 0,
+            });
+        }
+        let mut lines = Lines {
+            open,
+            heads: Vec::new(),
+            merge: merge_by_reference || (partitioned && group.len() > 1),
+            current: 0,
+        };
+        // Each merged input is its own stream of the shard, named by its position.
+        let streams: Vec<String> = (0..group.len()).map(|k| format!("input-{k}")).collect();
+        let mut offset: i64 = 0;
+        loop {
+            let mut batch: Vec<Line> = Vec::with_capacity(BATCH_LINES);
+            while batch.len() < BATCH_LINES {
+                match lines.next(&mut report, progress)? {
+                    Some(line) => batch.push(line),
+                    None => break,
+                }
+            }
+            if batch.is_empty() {
+                break;
+            }
+            let items: Vec<Item<'_>> = batch
+                .iter()
+                .map(|line| {
+                    let o = &mut lines.open[line.input];
+                    let (item_offset, topic) = if merge_by_reference || partitioned {
+                        o.offset += 1;
+                        (o.offset - 1, Some(streams[line.input].as_str()))
+                    } else {
+                        offset += 1;
+                        (offset - 1, None)
+                    };
+                    Item {
+                        shard: if partitioned {
+                            &shard_names[gi]
+                        } else {
+                            REPLAY_SHARD
+                        },
+                        offset: Some(item_offset),
+                        bytes: &line.bytes[line.start..],
+                        mapping: o.mapping,
+                        topic,
+                        reference: line.reference,
                     }
+                })
+                .collect();
+            let applied = apply_batch_checked(
+                &shards,
+                &metrics,
+                Source::Kafka,
+                &items,
+                max_event_bytes,
+                Some(&cadence),
+                &config.event_time.kafka,
+            );
+            for (i, result) in applied.results.iter().enumerate() {
+                match result {
+                    Some(Ok(o)) => {
+                        let k = Outcome::ALL.iter().position(|x| x == o).unwrap_or(0);
+                        report.outcomes[k] += 1;
+                    }
+                    Some(Err(reject)) => {
+                        report.bad += 1;
+                        if report.bad_lines.len() < MAX_LISTED_BAD_LINES {
+                            report.bad_lines.push(BadLine {
+                                input: lines.open[batch[i].input].name.clone(),
+                                line: batch[i].number,
+                                reason: reject.reason.as_str(),
+                                message: reject.message.to_string(),
+                            });
+                        }
+                    }
+                    None => {}
                 }
-                None => {}
             }
-        }
-        for (_, decided) in &applied.released {
-            if let Ok(o) = decided {
-                let k = Outcome::ALL.iter().position(|x| x == o).unwrap_or(0);
-                report.held_decided[k] += 1;
+            for (_, decided) in &applied.released {
+                if let Ok(o) = decided {
+                    let k = Outcome::ALL.iter().position(|x| x == o).unwrap_or(0);
+                    report.held_decided[k] += 1;
+                }
             }
-        }
-        // Due snapshots are in input order, each with the batch index of the event that
-        // made it due, which maps back to that event's input and line.
-        for (snapshot, item) in applied.due.into_iter().zip(applied.due_items) {
-            let (input, line) = batch
-                .get(item)
-                .map(|l| (lines.open[l.input].name.clone(), l.number))
-                .unwrap_or_default();
-            report.evaluations += 1;
-            let evaluation = evaluate_snapshot(&mut report.book, snapshot);
-            for change in evaluation.changes {
-                report.decisions.push(Decision {
-                    input: input.clone(),
-                    line,
-                    change,
-                });
+            // Due snapshots are in input order, each with the batch index of the event that
+            // made it due, which maps back to that event's input and line.
+            for (snapshot, item) in applied.due.into_iter().zip(applied.due_items) {
+                let (input, line) = batch
+                    .get(item)
+                    .map(|l| (lines.open[l.input].name.clone(), l.number))
+                    .unwrap_or_default();
+                report.evaluations += 1;
+                let evaluation = evaluate_snapshot(&mut report.book, snapshot);
+                for change in evaluation.changes {
+                    report.decisions.push(Decision {
+                        input: input.clone(),
+                        line,
+                        change,
+                    });
+                }
             }
         }
     }
     report.clock = metrics.clock.of(Source::Kafka);
-    let shards = shards.into_inner().unwrap_or_else(|p| p.into_inner());
+    let mut shards = shards.into_inner().unwrap_or_else(|p| p.into_inner());
     if partitioned {
-        evaluate_boundaries(&shards, inputs.len(), &mut report);
+        // The end of a dump is a partition that has gone quiet: live, its idle declaration
+        // passes the boundary after its last record, with its final totals.
+        let every = config.alerts.cadence().every.max(1);
+        for name in &shard_names {
+            if let Some(shard) = shards.shard_mut_if_present(name) {
+                if let Some(w) = shard.boundaries().and_then(|b| b.watermark()) {
+                    shard.pass_reference((w.div_euclid(every) + 1) * every);
+                }
+            }
+        }
+        evaluate_boundaries(&shards, groups.len(), &mut report);
     }
     report.experiments = shards
         .snapshots()

@@ -38,6 +38,9 @@ brokers = "{brokers}"
 group = "{group}"
 changelog_topic = "{changelog}"
 changelog_interval_ms = 300
+# The records are stamped up to 45 minutes in the past (a backfill): a quiet partition must
+# not declare itself past them between the waves.
+idle_allowance_secs = 10800
 [kafka.properties]
 "session.timeout.ms" = 6000
 "heartbeat.interval.ms" = 500
@@ -316,6 +319,9 @@ brokers = "{brokers}"
 group = "{group}"
 changelog_topic = "{changelog}"
 changelog_interval_ms = 300
+# The records are stamped up to 45 minutes in the past (a backfill): a quiet partition must
+# not declare itself past them between the waves.
+idle_allowance_secs = 10800
 [kafka.properties]
 "session.timeout.ms" = 6000
 "heartbeat.interval.ms" = 500
@@ -534,33 +540,57 @@ fn each_alert_change_is_delivered_once_by_id_through_a_sigkill_of_the_owner() {
     }
     // The owner after the kill evaluates the last boundary on every partition's totals.
     for (id, _) in EXPERIMENTS {
-        wait_for(
-            Duration::from_secs(150),
-            "the last boundary evaluated after the kill",
-            || {
-                let (_, doc) = instances[0].get(&format!("/v1/experiments/{id}"));
-                let want = doc["variants"]
-                    .as_array()?
+        let deadline = std::time::Instant::now() + Duration::from_secs(150);
+        loop {
+            let (_, doc) = instances[0].get(&format!("/v1/experiments/{id}"));
+            let want: Vec<u64> = doc["variants"]
+                .as_array()
+                .map(|v| v.iter().filter_map(|a| a["units"].as_u64()).collect())
+                .unwrap_or_default();
+            let last = |s: &Service| {
+                history(s, id).last().map(|p| {
+                    p["arms"]
+                        .as_array()
+                        .unwrap()
+                        .iter()
+                        .map(|a| a["units"].as_u64().unwrap())
+                        .collect::<Vec<_>>()
+                })
+            };
+            if want.iter().sum::<u64>() > 2000
+                && instances.iter().any(|s| last(s) == Some(want.clone()))
+            {
+                break;
+            }
+            if std::time::Instant::now() > deadline {
+                let diag: Vec<String> = instances
                     .iter()
-                    .map(|v| v["units"].as_u64())
-                    .collect::<Option<Vec<u64>>>()?;
-                (want.iter().sum::<u64>() > 2000).then_some(())?;
-                instances
-                    .iter()
-                    .any(|s| {
-                        history(s, id).last().is_some_and(|p| {
-                            p["arms"]
-                                .as_array()
-                                .unwrap()
-                                .iter()
-                                .map(|a| a["units"].as_u64().unwrap())
+                    .map(|s| {
+                        format!(
+                            "ownership {} last {:?} units {:?}\n{}",
+                            s.get(&format!("/v1/experiments/{id}")).1["ownership"],
+                            last(s),
+                            s.get(&format!("/v1/experiments/{id}")).1["variants"],
+                            s.log_text()
+                                .lines()
+                                .filter(|l| l.contains("WARN")
+                                    || l.contains("ERROR")
+                                    || l.contains("owns")
+                                    || l.contains("revoked")
+                                    || l.contains("assigned"))
+                                .take(30)
                                 .collect::<Vec<_>>()
-                                == want
-                        })
+                                .join("\n")
+                        )
                     })
-                    .then_some(())
-            },
-        );
+                    .collect();
+                panic!(
+                    "{id}: the last boundary was not evaluated after the kill (want {want:?}):\n{}",
+                    diag.join("\n\n")
+                );
+            }
+            std::thread::sleep(Duration::from_millis(300));
+        }
     }
     // Counts exact on every instance once caught up: an independent count of the lines.
     let mut arm_of = std::collections::HashMap::new();

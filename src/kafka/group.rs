@@ -19,6 +19,9 @@ use crate::config::KafkaConfig;
 use crate::service::group::GroupMessage;
 use crate::service::Service;
 
+/// How often a follower at the end of the topic asks where the end is now.
+const END_REFRESH: Duration = Duration::from_secs(1);
+
 /// How often a quiet follower looks for experiments it owns with boundaries ready.
 const SWEEP_INTERVAL: Duration = Duration::from_millis(500);
 
@@ -116,23 +119,29 @@ pub fn follow(
     tpl.add_partition_offset(topic.topic(), 0, Offset::Beginning)?;
     consumer.assign(&tpl)?;
     let mut last_sweep = std::time::Instant::now();
-    // The topic's end as last asked for.
-    let mut high = 0;
+    // The topic's end as last asked for, and when.
+    let mut end = consumer
+        .fetch_watermarks(topic.topic(), 0, Duration::from_secs(10))
+        .map_or(0, |(_, high)| high);
+    let mut asked = std::time::Instant::now();
     while !shutdown.is_cancelled() {
         let acks = match consumer.poll(Duration::from_millis(100)) {
             Some(Ok(m)) => match m.key() {
                 Some(key) => {
-                    // Evaluate only at the end of the topic: what lies behind may acknowledge
-                    // those boundaries already. The end is asked for again only once the
-                    // known one is reached, so catching up costs few round trips.
-                    if m.offset() + 1 >= high {
-                        if let Ok((_, h)) =
+                    // Evaluate only once the topic is read to the end it had at most a
+                    // second ago: what lies behind may acknowledge those boundaries already.
+                    // (Heartbeats keep coming, so "the end now" is never quite reached; an
+                    // acknowledgement of the last second is the race that deterministic
+                    // alert ids absorb.)
+                    let at_end = m.offset() + 1 >= end;
+                    if at_end && asked.elapsed() >= END_REFRESH {
+                        if let Ok((_, high)) =
                             consumer.fetch_watermarks(topic.topic(), 0, Duration::from_secs(2))
                         {
-                            high = h;
+                            end = high;
+                            asked = std::time::Instant::now();
                         }
                     }
-                    let at_end = m.offset() + 1 >= high;
                     service.offer_group_message(key, m.payload(), at_end)
                 }
                 None => continue,

@@ -466,15 +466,21 @@ impl Service {
                 let result = match offered {
                     Offered::Taken => "taken",
                     Offered::Stale => "stale",
+                    Offered::Revised => "revised",
                     Offered::Conflict => "conflict",
                 };
                 self.metrics
                     .group_partials
                     .with_label_values(&[result])
                     .inc();
+                if offered == Offered::Revised {
+                    tracing::warn!(key, "a partition's new holder placed records at other boundaries than its old holder (idle declarations or records behind the watermark); boundaries not yet evaluated take the new totals");
+                }
                 match offered {
-                    Offered::Taken if evaluate => self.evaluate_ready(group, &experiment),
-                    Offered::Taken => Vec::new(),
+                    Offered::Taken | Offered::Revised if evaluate => {
+                        self.evaluate_ready(group, &experiment)
+                    }
+                    Offered::Taken | Offered::Revised => Vec::new(),
                     Offered::Conflict => {
                         tracing::error!(key, "a partial conflicts with the one held (two writers for one partition?); ignored");
                         Vec::new()

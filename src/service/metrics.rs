@@ -289,7 +289,7 @@ impl Metrics {
         let group_partials = counter_vec(
             &registry,
             "posteriord_group_partials_total",
-            "Partial totals read from the partials topic, by result (taken; stale: a redelivery or an older one; conflict: two writers for one partition).",
+            "Partial totals read from the partials topic, by result (taken; stale: a redelivery or an older one; revised: a partition's new holder placed records at other boundaries; conflict: two writers for one partition).",
             &["result"],
         );
         let group_boundaries = counter_vec(

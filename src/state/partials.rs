@@ -43,9 +43,13 @@ pub enum Offered {
     Taken,
     /// Not newer (a redelivery or an older message): ignored.
     Stale,
-    /// Positions ahead in one topic and behind in another, or totals for a passed boundary
-    /// that differ from the ones held: two writers for one partition, or a bug. Ignored and
-    /// reported, never merged.
+    /// Newer, with totals for a boundary the partition had passed that differ from the ones
+    /// held: the partition was re-derived by a new holder whose idle declarations (or a
+    /// record behind the watermark) placed records differently. Taken: its entries replace
+    /// the held ones for every boundary not yet evaluated (evaluated ones stay decided).
+    Revised,
+    /// Positions ahead in one topic and behind in another, or a partition out of range: two
+    /// writers for one partition, or a bug. Ignored and reported, never merged.
     Conflict,
 }
 
@@ -108,17 +112,15 @@ impl<T: Tally> Merger<T> {
                 }
                 _ => {}
             }
-            // Totals as of a boundary the partition has passed are fixed by its log.
-            for (b, t) in &partial.as_of {
-                if *b <= held.watermark {
-                    if let Some(old) = held.as_of.get(b) {
-                        if old != t {
-                            return Offered::Conflict;
-                        }
-                    }
-                }
-            }
         }
+        // Totals as of a boundary the partition has passed are fixed by its log and its
+        // holder's idle declarations; a new holder may declare differently.
+        let revised = slot.as_ref().is_some_and(|held| {
+            partial
+                .as_of
+                .iter()
+                .any(|(b, t)| *b <= held.watermark && held.as_of.get(b).is_some_and(|old| old != t))
+        });
         let held = slot.get_or_insert_with(|| Held {
             positions: Vec::new(),
             watermark: Micros::MIN,
@@ -130,10 +132,18 @@ impl<T: Tally> Merger<T> {
         let base = held.as_of.keys().next().copied();
         for (b, t) in partial.as_of {
             if self.evaluated.is_none() || base.is_none_or(|base| b >= base) {
-                held.as_of.entry(b).or_insert(t);
+                if revised && self.evaluated.is_none_or(|e| b > e) {
+                    held.as_of.insert(b, t);
+                } else {
+                    held.as_of.entry(b).or_insert(t);
+                }
             }
         }
-        Offered::Taken
+        if revised {
+            Offered::Revised
+        } else {
+            Offered::Taken
+        }
     }
 
     /// The boundaries that can be evaluated now, in order: after the last evaluated one, at or
@@ -557,7 +567,8 @@ mod tests {
             let mut merger = Merger::new(logs.len() as u32, Counts(vec![0, 0]));
             let mut evaluated = Vec::new();
             for p in delivered.into_iter().chain(per_partition.iter().map(|v| v.last().unwrap().clone())) {
-                prop_assert_ne!(merger.offer(p), Offered::Conflict);
+                let offered = merger.offer(p);
+                prop_assert!(offered == Offered::Taken || offered == Offered::Stale, "{:?}", offered);
                 for b in merger.ready() {
                     evaluated.push((b, merger.totals_at(b)));
                     merger.evaluated(b);
@@ -712,5 +723,36 @@ mod tests {
         let crossed = a.partial(0, vec![3, 4]);
         assert_eq!(m.offer(crossed), Offered::Conflict);
         assert_eq!(m.offer(a.partial(9, vec![3, 5])), Offered::Conflict);
+    }
+
+    #[test]
+    fn a_re_derived_partition_revises_the_boundaries_not_yet_evaluated() {
+        let mut m = Merger::new(1, Counts(vec![0]));
+        let old = Partial {
+            partition: 0,
+            positions: vec![4],
+            watermark: 35,
+            as_of: vec![
+                (10, Counts(vec![1])),
+                (20, Counts(vec![2])),
+                (30, Counts(vec![3])),
+            ],
+        };
+        assert_eq!(m.offer(old), Offered::Taken);
+        m.evaluated(10);
+        // A new holder counted a record one boundary later than the old one did.
+        let new = Partial {
+            partition: 0,
+            positions: vec![5],
+            watermark: 36,
+            as_of: vec![
+                (10, Counts(vec![1])),
+                (20, Counts(vec![1])),
+                (30, Counts(vec![3])),
+            ],
+        };
+        assert_eq!(m.offer(new), Offered::Revised);
+        assert_eq!(m.totals_at(20), Counts(vec![1]));
+        assert_eq!(m.totals_at(10), Counts(vec![1]));
     }
 }
