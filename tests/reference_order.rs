@@ -366,7 +366,7 @@ fn rides_produced_first_are_applied_in_timestamp_order_and_replay_merges_the_sam
 
     // Live has begun evaluating (at boundaries, as its owner): compare with replay.
     wait_for(Duration::from_secs(60), "a first evaluation", || {
-        (service.metric_sum("posteriord_evaluations_total", r#"stage=\"done\""#) > 0).then_some(())
+        (service.metric_sum("posteriord_evaluations_total", r#"stage="done""#) > 0).then_some(())
     });
     let config_file = sc.dir.join("posteriord.toml");
     std::fs::write(&config_file, &cfg).unwrap();

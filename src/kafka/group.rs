@@ -22,8 +22,8 @@ use crate::service::Service;
 /// How often a follower at the end of the topic asks where the end is now.
 const END_REFRESH: Duration = Duration::from_secs(1);
 
-/// How often a quiet follower looks for experiments it owns with boundaries ready.
-const SWEEP_INTERVAL: Duration = Duration::from_millis(500);
+/// How often the follower evaluates the experiments it owns that have boundaries ready.
+const SWEEP_INTERVAL: Duration = Duration::from_millis(250);
 
 /// How long a publication waits for delivery.
 const PUBLISH_TIMEOUT: Duration = Duration::from_secs(10);
@@ -119,41 +119,40 @@ pub fn follow(
     tpl.add_partition_offset(topic.topic(), 0, Offset::Beginning)?;
     consumer.assign(&tpl)?;
     let mut last_sweep = std::time::Instant::now();
-    // The topic's end as last asked for, and when.
+    // The topic's end as last asked for, when, and the next offset to read.
     let mut end = consumer
         .fetch_watermarks(topic.topic(), 0, Duration::from_secs(10))
         .map_or(0, |(_, high)| high);
     let mut asked = std::time::Instant::now();
+    let mut next: i64 = 0;
     while !shutdown.is_cancelled() {
-        let acks = match consumer.poll(Duration::from_millis(100)) {
-            Some(Ok(m)) => match m.key() {
-                Some(key) => {
-                    // Evaluate only once the topic is read to the end it had at most a
-                    // second ago: what lies behind may acknowledge those boundaries already.
-                    // (Heartbeats keep coming, so "the end now" is never quite reached; an
-                    // acknowledgement of the last second is the race that deterministic
-                    // alert ids absorb.)
-                    let at_end = m.offset() + 1 >= end;
-                    if at_end && asked.elapsed() >= END_REFRESH {
-                        if let Ok((_, high)) =
-                            consumer.fetch_watermarks(topic.topic(), 0, Duration::from_secs(2))
-                        {
-                            end = high;
-                            asked = std::time::Instant::now();
-                        }
-                    }
-                    service.offer_group_message(key, m.payload(), at_end)
-                }
-                None => continue,
-            },
-            // Quiet, so at the end: experiments whose partition this instance gained by a
-            // rebalance are evaluated here, since no message may come to say so.
-            None if last_sweep.elapsed() >= SWEEP_INTERVAL => {
-                last_sweep = std::time::Instant::now();
-                service.evaluate_group_ready()
+        if let Some(Ok(m)) = consumer.poll(Duration::from_millis(100)) {
+            next = m.offset() + 1;
+            if let Some(key) = m.key() {
+                service.offer_group_message(key, m.payload(), false);
             }
-            _ => continue,
-        };
+        }
+        if last_sweep.elapsed() < SWEEP_INTERVAL {
+            continue;
+        }
+        last_sweep = std::time::Instant::now();
+        // Evaluate only once the topic is read to the end it had at most a second ago: what
+        // lies behind may acknowledge those boundaries already. (Heartbeats keep coming, so
+        // the end of this very moment is never quite reached; an acknowledgement of the last
+        // second is the race that deterministic alert ids absorb.) Experiments whose
+        // partition this instance gained by a rebalance are evaluated here too.
+        if next < end {
+            continue;
+        }
+        if asked.elapsed() >= END_REFRESH {
+            if let Ok((_, high)) =
+                consumer.fetch_watermarks(topic.topic(), 0, Duration::from_secs(2))
+            {
+                end = high;
+                asked = std::time::Instant::now();
+            }
+        }
+        let acks = service.evaluate_group_ready();
         while let Err(e) = topic.publish(&acks) {
             // An evaluated boundary must be acknowledged, or the shards keep its entries and
             // a new owner evaluates it again.
