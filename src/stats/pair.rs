@@ -318,8 +318,7 @@ mod tests {
                     // ln(1 + lift) is ill-conditioned where the lower end is near −1 (one
                     // ulp of a lift of −1 + 5e-13 moves it by 2e-4), and the plain relative
                     // difference where the ends are astronomical: the better of the two.
-                    let log_rel =
-                        |x: f64, y: f64| rel(x, y).min(rel(x.ln_1p(), y.ln_1p()));
+                    let log_rel = |x: f64, y: f64| rel(x, y).min(rel(x.ln_1p(), y.ln_1p()));
                     lift = lift
                         .max(log_rel(l.interval.lower, m.interval.lower))
                         .max(log_rel(l.interval.upper, m.interval.upper));
@@ -543,11 +542,18 @@ mod tests {
         let lift = s[1].lift.unwrap().interval;
         let (lower, upper) = (-0.999_999_999_999_500_458_9, 2_001_837_325_375.743_66);
         assert!((lift.lower - lower).abs() <= 2e-16, "{:e}", lift.lower);
-        assert!((lift.upper - upper).abs() <= 1e-13 * upper, "{:e}", lift.upper);
-        let general = compare_general(&Arms::Gamma(vec![g, g]), &CompareOptions::default())
-            .unwrap();
+        assert!(
+            (lift.upper - upper).abs() <= 1e-13 * upper,
+            "{:e}",
+            lift.upper
+        );
+        let general =
+            compare_general(&Arms::Gamma(vec![g, g]), &CompareOptions::default()).unwrap();
         let (p, rest, l) = worst(&s, &general);
-        assert!(p <= 1e-9 && rest <= 1e-9 && l <= 1e-6, "{p:e} {rest:e} {l:e}");
+        assert!(
+            p <= 1e-9 && rest <= 1e-9 && l <= 1e-6,
+            "{p:e} {rest:e} {l:e}"
+        );
     }
 
     /// Where the fast path's harm and ROPE differed most from the general path's ratio
