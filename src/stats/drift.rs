@@ -312,7 +312,8 @@ pub const RENYI_ORDERS: [f64; 5] = [1.5, 2.0, 3.0, 5.0, 9.0];
 /// divergence", IEEE Trans. Inf. Theory 60(7), 2014, Theorem 9 [M]), so with p₀ = P_from(E) and
 /// p₁ = P_to(E), d_α(p₀‖p₁) ≤ D_α(from‖to). d_α(x‖y) does not decrease as x and y move apart
 /// (the same inequality: for y ≤ x′ ≤ x a channel that maps Bernoulli(y) to itself takes
-/// Bernoulli(x) to Bernoulli(x′), and likewise in the second argument), so p₀ ≤ p < t ≤ p₁
+/// Bernoulli(x) to Bernoulli(x′), and likewise in the second argument; docs/methods.md §9
+/// gives the channel), so p₀ ≤ p < t ≤ p₁
 /// would give d_α(p‖t) ≤ d_α(p₀‖p₁) ≤ D_α; hence d_α(p‖t) > D_α proves p₁ < t. For a location
 /// shift of a normal law the best order decides moves 2 to 3 times longer than KL near
 /// p = 0.95 (docs/methods.md §9).
