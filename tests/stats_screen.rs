@@ -216,3 +216,68 @@ fn probabilities_move_no_further_than_the_bound_on_random_looks() {
         "the bound decided too little to be tested"
     );
 }
+
+/// `decide::screen` computes a metric without its ROPE probabilities when only the equivalence
+/// rule is already decided (`summary::Compute::WithoutEquivalence`); every other number must
+/// then be the one the full rules-only summary computes, bit for bit, harm with a margin
+/// included (it shares the ratio integrals' node cache with the ROPE).
+#[test]
+fn leaving_the_rope_out_changes_no_other_number() {
+    let cases = [
+        Arms::Beta(vec![
+            Beta::new(41.0, 960.0).unwrap(),
+            Beta::new(55.0, 946.0).unwrap(),
+        ]),
+        Arms::Beta(vec![
+            Beta::new(5_001.0, 95_001.0).unwrap(),
+            Beta::new(4_871.0, 95_131.0).unwrap(),
+            Beta::new(5_120.0, 94_882.0).unwrap(),
+        ]),
+        Arms::Gamma(vec![
+            Gamma::new(51.0, 101.0).unwrap(),
+            Gamma::new(41.0, 101.0).unwrap(),
+        ]),
+        Arms::Gamma(vec![
+            Gamma::new(201.0, 1e5).unwrap(),
+            Gamma::new(260.0, 1e5).unwrap(),
+            Gamma::new(190.0, 1e5).unwrap(),
+        ]),
+    ];
+    for arms in &cases {
+        for harm_margin in [0.0, 0.1] {
+            let with = CompareOptions {
+                control: 0,
+                level: 0.95,
+                rope: 0.01,
+                harm_margin,
+                lift_interval: false,
+                equivalence: true,
+            };
+            let without = CompareOptions {
+                equivalence: false,
+                ..with
+            };
+            let (a, b) = (
+                compare(arms, &with).unwrap(),
+                compare(arms, &without).unwrap(),
+            );
+            for (x, y) in a.iter().zip(&b) {
+                assert!(y.prob_practically_equivalent.is_none());
+                let bits = |s: &posteriord::stats::ArmSummary| {
+                    [
+                        s.prob_best,
+                        s.expected_loss,
+                        s.prob_better_than_control.unwrap_or(-1.0),
+                        s.prob_harm.unwrap_or(-1.0),
+                        s.interval.lower,
+                        s.interval.upper,
+                        s.mean,
+                        s.sd,
+                    ]
+                    .map(f64::to_bits)
+                };
+                assert_eq!(bits(x), bits(y), "{arms:?} at margin {harm_margin}");
+            }
+        }
+    }
+}

@@ -3,9 +3,12 @@
 //!
 //! A rule's probability P at this look and its exact value P₀ at the anchor look (the last
 //! look that computed the metric) are the probabilities of one event under two joint
-//! posteriors of the variant and the control; the divergence between those laws
-//! (`pair_divergences`, both orders) bounds how far P can be from P₀, and the closer P₀ lies
-//! to 0 or 1 the tighter (the data-processing inequality, docs/methods.md §9 has the proof).
+//! posteriors of the variant and the control; a divergence between those laws bounds how far P
+//! can be from P₀, the tighter the closer P₀ lies to 0 or 1 (the data-processing inequality,
+//! docs/methods.md §9 has the proof): KL in either order (`pair_divergence`), then Rényi
+//! divergences of the orders `RENYI_ORDERS` (`pair_renyi`), the first that decides ending the
+//! search. Harm and the ROPE are anchored apart: a look that must compute harm while every
+//! possible equivalence is already decided leaves the ROPE out (`Compute::WithoutEquivalence`).
 //! The exact path itself is within `EXACT_ERROR` of the true value (1e-9 documented,
 //! ≤ 2.1e-10 verified against mpmath), so when the true value is proven below
 //! threshold − `EXACT_ERROR` starting from P̂₀ + `EXACT_ERROR`, the exact path run now would also
