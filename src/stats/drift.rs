@@ -182,7 +182,7 @@ fn binary_kl_lower(x: f64, y: f64) -> f64 {
 /// applied on E and on its complement gives kl(p₀‖p₁) ≤ KL(from‖to) and kl(p₁‖p₀) ≤
 /// KL(to‖from): a divergence does not grow when the laws are reduced to one event (the
 /// data-processing inequality; T. M. Cover and J. A. Thomas, *Elements of Information
-/// Theory*, 2nd ed., Wiley 2006, §2.7 [M]). Suppose p₁ ≥ t > p ≥ p₀. kl(x‖y) is convex in each
+/// Theory*, 2nd ed., Wiley 2006, §2.7 \[M\]). Suppose p₁ ≥ t > p ≥ p₀. kl(x‖y) is convex in each
 /// argument with its minimum 0 at x = y, so kl(p₁‖p₀) ≥ kl(t‖p₀) ≥ kl(t‖p) and
 /// kl(p₀‖p₁) ≥ kl(p₀‖t) ≥ kl(p‖t). Hence if kl(p‖t) > KL(from‖to) or kl(t‖p) > KL(to‖from),
 /// then p₁ < t. This is never weaker than
@@ -309,7 +309,7 @@ pub const RENYI_ORDERS: [f64; 5] = [1.5, 2.0, 3.0, 5.0, 9.0];
 ///
 /// **Why it is rigorous.** Rényi divergences of every order satisfy the data-processing
 /// inequality (T. van Erven and P. Harremoës, "Rényi divergence and Kullback–Leibler
-/// divergence", IEEE Trans. Inf. Theory 60(7), 2014, Theorem 9 [M]), so with p₀ = P_from(E) and
+/// divergence", IEEE Trans. Inf. Theory 60(7), 2014, Theorem 9 \[M\]), so with p₀ = P_from(E) and
 /// p₁ = P_to(E), d_α(p₀‖p₁) ≤ D_α(from‖to). d_α(x‖y) does not decrease as x and y move apart
 /// (the same inequality: for y ≤ x′ ≤ x a channel that maps Bernoulli(y) to itself takes
 /// Bernoulli(x) to Bernoulli(x′), and likewise in the second argument; docs/methods.md §9
