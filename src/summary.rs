@@ -91,7 +91,29 @@ enum Detail {
 }
 
 fn summarize_with(snapshot: ExperimentSnapshot, level: f64, detail: Detail) -> ExperimentSummary {
-    summarize_selected(snapshot, level, detail, &mut |_, _| true)
+    summarize_selected(snapshot, level, detail, &mut |_, _| Compute::All)
+}
+
+/// What [`summarize_rules_only_chosen`] computes of one metric.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Compute {
+    /// Nothing: `arms` is `Err(StatsError::NotComputed)`.
+    Skip,
+    /// Everything [`summarize_rules_only`] computes.
+    All,
+    /// The same without the ROPE probabilities (`prob_practically_equivalent: None`); every
+    /// other number equals [`summarize_rules_only`]'s bit for bit (`CompareOptions`).
+    WithoutEquivalence,
+}
+
+/// [`summarize_rules_only`] with the work on each metric chosen by
+/// `choose(metric, posteriors)`: for a caller that has proved that no rule reading the numbers
+/// it leaves out can hold (`decide::screen`).
+pub fn summarize_rules_only_chosen(
+    snapshot: ExperimentSnapshot,
+    choose: &mut dyn FnMut(usize, &Result<Arms, StatsError>) -> Compute,
+) -> ExperimentSummary {
+    summarize_selected(snapshot, DEFAULT_LEVEL, Detail::Rules, choose)
 }
 
 /// [`summarize_rules_only`] for the metrics `compute(metric, posteriors)` selects; the others
@@ -102,14 +124,20 @@ pub fn summarize_rules_only_selected(
     snapshot: ExperimentSnapshot,
     compute: &mut dyn FnMut(usize, &Result<Arms, StatsError>) -> bool,
 ) -> ExperimentSummary {
-    summarize_selected(snapshot, DEFAULT_LEVEL, Detail::Rules, compute)
+    summarize_selected(snapshot, DEFAULT_LEVEL, Detail::Rules, &mut |m, p| {
+        if compute(m, p) {
+            Compute::All
+        } else {
+            Compute::Skip
+        }
+    })
 }
 
 fn summarize_selected(
     snapshot: ExperimentSnapshot,
     level: f64,
     detail: Detail,
-    compute: &mut dyn FnMut(usize, &Result<Arms, StatsError>) -> bool,
+    choose: &mut dyn FnMut(usize, &Result<Arms, StatsError>) -> Compute,
 ) -> ExperimentSummary {
     let def = &snapshot.def;
     let metrics = def
@@ -119,6 +147,8 @@ fn summarize_selected(
         .enumerate()
         .map(|(i, (m, totals))| {
             // Each metric's own ROPE and harm margin shape its probabilities.
+            let posteriors = posteriors(m, totals);
+            let chosen = choose(i, &posteriors);
             let options = CompareOptions {
                 control: def.control,
                 level,
@@ -126,10 +156,10 @@ fn summarize_selected(
                 harm_margin: m.rules.harm.map_or(0.0, |h| h.margin),
                 lift_interval: detail == Detail::Full
                     || (detail == Detail::Evaluator && i == def.rules.primary),
-                equivalence: detail == Detail::Full || i == def.rules.primary,
+                equivalence: (detail == Detail::Full || i == def.rules.primary)
+                    && chosen != Compute::WithoutEquivalence,
             };
-            let posteriors = posteriors(m, totals);
-            let arms = if !compute(i, &posteriors) {
+            let arms = if chosen == Compute::Skip {
                 Err(StatsError::NotComputed)
             } else {
                 match &posteriors {

@@ -1,8 +1,9 @@
 //! The look-to-look bound (`stats::shift_bound`, used by `decide::screen`) against the exact
 //! path on 10⁵ random looks (seeded): between any two looks of a simulated experiment, every
 //! probability the exact path reports moves by no more than the bound plus twice the exact
-//! path's error allowance, and every rule the bound declares silent is silent on the exact
-//! path. The claim is a theorem (Pinsker's inequality and the coupling bound for products,
+//! path's error allowance, every rule the bound declares silent is silent on the exact
+//! path, and every "below the threshold now" the divergence test (`stats::proven_below`, the
+//! data-processing inequality) claims for a probability or its complement holds. The claim is a theorem (Pinsker's inequality and the coupling bound for products,
 //! docs/methods.md §9); this checks the closed-form divergences and their rounding allowance
 //! against it, on conversion and defect-rate arms from no data to 1e9 units and with priors
 //! from Beta(1e-3, 1e-3) to Beta(50, 950).
@@ -17,7 +18,8 @@ use rand::{Rng, SeedableRng};
 use rand_distr::{Binomial, Distribution, Poisson};
 
 use posteriord::stats::{
-    compare, pair_shift_bound, shift_bound, Arms, Beta, CompareOptions, Gamma,
+    compare, pair_divergences, pair_renyi, pair_shift_bound, proven_below, proven_below_renyi,
+    shift_bound, Arms, Beta, CompareOptions, Gamma, RENYI_ORDERS,
 };
 
 /// Twice the exact path's error allowance (`decide::screen::EXACT_ERROR`).
@@ -52,6 +54,14 @@ fn probabilities_move_no_further_than_the_bound_on_random_looks() {
     let wanted = looks_wanted();
     let mut rng = StdRng::seed_from_u64(0x5eed_0018);
     let (mut looks, mut decided, mut rules_checked) = (0usize, 0usize, 0usize);
+    // The divergence test `decide::screen` uses (`stats::proven_below`): claims checked, and
+    // how many it decided beyond the total-variation test above.
+    let (mut kl_claims, mut kl_decided, mut kl_only) = (0usize, 0usize, 0usize);
+    // Harm rule checks (as counted in `decided`) the divergence test decides: never fewer.
+    let mut kl_harm = 0usize;
+    // Claims of the Rényi test (`stats::proven_below_renyi`, the orders `decide::screen`
+    // tries), and how many the divergence test above had not decided.
+    let (mut renyi_decided, mut renyi_only) = (0usize, 0usize);
     let mut widest_gap = 0.0f64;
     while looks < wanted {
         let conversion = rng.random_bool(0.6);
@@ -131,6 +141,51 @@ fn probabilities_move_no_further_than_the_bound_on_random_looks() {
                         );
                     }
                 }
+                // The data-processing test, as `decide::screen` applies it, on every
+                // probability and on its complement (the same test bounds it from below), at
+                // every threshold: a claim "below t now" must hold on the exact path.
+                let (forward, backward) = pair_divergences(old_arms, &arms, 0, 1).unwrap();
+                let renyi: Vec<f64> = RENYI_ORDERS
+                    .iter()
+                    .map(|&alpha| pair_renyi(old_arms, &arms, 0, 1, alpha).unwrap())
+                    .collect();
+                for (q, (&p_old, &p_now)) in old.iter().zip(&now).enumerate() {
+                    for (before, after) in [(p_old, p_now), (1.0 - p_old, 1.0 - p_now)] {
+                        for t in THRESHOLDS.iter().chain(&[0.01, 0.05, 0.1]) {
+                            kl_claims += 1;
+                            let half = SLACK / 2.0;
+                            let (p, t_in) = ((before + half).min(1.0), t - half);
+                            let by_kl = proven_below(p, t_in, forward, backward);
+                            for (&alpha, &d) in RENYI_ORDERS.iter().zip(&renyi) {
+                                if proven_below_renyi(p, t_in, alpha, d) {
+                                    renyi_decided += 1;
+                                    if !by_kl {
+                                        renyi_only += 1;
+                                    }
+                                    assert!(
+                                        after < *t,
+                                        "quantity {q}: {after} not below {t} after the Rényi test \
+                                         of order {alpha} from {before} (D {d:e}): {old_arms:?} -> {arms:?}"
+                                    );
+                                }
+                            }
+                            if by_kl {
+                                kl_decided += 1;
+                                if q == 3 && before == p_old && THRESHOLDS.contains(t) {
+                                    kl_harm += 1;
+                                }
+                                if before + moved + SLACK >= *t {
+                                    kl_only += 1;
+                                }
+                                assert!(
+                                    after < *t,
+                                    "quantity {q}: {after} not below {t} after the divergence test \
+                                     from {before} (KL {forward:e}, {backward:e}): {old_arms:?} -> {arms:?}"
+                                );
+                            }
+                        }
+                    }
+                }
                 // Re-anchor as the screen does when the bound stops deciding (here: when it
                 // grows past 0.3, to test both short and long distances).
                 if moved > 0.3 {
@@ -144,8 +199,85 @@ fn probabilities_move_no_further_than_the_bound_on_random_looks() {
     println!(
         "{looks} looks; {decided} of {rules_checked} harm rule checks decided by the bound; largest move / bound = {widest_gap:.3}"
     );
+    println!(
+        "divergence test: {kl_decided} of {kl_claims} claims decided, {kl_only} of them beyond the total-variation bound; harm rule checks decided: {kl_harm} (total variation: {decided})"
+    );
+    println!("Rényi test: {renyi_decided} claims decided (order by order), {renyi_only} of them beyond the divergence test");
+    assert!(
+        renyi_only > 0,
+        "the Rényi test decided too little to be tested"
+    );
+    assert!(
+        kl_harm >= decided && kl_only > 0,
+        "the divergence test decided too little to be tested"
+    );
     assert!(
         decided * 2 > rules_checked,
         "the bound decided too little to be tested"
     );
+}
+
+/// `decide::screen` computes a metric without its ROPE probabilities when only the equivalence
+/// rule is already decided (`summary::Compute::WithoutEquivalence`); every other number must
+/// then be the one the full rules-only summary computes, bit for bit, harm with a margin
+/// included (it shares the ratio integrals' node cache with the ROPE).
+#[test]
+fn leaving_the_rope_out_changes_no_other_number() {
+    let cases = [
+        Arms::Beta(vec![
+            Beta::new(41.0, 960.0).unwrap(),
+            Beta::new(55.0, 946.0).unwrap(),
+        ]),
+        Arms::Beta(vec![
+            Beta::new(5_001.0, 95_001.0).unwrap(),
+            Beta::new(4_871.0, 95_131.0).unwrap(),
+            Beta::new(5_120.0, 94_882.0).unwrap(),
+        ]),
+        Arms::Gamma(vec![
+            Gamma::new(51.0, 101.0).unwrap(),
+            Gamma::new(41.0, 101.0).unwrap(),
+        ]),
+        Arms::Gamma(vec![
+            Gamma::new(201.0, 1e5).unwrap(),
+            Gamma::new(260.0, 1e5).unwrap(),
+            Gamma::new(190.0, 1e5).unwrap(),
+        ]),
+    ];
+    for arms in &cases {
+        for harm_margin in [0.0, 0.1] {
+            let with = CompareOptions {
+                control: 0,
+                level: 0.95,
+                rope: 0.01,
+                harm_margin,
+                lift_interval: false,
+                equivalence: true,
+            };
+            let without = CompareOptions {
+                equivalence: false,
+                ..with
+            };
+            let (a, b) = (
+                compare(arms, &with).unwrap(),
+                compare(arms, &without).unwrap(),
+            );
+            for (x, y) in a.iter().zip(&b) {
+                assert!(y.prob_practically_equivalent.is_none());
+                let bits = |s: &posteriord::stats::ArmSummary| {
+                    [
+                        s.prob_best,
+                        s.expected_loss,
+                        s.prob_better_than_control.unwrap_or(-1.0),
+                        s.prob_harm.unwrap_or(-1.0),
+                        s.interval.lower,
+                        s.interval.upper,
+                        s.mean,
+                        s.sd,
+                    ]
+                    .map(f64::to_bits)
+                };
+                assert_eq!(bits(x), bits(y), "{arms:?} at margin {harm_margin}");
+            }
+        }
+    }
 }

@@ -1,14 +1,19 @@
 //! Looks decided without quadrature: the exact values of an earlier look plus a proven bound
-//! on how far they can have moved since ([`crate::stats::shift_bound`]).
+//! on how far they can have moved since ([`crate::stats::proven_below`]).
 //!
 //! A rule's probability P at this look and its exact value P₀ at the anchor look (the last
-//! look that computed the metric) differ by at most D, the total variation distance between the joint anchor and current
-//! posteriors of the variant and the control (`pair_shift_bound`) (docs/methods.md §9
-//! has the proof). The exact path itself is within `EXACT_ERROR` of the true value (1e-9
-//! documented, ≤ 2.1e-10 verified against mpmath), so when P̂₀ + D + 2·`EXACT_ERROR` is below
-//! the threshold, the exact path run now would also find P̂ below it: the rule cannot hold,
-//! and the metric's quadrature is skipped. Otherwise the metric is computed exactly, and that
-//! look becomes its new anchor.
+//! look that computed the metric) are the probabilities of one event under two joint
+//! posteriors of the variant and the control; a divergence between those laws bounds how far P
+//! can be from P₀, the tighter the closer P₀ lies to 0 or 1 (the data-processing inequality,
+//! docs/methods.md §9 has the proof): KL in either order (`pair_divergence`), then Rényi
+//! divergences of the orders `RENYI_ORDERS` (`pair_renyi`), the first that decides ending the
+//! search. Harm and the ROPE are anchored apart: a look that must compute harm while every
+//! possible equivalence is already decided leaves the ROPE out (`Compute::WithoutEquivalence`).
+//! The exact path itself is within `EXACT_ERROR` of the true value (1e-9 documented,
+//! ≤ 2.1e-10 verified against mpmath), so when the true value is proven below
+//! threshold − `EXACT_ERROR` starting from P̂₀ + `EXACT_ERROR`, the exact path run now would also
+//! find P̂ below the threshold: the rule cannot hold, and the metric's quadrature is skipped.
+//! Otherwise the metric is computed exactly, and that look becomes its new anchor.
 //!
 //! Which rules read a metric's numbers (`evaluate`): `harm` reads P(harm) of each variant;
 //! on the primary metric `equivalent` reads the smallest ROPE probability (it cannot hold when
@@ -20,8 +25,10 @@
 //! exact path's on every look; `plan`'s tests compare whole simulated runs both ways.
 
 use crate::state::ExperimentSnapshot;
-use crate::stats::{pair_shift_bound, Arms};
-use crate::summary::summarize_rules_only_selected;
+use crate::stats::{
+    pair_divergence, pair_renyi, proven_below, proven_below_renyi, Arms, RENYI_ORDERS,
+};
+use crate::summary::{summarize_rules_only_chosen, Compute};
 
 use super::evaluation::{evaluation_time, Evaluation};
 
@@ -29,18 +36,26 @@ use super::evaluation::{evaluation_time, Evaluation};
 /// ≤ 1e-9 and verifies ≤ 2.1e-10 against mpmath; ten times the promise is kept in hand.
 pub const EXACT_ERROR: f64 = 1e-8;
 
-/// One metric's exact values at its anchor look.
+/// Exact values of one quantity (P(harm) or the ROPE probability of each variant) at the look
+/// that last computed it, with that look's posteriors.
 #[derive(Debug, Clone)]
 struct Anchor {
     posteriors: Arms,
-    harm: Vec<Option<f64>>,
-    rope: Vec<Option<f64>>,
+    values: Vec<Option<f64>>,
+}
+
+/// One metric's anchors: harm and ROPE are anchored separately, because a look may compute
+/// harm alone when the ROPE probabilities are already proven below their threshold.
+#[derive(Debug, Clone, Default)]
+struct Anchors {
+    harm: Option<Anchor>,
+    rope: Option<Anchor>,
 }
 
 /// Per-experiment state of the screen: one anchor per metric, and counts for `--bench`.
 #[derive(Debug, Clone, Default)]
 pub struct Screen {
-    anchors: Vec<Option<Anchor>>,
+    anchors: Vec<Anchors>,
     /// Metric evaluations skipped because the bound decided them.
     pub skipped: u64,
     /// Metric evaluations computed exactly.
@@ -60,7 +75,7 @@ impl Screen {
         let def = std::sync::Arc::clone(&snapshot.def);
         let n_metrics = def.metrics.len();
         if self.anchors.len() != n_metrics {
-            self.anchors = vec![None; n_metrics];
+            self.anchors = vec![Anchors::default(); n_metrics];
         }
         let at = evaluation_time(&snapshot);
         // Which rules could hold at all on this look, from the counts alone (as `evaluate`
@@ -84,27 +99,33 @@ impl Screen {
             .collect();
         let anchors = &self.anchors;
         let (mut skipped, mut computed) = (0u64, 0u64);
-        let summary = summarize_rules_only_selected(snapshot, &mut |m, posteriors| {
-            let quiet = match posteriors {
-                Ok(now) => silent(&def, m, anchors[m].as_ref(), now, &possible[m]),
-                Err(_) => false,
+        let summary = summarize_rules_only_chosen(snapshot, &mut |m, posteriors| {
+            let chosen = match posteriors {
+                Ok(now) => choose(&def, m, &anchors[m], now, &possible[m]),
+                Err(_) => Compute::All,
             };
-            if quiet {
+            if chosen == Compute::Skip {
                 skipped += 1;
             } else {
                 computed += 1;
             }
-            !quiet
+            chosen
         });
         self.skipped += skipped;
         self.computed += computed;
         for (m, metric) in summary.metrics.iter().enumerate() {
             if let (Ok(posteriors), Ok(arms)) = (&metric.posteriors, &metric.arms) {
-                self.anchors[m] = Some(Anchor {
+                let anchor = |values: Vec<Option<f64>>| Anchor {
                     posteriors: posteriors.clone(),
-                    harm: arms.iter().map(|a| a.prob_harm).collect(),
-                    rope: arms.iter().map(|a| a.prob_practically_equivalent).collect(),
-                });
+                    values,
+                };
+                self.anchors[m].harm = Some(anchor(arms.iter().map(|a| a.prob_harm).collect()));
+                let rope: Vec<Option<f64>> =
+                    arms.iter().map(|a| a.prob_practically_equivalent).collect();
+                // A look that left the ROPE out keeps the earlier ROPE anchor.
+                if rope.iter().any(Option::is_some) {
+                    self.anchors[m].rope = Some(anchor(rope));
+                }
             }
         }
         let findings = super::evaluate(&summary);
@@ -133,61 +154,110 @@ fn ran_long_enough(snapshot: &ExperimentSnapshot) -> bool {
     }
 }
 
-/// True when no rule reading metric `m`'s numbers can hold at posteriors `now`: the rule
-/// cannot hold on this look at all (`possible`), or the anchor's exact values and the shift
-/// bound prove it below its threshold.
-fn silent(
+/// What of metric `m` to compute at posteriors `now`: nothing when no rule reading its numbers
+/// can hold (the rule cannot hold on this look at all (`possible`), or an anchor's exact
+/// values and the divergence bound prove it below its threshold); without the ROPE when only
+/// the equivalence rule is so decided; everything otherwise.
+fn choose(
     def: &crate::experiment::ExperimentDef,
     m: usize,
-    anchor: Option<&Anchor>,
+    anchors: &Anchors,
     now: &Arms,
     possible: &Possible,
-) -> bool {
+) -> Compute {
     let metric = &def.metrics[m];
     let primary = m == def.rules.primary;
     let ship = def.metrics[def.rules.primary].rules.ship.is_some();
-    // `ship` reads the primary metric's expected losses (no bound) and the guardrails'
-    // clearance, whose absence blocks shipping: with a ship rule, those are always computed.
-    if ship && (primary || def.rules.guardrails.contains(&m)) {
-        return false;
-    }
     let c = def.control;
     let k = now.len();
     let harm_rule = metric
         .rules
         .harm
         .filter(|_| possible.harm.iter().any(|&p| p));
-    if harm_rule.is_none() && !possible.equivalence {
-        return true;
+    // Equivalence: silent when it cannot hold on this look, or when one variant's ROPE
+    // probability is proven below its threshold.
+    let equivalence_silent = !possible.equivalence
+        || anchors.rope.as_ref().is_some_and(|anchor| {
+            let mut proof = Proof::new(anchor, now, c);
+            (0..k)
+                .filter(|&v| v != c)
+                .any(|v| proof.below(v, def.rules.equivalence_probability))
+        });
+    // `ship` reads the primary metric's expected losses (no bound) and the guardrails'
+    // clearance, whose absence blocks shipping: with a ship rule, those are always computed.
+    let always = ship && (primary || def.rules.guardrails.contains(&m));
+    let harm_silent = !always
+        && match (harm_rule, anchors.harm.as_ref()) {
+            (None, _) => true,
+            (Some(_), None) => false,
+            (Some(rule), Some(anchor)) => {
+                let mut proof = Proof::new(anchor, now, c);
+                (0..k)
+                    .filter(|&v| possible.harm[v])
+                    .all(|v| proof.below(v, rule.probability))
+            }
+        };
+    match (harm_silent, equivalence_silent) {
+        (true, true) => Compute::Skip,
+        (false, true) => Compute::WithoutEquivalence,
+        (_, false) => Compute::All,
     }
-    let Some(anchor) = anchor else {
-        return false;
-    };
-    let mut moved = vec![0.0; k];
-    for (v, slot) in moved.iter_mut().enumerate().filter(|(v, _)| *v != c) {
-        match pair_shift_bound(&anchor.posteriors, now, v, c) {
-            Some(d) => *slot = d,
-            None => return false,
+}
+
+/// Proofs that a variant's anchored probability is still below a threshold, with each pair
+/// divergence computed at most once and the second order only when the first does not decide.
+struct Proof<'a> {
+    anchor: &'a Anchor,
+    now: &'a Arms,
+    control: usize,
+    /// Per variant: KL(anchor‖now) and KL(now‖anchor) of (variant, control), once computed;
+    /// `None` inside when the families differ.
+    forward: Vec<Option<Option<f64>>>,
+    backward: Vec<Option<Option<f64>>>,
+}
+
+impl<'a> Proof<'a> {
+    fn new(anchor: &'a Anchor, now: &'a Arms, control: usize) -> Proof<'a> {
+        let k = now.len();
+        Proof {
+            anchor,
+            now,
+            control,
+            forward: vec![None; k],
+            backward: vec![None; k],
         }
     }
-    let below = |value: Option<f64>, v: usize, threshold: f64| {
-        value.is_some_and(|p| p + moved[v] + 2.0 * EXACT_ERROR < threshold)
-    };
-    if let Some(rule) = harm_rule {
-        let all_below = (0..k)
-            .filter(|&v| possible.harm[v])
-            .all(|v| below(anchor.harm[v], v, rule.probability));
-        if !all_below {
+
+    /// True when variant `v`'s value now is proven below `threshold` as the exact path would
+    /// compute it. The anchor's true value is at most P̂₀ + ε, and the exact path run now
+    /// reports at most the true value + ε: proving the true value below threshold − ε from
+    /// P̂₀ + ε proves the exact path's value below the threshold.
+    fn below(&mut self, v: usize, threshold: f64) -> bool {
+        let Some(p) = self.anchor.values.get(v).copied().flatten() else {
             return false;
-        }
-    }
-    if possible.equivalence {
-        let one_below = (0..k)
-            .filter(|&v| v != c)
-            .any(|v| below(anchor.rope[v], v, def.rules.equivalence_probability));
-        if !one_below {
+        };
+        let (p, t) = ((p + EXACT_ERROR).min(1.0), threshold - EXACT_ERROR);
+        let (anchor, now, c) = (&self.anchor.posteriors, self.now, self.control);
+        let Some(forward) =
+            *self.forward[v].get_or_insert_with(|| pair_divergence(anchor, now, v, c))
+        else {
             return false;
+        };
+        if proven_below(p, t, forward, f64::INFINITY) {
+            return true;
         }
+        let Some(backward) =
+            *self.backward[v].get_or_insert_with(|| pair_divergence(now, anchor, v, c))
+        else {
+            return false;
+        };
+        if proven_below(p, t, forward, backward) {
+            return true;
+        }
+        // Near a threshold, Rényi divergences of higher orders decide longer moves than KL
+        // (`stats::proven_below_renyi`); a few orders cost far less than the quadrature.
+        RENYI_ORDERS.iter().any(|&alpha| {
+            pair_renyi(anchor, now, v, c, alpha).is_some_and(|d| proven_below_renyi(p, t, alpha, d))
+        })
     }
-    true
 }

@@ -30,7 +30,10 @@ pub use arms::{
     compare_general, decide_general, ArmSummary, Arms, CompareOptions, Decision, Lift, MAX_ARMS,
 };
 pub use density::{lift_density, plot_range, posterior_density, PLOT_TAIL};
-pub use drift::{pair_shift_bound, shift_bound};
+pub use drift::{
+    pair_divergence, pair_divergences, pair_renyi, pair_shift_bound, proven_below,
+    proven_below_renyi, shift_bound, RENYI_ORDERS,
+};
 pub use posterior::{Beta, Gamma, MAX_LEVEL, MAX_RATE, MAX_SHAPE, MIN_RATE, MIN_SHAPE};
 pub use srm::{sample_ratio_mismatch, SampleRatio, SRM_P_THRESHOLD};
 
