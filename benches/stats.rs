@@ -278,7 +278,7 @@ fn gamma_arms(k: usize, n: f64) -> Arms {
 }
 
 /// Four arms with shapes 1e-3..1e-1 and rates 1..1e9 (`sensor_spread_4` of
-/// tests/reference/gamma_many_table.rs, where the ratio quadrature was 3e-9 off on harm and
+/// tests/reference/gamma_many_table.in, where the ratio quadrature was 3e-9 off on harm and
 /// ROPE and 7e-6 relative on a lift end).
 fn gamma_tiny() -> Arms {
     Arms::Gamma(vec![

@@ -960,7 +960,7 @@ fn decide_matches_compare_on_the_reference_table() {
 // ---------------------------------------------------------------------------------------------
 // Defect-rate metrics of 3 and 4 arms with tiny shapes (1e-3..1e-1) and rates 1..1e9.
 
-/// One metric of `tests/reference/gamma_many_table.rs`.
+/// One metric of `tests/reference/gamma_many_table.in`.
 struct ManyCase {
     id: &'static str,
     /// (shape, rate) of each arm's posterior.
@@ -989,7 +989,7 @@ struct ManyExpect {
 /// (r_c/r_v)·w/(1 − w) − 1 at the Beta quantiles, found by bisection in ln(w/(1 − w)); P(best)
 /// and expected loss are mpmath.quad (tanh-sinh) of METHODS §1.4 in ln(rate), the generator
 /// checking Σ P(best) = 1 and loss_i − loss_j = μ_i − μ_j to 1e-35.
-const GAMMA_MANY: &[ManyCase] = include!("reference/gamma_many_table.rs");
+const GAMMA_MANY: &[ManyCase] = include!("reference/gamma_many_table.in");
 
 /// Relative error of a lift end; an end beyond double range must be +∞ (documented), and an
 /// end that rounds to −1 in double precision must be −1 to the same rounding.

@@ -5,9 +5,10 @@ tests/stats_reference.rs.
 
 Regenerate (from the repository root; needs mpmath >= 1.3):
 
-    python3 tests/reference/gamma_many.py > tests/reference/gamma_many_table.rs
+    python3 tests/reference/gamma_many.py > tests/reference/gamma_many_table.in
 
-The test includes that file (a Rust expression); it never runs Python. Runtime: about five
+The test includes that file (a Rust expression, hence `.in`: not a module of its own); it
+never runs Python. Runtime: about five
 minutes on one core.
 
 How each quantity is computed (mpmath, 50 significant digits; printed to 20):
