@@ -7,7 +7,9 @@
 //! exact error) against the mpmath reference in tests/reference/cases.json, and the same for
 //! the two-arm defect-rate case R11 of METHODS §2 (mpmath), where `compare` takes the two-arm
 //! fast path; `compare_general` (the shared-grid path every other input takes) is timed beside
-//! it as the before.
+//! it as the before. Last, defect-rate metrics of 3 to 16 arms, where `compare` takes each
+//! variant's lift, ROPE and harm from the pair's exact table and `compare_general` from the
+//! ratio quadrature (the before), timed in the same run.
 
 use std::path::PathBuf;
 use std::time::{Duration, Instant};
@@ -262,9 +264,76 @@ fn gamma_pair(n: f64) -> Arms {
     Arms::Gamma(arms)
 }
 
+/// k defect-rate arms around 2 defects per 1 000 units of exposure, n units each (an invented
+/// delivery app's crash test with k − 1 builds against the shipped one).
+fn gamma_arms(k: usize, n: f64) -> Arms {
+    Arms::Gamma(
+        (0..k)
+            .map(|j| {
+                let rate = 0.002 * (1.0 + 0.01 * j as f64);
+                Gamma::new(1.0 + (n * rate).round(), 1.0 + n).unwrap()
+            })
+            .collect(),
+    )
+}
+
+/// Four arms with shapes 1e-3..1e-1 and rates 1..1e9 (`sensor_spread_4` of
+/// tests/reference/gamma_many_table.in, where the ratio quadrature was 3e-9 off on harm and
+/// ROPE and 7e-6 relative on a lift end).
+fn gamma_tiny() -> Arms {
+    Arms::Gamma(vec![
+        Gamma::new(0.0016578552276172037, 450803768.7618457).unwrap(),
+        Gamma::new(0.030935442594251735, 1.0).unwrap(),
+        Gamma::new(0.01, 1e3).unwrap(),
+        Gamma::new(0.1, 1e9).unwrap(),
+    ])
+}
+
+fn print_gamma_many_ratios() {
+    println!("statistics core, 3..16 defect-rate arms: compare (pairwise quantities from each pair's table) against compare_general (ratio quadrature), same run:");
+    let mut cases: Vec<(String, Arms, usize)> = Vec::new();
+    for &k in &[3usize, 4, 16] {
+        for &n in &[1e3, 1e8] {
+            cases.push((format!("k={k} n={n:e}"), gamma_arms(k, n), 0));
+        }
+    }
+    cases.push(("k=4 tiny shapes".to_string(), gamma_tiny(), 1));
+    for (name, arms, control) in cases {
+        let opts = CompareOptions {
+            control,
+            harm_margin: 0.1,
+            ..CompareOptions::default()
+        };
+        let t_new = median_time(51, || {
+            black_box(compare(black_box(&arms), &opts).unwrap());
+        });
+        let t_old = median_time(51, || {
+            black_box(compare_general(black_box(&arms), &opts).unwrap());
+        });
+        println!(
+            "  {name}: compare {t_new:?}, compare_general {t_old:?} ({:.2}x faster)",
+            t_old.as_secs_f64() / t_new.as_secs_f64()
+        );
+    }
+}
+
 fn bench_compare(c: &mut Criterion) {
     print_ratios();
     print_gamma_ratios();
+    print_gamma_many_ratios();
+    let mut many = c.benchmark_group("gamma_k");
+    many.sample_size(20);
+    for &k in &[4usize, 16] {
+        let arms = gamma_arms(k, 1e8);
+        let opts = CompareOptions::default();
+        many.bench_with_input(BenchmarkId::new("compare", k), &arms, |b, arms| {
+            b.iter(|| compare(black_box(arms), &opts).unwrap())
+        });
+        many.bench_with_input(BenchmarkId::new("compare general", k), &arms, |b, arms| {
+            b.iter(|| compare_general(black_box(arms), &opts).unwrap())
+        });
+    }
+    many.finish();
     let mut pair = c.benchmark_group("gamma2");
     pair.sample_size(20);
     for &n in &[1e3, 1e8] {

@@ -187,6 +187,26 @@ pub(super) fn check_options(arms: &Arms, opts: &CompareOptions) -> Result<(), St
 /// fast path: the reference the fast path is tested and benchmarked against.
 #[doc(hidden)]
 pub fn compare_general(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSummary>, StatsError> {
+    compare_shared(arms, opts, Ratios::Compute)
+}
+
+/// Whether [`compare_shared`] computes the quantities of the ratio θ_v/θ_c (lift interval,
+/// ROPE, harm) by its ratio quadrature or leaves them to the caller.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub(super) enum Ratios {
+    /// By the ratio quadrature over the shared grid.
+    Compute,
+    /// Left `None`: the caller has an exact route for each pair (Gamma arms, `pair`).
+    Leave,
+}
+
+/// Every shared-grid quantity of `compare` (rate intervals, P(best), losses, P(better than
+/// control)), and the ratio quantities as `ratios` says.
+pub(super) fn compare_shared(
+    arms: &Arms,
+    opts: &CompareOptions,
+    ratios: Ratios,
+) -> Result<Vec<ArmSummary>, StatsError> {
     check_options(arms, opts)?;
     let k = arms.len();
     let (lo_q, hi_q) = tail_levels(opts.level)?;
@@ -224,7 +244,8 @@ pub fn compare_general(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSumm
     let mut totals = integrate_all(&grid, c, higher);
     separated_losses(&mut totals, &grid, &means(arms), higher);
 
-    let log_cumulants = if opts.lift_interval {
+    let ratios = ratios == Ratios::Compute;
+    let log_cumulants = if ratios && opts.lift_interval {
         log_cumulants(&grid, higher)
     } else {
         Vec::new()
@@ -257,6 +278,10 @@ pub fn compare_general(arms: &Arms, opts: &CompareOptions) -> Result<Vec<ArmSumm
         };
         if j != c {
             summary.prob_better_than_control = Some(totals.beats[j].clamp(0.0, 1.0));
+            if !ratios {
+                out.push(summary);
+                continue;
+            }
             let ratio = Ratio::new(&grid, &outer, j, c, higher);
             if opts.lift_interval {
                 let guess = ratio_guess(&log_cumulants[j], &log_cumulants[c]);

@@ -235,52 +235,101 @@ fn compare_pair(
             prob_harm: None,
         };
         if !is_control {
-            if opts.lift_interval {
-                // ln(λ_v/λ_c) = t − ln(r_v/r_c); the quantiles are monotone in the level.
-                let lower = pair.grid.quantile_t(0, lo_q) - pair.t0;
-                let upper = pair.grid.quantile_t(0, hi_q) - pair.t0;
-                let (lower, upper) = (lower.min(upper), upper.max(lower));
-                let mean = if c.shape() > 1.0 {
-                    v.mean() * (c.rate() / (c.shape() - 1.0)) - 1.0
-                } else {
-                    f64::INFINITY
-                };
-                summary.lift = Some(Lift {
-                    mean,
-                    interval: Interval {
-                        level: opts.level,
-                        lower: lower.exp_m1(),
-                        upper: upper.exp_m1(),
-                    },
-                });
-            }
-            if opts.equivalence {
-                let t_hi = pair.t_at(1.0 + opts.rope);
-                let p = if opts.rope < 1.0 {
-                    let t_lo = pair.t_at(1.0 - opts.rope);
-                    let (f_lo, s_lo) = pair.tails(t_lo);
-                    let (f_hi, s_hi) = pair.tails(t_hi);
-                    // The difference of the smaller tails of the two ends.
-                    if s_lo < f_hi {
-                        s_lo - s_hi
-                    } else {
-                        f_hi - f_lo
-                    }
-                } else {
-                    pair.tails(t_hi).0
-                };
-                summary.prob_practically_equivalent = Some(p.clamp(0.0, 1.0));
-            }
-            let harm = if opts.harm_margin == 0.0 {
-                core.worse
-            } else {
-                pair.tails(pair.t_at(1.0 + opts.harm_margin)).1
-            };
-            summary.prob_harm = Some(harm.clamp(0.0, 1.0));
+            pair.pairwise(v, c, opts, lo_q, hi_q).apply(&mut summary);
         }
         out.push(summary);
     }
     Ok(out)
+}
+
+/// The quantities of one variant against the control that depend on that pair alone: the
+/// lift interval, ROPE and harm probabilities (each per its option).
+pub(crate) struct Pairwise {
+    lift: Option<Lift>,
+    equivalent: Option<f64>,
+    harm: f64,
+}
+
+impl Pairwise {
+    /// Writes these into the variant's summary (the fields `compare` leaves to this route).
+    pub(crate) fn apply(self, summary: &mut ArmSummary) {
+        summary.lift = self.lift;
+        summary.prob_practically_equivalent = self.equivalent;
+        summary.prob_harm = Some(self.harm);
+    }
+}
+
+/// The pairwise quantities of Gamma variant `v` against Gamma control `c` from their own
+/// Beta(a_v, a_c) table, for metrics of any number of arms: the shared grid of k arms keeps
+/// P(best), the losses and P(better than control), whose integrals need every arm, while these
+/// need the pair only and are exact in one variable (module doc). The options are validated
+/// by the caller.
+pub(crate) fn pairwise(
+    v: &Gamma,
+    c: &Gamma,
+    opts: &CompareOptions,
+) -> Result<Pairwise, StatsError> {
+    let (lo_q, hi_q) = tail_levels(opts.level)?;
+    Ok(Pair::new(v, c)?.pairwise(v, c, opts, lo_q, hi_q))
+}
+
+impl Pair {
+    fn pairwise(
+        &self,
+        v: &Gamma,
+        c: &Gamma,
+        opts: &CompareOptions,
+        lo_q: f64,
+        hi_q: f64,
+    ) -> Pairwise {
+        let lift = opts.lift_interval.then(|| {
+            // ln(λ_v/λ_c) = t − ln(r_v/r_c); the quantiles are monotone in the level.
+            let lower = self.grid.quantile_t(0, lo_q) - self.t0;
+            let upper = self.grid.quantile_t(0, hi_q) - self.t0;
+            let (lower, upper) = (lower.min(upper), upper.max(lower));
+            let mean = if c.shape() > 1.0 {
+                v.mean() * (c.rate() / (c.shape() - 1.0)) - 1.0
+            } else {
+                f64::INFINITY
+            };
+            Lift {
+                mean,
+                interval: Interval {
+                    level: opts.level,
+                    lower: lower.exp_m1(),
+                    upper: upper.exp_m1(),
+                },
+            }
+        });
+        let equivalent = opts.equivalence.then(|| {
+            let t_hi = self.t_at(1.0 + opts.rope);
+            let p = if opts.rope < 1.0 {
+                let t_lo = self.t_at(1.0 - opts.rope);
+                let (f_lo, s_lo) = self.tails(t_lo);
+                let (f_hi, s_hi) = self.tails(t_hi);
+                // The difference of the smaller tails of the two ends.
+                if s_lo < f_hi {
+                    s_lo - s_hi
+                } else {
+                    f_hi - f_lo
+                }
+            } else {
+                self.tails(t_hi).0
+            };
+            p.clamp(0.0, 1.0)
+        });
+        // At margin 0 this is P(λ_v > λ_c) at t0, the very value `Core` reads.
+        let harm = if opts.harm_margin == 0.0 {
+            self.tails(self.t0).1
+        } else {
+            self.tails(self.t_at(1.0 + opts.harm_margin)).1
+        };
+        Pairwise {
+            lift,
+            equivalent,
+            harm: harm.clamp(0.0, 1.0),
+        }
+    }
 }
 
 #[cfg(test)]
@@ -478,6 +527,50 @@ mod tests {
             margin in prop_oneof![Just(0.0), 0.0f64..0.1],
         ) {
             check(v, c, control, margin, 0.01, 1e-6);
+        }
+
+        /// More than two Gamma arms: each variant's lift, ROPE and harm are those of the
+        /// two-arm route for that variant and the control alone (the same table, so bit for
+        /// bit; that route is checked against mpmath above and in tests/stats_reference.rs),
+        /// and everything the shared grid computes is the general path's own number.
+        #[test]
+        fn many_arms_take_each_pairs_table(
+            arms in prop::collection::vec(arm(), 3..=5),
+            control in 0usize..5,
+            margin in prop_oneof![Just(0.0), 0.0f64..0.5],
+            rope in prop_oneof![Just(0.01), 0.0f64..2.0],
+        ) {
+            let control = control % arms.len();
+            let opts = CompareOptions { level: 0.9, ..options(control, margin, rope) };
+            let got = super::super::compare(&Arms::Gamma(arms.clone()), &opts).unwrap();
+            let general = compare_general(&Arms::Gamma(arms.clone()), &opts).unwrap();
+            for (j, (s, g)) in got.iter().zip(&general).enumerate() {
+                prop_assert_eq!(
+                    (s.mean, s.sd, s.interval, s.prob_best, s.expected_loss),
+                    (g.mean, g.sd, g.interval, g.prob_best, g.expected_loss)
+                );
+                prop_assert_eq!(s.prob_better_than_control, g.prob_better_than_control);
+                if j == control {
+                    prop_assert!(s.lift.is_none() && s.prob_harm.is_none());
+                    continue;
+                }
+                let two = compare(
+                    &[arms[control], arms[j]],
+                    &CompareOptions { control: 0, ..opts },
+                )
+                .unwrap()
+                .unwrap();
+                let t = &two[1];
+                prop_assert_eq!(
+                    (s.lift, s.prob_practically_equivalent, s.prob_harm),
+                    (t.lift, t.prob_practically_equivalent, t.prob_harm)
+                );
+                // The shared grid's ∫ f_v·S_c and the pair table's F_W agree to 1e-9.
+                let d = (s.prob_better_than_control.unwrap()
+                    - t.prob_better_than_control.unwrap())
+                .abs();
+                prop_assert!(d <= 1e-9, "P(better) differs by {:e}", d);
+            }
         }
     }
 
