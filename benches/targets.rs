@@ -978,6 +978,11 @@ fn broker(work: &Path) -> Option<Broker> {
 }
 
 fn create_topic(brokers: &str, topic: &str) {
+    create_topic_with(brokers, topic, 1);
+}
+
+/// Create `topic` with `partitions` partitions (replication 1).
+fn create_topic_with(brokers: &str, topic: &str, partitions: i32) {
     use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
     use rdkafka::client::DefaultClientContext;
     let admin: AdminClient<DefaultClientContext> = rdkafka::ClientConfig::new()
@@ -989,7 +994,7 @@ fn create_topic(brokers: &str, topic: &str) {
         .build()
         .expect("runtime");
     let result = rt.block_on(admin.create_topics(
-        &[NewTopic::new(topic, 1, TopicReplication::Fixed(1))],
+        &[NewTopic::new(topic, partitions, TopicReplication::Fixed(1))],
         &AdminOptions::new(),
     ));
     result.expect("create_topics answered")[0]

@@ -11,7 +11,7 @@
 use std::path::Path;
 use std::time::{Duration, Instant};
 
-use super::{broker, http_get, median, sized, Row, Server};
+use super::{broker, create_topic_with, http_get, median, sized, Row, Server};
 
 const PARTITIONS: i32 = 6;
 
@@ -72,26 +72,6 @@ fn events(riders: usize) -> Vec<(String, Vec<u8>, i64)> {
         }
     }
     out
-}
-
-fn create_topic(brokers: &str, topic: &str) {
-    use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
-    use rdkafka::client::DefaultClientContext;
-    let admin: AdminClient<DefaultClientContext> = rdkafka::ClientConfig::new()
-        .set("bootstrap.servers", brokers)
-        .create()
-        .expect("admin client");
-    let rt = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-        .expect("runtime");
-    let result = rt.block_on(admin.create_topics(
-        &[NewTopic::new(topic, PARTITIONS, TopicReplication::Fixed(1))],
-        &AdminOptions::new(),
-    ));
-    result.expect("create_topics answered")[0]
-        .as_ref()
-        .expect("topic created");
 }
 
 fn produce(brokers: &str, topic: &str, events: &[(String, Vec<u8>, i64)]) {
@@ -183,7 +163,7 @@ pub fn group_target(work: &Path) -> Vec<Row> {
         return not_run("no broker: set POSTERIORD_BENCH_BROKERS, or install java");
     };
     let topic = format!("bench-boarding-{}", std::process::id());
-    create_topic(&b.brokers, &topic);
+    create_topic_with(&b.brokers, &topic, PARTITIONS);
     produce(&b.brokers, &topic, &events);
     let rounds = if super::smoke() { 1 } else { 2 };
     let mut secs = [Vec::new(), Vec::new(), Vec::new()];
