@@ -51,7 +51,12 @@ metrics = {{ "ticket" = "boarded" }}
 
 /// `riders` assignments (half per experiment, alternating arms) and a ticket for every tenth.
 fn events(riders: usize) -> Vec<(String, Vec<u8>, i64)> {
-    let base = 1_780_000_000_000i64;
+    // Record timestamps of the last hours: the broker's retention deletes by timestamp, so
+    // records stamped weeks ago would vanish from under the consumers mid-run.
+    let now_ms = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map_or(0, |d| d.as_millis() as i64);
+    let base = now_ms - 2 * 3_600_000;
     let mut out = Vec::with_capacity(riders + riders / 10);
     for i in 0..riders {
         let t = base + i as i64;
