@@ -129,7 +129,7 @@ pub fn follow(
         if let Some(Ok(m)) = consumer.poll(Duration::from_millis(100)) {
             next = m.offset() + 1;
             if let Some(key) = m.key() {
-                service.offer_group_message(key, m.payload(), false);
+                service.offer_group_message(key, m.payload());
             }
         }
         if last_sweep.elapsed() < SWEEP_INTERVAL {

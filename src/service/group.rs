@@ -350,26 +350,20 @@ impl Service {
     }
 
     /// Take one message read from the partials topic (in topic order; `None` value: a
-    /// tombstone, ignored). With `evaluate` (the follower has read the topic to its end),
-    /// experiments this instance owns are evaluated at every boundary now ready, in order; the
-    /// returned acknowledgements are for the edge to publish. A follower behind the end must
-    /// not evaluate: the acknowledgements it has not read yet may cover those boundaries, and
-    /// the alerts it would take over would be old.
-    pub fn offer_group_message(
-        &self,
-        key: &[u8],
-        value: Option<&[u8]>,
-        evaluate: bool,
-    ) -> Vec<GroupMessage> {
+    /// tombstone, ignored). Nothing is evaluated here: the follower evaluates on its sweep
+    /// ([`Service::evaluate_group_ready`]) once it has read the topic to its end, since the
+    /// acknowledgements behind that end may cover the boundaries, and the alerts it would take
+    /// over would be old.
+    pub fn offer_group_message(&self, key: &[u8], value: Option<&[u8]>) {
         let Some(group) = self.group.get() else {
-            return Vec::new();
+            return;
         };
         let (Ok(key), Some(value)) = (std::str::from_utf8(key), value) else {
-            return Vec::new();
+            return;
         };
         let Some(parsed) = parse(key, value) else {
             tracing::warn!(key, "skipping an unreadable message on the partials topic");
-            return Vec::new();
+            return;
         };
         match parsed {
             Parsed::Heartbeat {
@@ -381,30 +375,16 @@ impl Service {
                     .group_watermark
                     .with_label_values(&[&partition.to_string()])
                     .set(watermark as f64 / 1e6);
-                let touched: Vec<String> = {
-                    let mut state = lock(&group.state);
-                    state.heartbeats.insert(partition, (position, watermark));
-                    let mut touched = Vec::new();
-                    for (experiment, merger) in state.mergers.iter_mut() {
-                        let beat = Partial {
-                            partition,
-                            positions: vec![position],
-                            watermark,
-                            as_of: Vec::new(),
-                        };
-                        if merger.offer(beat) == Offered::Taken {
-                            touched.push(experiment.clone());
-                        }
-                    }
-                    touched
-                };
-                if !evaluate {
-                    return Vec::new();
+                let mut state = lock(&group.state);
+                state.heartbeats.insert(partition, (position, watermark));
+                for merger in state.mergers.values_mut() {
+                    merger.offer(Partial {
+                        partition,
+                        positions: vec![position],
+                        watermark,
+                        as_of: Vec::new(),
+                    });
                 }
-                touched
-                    .into_iter()
-                    .flat_map(|e| self.evaluate_ready(group, &e))
-                    .collect()
             }
             Parsed::Partial {
                 experiment,
@@ -420,7 +400,7 @@ impl Service {
                     .find(|d| d.state_key() == experiment)
                     .cloned()
                 else {
-                    return Vec::new();
+                    return;
                 };
                 let as_of: Option<Vec<(Micros, ExperimentSnapshot)>> = as_of
                     .iter()
@@ -431,7 +411,7 @@ impl Service {
                         key,
                         "skipping a partial whose totals do not fit the experiment's definition"
                     );
-                    return Vec::new();
+                    return;
                 };
                 let offered = {
                     let mut state = lock(&group.state);
@@ -476,16 +456,8 @@ impl Service {
                 if offered == Offered::Revised {
                     tracing::warn!(key, "a partition's new holder placed records at other boundaries than its old holder (idle declarations or records behind the watermark); boundaries not yet evaluated take the new totals");
                 }
-                match offered {
-                    Offered::Taken | Offered::Revised if evaluate => {
-                        self.evaluate_ready(group, &experiment)
-                    }
-                    Offered::Taken | Offered::Revised => Vec::new(),
-                    Offered::Conflict => {
-                        tracing::error!(key, "a partial conflicts with the one held (two writers for one partition?); ignored");
-                        Vec::new()
-                    }
-                    Offered::Stale => Vec::new(),
+                if offered == Offered::Conflict {
+                    tracing::error!(key, "a partial conflicts with the one held (two writers for one partition?); ignored");
                 }
             }
             Parsed::Ack {
@@ -542,15 +514,14 @@ impl Service {
                         b.acknowledge(&experiment, evaluated);
                     }
                 }
-                Vec::new()
             }
         }
     }
 
-    /// Evaluate what is ready of every experiment this instance owns now. The follower calls
-    /// this when it has read the topic to its end and the topic is quiet: an instance that
-    /// gains a partition by a rebalance owns its experiments from then on, and no new message
-    /// may come to say so.
+    /// Evaluate what is ready of every experiment this instance owns now, and return the
+    /// acknowledgements to publish. The follower calls this on its sweep, once it has read the
+    /// topic to its end; an instance that gains a partition by a rebalance owns its
+    /// experiments from then on without any message saying so.
     pub fn evaluate_group_ready(&self) -> Vec<GroupMessage> {
         let Some(group) = self.group.get() else {
             return Vec::new();
