@@ -25,7 +25,16 @@ const EXPERIMENTS: [(&str, [&str; 2]); 2] = [
 const PARTITIONS: u32 = 4;
 const EVERY_SECS: i64 = 60;
 
-fn config(brokers: &str, group: &str, topic: &str, changelog: &str) -> String {
+/// The configuration shared by both tests: `alerts` after `[alerts]`, one `[[source]]`
+/// (`source`), and the two experiments with `rules` under their metric.
+fn group_config(
+    brokers: &str,
+    group: &str,
+    changelog: &str,
+    alerts: &str,
+    source: &str,
+    rules: &str,
+) -> String {
     let mut s = format!(
         r#"[http]
 addr = "127.0.0.1:0"
@@ -33,6 +42,7 @@ addr = "127.0.0.1:0"
 snapshot_interval_ms = 250
 [alerts]
 evaluate_every_secs = {EVERY_SECS}
+{alerts}
 [kafka]
 brokers = "{brokers}"
 group = "{group}"
@@ -45,16 +55,7 @@ idle_allowance_secs = 10800
 "session.timeout.ms" = 6000
 "heartbeat.interval.ms" = 500
 
-[[source]]
-name = "tidewater-assign"
-topics = ["{topic}"]
-unit = "rider.id"
-time = "assigned_ms"
-time_format = "epoch_millis"
-experiment = "exp.name"
-variant = "exp.arm"
-exposures = ["assigned"]
-constants = {{ event = "assigned" }}
+{source}
 "#
     );
     for (id, [a, b]) in EXPERIMENTS {
@@ -67,10 +68,27 @@ variants = [ {{ name = "{a}" }}, {{ name = "{b}" }} ]
 [[experiment.metric]]
 name = "boarded"
 kind = "conversion"
+{rules}
 "#
         ));
     }
     s
+}
+
+fn config(brokers: &str, group: &str, topic: &str, changelog: &str) -> String {
+    let source = format!(
+        r#"[[source]]
+name = "tidewater-assign"
+topics = ["{topic}"]
+unit = "rider.id"
+time = "assigned_ms"
+time_format = "epoch_millis"
+experiment = "exp.name"
+variant = "exp.arm"
+exposures = ["assigned"]
+constants = {{ event = "assigned" }}"#
+    );
+    group_config(brokers, group, changelog, "", &source, "")
 }
 
 /// One produced record: reference (record timestamp, ms), event time (ms), rider, experiment,
@@ -304,29 +322,11 @@ const WHSEC: &str = "whsec_VGlkZXdhdGVyLWZlcnJpZXMtaG9vay1rZXk=";
 fn harm_config(brokers: &str, group: &str, topic: &str, changelog: &str, port: u16) -> String {
     // One topic carries the assignments and the tickets, keyed by rider, so each partition's
     // log is in reference-time order.
-    let mut s = format!(
-        r#"[http]
-addr = "127.0.0.1:0"
-[store]
-snapshot_interval_ms = 250
-[alerts]
-evaluate_every_secs = {EVERY_SECS}
-[[alerts.webhook]]
-url = "http://127.0.0.1:{port}/hooks/ferries"
-secret_env = "TIDEWATER_HOOK_SECRET"
-[kafka]
-brokers = "{brokers}"
-group = "{group}"
-changelog_topic = "{changelog}"
-changelog_interval_ms = 300
-# The records are stamped up to 45 minutes in the past (a backfill): a quiet partition must
-# not declare itself past them between the waves.
-idle_allowance_secs = 10800
-[kafka.properties]
-"session.timeout.ms" = 6000
-"heartbeat.interval.ms" = 500
-
-[[source]]
+    let alerts = format!(
+        "[[alerts.webhook]]\nurl = \"http://127.0.0.1:{port}/hooks/ferries\"\nsecret_env = \"TIDEWATER_HOOK_SECRET\""
+    );
+    let source = format!(
+        r#"[[source]]
 name = "tidewater-boarding"
 topics = ["{topic}"]
 unit = "rider.id"
@@ -336,25 +336,10 @@ event = "kind"
 experiment = "exp.name"
 variant = "exp.arm"
 exposures = ["assigned"]
-metrics = {{ "ticket.bought" = "boarded" }}
-"#
+metrics = {{ "ticket.bought" = "boarded" }}"#
     );
-    for (id, [a, b]) in EXPERIMENTS {
-        s.push_str(&format!(
-            r#"
-[[experiment]]
-id = "{id}"
-control = "{a}"
-variants = [ {{ name = "{a}" }}, {{ name = "{b}" }} ]
-[[experiment.metric]]
-name = "boarded"
-kind = "conversion"
-[experiment.metric.rules]
-min_units = 150
-"#
-        ));
-    }
-    s
+    let rules = "[experiment.metric.rules]\nmin_units = 150";
+    group_config(brokers, group, changelog, &alerts, &source, rules)
 }
 
 /// Three waves of riders over the last 45 minutes, each a list of `REFERENCE\tEVENT` lines in
