@@ -531,6 +531,38 @@ mod tests {
 
     const CASES: u32 = 256;
 
+    /// A one-metric experiment whose snapshots stand for a partition's counts per arm.
+    fn ferry_snapshot(units: [u64; 2]) -> ExperimentSnapshot {
+        use crate::experiment::{ExperimentDef, MetricDef, MetricKind, Prior, VariantDef};
+        let def = ExperimentDef {
+            id: "harbour-boarding".into(),
+            generation: 0,
+            control: 0,
+            variants: ["queue", "tap"]
+                .iter()
+                .map(|n| VariantDef {
+                    name: (*n).into(),
+                    weight: 0.5,
+                })
+                .collect(),
+            metrics: vec![MetricDef {
+                name: "boarded".into(),
+                kind: MetricKind::Conversion,
+                prior: Prior::Beta {
+                    alpha: 1.0,
+                    beta: 1.0,
+                },
+                variant_priors: vec![None, None],
+                rules: Default::default(),
+            }],
+            rules: Default::default(),
+        };
+        let mut s = super::super::ExperimentState::new(std::sync::Arc::new(def)).snapshot();
+        s.units = units.to_vec();
+        s.outcomes.0[0] = units.iter().sum();
+        s
+    }
+
     proptest! {
         #![proptest_config(ProptestConfig {
             // Failure seeds beside this file (`*.proptest-regressions`), kept in git.
@@ -589,47 +621,7 @@ mod tests {
             let last = merger.totals_at(end);
             prop_assert_eq!(last, direct(&logs, Micros::MAX));
         }
-    }
 
-    /// A one-metric experiment whose snapshots stand for a partition's counts per arm.
-    fn ferry_snapshot(units: [u64; 2]) -> ExperimentSnapshot {
-        use crate::experiment::{ExperimentDef, MetricDef, MetricKind, Prior, VariantDef};
-        let def = ExperimentDef {
-            id: "harbour-boarding".into(),
-            generation: 0,
-            control: 0,
-            variants: ["queue", "tap"]
-                .iter()
-                .map(|n| VariantDef {
-                    name: (*n).into(),
-                    weight: 0.5,
-                })
-                .collect(),
-            metrics: vec![MetricDef {
-                name: "boarded".into(),
-                kind: MetricKind::Conversion,
-                prior: Prior::Beta {
-                    alpha: 1.0,
-                    beta: 1.0,
-                },
-                variant_priors: vec![None, None],
-                rules: Default::default(),
-            }],
-            rules: Default::default(),
-        };
-        let mut s = super::super::ExperimentState::new(std::sync::Arc::new(def)).snapshot();
-        s.units = units.to_vec();
-        s.outcomes.0[0] = units.iter().sum();
-        s
-    }
-
-    proptest! {
-        #![proptest_config(ProptestConfig {
-            failure_persistence: Some(Box::new(
-                proptest::test_runner::FileFailurePersistence::SourceParallel("proptest-regressions"),
-            )),
-            ..ProptestConfig::with_cases(CASES)
-        })]
 
         /// A shard's boundary entries, advanced before each record as the ingest path does
         /// and acknowledged as an owner would, merge to the totals of the records before each
