@@ -39,6 +39,11 @@ pub struct GroupMessage {
     pub value: Vec<u8>,
 }
 
+/// The experiment id of a state key (`id` or `id~generation`).
+fn id_of(state_key: &str) -> &str {
+    state_key.split('~').next().unwrap_or(state_key)
+}
+
 /// The input partition whose holder owns experiment `id` among `n` partitions.
 pub fn owner_partition(id: &str, n: u32) -> u32 {
     (crate::state::units::key_hash(id) % u64::from(n.max(1))) as u32
@@ -465,11 +470,7 @@ impl Service {
                 evaluated,
             } => {
                 let v: Value = serde_json::from_slice(value).unwrap_or_default();
-                let id = experiment
-                    .split('~')
-                    .next()
-                    .unwrap_or(&experiment)
-                    .to_string();
+                let id = id_of(&experiment).to_string();
                 let adopt = {
                     let mut state = lock(&group.state);
                     let e = state
@@ -526,23 +527,32 @@ impl Service {
         let Some(group) = self.group.get() else {
             return Vec::new();
         };
+        // The partitions held here, read once per sweep rather than once per experiment.
+        let held: std::collections::BTreeSet<u32> = {
+            let shards = self.lock_shards();
+            shards
+                .ids()
+                .iter()
+                .filter(|id| id.is_co_partitioned())
+                .filter_map(|id| id.kafka_partition())
+                .map(|p| p as u32)
+                .collect()
+        };
         let experiments: Vec<String> = lock(&group.state).mergers.keys().cloned().collect();
         experiments
             .iter()
+            .filter(|e| held.contains(&owner_partition(id_of(e), group.n_partitions)))
             .flat_map(|e| self.evaluate_ready(group, e))
             .collect()
     }
 
-    /// If this instance owns `experiment` (a state key), evaluate every boundary now ready on
-    /// the merged totals, in order, on this thread (the acknowledgement must follow the
+    /// Evaluate every boundary of `experiment` (a state key, owned here) now ready on the
+    /// merged totals, in order, on this thread (the acknowledgement must follow the
     /// evaluation), and return the acknowledgement of the last one with the experiment's part
     /// of the alert desk. An instance that just became the owner first takes over the alerts
     /// and pending deliveries of the last acknowledgement.
     fn evaluate_ready(&self, group: &Group, experiment: &str) -> Vec<GroupMessage> {
-        let id = experiment.split('~').next().unwrap_or(experiment);
-        if !self.holds_partition(owner_partition(id, group.n_partitions)) {
-            return Vec::new();
-        }
+        let id = id_of(experiment);
         let (due, takeover) = {
             let mut state = lock(&group.state);
             let takeover = if state.owned.insert(experiment.to_string()) {
